@@ -1,0 +1,50 @@
+//! What the user typed: the command line, before anything is validated.
+
+use std::path::PathBuf;
+
+use clap::{Args, Parser, Subcommand};
+
+#[derive(Parser, Debug)]
+#[command(
+    name = "deeptime",
+    version,
+    about = "Evolve Life-like cellular automata to astronomically far generations",
+    long_about = "Evolve two-state Life-like cellular automata (B/S rules) with the HashLife \
+                  method: canonical quadtrees, memoised results, jumps of 2^k generations."
+)]
+pub struct Cli {
+    #[command(subcommand)]
+    pub command: Command,
+}
+
+#[derive(Subcommand, Debug)]
+pub enum Command {
+    /// Advance a pattern by any number of generations and report the result
+    Evolve(EvolveArgs),
+}
+
+#[derive(Args, Debug)]
+pub struct EvolveArgs {
+    /// Pattern file, RLE or plaintext (recognised by content); `-` reads standard input
+    pub pattern: PathBuf,
+
+    /// Generations to advance: a decimal integer, B^E or M*B^E (e.g. 1103, 2^40, 30*10^100)
+    #[arg(long, value_name = "N")]
+    pub gens: String,
+
+    /// Rule in B/S notation (B3/S23, or the older 23/3); overrides the pattern's header
+    #[arg(long, value_name = "RULE")]
+    pub rule: Option<String>,
+
+    /// Print exactly one JSON object on standard output
+    #[arg(long)]
+    pub json: bool,
+
+    /// Write the final pattern as RLE, positioned at its bounding box
+    #[arg(long, value_name = "FILE.rle")]
+    pub out: Option<PathBuf>,
+
+    /// Memory budget for quads, e.g. 2GiB or 512MiB (default: half of this machine's memory)
+    #[arg(long, value_name = "SIZE")]
+    pub memory: Option<String>,
+}

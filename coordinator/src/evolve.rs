@@ -1,0 +1,82 @@
+//! `deeptime evolve`: read a pattern, advance it, report and optionally
+//! write the result.
+
+use std::io::Write;
+use std::path::Path;
+use std::time::Instant;
+
+use anyhow::Context;
+use deeptime_engine::generation::parse_generations;
+use deeptime_engine::{Progress, Universe, WriteError};
+
+use crate::cli::EvolveArgs;
+use crate::failure::BadInput;
+use crate::progress;
+use crate::report::Report;
+use crate::{input, memory};
+
+pub fn run(args: EvolveArgs) -> anyhow::Result<()> {
+    // Validate everything the user typed before any work starts.
+    let generations =
+        parse_generations(&args.gens).map_err(|error| BadInput(format!("--gens: {error}")))?;
+    let budget = memory::budget(args.memory.as_deref())?;
+    let loaded = input::read(&args.pattern)?;
+    let rule = input::rule(args.rule.as_deref(), &loaded)?;
+    if let Some(out) = &args.out {
+        check_output_path(out)?;
+    }
+
+    let started = Instant::now();
+    let mut universe = Universe::from_pattern(&loaded.pattern, rule, budget)
+        .with_context(|| format!("{}: building the pattern", loaded.name))?;
+    let line = progress::Line::start("advancing");
+    let mut observe = |progress: &Progress| line.update(progress);
+    let advanced = universe.advance(&generations, Some(&mut observe));
+    line.finish();
+    advanced.with_context(|| format!("advancing {} generations", args.gens))?;
+    let elapsed = started.elapsed();
+
+    if let Some(out) = &args.out {
+        write_rle(&mut universe, out)?;
+    }
+    Report::of(&mut universe, elapsed)?.print(args.json)
+}
+
+fn check_output_path(out: &Path) -> Result<(), BadInput> {
+    let extension = out.extension().and_then(|e| e.to_str()).unwrap_or("");
+    if !extension.eq_ignore_ascii_case("rle") {
+        return Err(BadInput(format!(
+            "--out {}: only .rle output is supported",
+            out.display()
+        )));
+    }
+    Ok(())
+}
+
+/// Writes the RLE to a temporary file beside `out`, then renames it: a
+/// failure never leaves a half-written pattern under the final name.
+fn write_rle(universe: &mut Universe, out: &Path) -> anyhow::Result<()> {
+    let directory = match out.parent() {
+        Some(parent) if !parent.as_os_str().is_empty() => parent,
+        _ => Path::new("."),
+    };
+    let mut temporary = tempfile::NamedTempFile::new_in(directory)
+        .with_context(|| format!("cannot write {}", out.display()))?;
+    {
+        let mut writer = std::io::BufWriter::new(temporary.as_file_mut());
+        match universe.write_rle(&mut writer) {
+            Ok(()) => {}
+            Err(WriteError::Io(error)) => {
+                return Err(error).with_context(|| format!("cannot write {}", out.display()));
+            }
+            Err(error) => return Err(error).with_context(|| format!("--out {}", out.display())),
+        }
+        writer
+            .flush()
+            .with_context(|| format!("cannot write {}", out.display()))?;
+    }
+    temporary
+        .persist(out)
+        .with_context(|| format!("cannot write {}", out.display()))?;
+    Ok(())
+}

@@ -1,0 +1,60 @@
+//! Reading a pattern file (or standard input) and deciding its rule, with
+//! errors that name the file, line and column.
+
+use std::io::Read;
+use std::path::Path;
+
+use deeptime_engine::pattern::{self, Pattern};
+use deeptime_engine::rule::Rule;
+
+use crate::failure::BadInput;
+
+/// Pattern files larger than this are refused before they are read whole.
+const MAX_PATTERN_BYTES: u64 = 1 << 30;
+
+/// A pattern as read, with the name to use for it in messages.
+pub struct Loaded {
+    pub name: String,
+    pub pattern: Pattern,
+}
+
+/// Reads and parses a pattern file; `-` is standard input.
+pub fn read(path: &Path) -> anyhow::Result<Loaded> {
+    let name = if path == Path::new("-") {
+        "<stdin>".to_string()
+    } else {
+        path.display().to_string()
+    };
+    let mut bytes = Vec::new();
+    let read = if path == Path::new("-") {
+        std::io::stdin()
+            .lock()
+            .take(MAX_PATTERN_BYTES + 1)
+            .read_to_end(&mut bytes)
+    } else {
+        std::fs::File::open(path)
+            .and_then(|file| file.take(MAX_PATTERN_BYTES + 1).read_to_end(&mut bytes))
+    };
+    if let Err(error) = read {
+        return Err(BadInput(format!("{name}: cannot read the pattern: {error}")).into());
+    }
+    if bytes.len() as u64 > MAX_PATTERN_BYTES {
+        return Err(BadInput(format!("{name}: pattern file is larger than 1 GiB")).into());
+    }
+    let pattern =
+        pattern::read_pattern(&bytes).map_err(|error| BadInput(format!("{name}:{error}")))?;
+    Ok(Loaded { name, pattern })
+}
+
+/// The rule: the option if given, else the pattern's header, else B3/S23.
+pub fn rule(option: Option<&str>, loaded: &Loaded) -> Result<Rule, BadInput> {
+    if let Some(text) = option {
+        return Rule::parse(text).map_err(|error| BadInput(format!("--rule: {error}")));
+    }
+    match &loaded.pattern.rule {
+        Some((text, at)) => Rule::parse(text).map_err(|error| {
+            BadInput(format!("{}:{}:{}: {error}", loaded.name, at.line, at.column))
+        }),
+        None => Ok(Rule::LIFE),
+    }
+}

@@ -1,0 +1,120 @@
+//! The figures of a state, as one JSON object or a short human summary.
+//! Numbers a user relies on (generation, population, coordinates) are
+//! decimal strings: they can be astronomically large.
+
+use std::time::Duration;
+
+use deeptime_engine::{Universe, human_bytes};
+use serde::Serialize;
+
+#[derive(Serialize, Debug)]
+pub struct Report {
+    pub generation: String,
+    pub population: String,
+    pub bbox: Option<BoxReport>,
+    pub rule: String,
+    pub digest: String,
+    pub engine: EngineReport,
+}
+
+#[derive(Serialize, Debug)]
+pub struct BoxReport {
+    pub left: String,
+    pub top: String,
+    pub width: String,
+    pub height: String,
+}
+
+/// What the engine did to get there.
+#[derive(Serialize, Debug)]
+pub struct EngineReport {
+    /// quads allocated now (live or not yet collected)
+    pub quads: u64,
+    /// quads created in all
+    pub quads_created: u64,
+    /// bytes held by the quad store now
+    pub bytes: u64,
+    /// the memory budget in bytes
+    pub budget: u64,
+    /// collections run
+    pub collections: u64,
+    /// level of the root quad
+    pub root_level: u32,
+    /// wall time of the advance, in seconds
+    pub seconds: f64,
+}
+
+impl Report {
+    pub fn of(universe: &mut Universe, elapsed: Duration) -> anyhow::Result<Report> {
+        let digest = universe.digest()?;
+        let stats = universe.store_stats();
+        Ok(Report {
+            generation: universe.generation().to_string(),
+            population: universe.population().to_string(),
+            bbox: universe.bounding_box().map(|bbox| BoxReport {
+                left: bbox.left.to_string(),
+                top: bbox.top.to_string(),
+                width: bbox.width.to_string(),
+                height: bbox.height.to_string(),
+            }),
+            rule: universe.rule().to_string(),
+            digest: digest.to_string(),
+            engine: EngineReport {
+                quads: stats.quads,
+                quads_created: stats.created,
+                bytes: stats.bytes,
+                budget: stats.budget,
+                collections: stats.collections,
+                root_level: universe.root_level(),
+                seconds: elapsed.as_secs_f64(),
+            },
+        })
+    }
+
+    pub fn print(&self, json: bool) -> anyhow::Result<()> {
+        if json {
+            println!("{}", serde_json::to_string(self)?);
+            return Ok(());
+        }
+        println!("generation    {}", abbreviate(&self.generation));
+        println!("population    {}", abbreviate(&self.population));
+        match &self.bbox {
+            None => println!("bounding box  none (no live cells)"),
+            Some(bbox) => println!(
+                "bounding box  {} × {} at ({}, {})",
+                abbreviate(&bbox.width),
+                abbreviate(&bbox.height),
+                abbreviate(&bbox.left),
+                abbreviate(&bbox.top)
+            ),
+        }
+        println!("rule          {}", self.rule);
+        println!("digest        {}", self.digest);
+        let engine = &self.engine;
+        println!(
+            "engine        {:.3} s, {} quads created, {} live in {}, {} collections",
+            engine.seconds,
+            engine.quads_created,
+            engine.quads,
+            human_bytes(engine.bytes),
+            engine.collections
+        );
+        Ok(())
+    }
+}
+
+/// Long decimals shortened for people: the first and last digits and the
+/// digit count (the JSON form always has them whole).
+fn abbreviate(decimal: &str) -> String {
+    let digits = decimal.trim_start_matches('-');
+    if digits.len() <= 40 {
+        return decimal.to_string();
+    }
+    let sign = if decimal.starts_with('-') { "-" } else { "" };
+    format!(
+        "{sign}{}…{} ({} digits)",
+        &digits[..12],
+        &digits[digits.len() - 12..],
+        digits.len()
+    )
+}

@@ -1,0 +1,48 @@
+//! The engine's error kinds.
+
+use std::fmt;
+
+/// The live quads no longer fit the memory budget, even after collection.
+#[derive(Clone, Copy, Debug, PartialEq, Eq, thiserror::Error)]
+pub struct BudgetExceeded {
+    /// the budget, in bytes
+    pub budget: u64,
+    /// bytes in use when the store gave up
+    pub in_use: u64,
+}
+
+impl fmt::Display for BudgetExceeded {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        write!(
+            f,
+            "memory budget of {} is too small: {} are still live after collection; \
+             give the run a larger memory budget",
+            human_bytes(self.budget),
+            human_bytes(self.in_use)
+        )
+    }
+}
+
+/// A state cannot be written as pattern text.
+#[derive(Clone, Debug, PartialEq, Eq, thiserror::Error)]
+#[error("the pattern is too large to write as text: {what}")]
+pub struct TooLargeForText {
+    /// what exceeded which limit
+    pub what: String,
+}
+
+/// Bytes in binary units with one decimal, for messages.
+pub fn human_bytes(bytes: u64) -> String {
+    const UNITS: [&str; 5] = ["B", "KiB", "MiB", "GiB", "TiB"];
+    let mut value = bytes as f64;
+    let mut unit = 0;
+    while value >= 1024.0 && unit + 1 < UNITS.len() {
+        value /= 1024.0;
+        unit += 1;
+    }
+    if unit == 0 {
+        format!("{bytes} B")
+    } else {
+        format!("{value:.1} {}", UNITS[unit])
+    }
+}

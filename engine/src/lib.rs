@@ -1,0 +1,22 @@
+//! The deeptime engine: Life-like rules, canonical quadtrees advanced by the
+//! HashLife method, content ids and digests, and pattern text.
+//!
+//! Synchronous and free of network code: the cluster layers build on it.
+
+pub mod generation;
+pub mod pattern;
+pub mod rule;
+
+mod advance;
+mod content_id;
+mod error;
+mod kernel;
+mod stack;
+mod store;
+mod universe;
+
+pub use advance::{Observer, Progress};
+pub use content_id::{BadContentId, ContentId};
+pub use error::{BudgetExceeded, TooLargeForText, human_bytes};
+pub use store::{Handle, StoreStats};
+pub use universe::{BoundingBox, MAX_TEXT_CELLS, Universe, WriteError};

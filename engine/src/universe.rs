@@ -1,0 +1,694 @@
+//! A state of the unbounded plane at some generation: a root quad centred on
+//! the origin, the rule, and the store that holds its quads.
+//!
+//! The root of level L covers x and y in [-2^(L-1), 2^(L-1)); it grows before
+//! an advance so that the pattern cannot reach its edge, and shrinks after
+//! one, so the plane is unbounded while the tree stays as small as the
+//! pattern. Generation, population and coordinates are unbounded integers.
+
+use std::collections::HashMap;
+use std::io::Write;
+
+use num_bigint::{BigInt, BigUint};
+use num_traits::{One, Zero};
+
+use crate::advance::{self, Advance, Observer};
+use crate::content_id::ContentId;
+use crate::error::{BudgetExceeded, TooLargeForText};
+use crate::pattern::{MAX_COORDINATE, Pattern, write};
+use crate::rule::Rule;
+use crate::stack;
+use crate::store::{Handle, LEAF_LEVEL, Store, StoreStats};
+
+/// The smallest root level kept while evolving (32×32 cells).
+const MIN_ROOT_LEVEL: u32 = 5;
+/// Cells allowed in a pattern written as text.
+pub const MAX_TEXT_CELLS: u64 = 1 << 26;
+
+/// The extent of the live cells, in cells; x grows right, y grows down.
+#[derive(Clone, Debug, PartialEq, Eq)]
+pub struct BoundingBox {
+    /// column of the leftmost live cell
+    pub left: BigInt,
+    /// row of the topmost live cell
+    pub top: BigInt,
+    /// columns from the leftmost to the rightmost live cell, inclusive
+    pub width: BigUint,
+    /// rows from the topmost to the bottommost live cell, inclusive
+    pub height: BigUint,
+}
+
+/// Why a state could not be written as pattern text.
+#[derive(Debug, thiserror::Error)]
+pub enum WriteError {
+    /// the state is too big for text
+    #[error(transparent)]
+    TooLarge(#[from] TooLargeForText),
+    /// the quads needed to canonicalise the root did not fit the budget
+    #[error(transparent)]
+    Budget(#[from] BudgetExceeded),
+    /// the output failed
+    #[error("cannot write the pattern: {0}")]
+    Io(#[from] std::io::Error),
+}
+
+/// A state of the plane under a rule, at a generation.
+pub struct Universe {
+    store: Store,
+    rule: Rule,
+    root: Handle,
+    level: u32,
+    generation: BigUint,
+    /// The advance the residual memo was filled for (N's words).
+    residual_for: Vec<u64>,
+}
+
+impl Universe {
+    /// An empty plane at generation 0.
+    pub fn new(rule: Rule, budget: u64) -> Result<Universe, BudgetExceeded> {
+        let mut store = Store::new(budget);
+        let root = store.empty(MIN_ROOT_LEVEL)?;
+        store.pin(root);
+        Ok(Universe {
+            store,
+            rule,
+            root,
+            level: MIN_ROOT_LEVEL,
+            generation: BigUint::zero(),
+            residual_for: Vec::new(),
+        })
+    }
+
+    /// The plane holding `pattern` with its top-left cell at (0, 0).
+    pub fn from_pattern(
+        pattern: &Pattern,
+        rule: Rule,
+        budget: u64,
+    ) -> Result<Universe, BudgetExceeded> {
+        let mut universe = Universe::new(rule, budget)?;
+        // The leaf map costs about 32 bytes per leaf; refuse before filling
+        // it rather than after.
+        let leaves_bound: u64 = pattern
+            .runs
+            .iter()
+            .map(|run| run.len / 8 + 2)
+            .fold(0u64, u64::saturating_add);
+        if leaves_bound.saturating_mul(32) > budget {
+            return Err(BudgetExceeded {
+                budget,
+                in_use: leaves_bound.saturating_mul(32),
+            });
+        }
+        let mut leaves: HashMap<(u64, u64), u64, ahash::RandomState> = HashMap::default();
+        let mut extent = 1u64;
+        for run in &pattern.runs {
+            let end = run.x + run.len; // exclusive
+            extent = extent.max(end).max(run.y + 1);
+            let row = (run.y % 8) * 8;
+            let mut x = run.x;
+            while x < end {
+                let column = x % 8;
+                let span = (8 - column).min(end - x);
+                let bits = ((1u64 << span) - 1) << column;
+                *leaves.entry((x / 8, run.y / 8)).or_default() |= bits << row;
+                x += span;
+            }
+        }
+        let store = &mut universe.store;
+        store.set_collect_allowed(false);
+        let built = build_tree(store, leaves, extent);
+        store.set_collect_allowed(true);
+        let (quad, level) = built?;
+        let empty = store.empty(level)?;
+        let root = store.join([empty, empty, empty, quad])?;
+        store.empty(level + 1)?;
+        universe.set_root(root, level + 1);
+        Ok(universe)
+    }
+
+    /// The rule this state evolves under.
+    pub fn rule(&self) -> Rule {
+        self.rule
+    }
+
+    /// The generation of this state.
+    pub fn generation(&self) -> &BigUint {
+        &self.generation
+    }
+
+    /// The store's counters.
+    pub fn store_stats(&self) -> StoreStats {
+        self.store.stats()
+    }
+
+    /// The root quad's level now (it grows and shrinks with the pattern).
+    pub fn root_level(&self) -> u32 {
+        self.level
+    }
+
+    fn set_root(&mut self, root: Handle, level: u32) {
+        self.store.pin(root);
+        self.store.unpin(self.root);
+        self.root = root;
+        self.level = level;
+    }
+
+    /// Advances the state by `generations`, in one pass of the recursion.
+    pub fn advance(
+        &mut self,
+        generations: &BigUint,
+        observer: Option<Observer<'_>>,
+    ) -> Result<(), BudgetExceeded> {
+        if generations.is_zero() {
+            return Ok(());
+        }
+        // Grow until the pattern sits in the centre half and the stride
+        // allows the advance, then once more: the pattern then sits in the
+        // centre quarter and cannot leave the result in N generations.
+        let bits = generations.bits();
+        loop {
+            let room = (self.level as u64).saturating_sub(2);
+            let stride_ok = bits <= room; // N < 2^(level-2), or N = 2^k with k < level-2
+            if stride_ok && self.fits_centre_half(self.root, self.level) {
+                break;
+            }
+            self.expand()?;
+        }
+        self.expand()?;
+        self.store.empty(self.level)?;
+        let words = generations.to_u64_digits();
+        if words != self.residual_for {
+            self.store.residual.clear();
+            self.residual_for = words.clone();
+        }
+        let level = self.level;
+        let root = self.root;
+        let rule = self.rule;
+        let store = &mut self.store;
+        let result = stack::deep(level, move || {
+            Advance::new(store, rule, &words, level, observer).run(root)
+        })?;
+        self.set_root(result, level - 1);
+        self.generation += generations;
+        while self.level > MIN_ROOT_LEVEL && self.fits_centre_half(self.root, self.level) {
+            let centre = advance::centre(&mut self.store, self.root, self.level)?;
+            self.set_root(centre, self.level - 1);
+        }
+        Ok(())
+    }
+
+    /// Doubles the root around the origin.
+    fn expand(&mut self) -> Result<(), BudgetExceeded> {
+        let level = self.level;
+        let empty = self.store.empty(level - 1)?;
+        let [nw, ne, sw, se] = self.store.kids(self.root);
+        let base = self.store.scratch.len();
+        let mut kids = [Handle::NONE; 4];
+        for (at, quarter) in [
+            [empty, empty, empty, nw],
+            [empty, empty, ne, empty],
+            [empty, sw, empty, empty],
+            [se, empty, empty, empty],
+        ]
+        .into_iter()
+        .enumerate()
+        {
+            kids[at] = self.store.join(quarter)?;
+            self.store.scratch.push(kids[at]);
+        }
+        let root = self.store.join(kids)?;
+        self.store.scratch.truncate(base);
+        self.set_root(root, level + 1);
+        Ok(())
+    }
+
+    /// Whether every live cell of `quad` (of `level` ≥ 4) lies in its
+    /// centre half.
+    fn fits_centre_half(&self, quad: Handle, level: u32) -> bool {
+        let kids = self.store.kids(quad);
+        if level == LEAF_LEVEL + 1 {
+            // The inner quarter of each leaf: se of nw, sw of ne, ne of sw, nw of se.
+            const INNER: [u64; 4] = [
+                0xf0f0_f0f0_0000_0000,
+                0x0f0f_0f0f_0000_0000,
+                0x0000_0000_f0f0_f0f0,
+                0x0000_0000_0f0f_0f0f,
+            ];
+            return kids
+                .iter()
+                .zip(INNER)
+                .all(|(&leaf, inner)| self.store.leaf_bits(leaf) & !inner == 0);
+        }
+        let empty = self.store.known_empty(level - 2);
+        // Of each child, the three grandchildren away from the centre.
+        let outer = [[0, 1, 2], [0, 1, 3], [0, 2, 3], [1, 2, 3]];
+        kids.iter().zip(outer).all(|(&kid, away)| {
+            let grand = self.store.kids(kid);
+            away.iter().all(|&at| grand[at] == empty)
+        })
+    }
+
+    /// The number of live cells.
+    pub fn population(&self) -> BigUint {
+        let store = &self.store;
+        let (root, level) = (self.root, self.level);
+        stack::deep(level, move || {
+            let mut counter = Counter::default();
+            counter.big(store, root, level)
+        })
+    }
+
+    /// The extent of the live cells, or None when there are none.
+    pub fn bounding_box(&self) -> Option<BoundingBox> {
+        let store = &self.store;
+        let (root, level) = (self.root, self.level);
+        let half = BigInt::one() << (level - 1);
+        stack::deep(level, move || {
+            let find = |axis: usize, max: bool| {
+                let mut extremes = Extremes {
+                    axis,
+                    max,
+                    small: HashMap::default(),
+                    big: HashMap::default(),
+                };
+                extremes.big(store, root, level)
+            };
+            let left = find(0, false)?;
+            let right = find(0, true)?;
+            let top = find(1, false)?;
+            let bottom = find(1, true)?;
+            Some(BoundingBox {
+                width: &right - &left + 1u32,
+                height: &bottom - &top + 1u32,
+                left: BigInt::from(left) - &half,
+                top: BigInt::from(top) - &half,
+            })
+        })
+    }
+
+    /// The smallest centred quad (level ≥ 3) holding every live cell.
+    fn canonical_root(&mut self) -> Result<(Handle, u32), BudgetExceeded> {
+        let (mut quad, mut level) = (self.root, self.level);
+        let base = self.store.scratch.len();
+        while level > LEAF_LEVEL && self.fits_centre_half(quad, level) {
+            quad = advance::centre(&mut self.store, quad, level)?;
+            self.store.scratch.push(quad);
+            level -= 1;
+        }
+        self.store.scratch.truncate(base);
+        Ok((quad, level))
+    }
+
+    /// The state's digest: the content id of its canonical root (see
+    /// `content_id`). Equal live cells give equal digests.
+    pub fn digest(&mut self) -> Result<ContentId, BudgetExceeded> {
+        let (quad, level) = self.canonical_root()?;
+        let store = &mut self.store;
+        Ok(stack::deep(level, move || content_id(store, quad, level)))
+    }
+
+    /// The content id of a quad of this store.
+    pub fn content_id(&mut self, quad: Handle, level: u32) -> ContentId {
+        let store = &mut self.store;
+        stack::deep(level, move || content_id(store, quad, level))
+    }
+
+    /// The live cells as (x, y), sorted by row then column. For states whose
+    /// coordinates fit `i64` and whose cells fit text (see `write_rle`).
+    pub fn cells(&mut self) -> Result<Vec<(i64, i64)>, WriteError> {
+        let Some(bbox) = self.bounding_box() else {
+            return Ok(Vec::new());
+        };
+        let too_far = || TooLargeForText {
+            what: format!("its corner ({}, {}) is beyond 64-bit coordinates", bbox.left, bbox.top),
+        };
+        let left = i64::try_from(&bbox.left).map_err(|_| too_far())?;
+        let top = i64::try_from(&bbox.top).map_err(|_| too_far())?;
+        let mut cells = Vec::new();
+        for (y, runs) in self.rows(&bbox)? {
+            for (x, len) in runs {
+                for dx in 0..len {
+                    cells.push((left + (x + dx) as i64, top + y as i64));
+                }
+            }
+        }
+        Ok(cells)
+    }
+
+    /// Writes the state as RLE text positioned at its bounding box.
+    pub fn write_rle(&mut self, out: &mut impl Write) -> Result<(), WriteError> {
+        let rule = self.rule.to_string();
+        let Some(bbox) = self.bounding_box() else {
+            write::write_rle(out, 0, 0, &rule, Vec::new())?;
+            return Ok(());
+        };
+        let rows = self.rows(&bbox)?;
+        let width = u64::try_from(&bbox.width).expect("checked by rows");
+        let height = u64::try_from(&bbox.height).expect("checked by rows");
+        write::write_rle(out, width, height, &rule, rows)?;
+        Ok(())
+    }
+
+    /// The non-empty rows of the bounding box with their runs of live cells
+    /// (x, len), both relative to the box.
+    #[allow(clippy::type_complexity)]
+    fn rows(&mut self, bbox: &BoundingBox) -> Result<Vec<(u64, Vec<(u64, u64)>)>, WriteError> {
+        let population = self.population();
+        let limit = BigUint::from(MAX_COORDINATE);
+        if bbox.width > limit || bbox.height > limit {
+            return Err(TooLargeForText {
+                what: format!(
+                    "its bounding box is {}×{} cells (at most {MAX_COORDINATE} each way)",
+                    bbox.width, bbox.height
+                ),
+            }
+            .into());
+        }
+        if population > BigUint::from(MAX_TEXT_CELLS) {
+            return Err(TooLargeForText {
+                what: format!("it has {population} live cells (at most {MAX_TEXT_CELLS})"),
+            }
+            .into());
+        }
+        // The box, from the root's corner, may be astronomically far; it is
+        // covered by at most 2×2 aligned squares of level BLOCK, within which
+        // offsets fit u64.
+        const BLOCK: u32 = MAX_COORDINATE.trailing_zeros() + 1;
+        let half = BigInt::one() << (self.level - 1);
+        let left = (&bbox.left + &half).magnitude().clone();
+        let top = (&bbox.top + &half).magnitude().clone();
+        let mut blocks = Vec::new();
+        let (left_offset, top_offset);
+        if self.level <= BLOCK + 1 {
+            left_offset = u64::try_from(&left).expect("inside a small root");
+            top_offset = u64::try_from(&top).expect("inside a small root");
+            leaf_blocks(&self.store, self.root, self.level, 0, 0, &mut blocks);
+        } else {
+            let origin_x = (&left >> BLOCK) << BLOCK;
+            let origin_y = (&top >> BLOCK) << BLOCK;
+            left_offset = u64::try_from(&left - &origin_x).expect("below 2^BLOCK");
+            top_offset = u64::try_from(&top - &origin_y).expect("below 2^BLOCK");
+            let side = BigUint::one() << BLOCK;
+            for (dx, dy) in [(0u64, 0u64), (1, 0), (0, 1), (1, 1)] {
+                let x = &origin_x + &side * dx;
+                let y = &origin_y + &side * dy;
+                if let Some(quad) = self.descend(x, y, BLOCK) {
+                    let leaves = 1u64 << (BLOCK - LEAF_LEVEL);
+                    leaf_blocks(&self.store, quad, BLOCK, dx * leaves, dy * leaves, &mut blocks);
+                }
+            }
+        }
+        blocks.sort_unstable();
+        let mut rows = Vec::new();
+        let mut at = 0;
+        while at < blocks.len() {
+            let band = blocks[at].0;
+            let mut end = at;
+            while end < blocks.len() && blocks[end].0 == band {
+                end += 1;
+            }
+            for row in 0..8u64 {
+                let mut runs: Vec<(u64, u64)> = Vec::new();
+                for &(_, column, bits) in &blocks[at..end] {
+                    let mut byte = (bits >> (8 * row)) & 0xff;
+                    while byte != 0 {
+                        let start = byte.trailing_zeros() as u64;
+                        let len = (!(byte >> start)).trailing_zeros() as u64;
+                        byte &= !(((1u64 << len) - 1) << start);
+                        let x = column * 8 + start - left_offset;
+                        match runs.last_mut() {
+                            Some(last) if last.0 + last.1 == x => last.1 += len,
+                            _ => runs.push((x, len)),
+                        }
+                    }
+                }
+                if !runs.is_empty() {
+                    rows.push((band * 8 + row - top_offset, runs));
+                }
+            }
+            at = end;
+        }
+        Ok(rows)
+    }
+
+    /// The aligned quad of `level` whose corner is at (x, y) from the root's
+    /// corner, or None when that lies outside the root.
+    fn descend(&self, mut x: BigUint, mut y: BigUint, level: u32) -> Option<Handle> {
+        let (mut quad, mut at) = (self.root, self.level);
+        if x.bits() > at as u64 || y.bits() > at as u64 {
+            return None;
+        }
+        while at > level {
+            let half = BigUint::one() << (at - 1);
+            let (east, south) = (x >= half, y >= half);
+            if east {
+                x -= &half;
+            }
+            if south {
+                y -= &half;
+            }
+            quad = self.store.kids(quad)[south as usize * 2 + east as usize];
+            at -= 1;
+        }
+        Some(quad)
+    }
+}
+
+/// Builds the quadtree of the square [0, 2^k)² (k ≥ 4, 2^k ≥ extent) from
+/// its non-empty leaves keyed by leaf column and row; returns it and k.
+fn build_tree(
+    store: &mut Store,
+    leaves: HashMap<(u64, u64), u64, ahash::RandomState>,
+    extent: u64,
+) -> Result<(Handle, u32), BudgetExceeded> {
+    let target = (64 - (extent - 1).leading_zeros()).max(LEAF_LEVEL + 1);
+    let mut level = LEAF_LEVEL;
+    let mut quads: HashMap<(u64, u64), Handle, ahash::RandomState> = HashMap::default();
+    for (at, bits) in leaves {
+        quads.insert(at, store.leaf(bits)?);
+    }
+    while level < target {
+        let empty = store.empty(level)?;
+        let mut parents: HashMap<(u64, u64), [Handle; 4], ahash::RandomState> =
+            HashMap::default();
+        for ((x, y), quad) in quads {
+            let kids = parents.entry((x / 2, y / 2)).or_insert([empty; 4]);
+            kids[((y % 2) * 2 + x % 2) as usize] = quad;
+        }
+        quads = HashMap::default();
+        for (at, kids) in parents {
+            quads.insert(at, store.join(kids)?);
+        }
+        level += 1;
+    }
+    let quad = match quads.get(&(0, 0)) {
+        Some(&quad) => quad,
+        None => store.empty(level)?,
+    };
+    Ok((quad, level))
+}
+
+/// Populations, memoised: in `u64` up to level 31, big integers above.
+#[derive(Default)]
+struct Counter {
+    small: HashMap<Handle, u64, ahash::RandomState>,
+    big: HashMap<Handle, BigUint, ahash::RandomState>,
+}
+
+impl Counter {
+    fn small(&mut self, store: &Store, quad: Handle, level: u32) -> u64 {
+        if quad.is_leaf() {
+            return store.leaf_bits(quad).count_ones() as u64;
+        }
+        if quad == store.known_empty(level) {
+            return 0;
+        }
+        if let Some(&count) = self.small.get(&quad) {
+            return count;
+        }
+        let count = store
+            .kids(quad)
+            .iter()
+            .map(|&kid| self.small(store, kid, level - 1))
+            .sum();
+        self.small.insert(quad, count);
+        count
+    }
+
+    fn big(&mut self, store: &Store, quad: Handle, level: u32) -> BigUint {
+        if level <= 31 {
+            return BigUint::from(self.small(store, quad, level));
+        }
+        if quad == store.known_empty(level) {
+            return BigUint::zero();
+        }
+        if let Some(count) = self.big.get(&quad) {
+            return count.clone();
+        }
+        let mut count = BigUint::zero();
+        for kid in store.kids(quad) {
+            count += self.big(store, kid, level - 1);
+        }
+        self.big.insert(quad, count.clone());
+        count
+    }
+}
+
+/// The lowest or highest live column (axis 0) or row (axis 1) of quads,
+/// as an offset from the quad's corner; memoised per quad.
+struct Extremes {
+    axis: usize,
+    max: bool,
+    small: HashMap<Handle, Option<u64>, ahash::RandomState>,
+    big: HashMap<Handle, Option<BigUint>, ahash::RandomState>,
+}
+
+impl Extremes {
+    /// Children nearest the wanted side first, then the others, with the
+    /// half-offset of the latter group.
+    fn groups(&self) -> ([usize; 2], [usize; 2], bool) {
+        let (low, high) = if self.axis == 0 {
+            ([0, 2], [1, 3])
+        } else {
+            ([0, 1], [2, 3])
+        };
+        if self.max {
+            (high, low, true)
+        } else {
+            (low, high, false)
+        }
+    }
+
+    fn leaf(&self, bits: u64) -> Option<u64> {
+        if bits == 0 {
+            return None;
+        }
+        let lines = if self.axis == 0 {
+            // columns with a live cell, as the bits of one byte
+            let mut columns = bits;
+            columns |= columns >> 32;
+            columns |= columns >> 16;
+            columns |= columns >> 8;
+            columns & 0xff
+        } else {
+            // rows with a live cell
+            (0..8).fold(0u64, |rows, row| {
+                rows | (((bits >> (8 * row)) & 0xff != 0) as u64) << row
+            })
+        };
+        Some(if self.max {
+            63 - lines.leading_zeros() as u64
+        } else {
+            lines.trailing_zeros() as u64
+        })
+    }
+
+    fn small(&mut self, store: &Store, quad: Handle, level: u32) -> Option<u64> {
+        if quad.is_leaf() {
+            return self.leaf(store.leaf_bits(quad));
+        }
+        if quad == store.known_empty(level) {
+            return None;
+        }
+        if let Some(&found) = self.small.get(&quad) {
+            return found;
+        }
+        let kids = store.kids(quad);
+        let (near, far, near_is_high) = self.groups();
+        let half = 1u64 << (level - 1);
+        let pick = |group: [usize; 2], offset: u64, this: &mut Self| {
+            let mut best: Option<u64> = None;
+            for at in group {
+                if let Some(found) = this.small(store, kids[at], level - 1) {
+                    let found = found + offset;
+                    best = Some(match best {
+                        Some(b) if this.max => b.max(found),
+                        Some(b) => b.min(found),
+                        None => found,
+                    });
+                }
+            }
+            best
+        };
+        let near_offset = if near_is_high { half } else { 0 };
+        let far_offset = if near_is_high { 0 } else { half };
+        let found = pick(near, near_offset, self).or_else(|| pick(far, far_offset, self));
+        self.small.insert(quad, found);
+        found
+    }
+
+    fn big(&mut self, store: &Store, quad: Handle, level: u32) -> Option<BigUint> {
+        if level <= 62 {
+            return self.small(store, quad, level).map(BigUint::from);
+        }
+        if quad == store.known_empty(level) {
+            return None;
+        }
+        if let Some(found) = self.big.get(&quad) {
+            return found.clone();
+        }
+        let kids = store.kids(quad);
+        let (near, far, near_is_high) = self.groups();
+        let half = BigUint::one() << (level - 1);
+        let mut found = None;
+        for (group, high) in [(near, near_is_high), (far, !near_is_high)] {
+            for at in group {
+                if let Some(offset) = self.big(store, kids[at], level - 1) {
+                    let offset = if high { offset + &half } else { offset };
+                    found = Some(match found {
+                        Some(best) if self.max => std::cmp::max(best, offset),
+                        Some(best) => std::cmp::min(best, offset),
+                        None => offset,
+                    });
+                }
+            }
+            if found.is_some() {
+                break;
+            }
+        }
+        self.big.insert(quad, found.clone());
+        found
+    }
+}
+
+/// The content id of a quad, memoised in the store.
+fn content_id(store: &mut Store, quad: Handle, level: u32) -> ContentId {
+    if quad.is_leaf() {
+        return ContentId::of_leaf(store.leaf_bits(quad));
+    }
+    if let Some(&id) = store.ids.get(&quad) {
+        return id;
+    }
+    let kids = store.kids(quad);
+    let ids = kids.map(|kid| content_id(store, kid, level - 1));
+    let id = ContentId::of_inner(level, ids);
+    store.ids.insert(quad, id);
+    id
+}
+
+/// Collects (leaf row, leaf column, bits) of the non-empty leaves of a quad
+/// whose corner is at leaf row `y`, leaf column `x`.
+fn leaf_blocks(
+    store: &Store,
+    quad: Handle,
+    level: u32,
+    x: u64,
+    y: u64,
+    out: &mut Vec<(u64, u64, u64)>,
+) {
+    if quad.is_leaf() {
+        let bits = store.leaf_bits(quad);
+        if bits != 0 {
+            out.push((y, x, bits));
+        }
+        return;
+    }
+    if quad == store.known_empty(level) {
+        return;
+    }
+    let half = 1u64 << (level - 1 - LEAF_LEVEL);
+    for (at, kid) in store.kids(quad).into_iter().enumerate() {
+        let (dx, dy) = ((at as u64 % 2) * half, (at as u64 / 2) * half);
+        leaf_blocks(store, kid, level - 1, x + dx, y + dy, out);
+    }
+}
