@@ -53,7 +53,10 @@ pub fn rule(option: Option<&str>, loaded: &Loaded) -> Result<Rule, BadInput> {
     }
     match &loaded.pattern.rule {
         Some((text, at)) => Rule::parse(text).map_err(|error| {
-            BadInput(format!("{}:{}:{}: {error}", loaded.name, at.line, at.column))
+            BadInput(format!(
+                "{}:{}:{}: {error}",
+                loaded.name, at.line, at.column
+            ))
         }),
         None => Ok(Rule::LIFE),
     }

@@ -122,7 +122,12 @@ impl<'a, 'o> Advance<'a, 'o> {
         }
     }
 
-    fn advance(&mut self, quad: Handle, level: u32, stride: Stride) -> Result<Handle, BudgetExceeded> {
+    fn advance(
+        &mut self,
+        quad: Handle,
+        level: u32,
+        stride: Stride,
+    ) -> Result<Handle, BudgetExceeded> {
         if quad == self.store.known_empty(level) {
             return Ok(self.store.known_empty(level - 1));
         }
@@ -240,7 +245,7 @@ impl<'a, 'o> Advance<'a, 'o> {
     /// Counts calls and reports progress now and then.
     fn tick(&mut self) {
         self.calls = self.calls.wrapping_add(1);
-        if self.observer.is_none() || self.calls % 1024 != 0 {
+        if self.observer.is_none() || !self.calls.is_multiple_of(1024) {
             return;
         }
         let now = Instant::now();
@@ -279,7 +284,11 @@ fn grandchildren(store: &Store, quad: Handle) -> [[Handle; 4]; 4] {
 }
 
 /// The centre (level n-1) of a quad of level n ≥ 4.
-pub(crate) fn centre(store: &mut Store, quad: Handle, level: u32) -> Result<Handle, BudgetExceeded> {
+pub(crate) fn centre(
+    store: &mut Store,
+    quad: Handle,
+    level: u32,
+) -> Result<Handle, BudgetExceeded> {
     let kids = store.kids(quad);
     centre_of_four(store, kids, level - 1)
 }

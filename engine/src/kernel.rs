@@ -107,7 +107,11 @@ fn step(masks: &RuleMasks, rows: &Rows) -> Rows {
             let chooses = (masks.born[count] & !mid) | (masks.stays[count] & mid);
             let mut equal = u32::MAX;
             for (bit, plane) in planes.iter().enumerate() {
-                equal &= if count >> bit & 1 == 1 { *plane } else { !*plane };
+                equal &= if count >> bit & 1 == 1 {
+                    *plane
+                } else {
+                    !*plane
+                };
             }
             out |= equal & chooses;
         }
@@ -138,13 +142,15 @@ mod tests {
                         }
                     }
                 }
-                next[y as usize][x as usize] = rule.next_state(cells[y as usize][x as usize], count);
+                next[y as usize][x as usize] =
+                    rule.next_state(cells[y as usize][x as usize], count);
             }
         }
         next
     }
 
     #[test]
+    #[allow(clippy::needless_range_loop)]
     fn agrees_with_cell_by_cell_stepping() {
         let rules = ["B3/S23", "B36/S23", "B2/S", "B3678/S34678", "B1/S012345678"];
         let mut seed = 0x9e37_79b9_7f4a_7c15u64;

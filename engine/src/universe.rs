@@ -320,7 +320,10 @@ impl Universe {
             return Ok(Vec::new());
         };
         let too_far = || TooLargeForText {
-            what: format!("its corner ({}, {}) is beyond 64-bit coordinates", bbox.left, bbox.top),
+            what: format!(
+                "its corner ({}, {}) is beyond 64-bit coordinates",
+                bbox.left, bbox.top
+            ),
         };
         let left = i64::try_from(&bbox.left).map_err(|_| too_far())?;
         let top = i64::try_from(&bbox.top).map_err(|_| too_far())?;
@@ -394,7 +397,14 @@ impl Universe {
                 let y = &origin_y + &side * dy;
                 if let Some(quad) = self.descend(x, y, BLOCK) {
                     let leaves = 1u64 << (BLOCK - LEAF_LEVEL);
-                    leaf_blocks(&self.store, quad, BLOCK, dx * leaves, dy * leaves, &mut blocks);
+                    leaf_blocks(
+                        &self.store,
+                        quad,
+                        BLOCK,
+                        dx * leaves,
+                        dy * leaves,
+                        &mut blocks,
+                    );
                 }
             }
         }
@@ -469,8 +479,7 @@ fn build_tree(
     }
     while level < target {
         let empty = store.empty(level)?;
-        let mut parents: HashMap<(u64, u64), [Handle; 4], ahash::RandomState> =
-            HashMap::default();
+        let mut parents: HashMap<(u64, u64), [Handle; 4], ahash::RandomState> = HashMap::default();
         for ((x, y), quad) in quads {
             let kids = parents.entry((x / 2, y / 2)).or_insert([empty; 4]);
             kids[((y % 2) * 2 + x % 2) as usize] = quad;

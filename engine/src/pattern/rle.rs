@@ -65,11 +65,14 @@ pub fn read_rle(bytes: &[u8]) -> Result<Pattern, PatternError> {
     ))
 }
 
-/// A header line starts with `x` and `=`; no body line can.
+/// A header line starts with `x =` (or `y =`, `rule =`, in any case); no
+/// body line can.
 fn is_header(trimmed: &str) -> bool {
-    trimmed
-        .strip_prefix(['x', 'X'])
-        .is_some_and(|rest| rest.trim_start().starts_with('='))
+    let key_end = trimmed
+        .find(|c: char| !c.is_ascii_alphabetic())
+        .unwrap_or(trimmed.len());
+    let key = trimmed[..key_end].to_ascii_lowercase();
+    matches!(key.as_str(), "x" | "y" | "rule") && trimmed[key_end..].trim_start().starts_with('=')
 }
 
 /// Checks a header line and returns its rule text, if it has one.
@@ -347,11 +350,12 @@ mod tests {
 
     #[test]
     fn line_endings_whitespace_and_comments() {
-        let inputs: [&[u8]; 7] = [
+        let inputs: [&[u8]; 8] = [
             b"#N glider\r\n#C by hand\r\nx = 3, y = 3, rule = B3/S23\r\nbob$2bo$\r\n3o!\r\n",
             b"#N glider\rx = 3, y = 3, rule = B3/S23\rbob$\r2bo$3o!\r",
             b"x=3,y=3,rule=B3/S23\nb o b $ 2 b o $\n\n  3\n\to\t!",
             b"X = 3, Y = 3, RULE = B3/S23\nbob$2\nbo$3o!",
+            b"rule = B3/S23, y = 3, x = 3\nbob$2bo$3o!",
             b"  \n#C comment\n\nx = 3, y = 3\n#C a comment inside the body\nbob$2bo$3o!",
             b"bob$2bo$3o!trailing text is ignored\n\xff\xfe",
             b"\xef\xbb\xbfx = 3, y = 3\nbob$2bo$3o! and more",
@@ -500,6 +504,7 @@ mod tests {
             ),
             (b"x = 3, = 4\no!", 1, 8, "header item '= 4' has no key"),
             (b"x = 3\no!", 1, 6, "header has no y"),
+            (b"Y = 3\no!", 1, 6, "header has no x"),
             (
                 b"x = -3, y = 3\no!",
                 1,
