@@ -53,10 +53,9 @@ pub fn rule(option: Option<&str>, loaded: &Loaded) -> Result<Rule, BadInput> {
     }
     match &loaded.pattern.rule {
         Some((text, at)) => Rule::parse(text).map_err(|error| {
-            BadInput(format!(
-                "{}:{}:{}: {error}",
-                loaded.name, at.line, at.column
-            ))
+            // Point at the offending character itself when there is one.
+            let column = at.column + error.position().map_or(0, |position| position - 1);
+            BadInput(format!("{}:{}:{column}: {error}", loaded.name, at.line))
         }),
         None => Ok(Rule::LIFE),
     }

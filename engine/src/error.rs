@@ -15,7 +15,7 @@ impl fmt::Display for BudgetExceeded {
     fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
         write!(
             f,
-            "memory budget of {} is too small: {} are still live after collection; \
+            "memory budget of {} is too small: at least {} of quads are live; \
              give the run a larger memory budget",
             human_bytes(self.budget),
             human_bytes(self.in_use)

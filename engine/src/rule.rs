@@ -79,6 +79,19 @@ pub enum RuleError {
     MaskTooWide { which: &'static str, mask: u16 },
 }
 
+impl RuleError {
+    /// The character the error points at, counted from 1 in the trimmed
+    /// rule text, when it points at one.
+    pub fn position(&self) -> Option<usize> {
+        match self {
+            RuleError::Unexpected { position, .. }
+            | RuleError::NineNeighbours { position, .. }
+            | RuleError::NotTotalistic { position, .. } => Some(*position),
+            _ => None,
+        }
+    }
+}
+
 impl Rule {
     /// Conway's Life, B3/S23.
     pub const LIFE: Rule = Rule {
