@@ -29,7 +29,7 @@ pub struct EvolveArgs {
     pub pattern: PathBuf,
 
     /// Generations to advance: a decimal integer, B^E or M*B^E (e.g. 1103, 2^40, 30*10^100)
-    #[arg(long, value_name = "N")]
+    #[arg(long, value_name = "N", allow_hyphen_values = true)]
     pub gens: String,
 
     /// Rule in B/S notation (B3/S23, or the older 23/3); overrides the pattern's header
