@@ -17,11 +17,9 @@ impl Line {
         }
         let bar = ProgressBar::new(1000);
         bar.set_style(
-            ProgressStyle::with_template(
-                "{prefix} [{bar:30}] {percent:>3}% {elapsed_precise} {msg}",
-            )
-            .expect("the template is valid")
-            .progress_chars("=> "),
+            ProgressStyle::with_template("{prefix} {percent:>3}% [{wide_bar}] {elapsed} {msg}")
+                .expect("the template is valid")
+                .progress_chars("=> "),
         );
         bar.set_prefix(what.to_string());
         Line { bar: Some(bar) }
@@ -31,13 +29,17 @@ impl Line {
     pub fn update(&self, progress: &Progress) {
         if let Some(bar) = &self.bar {
             bar.set_position((progress.done * 1000.0) as u64);
-            bar.set_message(format!(
-                "{} quads, {} of {}, {} collections",
-                progress.store.quads,
-                human_bytes(progress.store.bytes),
-                human_bytes(progress.store.budget),
-                progress.store.collections
-            ));
+            let store = &progress.store;
+            let mut message = format!(
+                "{:.1}M quads {}/{}",
+                store.quads as f64 / 1e6,
+                human_bytes(store.bytes),
+                human_bytes(store.budget)
+            );
+            if store.collections > 0 {
+                message.push_str(&format!(" {} gc", store.collections));
+            }
+            bar.set_message(message);
         }
     }
 
