@@ -1,1 +1,156 @@
-//! placeholder
+//! Shared helpers for deeptime's whole-system tests (the crate
+//! `deeptime-tests`): find the real `deeptime` binary and the Python of the
+//! independent reference, run programs and capture what they print, and make
+//! temporary folders. Nothing here is ever skipped: a missing binary or a
+//! missing Python fails the test with a message that says what to do.
+
+use std::ffi::OsStr;
+use std::path::{Path, PathBuf};
+use std::process::Command;
+
+/// What a finished program left: its exit code and its output.
+#[derive(Debug)]
+pub struct Run {
+    /// The command line, for messages.
+    pub command: String,
+    /// The exit code; `None` when a signal ended the program.
+    pub code: Option<i32>,
+    pub stdout: String,
+    pub stderr: String,
+}
+
+impl Run {
+    /// Whether the program exited with code 0.
+    pub fn succeeded(&self) -> bool {
+        self.code == Some(0)
+    }
+
+    /// Panics, showing the command and all it printed, unless it exited 0.
+    pub fn assert_success(&self) -> &Run {
+        assert!(self.succeeded(), "command failed:\n{}", self.describe());
+        self
+    }
+
+    /// The command, its exit code and its output, for failure messages.
+    pub fn describe(&self) -> String {
+        format!(
+            "  $ {}\n  exit code: {:?}\n  --- stdout ---\n{}\n  --- stderr ---\n{}",
+            self.command, self.code, self.stdout, self.stderr
+        )
+    }
+}
+
+/// Runs `program` with `args` to its end, capturing stdout and stderr.
+pub fn run_program<I, S>(program: &Path, args: I) -> Run
+where
+    I: IntoIterator<Item = S>,
+    S: AsRef<OsStr>,
+{
+    let args: Vec<_> = args
+        .into_iter()
+        .map(|a| a.as_ref().to_os_string())
+        .collect();
+    let command = std::iter::once(program.as_os_str())
+        .chain(args.iter().map(|a| a.as_os_str()))
+        .map(|a| a.to_string_lossy().into_owned())
+        .collect::<Vec<_>>()
+        .join(" ");
+    let output = Command::new(program)
+        .args(&args)
+        .output()
+        .unwrap_or_else(|e| panic!("cannot start `{command}`: {e}"));
+    Run {
+        command,
+        code: output.status.code(),
+        stdout: String::from_utf8_lossy(&output.stdout).into_owned(),
+        stderr: String::from_utf8_lossy(&output.stderr).into_owned(),
+    }
+}
+
+/// The `deeptime` binary under test: `$DEEPTIME_BIN`, else the `deeptime`
+/// beside the test executable's folder (the test runs from
+/// `target/release/deps/`, the binary is `target/release/deeptime`).
+pub fn deeptime_bin() -> PathBuf {
+    if let Some(bin) = std::env::var_os("DEEPTIME_BIN") {
+        let bin = PathBuf::from(bin);
+        assert!(
+            bin.is_file(),
+            "DEEPTIME_BIN={} is not a file",
+            bin.display()
+        );
+        return bin;
+    }
+    let exe = std::env::current_exe().expect("the test executable's path");
+    let profile_dir = exe
+        .parent()
+        .and_then(Path::parent)
+        .expect("the test executable lies in <target>/<profile>/deps/");
+    let bin = profile_dir.join(format!("deeptime{}", std::env::consts::EXE_SUFFIX));
+    assert!(
+        bin.is_file(),
+        "the deeptime binary {} is missing: build it first with cargo build --release \
+         (or set DEEPTIME_BIN)",
+        bin.display()
+    );
+    bin
+}
+
+/// Runs the `deeptime` binary with `args`.
+pub fn run_deeptime<I, S>(args: I) -> Run
+where
+    I: IntoIterator<Item = S>,
+    S: AsRef<OsStr>,
+{
+    run_program(&deeptime_bin(), args)
+}
+
+/// The Python that runs the independent reference: `$DEEPTIME_PYTHON`,
+/// required. Never skipped: without it the test fails and says how to run.
+pub fn python() -> PathBuf {
+    let python = std::env::var_os("DEEPTIME_PYTHON").unwrap_or_else(|| {
+        panic!(
+            "DEEPTIME_PYTHON is not set. Run the tests with `bash tests/run-tests`, which makes \
+             .venv, installs tests/requirements.txt and sets DEEPTIME_PYTHON=.venv/bin/python"
+        )
+    });
+    let python = PathBuf::from(python);
+    assert!(
+        python.is_file(),
+        "DEEPTIME_PYTHON={} is not a file: run `bash tests/run-tests`",
+        python.display()
+    );
+    python
+}
+
+/// The reference simulator's script, tests/reference/life_reference.py.
+pub fn reference_script() -> PathBuf {
+    let script = Path::new(env!("CARGO_MANIFEST_DIR"))
+        .join("reference")
+        .join("life_reference.py");
+    assert!(
+        script.is_file(),
+        "the reference script {} is missing",
+        script.display()
+    );
+    script
+}
+
+/// Runs the reference script with `args` under `python()`.
+pub fn run_reference<I, S>(args: I) -> Run
+where
+    I: IntoIterator<Item = S>,
+    S: AsRef<OsStr>,
+{
+    let script = reference_script();
+    let all = std::iter::once(script.into_os_string())
+        .chain(args.into_iter().map(|a| a.as_ref().to_os_string()));
+    run_program(&python(), all)
+}
+
+/// A fresh temporary folder, removed when the value is dropped.
+pub fn temp_dir() -> tempfile::TempDir {
+    tempfile::Builder::new()
+        .prefix("deeptime-test-")
+        .tempdir()
+        .expect("a temporary folder")
+}

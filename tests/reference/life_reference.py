@@ -1,0 +1,661 @@
+#!/usr/bin/env python3
+"""Independent reference simulator for deeptime's whole-system tests.
+
+It evolves two-state Life-like rules (B/S notation, no B0) the plain way: a
+numpy boolean grid, padded so that nothing reaches its edge, and neighbour
+counts from scipy's 2-D convolution with the 3x3 kernel. It shares no code with
+the Rust engine: it has its own rule parser, RLE reader and writer, and its own
+computation of the state digest from the grid. tests/reference.rs drives it:
+
+  soup     write a seeded random N x N soup as RLE (top-left cell at (0, 0))
+  expect   evolve a pattern and record, at each listed generation, the
+           population, bounding box, digest and live cells
+  compare  check deeptime's --json report and --out RLE against those records;
+           on any mismatch print a diff and exit 1
+  selftest check this file's digest, RLE and step code on cases reasoned by hand
+
+Every check names its source in a comment: "independent reference:
+numpy/scipy", "common practice" or "from memory".  The packages are imported
+unconditionally: a missing one fails the run loudly.
+"""
+
+import argparse
+import json
+import random
+import re
+import sys
+
+import blake3
+import numpy as np
+import scipy.signal
+
+# ---------------------------------------------------------------- rules
+
+
+RULE_RE = re.compile(r"^B([0-8]*)/S([0-8]*)$")
+
+
+class Rule:
+    """A Life-like rule: the neighbour counts that give birth and survival."""
+
+    def __init__(self, text):
+        match = RULE_RE.match(text.strip())
+        if not match:
+            raise ValueError(f"rule {text!r} is not in the form B<digits>/S<digits>")
+        self.birth = sorted({int(d) for d in match.group(1)})
+        self.survive = sorted({int(d) for d in match.group(2)})
+        if 0 in self.birth:
+            # The padding argument (cells spread at most one cell per
+            # generation) needs a rule without B0 (common practice).
+            raise ValueError(f"rule {text!r} has B0, which this reference does not handle")
+        # Lookup tables indexed by neighbour count 0..8.
+        self.birth_table = np.zeros(9, dtype=bool)
+        self.birth_table[self.birth] = True
+        self.survive_table = np.zeros(9, dtype=bool)
+        self.survive_table[self.survive] = True
+
+    def canonical(self):
+        return "B" + "".join(map(str, self.birth)) + "/S" + "".join(map(str, self.survive))
+
+
+# ---------------------------------------------------------------- RLE
+
+
+HEADER_RE = re.compile(r"^\s*x\s*=\s*(\d+)\s*,\s*y\s*=\s*(\d+)\s*(?:,\s*rule\s*=\s*(\S+)\s*)?$")
+
+
+def read_rle(text):
+    """Parse RLE text; return (width, height, rule text or None, set of (x, y)).
+
+    Common practice: lines starting with '#' are comments; the header is
+    `x = W, y = H[, rule = R]`; the body is runs of `b` (dead), `o` (alive) and
+    `$` (end of row), each with an optional decimal count, ending with `!`.
+    Anything else is refused, so an odd writer shows up as an error here.
+    """
+    lines = text.splitlines()
+    at = 0
+    while at < len(lines) and (lines[at].startswith("#") or not lines[at].strip()):
+        at += 1
+    if at == len(lines):
+        raise ValueError("RLE has no header line")
+    header = HEADER_RE.match(lines[at])
+    if not header:
+        raise ValueError(f"RLE header {lines[at]!r} is not `x = W, y = H[, rule = R]`")
+    width, height, rule = int(header.group(1)), int(header.group(2)), header.group(3)
+    body = "".join(line.strip() for line in lines[at + 1:] if not line.startswith("#"))
+    cells = set()
+    x = y = 0
+    count = ""
+    ended = False
+    for ch in body:
+        if ended:
+            if ch.strip():
+                raise ValueError(f"RLE has {ch!r} after its closing '!'")
+            continue
+        if ch.isdigit():
+            count += ch
+            continue
+        n = int(count) if count else 1
+        count = ""
+        if ch == "b":
+            x += n
+        elif ch == "o":
+            for i in range(n):
+                cells.add((x + i, y))
+            x += n
+        elif ch == "$":
+            y += n
+            x = 0
+        elif ch == "!":
+            ended = True
+        elif ch.isspace():
+            if n != 1:
+                raise ValueError("RLE has a count followed by white space")
+        else:
+            raise ValueError(f"RLE has the unexpected character {ch!r}")
+    if not ended:
+        raise ValueError("RLE does not end with '!'")
+    if count:
+        raise ValueError("RLE ends with a dangling count")
+    for cx, cy in cells:
+        if cx >= width or cy >= height:
+            raise ValueError(f"RLE cell ({cx}, {cy}) lies outside its header's {width} x {height}")
+    return width, height, rule, cells
+
+
+def write_rle(cells, rule_text, box=None):
+    """RLE text of a set of (x, y) cells; returns (text, left, top).
+
+    The RLE's (0, 0) is (left, top): the cells' bounding-box corner, or, when
+    box = (left, top, width, height) is given, that box's (which must hold
+    every cell). Common practice: runs of b/o, `$` ends a row (counted for
+    empty rows), trailing dead cells of a row left out, lines at most 70
+    characters."""
+    if box is None:
+        if not cells:
+            return f"x = 0, y = 0, rule = {rule_text}\n!\n", None, None
+        left = min(x for x, _ in cells)
+        top = min(y for _, y in cells)
+        width = max(x for x, _ in cells) - left + 1
+        height = max(y for _, y in cells) - top + 1
+    else:
+        left, top, width, height = box
+        for x, y in cells:
+            if not (left <= x < left + width and top <= y < top + height):
+                raise ValueError(f"cell ({x}, {y}) lies outside the box {box}")
+    rows = {}
+    for x, y in cells:
+        rows.setdefault(y - top, []).append(x - left)
+    tokens = []
+    prev = 0  # the row the writer stands on
+    for r in sorted(rows):
+        gap = r - prev
+        if gap:
+            tokens.append(("" if gap == 1 else str(gap)) + "$")
+        prev = r
+        row = sorted(rows[r])
+        x = 0
+        i = 0
+        while i < len(row):
+            j = i
+            while j + 1 < len(row) and row[j + 1] == row[j] + 1:
+                j += 1
+            dead = row[i] - x
+            if dead:
+                tokens.append(("" if dead == 1 else str(dead)) + "b")
+            run = j - i + 1
+            tokens.append(("" if run == 1 else str(run)) + "o")
+            x = row[j] + 1
+            i = j + 1
+    tokens.append("!")
+    lines = []
+    line = ""
+    for token in tokens:
+        if len(line) + len(token) > 70:
+            lines.append(line)
+            line = ""
+        line += token
+    lines.append(line)
+    return f"x = {width}, y = {height}, rule = {rule_text}\n" + "\n".join(lines) + "\n", left, top
+
+
+# ---------------------------------------------------------------- the plane
+
+
+class Plane:
+    """A finite grid of cells with the plane coordinates of its (0, 0):
+    grid[row, col] is the cell at x = col + x0, y = row + y0."""
+
+    def __init__(self, grid, x0, y0):
+        self.grid = grid
+        self.x0 = x0
+        self.y0 = y0
+
+    @staticmethod
+    def from_cells(cells, margin):
+        if cells:
+            left = min(x for x, _ in cells)
+            top = min(y for _, y in cells)
+            width = max(x for x, _ in cells) - left + 1
+            height = max(y for _, y in cells) - top + 1
+        else:
+            left = top = 0
+            width = height = 1
+        grid = np.zeros((height + 2 * margin, width + 2 * margin), dtype=bool)
+        for x, y in cells:
+            grid[y - top + margin, x - left + margin] = True
+        return Plane(grid, left - margin, top - margin)
+
+    def population(self):
+        return int(np.count_nonzero(self.grid))
+
+    def bbox(self):
+        """(left, top, width, height) of the live cells, or None."""
+        rows = np.flatnonzero(self.grid.any(axis=1))
+        if rows.size == 0:
+            return None
+        cols = np.flatnonzero(self.grid.any(axis=0))
+        return (
+            int(cols[0]) + self.x0,
+            int(rows[0]) + self.y0,
+            int(cols[-1] - cols[0]) + 1,
+            int(rows[-1] - rows[0]) + 1,
+        )
+
+    def cells(self):
+        ys, xs = np.nonzero(self.grid)
+        return {(int(x) + self.x0, int(y) + self.y0) for x, y in zip(xs, ys)}
+
+
+KERNEL = np.array([[1, 1, 1], [1, 0, 1], [1, 1, 1]], dtype=np.int32)
+
+
+def step(plane, rule):
+    """One generation, in place. Independent reference: numpy/scipy.
+
+    The neighbour counts come from scipy.signal.convolve2d with the 3x3 kernel
+    (centre 0). Only the live cells' bounding box grown by one cell can change
+    (a rule without B0 never births a cell with no live neighbour), so the
+    convolution runs on that window, with zeros outside it: every cell outside
+    the window is dead. The grid's padding must keep the window off the edge;
+    that is checked, not assumed."""
+    grid = plane.grid
+    rows = np.flatnonzero(grid.any(axis=1))
+    if rows.size == 0:
+        return
+    cols = np.flatnonzero(grid.any(axis=0))
+    r0, r1 = rows[0] - 1, rows[-1] + 2
+    c0, c1 = cols[0] - 1, cols[-1] + 2
+    if r0 < 0 or c0 < 0 or r1 > grid.shape[0] or c1 > grid.shape[1]:
+        raise RuntimeError("the pattern reached the edge of the reference grid: the padding is too small")
+    window = grid[r0:r1, c0:c1]
+    counts = scipy.signal.convolve2d(window.astype(np.int32), KERNEL, mode="same", boundary="fill", fillvalue=0)
+    new = np.where(window, rule.survive_table[counts], rule.birth_table[counts])
+    grid[r0:r1, c0:c1] = new
+
+
+def step_naive(cells, rule):
+    """One generation on a set of cells with plain Python dictionaries: a
+    second, slower computation that the self-test holds step() against.
+    Common practice."""
+    counts = {}
+    for x, y in cells:
+        for dx in (-1, 0, 1):
+            for dy in (-1, 0, 1):
+                if dx or dy:
+                    key = (x + dx, y + dy)
+                    counts[key] = counts.get(key, 0) + 1
+    born = {c for c, n in counts.items() if c not in cells and n in rule.birth}
+    kept = {c for c in cells if counts.get(c, 0) in rule.survive}
+    return born | kept
+
+
+# ---------------------------------------------------------------- digest
+
+
+LEAF_LEVEL = 3
+
+
+def content_id(data):
+    """First 16 bytes of BLAKE3 of the data (the digest definition)."""
+    return blake3.blake3(data).digest()[:16]
+
+
+def leaf_id(bits):
+    return content_id(LEAF_LEVEL.to_bytes(4, "little") + bits.to_bytes(8, "little"))
+
+
+def inner_id(level, nw, ne, sw, se):
+    return content_id(level.to_bytes(4, "little") + nw + ne + sw + se)
+
+
+def empty_ids(up_to):
+    """Content ids of the all-dead quads of levels 3..up_to."""
+    ids = {LEAF_LEVEL: leaf_id(0)}
+    for level in range(LEAF_LEVEL + 1, up_to + 1):
+        e = ids[level - 1]
+        ids[level] = inner_id(level, e, e, e, e)
+    return ids
+
+
+def canonical_level(bbox):
+    """Smallest level L >= 3 whose centred quad [-2^(L-1), 2^(L-1)) in x and
+    y holds the bounding box (the digest definition)."""
+    level = LEAF_LEVEL
+    if bbox is None:
+        return level
+    left, top, width, height = bbox
+    lo = min(left, top)
+    hi = max(left + width - 1, top + height - 1)
+    while not (-(1 << (level - 1)) <= lo and hi < (1 << (level - 1))):
+        level += 1
+    return level
+
+
+def digest(plane):
+    """Hex digest of the state, computed from the grid. Independent
+    reference: numpy/scipy (numpy packs the leaves, blake3 hashes them)."""
+    bbox = plane.bbox()
+    level = canonical_level(bbox)
+    side = 1 << level
+    half = side >> 1
+    # The canonical quad's cells as a side x side array; row r is y = r - half.
+    quad = np.zeros((side, side), dtype=bool)
+    if bbox is not None:
+        left, top, width, height = bbox
+        src = plane.grid[top - plane.y0:top - plane.y0 + height, left - plane.x0:left - plane.x0 + width]
+        quad[top + half:top + half + height, left + half:left + half + width] = src
+    n = side // 8
+    # packbits(..., bitorder="little") makes bit x of each byte column x, so
+    # byte [y, bx] is row y of the leaf in leaf column bx.
+    row_bytes = np.packbits(quad.reshape(side, n, 8), axis=2, bitorder="little").reshape(n, 8, n)
+    leaves = np.ascontiguousarray(row_bytes.transpose(0, 2, 1))  # [by, bx, row]
+    empty = empty_ids(level)
+    live = leaves.any(axis=2)
+    ids = [[empty[LEAF_LEVEL]] * n for _ in range(n)]
+    for by, bx in zip(*np.nonzero(live)):
+        # The leaf's 8 row bytes in order are its u64 little-endian.
+        ids[by][bx] = content_id(LEAF_LEVEL.to_bytes(4, "little") + leaves[by, bx].tobytes())
+    for lv in range(LEAF_LEVEL + 1, level + 1):
+        m = len(ids) // 2
+        nxt = [[None] * m for _ in range(m)]
+        child_empty = empty[lv - 1]
+        for j in range(m):
+            for i in range(m):
+                nw, ne = ids[2 * j][2 * i], ids[2 * j][2 * i + 1]
+                sw, se = ids[2 * j + 1][2 * i], ids[2 * j + 1][2 * i + 1]
+                if nw == ne == sw == se == child_empty:
+                    nxt[j][i] = empty[lv]
+                else:
+                    nxt[j][i] = inner_id(lv, nw, ne, sw, se)
+        ids = nxt
+    assert len(ids) == 1 and len(ids[0]) == 1
+    return ids[0][0].hex()
+
+
+def digest_of_cells(cells):
+    return digest(Plane.from_cells(cells, 1))
+
+
+# ---------------------------------------------------------------- subcommands
+
+
+def cmd_soup(args):
+    rule = Rule(args.rule)
+    if not (0.0 <= args.density <= 1.0):
+        sys.exit(f"density {args.density} is not in [0, 1]")
+    rng = np.random.default_rng(args.seed)
+    grid = rng.random((args.size, args.size)) < args.density
+    ys, xs = np.nonzero(grid)
+    cells = {(int(x), int(y)) for x, y in zip(xs, ys)}
+    # The header says N x N and the RLE's (0, 0) is the soup's (0, 0), even
+    # when its first rows or columns happen to be empty.
+    text, _, _ = write_rle(cells, rule.canonical(), box=(0, 0, args.size, args.size))
+    with open(args.out, "w") as f:
+        f.write(text)
+
+
+def evolve_records(cells, rule, gens):
+    """Evolve from the cells; the record of each listed generation."""
+    last = max(gens)
+    plane = Plane.from_cells(cells, last + 2)
+    wanted = set(gens)
+    records = {}
+    for g in range(last + 1):
+        if g:
+            step(plane, rule)
+        if g in wanted:
+            bbox = plane.bbox()
+            live = plane.cells()
+            text, _, _ = write_rle(live, rule.canonical())
+            records[str(g)] = {
+                "population": str(plane.population()),
+                "bbox": None if bbox is None else {
+                    "left": str(bbox[0]), "top": str(bbox[1]),
+                    "width": str(bbox[2]), "height": str(bbox[3]),
+                },
+                "digest": digest(plane),
+                "rle": text,
+            }
+    return records
+
+
+def parse_gens(text):
+    gens = sorted({int(g) for g in text.split(",") if g.strip()})
+    if not gens or gens[0] < 0:
+        sys.exit(f"generation list {text!r} is empty or negative")
+    return gens
+
+
+def cmd_expect(args):
+    rule = Rule(args.rule)
+    with open(args.pattern) as f:
+        _, _, _, cells = read_rle(f.read())
+    gens = parse_gens(args.gens)
+    records = evolve_records(cells, rule, gens)
+    with open(args.out, "w") as f:
+        json.dump({"rule": rule.canonical(), "pattern": args.pattern, "generations": records}, f)
+        f.write("\n")
+
+
+def cells_of_record(record):
+    _, _, _, cells = read_rle(record["rle"])
+    if record["bbox"] is None:
+        return set()
+    left, top = int(record["bbox"]["left"]), int(record["bbox"]["top"])
+    return {(x + left, y + top) for x, y in cells}
+
+
+def compare_one(expected, gen, got_rle, got_json):
+    """Problems found with one generation's deeptime output (empty: all equal)."""
+    problems = []
+    record = expected["generations"].get(str(gen))
+    if record is None:
+        return [f"the expected results have no generation {gen}"]
+    with open(got_json) as f:
+        text = f.read()
+    try:
+        report = json.loads(text)
+    except json.JSONDecodeError as e:
+        return [f"deeptime's --json output is not one JSON object ({e}): {text[:200]!r}"]
+    if not isinstance(report, dict):
+        return [f"deeptime's --json output is not a JSON object: {text[:200]!r}"]
+    for key in ("generation", "population", "bbox", "rule", "digest"):
+        if key not in report:
+            problems.append(f"deeptime's report has no {key!r}")
+    if problems:
+        return problems
+    if report["generation"] != str(gen):
+        problems.append(f"generation: deeptime {report['generation']!r}, asked for {str(gen)!r}")
+    if report["rule"] != expected["rule"]:
+        problems.append(f"rule: deeptime {report['rule']!r}, reference {expected['rule']!r}")
+    if report["population"] != record["population"]:
+        problems.append(f"population: deeptime {report['population']!r}, reference {record['population']!r}")
+    if report["bbox"] != record["bbox"]:
+        problems.append(f"bbox: deeptime {report['bbox']!r}, reference {record['bbox']!r}")
+    if report["digest"] != record["digest"]:
+        problems.append(f"digest: deeptime {report['digest']!r}, reference {record['digest']!r}")
+
+    with open(got_rle) as f:
+        rle_text = f.read()
+    try:
+        width, height, rle_rule, got_local = read_rle(rle_text)
+    except ValueError as e:
+        problems.append(f"deeptime's RLE does not parse with the reference reader: {e}")
+        return problems
+    if rle_rule is not None and rle_rule != expected["rule"]:
+        problems.append(f"RLE header rule: deeptime {rle_rule!r}, reference {expected['rule']!r}")
+    bbox = report["bbox"]
+    if bbox is None:
+        if got_local or (width, height) != (0, 0):
+            problems.append(f"deeptime reports no bbox but its RLE is {width} x {height} with {len(got_local)} cells")
+        got = set()
+    else:
+        if (str(width), str(height)) != (bbox["width"], bbox["height"]):
+            problems.append(f"RLE header {width} x {height} differs from deeptime's bbox {bbox['width']} x {bbox['height']}")
+        left, top = int(bbox["left"]), int(bbox["top"])
+        got = {(x + left, y + top) for x, y in got_local}
+    want = cells_of_record(record)
+    if got != want:
+        only_ref = sorted(want - got, key=lambda c: (c[1], c[0]))
+        only_got = sorted(got - want, key=lambda c: (c[1], c[0]))
+        problems.append(
+            f"cells differ: reference {len(want)} live, deeptime {len(got)} live; "
+            f"{len(only_ref)} only in the reference, first (x, y): {only_ref[:10]}; "
+            f"{len(only_got)} only in deeptime, first (x, y): {only_got[:10]}"
+        )
+    return problems
+
+
+def cmd_compare(args):
+    if not (len(args.gen) == len(args.got) == len(args.got_json)):
+        sys.exit("compare needs as many --got and --got-json as --gen")
+    with open(args.expected) as f:
+        expected = json.load(f)
+    failed = 0
+    for gen, got_rle, got_json in zip(args.gen, args.got, args.got_json):
+        problems = compare_one(expected, gen, got_rle, got_json)
+        if problems:
+            failed += 1
+            print(f"MISMATCH rule {expected['rule']} pattern {expected['pattern']} generation {gen}:")
+            for p in problems:
+                print(f"  - {p}")
+    print(f"compare: {len(args.gen) - failed} generations equal, {failed} differ "
+          f"(rule {expected['rule']}, pattern {expected['pattern']})")
+    sys.exit(1 if failed else 0)
+
+
+def cmd_selftest(_args):
+    checks = 0
+
+    def check(cond, what):
+        nonlocal checks
+        checks += 1
+        if not cond:
+            print(f"SELFTEST FAILED: {what}")
+            sys.exit(1)
+
+    # Digest, from the definition worked by hand.
+    # Empty state: the level-3 leaf with no cells, 12 bytes 03 00 00 00 and
+    # eight zero bytes (digest definition).
+    empty = blake3.blake3(bytes([3, 0, 0, 0]) + bytes(8)).digest()[:16].hex()
+    check(digest_of_cells(set()) == empty, "empty digest is BLAKE3 of the empty leaf")
+    # One cell at (0, 0): the level-3 quad covers [-4, 4), so the cell is at
+    # column 4, row 4 of the leaf: bit 36, which is bit 4 of byte 4 (0x10).
+    one = blake3.blake3(bytes([3, 0, 0, 0, 0, 0, 0, 0, 0x10, 0, 0, 0])).digest()[:16].hex()
+    check(digest_of_cells({(0, 0)}) == one, "digest of one cell at (0, 0)")
+    # Cell (-4, -4) is the leaf's own (0, 0): bit 0, byte 0 = 0x01.
+    corner = blake3.blake3(bytes([3, 0, 0, 0, 1, 0, 0, 0, 0, 0, 0, 0])).digest()[:16].hex()
+    check(digest_of_cells({(-4, -4)}) == corner, "digest of one cell at (-4, -4)")
+    # Cell (3, 3) is the leaf's (7, 7): bit 63, byte 7 = 0x80.
+    last = blake3.blake3(bytes([3, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0x80])).digest()[:16].hex()
+    check(digest_of_cells({(3, 3)}) == last, "digest of one cell at (3, 3)")
+    # Cell (4, 0) needs level 4, [-8, 8); it lies in the se child ([0, 8) in
+    # x and y) at the child's (4, 0): bit 4 of byte 0 (0x10).
+    e3 = blake3.blake3(bytes([3, 0, 0, 0]) + bytes(8)).digest()[:16]
+    se = blake3.blake3(bytes([3, 0, 0, 0, 0x10, 0, 0, 0, 0, 0, 0, 0])).digest()[:16]
+    lvl4 = blake3.blake3(bytes([4, 0, 0, 0]) + e3 + e3 + e3 + se).digest()[:16].hex()
+    check(digest_of_cells({(4, 0)}) == lvl4, "digest of one cell at (4, 0) (level 4, se child)")
+    # Cell (-5, 0) also needs level 4 and lies in the sw child ([-8, 0) in x,
+    # [0, 8) in y) at the child's (3, 0): bit 3 of byte 0 (0x08).
+    sw = blake3.blake3(bytes([3, 0, 0, 0, 0x08, 0, 0, 0, 0, 0, 0, 0])).digest()[:16]
+    lvl4b = blake3.blake3(bytes([4, 0, 0, 0]) + e3 + e3 + sw + e3).digest()[:16].hex()
+    check(digest_of_cells({(-5, 0)}) == lvl4b, "digest of one cell at (-5, 0) (level 4, sw child)")
+    # Cells (0, -5) (ne child, its (0, 3): byte 3 = 0x01) and (-1, -1) (nw
+    # child, its (7, 7): byte 7 = 0x80) together.
+    ne = blake3.blake3(bytes([3, 0, 0, 0, 0, 0, 0, 0x01, 0, 0, 0, 0])).digest()[:16]
+    nw = blake3.blake3(bytes([3, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0x80])).digest()[:16]
+    lvl4c = blake3.blake3(bytes([4, 0, 0, 0]) + nw + ne + e3 + e3).digest()[:16].hex()
+    check(digest_of_cells({(0, -5), (-1, -1)}) == lvl4c, "digest of cells in the nw and ne children")
+    # The digest depends only on the cells, not on where the grid lies.
+    cells = {(10, -3), (11, -3), (-20, 7), (0, 0)}
+    check(digest(Plane.from_cells(cells, 1)) == digest(Plane.from_cells(cells, 37)), "digest is independent of padding")
+    # 8 = 2^3 wide at x = 4..11 needs level 5 ([-16, 16)); x = 16 needs level 6.
+    check(canonical_level((4, 0, 8, 1)) == 5, "canonical level of x in [4, 12)")
+    check(canonical_level((16, 0, 1, 1)) == 6, "canonical level of x = 16")
+    check(canonical_level((-16, 0, 1, 1)) == 5, "canonical level of x = -16")
+    check(canonical_level((-17, 0, 1, 1)) == 6, "canonical level of x = -17")
+
+    # RLE: the glider reads as five cells (common practice), and writing then
+    # reading gives back the same cells.
+    w, h, r, glider = read_rle("x = 3, y = 3\nbob$2bo$3o!\n")
+    check((w, h, r) == (3, 3, None) and glider == {(1, 0), (2, 1), (0, 2), (1, 2), (2, 2)}, "glider RLE reads")
+    rng = random.Random(7)
+    for _ in range(20):
+        cells = {(rng.randrange(-40, 90), rng.randrange(-30, 30)) for _ in range(rng.randrange(1, 300))}
+        text, left, top = write_rle(cells, "B3/S23")
+        _, _, _, back = read_rle(text)
+        check({(x + left, y + top) for x, y in back} == cells, "RLE write/read round trip")
+        check(all(len(line) <= 70 for line in text.splitlines()[1:]), "RLE lines at most 70 characters")
+    _, _, _, gaps = read_rle("x = 5, y = 6, rule = B3/S23\no3$4bo$o2b2o!")
+    check(gaps == {(0, 0), (4, 3), (0, 4), (3, 4), (4, 4)}, "RLE with counted empty rows")
+
+    life = Rule("B3/S23")
+    check(life.canonical() == "B3/S23" and Rule("B63/S32").canonical() == "B36/S23", "rule canonical text")
+    # Glider: after 4 generations the same shape moved by (1, 1) (common practice).
+    plane = Plane.from_cells(glider, 10)
+    for _ in range(4):
+        step(plane, life)
+    check(plane.cells() == {(x + 1, y + 1) for x, y in glider}, "glider moves (1, 1) in 4 generations")
+    # Blinker has period 2; block is still (common practice).
+    blinker = {(0, 1), (1, 1), (2, 1)}
+    plane = Plane.from_cells(blinker, 4)
+    step(plane, life)
+    check(plane.cells() == {(1, 0), (1, 1), (1, 2)}, "blinker turns")
+    step(plane, life)
+    check(plane.cells() == blinker, "blinker has period 2")
+    block = {(0, 0), (1, 0), (0, 1), (1, 1)}
+    plane = Plane.from_cells(block, 4)
+    step(plane, life)
+    check(plane.cells() == block, "block is still")
+    # B2/S: two cells side by side give birth to the two rows beside them
+    # and die (from memory: each of the four cells above and below has two
+    # live neighbours; the two ends have one).
+    plane = Plane.from_cells({(0, 0), (1, 0)}, 4)
+    step(plane, Rule("B2/S"))
+    check(plane.cells() == {(0, -1), (1, -1), (0, 1), (1, 1)}, "B2/S domino")
+    # S0 keeps a lone cell (from memory: it has 0 neighbours).
+    plane = Plane.from_cells({(5, 5)}, 4)
+    step(plane, Rule("B3/S012345678"))
+    check(plane.cells() == {(5, 5)}, "S0 keeps a lone cell")
+
+    # The scipy step against the plain-Python step on random soups, every
+    # rule the whole-system test uses and a few more.
+    for text in ("B3/S23", "B36/S23", "B3678/S34678", "B2/S", "B3/S012345678",
+                 "B1357/S02468", "B1/S1", "B345/S5", "B25678/S0135"):
+        rule = Rule(text)
+        soup = {(x, y) for x in range(16) for y in range(16) if rng.random() < 0.4}
+        plane = Plane.from_cells(soup, 25)
+        naive = soup
+        for g in range(20):
+            step(plane, rule)
+            naive = step_naive(naive, rule)
+            check(plane.cells() == naive, f"scipy step equals plain step, rule {text}, generation {g + 1}")
+            bbox = plane.bbox()
+            if naive:
+                xs = [x for x, _ in naive]
+                ys = [y for _, y in naive]
+                want = (min(xs), min(ys), max(xs) - min(xs) + 1, max(ys) - min(ys) + 1)
+            else:
+                want = None
+            check(bbox == want, f"bbox, rule {text}, generation {g + 1}")
+            check(plane.population() == len(naive), f"population, rule {text}, generation {g + 1}")
+    print(f"selftest: {checks} passed, 0 failed")
+
+
+def main():
+    parser = argparse.ArgumentParser(description="Independent reference simulator for deeptime's tests")
+    sub = parser.add_subparsers(dest="command", required=True)
+
+    p = sub.add_parser("soup", help="write a seeded random soup as RLE")
+    p.add_argument("--rule", required=True)
+    p.add_argument("--seed", type=int, required=True)
+    p.add_argument("--size", type=int, required=True)
+    p.add_argument("--density", type=float, required=True)
+    p.add_argument("--out", required=True)
+    p.set_defaults(func=cmd_soup)
+
+    p = sub.add_parser("expect", help="evolve a pattern and record the listed generations")
+    p.add_argument("--pattern", required=True)
+    p.add_argument("--rule", required=True)
+    p.add_argument("--gens", required=True, help="comma-separated generations, e.g. 0,1,2,100")
+    p.add_argument("--out", required=True)
+    p.set_defaults(func=cmd_expect)
+
+    p = sub.add_parser("compare", help="compare deeptime's output with the expected records")
+    p.add_argument("--expected", required=True)
+    p.add_argument("--gen", type=int, action="append", required=True,
+                   help="a generation; repeat together with --got and --got-json")
+    p.add_argument("--got", action="append", required=True, help="deeptime's --out RLE")
+    p.add_argument("--got-json", action="append", required=True, help="deeptime's --json output")
+    p.set_defaults(func=cmd_compare)
+
+    p = sub.add_parser("selftest", help="check the reference itself on cases reasoned by hand")
+    p.set_defaults(func=cmd_selftest)
+
+    args = parser.parse_args()
+    args.func(args)
+
+
+if __name__ == "__main__":
+    main()
