@@ -18,7 +18,7 @@
 use std::time::{Duration, Instant};
 
 use crate::error::BudgetExceeded;
-use crate::kernel;
+use crate::kernel::{self, Kernel};
 use crate::rule::Rule;
 use crate::store::{Handle, LEAF_LEVEL, Store, StoreStats};
 
@@ -50,7 +50,7 @@ enum Stride {
 /// One advance of a state by N generations.
 pub(crate) struct Advance<'a, 'o> {
     store: &'a mut Store,
-    rule: Rule,
+    kernel: Kernel,
     /// N as little-endian 64-bit words
     steps: &'a [u64],
     /// N's trailing zero bits: the residual at level m is 0 iff m-2 ≤ this
@@ -84,7 +84,7 @@ impl<'a, 'o> Advance<'a, 'o> {
         }
         Advance {
             store,
-            rule,
+            kernel: Kernel::new(&rule),
             steps,
             trailing_zeros,
             top_level,
@@ -151,8 +151,7 @@ impl<'a, 'o> Advance<'a, 'o> {
             let kids = self.store.kids(quad);
             let bits = kids.map(|kid| self.store.leaf_bits(kid));
             let steps = self.small_steps(level, stride);
-            self.store
-                .leaf(kernel::advance_square(&self.rule, bits, steps))?
+            self.store.leaf(self.kernel.advance_square(bits, steps))?
         } else {
             self.advance_inner(quad, level, stride)?
         };

@@ -14,16 +14,78 @@ use crate::rule::Rule;
 /// Rows of the 16×16 square: bit x of `rows[y]` is the cell at (x, y).
 type Rows = [u32; 16];
 
-/// The centre leaf of the square `[nw, ne, sw, se]` after `steps` ≤ 4
-/// generations under `rule`. Leaf bits: `y * 8 + x`.
-pub fn advance_square(rule: &Rule, leaves: [u64; 4], steps: u32) -> u64 {
-    debug_assert!(steps <= 4);
-    let mut rows = spread(leaves);
-    let table = RuleMasks::new(rule);
-    for _ in 0..steps {
-        rows = step(&table, &rows);
+/// A rule compiled for the kernel: for each neighbour count that matters,
+/// the count's bits as all-ones/all-zeros words and whether it gives birth
+/// or survival.
+#[derive(Clone, Debug)]
+pub struct Kernel {
+    /// (count bit planes wanted, born word, stays word) for the counts in B ∪ S
+    counts: Vec<([u32; 4], u32, u32)>,
+}
+
+impl Kernel {
+    pub fn new(rule: &Rule) -> Kernel {
+        let mut counts = Vec::new();
+        for count in 0..9u32 {
+            let born = rule.birth_mask() >> count & 1 == 1;
+            let stays = rule.survive_mask() >> count & 1 == 1;
+            if !born && !stays {
+                continue;
+            }
+            let want = [0, 1, 2, 3].map(|bit| if count >> bit & 1 == 1 { u32::MAX } else { 0 });
+            let word = |yes: bool| if yes { u32::MAX } else { 0 };
+            counts.push((want, word(born), word(stays)));
+        }
+        Kernel { counts }
     }
-    centre(&rows)
+
+    /// The centre leaf of the square `[nw, ne, sw, se]` after `steps` ≤ 4
+    /// generations. Leaf bits: `y * 8 + x`.
+    pub fn advance_square(&self, leaves: [u64; 4], steps: u32) -> u64 {
+        debug_assert!(steps <= 4);
+        let mut rows = spread(leaves);
+        // After s generations only rows s..16-s are exact; compute no more.
+        for done in 0..steps as usize {
+            rows = self.step(&rows, done + 1, 16 - done - 1);
+        }
+        centre(&rows)
+    }
+
+    /// One generation of rows `from..to` (the rest are left zero).
+    #[inline]
+    fn step(&self, rows: &Rows, from: usize, to: usize) -> Rows {
+        let mut next = [0u32; 16];
+        for y in from..to {
+            let (up, mid, down) = (rows[y - 1], rows[y], rows[y + 1]);
+            // The eight neighbours, each moved onto the column of the cell,
+            // summed by carry-save adders into the bits of the count.
+            let (s1, c1) = full_add(up << 1, up, up >> 1);
+            let (s2, c2) = full_add(mid << 1, mid >> 1, down);
+            let (s3, c3) = (down << 1 ^ down >> 1, down << 1 & down >> 1);
+            let (bit0, c4) = full_add(s1, s2, s3);
+            let (t, d1) = full_add(c1, c2, c3);
+            let bit1 = t ^ c4;
+            let d2 = t & c4;
+            let planes = [bit0, bit1, d1 ^ d2, d1 & d2];
+            let mut out = 0u32;
+            for (want, born, stays) in &self.counts {
+                let differs = (planes[0] ^ want[0])
+                    | (planes[1] ^ want[1])
+                    | (planes[2] ^ want[2])
+                    | (planes[3] ^ want[3]);
+                out |= !differs & ((born & !mid) | (stays & mid));
+            }
+            next[y] = out & 0xffff;
+        }
+        next
+    }
+}
+
+/// The centre leaf of the square `[nw, ne, sw, se]` after `steps` ≤ 4
+/// generations under `rule` (compiles the rule each call; see `Kernel`).
+#[cfg(test)]
+fn advance_square(rule: &Rule, leaves: [u64; 4], steps: u32) -> u64 {
+    Kernel::new(rule).advance_square(leaves, steps)
 }
 
 /// The centre leaf of the square `[nw, ne, sw, se]` as it is.
@@ -50,74 +112,10 @@ fn centre(rows: &Rows) -> u64 {
     leaf
 }
 
-/// For each neighbour count 0..=8: whether a dead cell is born and whether
-/// a live cell survives, as all-ones or all-zeros words.
-struct RuleMasks {
-    born: [u32; 9],
-    stays: [u32; 9],
-}
-
-impl RuleMasks {
-    fn new(rule: &Rule) -> RuleMasks {
-        let mut masks = RuleMasks {
-            born: [0; 9],
-            stays: [0; 9],
-        };
-        for count in 0..9 {
-            if rule.birth_mask() >> count & 1 == 1 {
-                masks.born[count] = u32::MAX;
-            }
-            if rule.survive_mask() >> count & 1 == 1 {
-                masks.stays[count] = u32::MAX;
-            }
-        }
-        masks
-    }
-}
-
 #[inline]
 fn full_add(a: u32, b: u32, c: u32) -> (u32, u32) {
     let partial = a ^ b;
     (partial ^ c, (a & b) | (partial & c))
-}
-
-/// One generation of every row (rows 0 and 15 see nothing beyond them).
-fn step(masks: &RuleMasks, rows: &Rows) -> Rows {
-    let mut next = [0u32; 16];
-    for y in 0..16 {
-        let up = if y > 0 { rows[y - 1] } else { 0 };
-        let mid = rows[y];
-        let down = if y < 15 { rows[y + 1] } else { 0 };
-        // The eight neighbours, each moved onto the column of the cell.
-        let (s1, c1) = full_add(up << 1, up, up >> 1);
-        let (s2, c2) = full_add(mid << 1, mid >> 1, down);
-        let (s3, c3) = (down << 1 ^ down >> 1, down << 1 & down >> 1);
-        let (bit0, c4) = full_add(s1, s2, s3);
-        let (t, d1) = full_add(c1, c2, c3);
-        let bit1 = t ^ c4;
-        let d2 = t & c4;
-        let bit2 = d1 ^ d2;
-        let bit3 = d1 & d2;
-        let planes = [bit0, bit1, bit2, bit3];
-        let mut out = 0u32;
-        for count in 0..9 {
-            if masks.born[count] == 0 && masks.stays[count] == 0 {
-                continue;
-            }
-            let chooses = (masks.born[count] & !mid) | (masks.stays[count] & mid);
-            let mut equal = u32::MAX;
-            for (bit, plane) in planes.iter().enumerate() {
-                equal &= if count >> bit & 1 == 1 {
-                    *plane
-                } else {
-                    !*plane
-                };
-            }
-            out |= equal & chooses;
-        }
-        next[y] = out & 0xffff;
-    }
-    next
 }
 
 #[cfg(test)]
