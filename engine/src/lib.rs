@@ -3,6 +3,7 @@
 //!
 //! Synchronous and free of network code: the cluster layers build on it.
 
+pub mod direct;
 pub mod generation;
 pub mod pattern;
 pub mod rule;
