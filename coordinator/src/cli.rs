@@ -21,6 +21,8 @@ pub struct Cli {
 pub enum Command {
     /// Advance a pattern by any number of generations and report the result
     Evolve(EvolveArgs),
+    /// Run the speed and memory suite; print a table, optionally write JSON
+    Bench(BenchArgs),
 }
 
 #[derive(Args, Debug)]
@@ -47,4 +49,23 @@ pub struct EvolveArgs {
     /// Memory budget for quads, e.g. 2GiB or 512MiB (default: half of this machine's memory)
     #[arg(long, value_name = "SIZE")]
     pub memory: Option<String>,
+}
+
+#[derive(Args, Debug)]
+pub struct BenchArgs {
+    /// Small sizes for a smoke run (seconds, not minutes); figures are not comparable
+    #[arg(long)]
+    pub quick: bool,
+
+    /// Write the figures and the machine's description to this JSON file
+    #[arg(long, value_name = "FILE")]
+    pub json: Option<PathBuf>,
+
+    /// Python with numpy and scipy, for the numpy comparison (default: $DEEPTIME_PYTHON)
+    #[arg(long, value_name = "PATH")]
+    pub python: Option<PathBuf>,
+
+    /// Run one part only: reach, stepping, chaotic or numpy
+    #[arg(long, value_name = "PART")]
+    pub only: Option<String>,
 }

@@ -3,6 +3,7 @@
 //! `main` turns the outcome into an exit code; each subcommand lives in a
 //! module of its own and returns a `Result`.
 
+mod bench;
 mod cli;
 mod evolve;
 mod failure;
@@ -21,6 +22,7 @@ fn main() -> ExitCode {
     let cli = Cli::parse();
     let outcome = match cli.command {
         Command::Evolve(args) => evolve::run(args),
+        Command::Bench(args) => bench::run(args),
     };
     match outcome {
         Ok(()) => ExitCode::SUCCESS,

@@ -537,24 +537,15 @@ impl Store {
         }
     }
 
-    /// Frees every quad not reachable from the roots: the pinned states, the
-    /// empty quads, the scratch stack and `protect`. Results that pointed at
-    /// freed quads are forgotten; the memo maps keep only live entries.
-    pub fn collect(&mut self, protect: &[Handle]) {
+    /// Bit sets of the inner quads and leaves reachable from `roots`.
+    fn mark(&self, roots: &[Handle]) -> (Vec<u64>, Vec<u64>) {
         let mut node_marks = vec![0u64; self.nodes.len().div_ceil(64)];
         let mut leaf_marks = vec![0u64; self.leaves.len().div_ceil(64)];
-        let mut stack: Vec<Handle> = Vec::new();
-        let roots = self
-            .pinned
+        let mut stack: Vec<Handle> = roots
             .iter()
-            .chain(self.empties.iter())
-            .chain(self.scratch.iter())
-            .chain(protect.iter());
-        for &root in roots {
-            if root != Handle::NONE {
-                stack.push(root);
-            }
-        }
+            .copied()
+            .filter(|&root| root != Handle::NONE)
+            .collect();
         while let Some(handle) = stack.pop() {
             let index = handle.index();
             let marks = if handle.is_leaf() {
@@ -570,6 +561,29 @@ impl Store {
                 stack.extend_from_slice(&self.nodes[index].kids);
             }
         }
+        (node_marks, leaf_marks)
+    }
+
+    /// How many distinct quads (inner, leaves) are reachable from `root`.
+    pub fn reachable(&self, root: Handle) -> (u64, u64) {
+        let (nodes, leaves) = self.mark(&[root]);
+        let count = |marks: &[u64]| marks.iter().map(|word| word.count_ones() as u64).sum();
+        (count(&nodes), count(&leaves))
+    }
+
+    /// Frees every quad not reachable from the roots: the pinned states, the
+    /// empty quads, the scratch stack and `protect`. Results that pointed at
+    /// freed quads are forgotten; the memo maps keep only live entries.
+    pub fn collect(&mut self, protect: &[Handle]) {
+        let roots: Vec<Handle> = self
+            .pinned
+            .iter()
+            .chain(self.empties.iter())
+            .chain(self.scratch.iter())
+            .chain(protect.iter())
+            .copied()
+            .collect();
+        let (node_marks, leaf_marks) = self.mark(&roots);
         let marked = |handle: Handle| {
             let index = handle.index();
             let marks = if handle.is_leaf() {

@@ -87,12 +87,19 @@ impl Universe {
     ) -> Result<Universe, BudgetExceeded> {
         let mut universe = Universe::new(rule, budget)?;
         // The leaf map costs about 32 bytes per leaf; refuse before filling
-        // it rather than after.
-        let leaves_bound: u64 = pattern
+        // it rather than after. Leaves are at most: those the runs touch,
+        // the live cells, and the leaves of the bounding square.
+        let touched: u64 = pattern
             .runs
             .iter()
             .map(|run| run.len / 8 + 2)
             .fold(0u64, u64::saturating_add);
+        let (width, height) = pattern.runs.iter().fold((0u64, 0u64), |(w, h), run| {
+            (w.max(run.x + run.len), h.max(run.y + 1))
+        });
+        let leaves_bound = touched
+            .min(pattern.population())
+            .min(width.div_ceil(8).saturating_mul(height.div_ceil(8)));
         if leaves_bound.saturating_mul(32) > budget {
             return Err(BudgetExceeded {
                 budget,
@@ -139,6 +146,12 @@ impl Universe {
     /// The store's counters.
     pub fn store_stats(&self) -> StoreStats {
         self.store.stats()
+    }
+
+    /// Distinct quads of the state itself (inner quads, leaves): what must
+    /// stay in memory whatever the memo holds.
+    pub fn live_quads(&self) -> (u64, u64) {
+        self.store.reachable(self.root)
     }
 
     /// The root quad's level now (it grows and shrinks with the pattern).

@@ -1,0 +1,368 @@
+//! The benchmark suite's parts. Every ratio is measured in this run, both
+//! sides on the same pattern, and every pair of results is checked equal
+//! before its ratio is reported.
+
+use std::path::Path;
+use std::process::Command;
+use std::time::{Duration, Instant};
+
+use anyhow::{Context, bail, ensure};
+use deeptime_engine::direct::Grid;
+use deeptime_engine::pattern::{Pattern, Run, read_pattern};
+use deeptime_engine::rule::Rule;
+use deeptime_engine::{Universe, human_bytes};
+use num_bigint::BigUint;
+
+use super::{Figure, Goal, Settings};
+
+pub struct Part {
+    pub name: &'static str,
+    pub run: fn(&Settings) -> anyhow::Result<Vec<Figure>>,
+}
+
+pub const PARTS: &[Part] = &[
+    Part {
+        name: "reach",
+        run: reach,
+    },
+    Part {
+        name: "stepping",
+        run: stepping,
+    },
+    Part {
+        name: "chaotic",
+        run: chaotic,
+    },
+    Part {
+        name: "numpy",
+        run: numpy,
+    },
+];
+
+/// The Gosper glider gun (the usual RLE, from memory).
+const GUN: &str = "x = 36, y = 9, rule = B3/S23\n24bo$22bobo$12b2o6b2o12b2o$11bo3bo4b2o12b2o$\
+    2o8bo5bo3b2o$2o8bo3bob2o4bobo$10bo5bo7bo$11bo3bo$12b2o!";
+
+/// Our quadratic-growth pattern: a seed of our own ("the spill") under
+/// B12345678/S012345678, where every cell next to a live one is born and
+/// none dies, so the spill's outline grows by one cell a generation each
+/// way and its population grows as the square of the generation.
+const SPILL: &str = "x = 7, y = 5, rule = B12345678/S012345678\nbo3bo$2obob2o$3bo$2o3b2o$bobobo!";
+
+/// Plenty: the suite measures speed, not budgets (except where it says so).
+const BUDGET: u64 = 16 << 30;
+
+fn pattern(text: &str) -> anyhow::Result<(Pattern, Rule)> {
+    let pattern = read_pattern(text.as_bytes()).map_err(|error| anyhow::anyhow!("{error}"))?;
+    let rule = match &pattern.rule {
+        Some((rule, _)) => Rule::parse(rule)?,
+        None => Rule::LIFE,
+    };
+    Ok((pattern, rule))
+}
+
+/// A seeded random soup, `side`×`side`, each cell alive with probability 3/8.
+pub fn soup(side: u64, seed: u64) -> Pattern {
+    let mut state = seed.wrapping_mul(0x9e37_79b9_7f4a_7c15) | 1;
+    let mut runs: Vec<Run> = Vec::new();
+    for y in 0..side {
+        for x in 0..side {
+            // xorshift64
+            state ^= state << 13;
+            state ^= state >> 7;
+            state ^= state << 17;
+            if state % 8 < 3 {
+                match runs.last_mut() {
+                    Some(run) if run.y == y && run.x + run.len == x => run.len += 1,
+                    _ => runs.push(Run { y, x, len: 1 }),
+                }
+            }
+        }
+    }
+    Pattern { rule: None, runs }
+}
+
+fn timed<T>(work: impl FnOnce() -> anyhow::Result<T>) -> anyhow::Result<(T, Duration)> {
+    let started = Instant::now();
+    let value = work()?;
+    Ok((value, started.elapsed()))
+}
+
+/// Far-future reach: advance to 10^D for growing D (population included)
+/// until one run takes the target time; digits of D per second.
+fn reach(settings: &Settings) -> anyhow::Result<Vec<Figure>> {
+    let target = if settings.quick {
+        Duration::from_millis(20)
+    } else {
+        Duration::from_secs(2)
+    };
+    let mut figures = Vec::new();
+    for (name, text) in [("Gosper glider gun", GUN), ("quadratic spill", SPILL)] {
+        let (pattern, rule) = pattern(text)?;
+        let mut digits = 10u32;
+        loop {
+            let generations = BigUint::from(10u32).pow(digits);
+            let (population, elapsed) = timed(|| {
+                let mut universe = Universe::from_pattern(&pattern, rule, BUDGET)?;
+                universe.advance(&generations, None)?;
+                Ok(universe.population())
+            })?;
+            if elapsed >= target || digits >= 100_000 {
+                let rate = digits as f64 / elapsed.as_secs_f64();
+                figures.push(
+                    Figure::new(
+                        "reach",
+                        &format!("{name}: digits of generation per second"),
+                        rate,
+                        "digits/s",
+                        Some(Goal::AtLeast(2000.0)),
+                    )
+                    .detail(format!(
+                        "10^{digits} generations in {:.3} s; exact population has {} digits",
+                        elapsed.as_secs_f64(),
+                        population.to_string().len()
+                    )),
+                );
+                break;
+            }
+            digits *= 2;
+        }
+    }
+    Ok(figures)
+}
+
+/// One generation at a time: the memoised recursion asked for 1 generation
+/// per call vs the direct stepper, on the gun (a growing regular pattern).
+fn stepping(settings: &Settings) -> anyhow::Result<Vec<Figure>> {
+    let generations = if settings.quick { 256 } else { 16_384 };
+    let (pattern, rule) = pattern(GUN)?;
+    let one = BigUint::from(1u32);
+    let (mut memoised, hashlife) = timed(|| {
+        let mut universe = Universe::from_pattern(&pattern, rule, BUDGET)?;
+        for _ in 0..generations {
+            universe.advance(&one, None)?;
+        }
+        Ok(universe)
+    })?;
+    let (grid, direct) = timed(|| {
+        let mut grid = Grid::from_pattern(&pattern, rule);
+        grid.advance(generations);
+        Ok(grid)
+    })?;
+    ensure!(
+        memoised.cells()? == grid.cells(),
+        "the memoised and direct runs of the gun differ after {generations} generations"
+    );
+    let ratio = direct.as_secs_f64() / hashlife.as_secs_f64();
+    Ok(vec![
+        Figure::new(
+            "stepping",
+            &format!("gun, {generations} single generations: direct / memoised time"),
+            ratio,
+            "×",
+            Some(Goal::AtLeast(16.0)),
+        )
+        .detail(format!(
+            "memoised {:.3} s, direct {:.3} s; population {}",
+            hashlife.as_secs_f64(),
+            direct.as_secs_f64(),
+            grid.population()
+        )),
+    ])
+}
+
+/// A random soup advanced 2^k generations: one HashLife jump vs the direct
+/// stepper; then HashLife again under a budget of twice the live set.
+fn chaotic(settings: &Settings) -> anyhow::Result<Vec<Figure>> {
+    let (side, generations) = if settings.quick {
+        (256u64, 1u64 << 8)
+    } else {
+        (2048, 1 << 12)
+    };
+    let label = format!("{side}² soup, 2^{}", generations.trailing_zeros());
+    let pattern = soup(side, 1);
+    let rule = Rule::LIFE;
+    let steps = BigUint::from(generations);
+    let ((mut universe, live_at_start), hashlife) = timed(|| {
+        let mut universe = Universe::from_pattern(&pattern, rule, BUDGET)?;
+        let live_at_start = universe.live_quads();
+        universe.advance(&steps, None)?;
+        Ok((universe, live_at_start))
+    })?;
+    let (grid, direct) = timed(|| {
+        let mut grid = Grid::from_pattern(&pattern, rule);
+        grid.advance(generations);
+        Ok(grid)
+    })?;
+    ensure!(
+        universe.cells()? == grid.cells(),
+        "HashLife and the direct stepper differ on the {label} soup"
+    );
+    let stats = universe.store_stats();
+    let digest = universe.digest()?;
+    let mut figures = vec![
+        Figure::new(
+            "chaotic",
+            &format!("{label}: HashLife / direct time"),
+            hashlife.as_secs_f64() / direct.as_secs_f64(),
+            "×",
+            Some(Goal::AtMost(2.0)),
+        )
+        .detail(format!(
+            "HashLife {:.2} s, direct {:.2} s; population {}",
+            hashlife.as_secs_f64(),
+            direct.as_secs_f64(),
+            grid.population()
+        )),
+        Figure::new(
+            "chaotic",
+            &format!("{label}: quads created per second"),
+            stats.created as f64 / hashlife.as_secs_f64(),
+            "quads/s",
+            Some(Goal::AtLeast(5e6)),
+        )
+        .detail(format!("{} quads created", stats.created)),
+        Figure::new(
+            "chaotic",
+            &format!("{label}: peak bytes per quad, tables included"),
+            stats.bytes as f64 / stats.quads as f64,
+            "B",
+            Some(Goal::AtMost(28.0)),
+        )
+        .detail(format!(
+            "{} for {} quads (no collection ran)",
+            human_bytes(stats.bytes),
+            stats.quads
+        )),
+    ];
+
+    // Memory pressure: a budget of twice the live set (the larger of the
+    // state's own quads at the start and at the end), at the measured
+    // bytes per quad.
+    let live_at_end = universe.live_quads();
+    let per_quad = stats.bytes as f64 / stats.quads as f64;
+    let live = (live_at_start.0 + live_at_start.1).max(live_at_end.0 + live_at_end.1);
+    let budget = ((2 * live) as f64 * per_quad) as u64;
+    let pressured = timed(|| {
+        let mut universe = Universe::from_pattern(&pattern, rule, budget)?;
+        universe.advance(&steps, None)?;
+        Ok(universe)
+    });
+    match pressured {
+        Ok((mut tight, elapsed)) => {
+            ensure!(
+                tight.digest()? == digest,
+                "the {label} soup under a budget of {} gave a different state",
+                human_bytes(budget)
+            );
+            figures.push(
+                Figure::new(
+                    "pressure",
+                    &format!("{label}, budget 2× live: throughput vs unlimited"),
+                    hashlife.as_secs_f64() / elapsed.as_secs_f64(),
+                    "×",
+                    Some(Goal::AtLeast(0.5)),
+                )
+                .detail(format!(
+                    "budget {} ({} live quads), {:.2} s, {} collections; same digest {}",
+                    human_bytes(budget),
+                    live,
+                    elapsed.as_secs_f64(),
+                    tight.store_stats().collections,
+                    digest.short()
+                )),
+            );
+        }
+        Err(error) => figures.push(
+            Figure::new(
+                "pressure",
+                &format!("{label}, budget 2× live: throughput vs unlimited"),
+                0.0,
+                "×",
+                Some(Goal::AtLeast(0.5)),
+            )
+            .detail(format!("failed under {}: {error:#}", human_bytes(budget))),
+        ),
+    }
+    Ok(figures)
+}
+
+/// The direct stepper vs a straightforward numpy/scipy program on the same
+/// soup and the same simulated area.
+fn numpy(settings: &Settings) -> anyhow::Result<Vec<Figure>> {
+    let (side, generations) = if settings.quick {
+        (128u64, 20u64)
+    } else {
+        (1024, 100)
+    };
+    let Some(python) = &settings.python else {
+        bail!(
+            "the numpy comparison needs a Python with numpy and scipy: give --python \
+             (bench/run sets one up)"
+        );
+    };
+    let pattern = soup(side, 2);
+    let rule = Rule::LIFE;
+    let directory = tempfile::tempdir()?;
+    let soup_path = directory.path().join("soup.rle");
+    let mut grid = Grid::from_pattern(&pattern, rule);
+    let mut universe = Universe::from_pattern(&pattern, rule, BUDGET)?;
+    let mut text = Vec::new();
+    universe.write_rle(&mut text)?;
+    std::fs::write(&soup_path, text)?;
+    let script = directory.path().join("numpy_life.py");
+    std::fs::write(&script, include_str!("../../../bench/numpy_life.py"))?;
+    let reference = run_python(python, &script, &soup_path, rule, generations)?;
+    let (_, direct) = timed(|| {
+        grid.advance(generations);
+        Ok(())
+    })?;
+    let population = reference["population"].as_u64().unwrap_or(u64::MAX);
+    ensure!(
+        population == grid.population(),
+        "numpy gave population {population}, the direct stepper {}",
+        grid.population()
+    );
+    let seconds = reference["seconds"].as_f64().unwrap_or(f64::NAN);
+    let cells = reference["cells"].as_f64().unwrap_or(f64::NAN);
+    let updates = cells * generations as f64;
+    Ok(vec![
+        Figure::new(
+            "numpy",
+            &format!("{side}² soup, {generations} generations: direct / numpy speed"),
+            seconds / direct.as_secs_f64(),
+            "×",
+            Some(Goal::AtLeast(100.0)),
+        )
+        .detail(format!(
+            "same {} cell updates: numpy {:.3} s ({}/s), direct {:.4} s ({}/s)",
+            super::compact(updates),
+            seconds,
+            super::compact(updates / seconds),
+            direct.as_secs_f64(),
+            super::compact(updates / direct.as_secs_f64())
+        )),
+    ])
+}
+
+fn run_python(
+    python: &Path,
+    script: &Path,
+    soup: &Path,
+    rule: Rule,
+    generations: u64,
+) -> anyhow::Result<serde_json::Value> {
+    let output = Command::new(python)
+        .arg(script)
+        .arg(soup)
+        .arg(rule.to_string())
+        .arg(generations.to_string())
+        .output()
+        .with_context(|| format!("cannot run {}", python.display()))?;
+    ensure!(
+        output.status.success(),
+        "the numpy program failed: {}",
+        String::from_utf8_lossy(&output.stderr).trim()
+    );
+    serde_json::from_slice(&output.stdout).context("the numpy program printed no JSON")
+}
