@@ -186,10 +186,20 @@ fn a_state_too_large_for_text_is_refused_and_the_old_file_kept() {
 fn a_budget_too_small_is_its_own_exit_code() {
     let dir = temp_dir();
     let path = dir.path().join("soup.rle");
-    // A dense 512×512 block of cells in rows of alternating runs.
-    let row = "3o2b".repeat(100);
-    let body: Vec<String> = (0..512).map(|_| row.clone()).collect();
-    std::fs::write(&path, format!("x = 500, y = 512\n{}!", body.join("$"))).unwrap();
+    // A 2048×2048 random soup: its own quads alone take more than 1 MiB.
+    let mut state = 0x2545_f491_4f6c_dd1du64;
+    let mut rows = Vec::new();
+    for _ in 0..2048 {
+        let mut row = String::new();
+        for _ in 0..2048 {
+            state ^= state << 13;
+            state ^= state >> 7;
+            state ^= state << 17;
+            row.push(if state % 8 < 3 { 'o' } else { 'b' });
+        }
+        rows.push(row);
+    }
+    std::fs::write(&path, format!("x = 2048, y = 2048\n{}!", rows.join("$"))).unwrap();
     let run = run_deeptime([
         "evolve",
         path.to_str().unwrap(),

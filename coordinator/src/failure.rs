@@ -3,7 +3,7 @@
 //! 0 done; 1 a failure of the system (files, output); 2 bad input (usage,
 //! pattern, rule, number); 3 a memory budget too small for the live state.
 
-use deeptime_engine::BudgetExceeded;
+use deeptime_engine::{AdvanceError, BudgetExceeded};
 
 /// Input the user can fix: a malformed pattern, rule, number or option.
 #[derive(Debug, thiserror::Error)]
@@ -20,7 +20,7 @@ pub fn exit_code(error: &anyhow::Error) -> u8 {
         if cause.is::<BadInput>() {
             return EXIT_BAD_INPUT;
         }
-        if cause.is::<BudgetExceeded>() {
+        if is_budget(cause) {
             return EXIT_BUDGET;
         }
     }
@@ -36,8 +36,16 @@ pub fn describe(error: &anyhow::Error) -> String {
         }
         text.push_str(&cause.to_string());
     }
-    if error.chain().any(|cause| cause.is::<BudgetExceeded>()) {
+    if error.chain().any(is_budget) {
         text.push_str(" (--memory)");
     }
     text
+}
+
+fn is_budget(cause: &(dyn std::error::Error + 'static)) -> bool {
+    cause.is::<BudgetExceeded>()
+        || matches!(
+            cause.downcast_ref::<AdvanceError>(),
+            Some(AdvanceError::Budget(_))
+        )
 }

@@ -30,6 +30,8 @@ pub struct BoxReport {
 pub struct EngineReport {
     /// quads allocated now (live or not yet collected)
     pub quads: u64,
+    /// of which leaves (8×8 cells)
+    pub leaves: u64,
     /// quads created in all
     pub quads_created: u64,
     /// bytes held by the quad store now
@@ -61,6 +63,7 @@ impl Report {
             digest: digest.to_string(),
             engine: EngineReport {
                 quads: stats.quads,
+                leaves: stats.leaves,
                 quads_created: stats.created,
                 bytes: stats.bytes,
                 budget: stats.budget,

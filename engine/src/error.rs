@@ -46,3 +46,27 @@ pub fn human_bytes(bytes: u64) -> String {
         format!("{value:.1} {}", UNITS[unit])
     }
 }
+
+/// The system refused the stack a very deep recursion needs.
+#[derive(Clone, Copy, Debug, PartialEq, Eq, thiserror::Error)]
+#[error(
+    "the system refused a {} stack for a recursion over {levels} levels",
+    human_bytes(*bytes)
+)]
+pub struct StackRefused {
+    /// the stack size asked for
+    pub bytes: u64,
+    /// the depth of the recursion
+    pub levels: u32,
+}
+
+/// Why an advance stopped.
+#[derive(Clone, Copy, Debug, PartialEq, Eq, thiserror::Error)]
+pub enum AdvanceError {
+    /// the live quads do not fit the memory budget
+    #[error(transparent)]
+    Budget(#[from] BudgetExceeded),
+    /// no thread with a deep enough stack could be made
+    #[error(transparent)]
+    Stack(#[from] StackRefused),
+}

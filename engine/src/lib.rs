@@ -11,6 +11,7 @@ pub mod rule;
 mod advance;
 mod content_id;
 mod error;
+mod figures;
 mod kernel;
 mod stack;
 mod store;
@@ -18,6 +19,6 @@ mod universe;
 
 pub use advance::{Observer, Progress};
 pub use content_id::{BadContentId, ContentId};
-pub use error::{BudgetExceeded, TooLargeForText, human_bytes};
+pub use error::{AdvanceError, BudgetExceeded, StackRefused, TooLargeForText, human_bytes};
 pub use store::{Handle, StoreStats};
 pub use universe::{BoundingBox, MAX_TEXT_CELLS, Universe, WriteError};

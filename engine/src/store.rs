@@ -70,6 +70,8 @@ const LEAF_BYTES: u64 = 8;
 const SLOT_BYTES: u64 = 4;
 /// Smallest arena growth step, in quads.
 const MIN_CAPACITY: usize = 1 << 10;
+/// Smallest table, in slots.
+const MIN_TABLE: usize = 1 << 11;
 
 /// Fixed hasher seeds: table layout is deterministic from run to run.
 const SEEDS: [u64; 4] = [
@@ -84,6 +86,8 @@ const SEEDS: [u64; 4] = [
 pub struct StoreStats {
     /// inner quads and leaves currently allocated (live or not yet collected)
     pub quads: u64,
+    /// of which leaves
+    pub leaves: u64,
     /// quads ever created (the engine's unit of work)
     pub created: u64,
     /// collections run so far
@@ -115,9 +119,14 @@ impl Table {
         self.slots.len() - 1
     }
 
-    /// The table length that keeps the load at most 3/4 for `capacity` quads.
-    fn len_for(capacity: usize) -> usize {
-        (capacity + capacity / 3 + 1).next_power_of_two()
+    /// The table length that keeps the load at most 3/4 for `count` quads.
+    fn len_for(count: usize) -> usize {
+        (count + count / 3 + 1).next_power_of_two().max(MIN_TABLE)
+    }
+
+    /// Whether one more entry keeps the load at most 3/4.
+    fn has_room(&self, count: usize) -> bool {
+        (count + 1) * 4 <= self.slots.len() * 3
     }
 }
 
@@ -175,8 +184,8 @@ impl Store {
     /// Counters and the memory in use.
     pub fn stats(&self) -> StoreStats {
         StoreStats {
-            quads: (self.nodes.len() - self.node_table.free_count + self.leaves.len()
-                - self.leaf_table.free_count) as u64,
+            quads: (self.count(true) + self.count(false)) as u64,
+            leaves: self.count(false) as u64,
             created: self.created,
             collections: self.collections,
             bytes: self.bytes_in_use(),
@@ -184,18 +193,36 @@ impl Store {
         }
     }
 
-    /// Bytes held now: arenas at their capacity, tables, memo maps.
-    pub fn bytes_in_use(&self) -> u64 {
-        self.bytes_with(self.nodes.capacity(), self.leaves.capacity())
+    /// Quads allocated in one arena (live or not yet collected).
+    fn count(&self, inner: bool) -> usize {
+        if inner {
+            self.nodes.len() - self.node_table.free_count
+        } else {
+            self.leaves.len() - self.leaf_table.free_count
+        }
     }
 
-    fn bytes_with(&self, node_capacity: usize, leaf_capacity: usize) -> u64 {
+    /// Bytes in use: the arenas' filled slots, the tables and the memo maps.
+    /// (Arena capacity beyond the filled slots is reserved address space
+    /// that is not touched; the budget counts it all the same.)
+    pub fn bytes_in_use(&self) -> u64 {
+        self.nodes.len() as u64 * NODE_BYTES
+            + self.leaves.len() as u64 * LEAF_BYTES
+            + self.tables_and_maps()
+    }
+
+    /// Bytes the budget is held against: arenas at their capacity.
+    fn bytes_reserved(&self, node_capacity: usize, leaf_capacity: usize) -> u64 {
+        node_capacity as u64 * NODE_BYTES
+            + leaf_capacity as u64 * LEAF_BYTES
+            + self.tables_and_maps()
+    }
+
+    fn tables_and_maps(&self) -> u64 {
         // A hash-map entry of the memo maps: key, value and one control byte.
         let residual_entry = 2 * 4 + 1;
         let id_entry = 4 + 16 + 1;
-        node_capacity as u64 * NODE_BYTES
-            + leaf_capacity as u64 * LEAF_BYTES
-            + (Table::len_for(node_capacity) + Table::len_for(leaf_capacity)) as u64 * SLOT_BYTES
+        (self.node_table.slots.len() + self.leaf_table.slots.len()) as u64 * SLOT_BYTES
             + self.residual.capacity() as u64 * residual_entry
             + self.ids.capacity() as u64 * id_entry
     }
@@ -376,10 +403,78 @@ impl Store {
         table.slots[at] = index;
     }
 
-    /// Ensures one more quad of the given arena fits: reuses a free slot,
-    /// grows the arena within the budget, or collects. `protect` are extra
-    /// roots (the children about to be joined).
+    /// Ensures one more quad of the given arena fits: a free slot and table
+    /// room, grown within the budget, or made by collecting. `protect` are
+    /// extra roots (the children about to be joined).
     fn make_room(&mut self, inner: bool, protect: &[Handle]) -> Result<(), BudgetExceeded> {
+        if self.has_room(inner) || self.grow(inner) {
+            return Ok(());
+        }
+        if !self.collect_allowed {
+            return Err(self.exceeded());
+        }
+        self.collect(protect);
+        // Collecting again after a handful of new quads would thrash: demand
+        // that a useful share of the arena came free, or that it can grow
+        // into what the collection released.
+        let (free, capacity) = if inner {
+            (self.node_table.free_count, self.nodes.capacity())
+        } else {
+            (self.leaf_table.free_count, self.leaves.capacity())
+        };
+        let table_room = if inner {
+            self.node_table.has_room(self.count(true))
+        } else {
+            self.leaf_table.has_room(self.count(false))
+        };
+        if (free > 0 && free >= capacity / 16 && table_room) || self.grow(inner) {
+            return Ok(());
+        }
+        Err(self.exceeded())
+    }
+
+    /// A free slot (or spare capacity) and room in the table.
+    fn has_room(&self, inner: bool) -> bool {
+        let count = self.count(inner);
+        if inner {
+            (self.node_table.free_head != NO_FREE || self.nodes.len() < self.nodes.capacity())
+                && self.node_table.has_room(count)
+        } else {
+            (self.leaf_table.free_head != NO_FREE || self.leaves.len() < self.leaves.capacity())
+                && self.leaf_table.has_room(count)
+        }
+    }
+
+    fn exceeded(&self) -> BudgetExceeded {
+        // What is allocated after the last collection: the live quads.
+        let live = self.count(true) as u64 * NODE_BYTES
+            + self.count(false) as u64 * LEAF_BYTES
+            + self.tables_and_maps();
+        BudgetExceeded {
+            budget: self.budget,
+            in_use: live,
+        }
+    }
+
+    /// Grows one arena's table (doubling it) and the arena itself (at most
+    /// doubling it) as far as the budget allows, until one more quad fits.
+    /// Returns false when that is not possible.
+    fn grow(&mut self, inner: bool) -> bool {
+        let count = self.count(inner);
+        let table = if inner {
+            &self.node_table
+        } else {
+            &self.leaf_table
+        };
+        if !table.has_room(count) {
+            let new_len = table.slots.len() * 2;
+            let extra = ((new_len - table.slots.len()) as u64) * SLOT_BYTES;
+            let reserved = self.bytes_reserved(self.nodes.capacity(), self.leaves.capacity());
+            if reserved + extra > self.budget {
+                return false;
+            }
+            self.rebuild_table(inner, new_len, None);
+        }
         let (len, capacity, free_head) = if inner {
             (
                 self.nodes.len(),
@@ -394,50 +489,15 @@ impl Store {
             )
         };
         if free_head != NO_FREE || len < capacity {
-            return Ok(());
+            return true;
         }
-        if self.grow(inner) {
-            return Ok(());
-        }
-        if !self.collect_allowed {
-            return Err(self.exceeded());
-        }
-        self.collect(protect);
-        let (free, capacity) = if inner {
-            (self.node_table.free_count, self.nodes.capacity())
-        } else {
-            (self.leaf_table.free_count, self.leaves.capacity())
-        };
-        // Collecting again after a handful of new quads would thrash: demand
-        // that a useful share of the arena came free.
-        if free == 0 || free < capacity / 16 {
-            return Err(self.exceeded());
-        }
-        Ok(())
-    }
-
-    fn exceeded(&self) -> BudgetExceeded {
-        BudgetExceeded {
-            budget: self.budget,
-            in_use: self.bytes_in_use(),
-        }
-    }
-
-    /// Grows one arena (and its table) as far as the budget allows, at most
-    /// doubling it. Returns false when it cannot grow at all.
-    fn grow(&mut self, inner: bool) -> bool {
-        let capacity = if inner {
-            self.nodes.capacity()
-        } else {
-            self.leaves.capacity()
-        };
         let limit = Handle::MAX_INDEX as usize;
         let want = (capacity * 2).max(MIN_CAPACITY).min(limit);
         let fits = |store: &Store, new: usize| {
             let bytes = if inner {
-                store.bytes_with(new, store.leaves.capacity())
+                store.bytes_reserved(new, store.leaves.capacity())
             } else {
-                store.bytes_with(store.nodes.capacity(), new)
+                store.bytes_reserved(store.nodes.capacity(), new)
             };
             bytes <= store.budget
         };
@@ -460,18 +520,9 @@ impl Store {
             return false;
         }
         if inner {
-            self.nodes.reserve_exact(new_capacity - self.nodes.len());
+            self.nodes.reserve_exact(new_capacity - len);
         } else {
-            self.leaves.reserve_exact(new_capacity - self.leaves.len());
-        }
-        let table_len = Table::len_for(new_capacity);
-        let current = if inner {
-            self.node_table.slots.len()
-        } else {
-            self.leaf_table.slots.len()
-        };
-        if table_len != current {
-            self.rebuild_table(inner, table_len, None);
+            self.leaves.reserve_exact(new_capacity - len);
         }
         true
     }
@@ -584,6 +635,10 @@ impl Store {
             .copied()
             .collect();
         let (node_marks, leaf_marks) = self.mark(&roots);
+        // Unmarked quads at the end of an arena go back to the allocator, so
+        // the other arena can grow into the budget they held.
+        release_tail(&mut self.nodes, &node_marks);
+        release_tail(&mut self.leaves, &leaf_marks);
         let marked = |handle: Handle| {
             let index = handle.index();
             let marks = if handle.is_leaf() {
@@ -632,11 +687,33 @@ impl Store {
             .retain(|&key, &mut value| marked(key) && marked(value));
         self.ids.retain(|&key, _| marked(key));
 
-        let node_len = self.node_table.slots.len();
-        let leaf_len = self.leaf_table.slots.len();
+        // Tables shrink with what is left, down to half full at most.
+        let node_len = self
+            .node_table
+            .slots
+            .len()
+            .min(Table::len_for(2 * self.count(true)));
+        let leaf_len = self
+            .leaf_table
+            .slots
+            .len()
+            .min(Table::len_for(2 * self.count(false)));
         self.rebuild_table(true, node_len, Some(&node_marks));
         self.rebuild_table(false, leaf_len, Some(&leaf_marks));
         self.collections += 1;
+    }
+}
+
+/// Drops the unmarked quads at the end of an arena and, when that frees an
+/// eighth of it or more, gives the memory back.
+fn release_tail<T>(arena: &mut Vec<T>, marks: &[u64]) {
+    let mut keep = arena.len();
+    while keep > 0 && marks[(keep - 1) / 64] >> ((keep - 1) % 64) & 1 == 0 {
+        keep -= 1;
+    }
+    arena.truncate(keep);
+    if arena.capacity() - keep >= arena.capacity() / 8 {
+        arena.shrink_to(keep.max(MIN_CAPACITY));
     }
 }
 

@@ -14,7 +14,8 @@ use num_traits::{One, Zero};
 
 use crate::advance::{self, Advance, Observer};
 use crate::content_id::ContentId;
-use crate::error::{BudgetExceeded, TooLargeForText};
+use crate::error::{AdvanceError, BudgetExceeded, TooLargeForText};
+use crate::figures::{self, Side};
 use crate::pattern::{MAX_COORDINATE, Pattern, write};
 use crate::rule::Rule;
 use crate::stack;
@@ -121,15 +122,19 @@ impl Universe {
                 x += span;
             }
         }
+        // Nothing here is garbage, and the builder's maps hold handles the
+        // collector cannot see: collection stays off until the root is pinned.
         let store = &mut universe.store;
         store.set_collect_allowed(false);
-        let built = build_tree(store, leaves, extent);
+        let built = build_tree(store, leaves, extent).and_then(|(quad, level)| {
+            let empty = store.empty(level)?;
+            let root = store.join([empty, empty, empty, quad])?;
+            store.empty(level + 1)?;
+            Ok((root, level + 1))
+        });
         store.set_collect_allowed(true);
-        let (quad, level) = built?;
-        let empty = store.empty(level)?;
-        let root = store.join([empty, empty, empty, quad])?;
-        store.empty(level + 1)?;
-        universe.set_root(root, level + 1);
+        let (root, level) = built?;
+        universe.set_root(root, level);
         Ok(universe)
     }
 
@@ -171,7 +176,7 @@ impl Universe {
         &mut self,
         generations: &BigUint,
         observer: Option<Observer<'_>>,
-    ) -> Result<(), BudgetExceeded> {
+    ) -> Result<(), AdvanceError> {
         if generations.is_zero() {
             return Ok(());
         }
@@ -200,7 +205,11 @@ impl Universe {
         let store = &mut self.store;
         let result = stack::deep(level, move || {
             Advance::new(store, rule, &words, level, observer).run(root)
-        })?;
+        });
+        // A failed advance leaves its path on the scratch stack: drop it, so
+        // a caller that retries (with a larger budget) starts clean.
+        self.store.scratch.clear();
+        let result = result??;
         self.set_root(result, level - 1);
         self.generation += generations;
         while self.level > MIN_ROOT_LEVEL && self.fits_centre_half(self.root, self.level) {
@@ -263,39 +272,23 @@ impl Universe {
 
     /// The number of live cells.
     pub fn population(&self) -> BigUint {
-        let store = &self.store;
-        let (root, level) = (self.root, self.level);
-        stack::deep(level, move || {
-            let mut counter = Counter::default();
-            counter.big(store, root, level)
-        })
+        figures::population(&self.store, self.root, self.level)
     }
 
     /// The extent of the live cells, or None when there are none.
     pub fn bounding_box(&self) -> Option<BoundingBox> {
-        let store = &self.store;
-        let (root, level) = (self.root, self.level);
-        let half = BigInt::one() << (level - 1);
-        stack::deep(level, move || {
-            let find = |axis: usize, max: bool| {
-                let mut extremes = Extremes {
-                    axis,
-                    max,
-                    small: HashMap::default(),
-                    big: HashMap::default(),
-                };
-                extremes.big(store, root, level)
-            };
-            let left = find(0, false)?;
-            let right = find(0, true)?;
-            let top = find(1, false)?;
-            let bottom = find(1, true)?;
-            Some(BoundingBox {
-                width: &right - &left + 1u32,
-                height: &bottom - &top + 1u32,
-                left: BigInt::from(left) - &half,
-                top: BigInt::from(top) - &half,
-            })
+        let find =
+            |axis, max| figures::extreme(&self.store, self.root, self.level, Side { axis, max });
+        let left = find(0, false)?;
+        let right = find(0, true)?;
+        let top = find(1, false)?;
+        let bottom = find(1, true)?;
+        let half = BigInt::one() << (self.level - 1);
+        Some(BoundingBox {
+            width: &right - &left + 1u32,
+            height: &bottom - &top + 1u32,
+            left: BigInt::from(left) - &half,
+            top: BigInt::from(top) - &half,
         })
     }
 
@@ -316,14 +309,7 @@ impl Universe {
     /// `content_id`). Equal live cells give equal digests.
     pub fn digest(&mut self) -> Result<ContentId, BudgetExceeded> {
         let (quad, level) = self.canonical_root()?;
-        let store = &mut self.store;
-        Ok(stack::deep(level, move || content_id(store, quad, level)))
-    }
-
-    /// The content id of a quad of this store.
-    pub fn content_id(&mut self, quad: Handle, level: u32) -> ContentId {
-        let store = &mut self.store;
-        stack::deep(level, move || content_id(store, quad, level))
+        Ok(figures::content_id(&mut self.store, quad, level))
     }
 
     /// The live cells as (x, y), sorted by row then column. For states whose
@@ -369,7 +355,6 @@ impl Universe {
     /// (x, len), both relative to the box.
     #[allow(clippy::type_complexity)]
     fn rows(&mut self, bbox: &BoundingBox) -> Result<Vec<(u64, Vec<(u64, u64)>)>, WriteError> {
-        let population = self.population();
         let limit = BigUint::from(MAX_COORDINATE);
         if bbox.width > limit || bbox.height > limit {
             return Err(TooLargeForText {
@@ -380,6 +365,7 @@ impl Universe {
             }
             .into());
         }
+        let population = self.population();
         if population > BigUint::from(MAX_TEXT_CELLS) {
             return Err(TooLargeForText {
                 what: format!("it has {population} live cells (at most {MAX_TEXT_CELLS})"),
@@ -508,184 +494,6 @@ fn build_tree(
         None => store.empty(level)?,
     };
     Ok((quad, level))
-}
-
-/// Populations, memoised: in `u64` up to level 31, big integers above.
-#[derive(Default)]
-struct Counter {
-    small: HashMap<Handle, u64, ahash::RandomState>,
-    big: HashMap<Handle, BigUint, ahash::RandomState>,
-}
-
-impl Counter {
-    fn small(&mut self, store: &Store, quad: Handle, level: u32) -> u64 {
-        if quad.is_leaf() {
-            return store.leaf_bits(quad).count_ones() as u64;
-        }
-        if quad == store.known_empty(level) {
-            return 0;
-        }
-        if let Some(&count) = self.small.get(&quad) {
-            return count;
-        }
-        let count = store
-            .kids(quad)
-            .iter()
-            .map(|&kid| self.small(store, kid, level - 1))
-            .sum();
-        self.small.insert(quad, count);
-        count
-    }
-
-    fn big(&mut self, store: &Store, quad: Handle, level: u32) -> BigUint {
-        if level <= 31 {
-            return BigUint::from(self.small(store, quad, level));
-        }
-        if quad == store.known_empty(level) {
-            return BigUint::zero();
-        }
-        if let Some(count) = self.big.get(&quad) {
-            return count.clone();
-        }
-        let mut count = BigUint::zero();
-        for kid in store.kids(quad) {
-            count += self.big(store, kid, level - 1);
-        }
-        self.big.insert(quad, count.clone());
-        count
-    }
-}
-
-/// The lowest or highest live column (axis 0) or row (axis 1) of quads,
-/// as an offset from the quad's corner; memoised per quad.
-struct Extremes {
-    axis: usize,
-    max: bool,
-    small: HashMap<Handle, Option<u64>, ahash::RandomState>,
-    big: HashMap<Handle, Option<BigUint>, ahash::RandomState>,
-}
-
-impl Extremes {
-    /// Children nearest the wanted side first, then the others, with the
-    /// half-offset of the latter group.
-    fn groups(&self) -> ([usize; 2], [usize; 2], bool) {
-        let (low, high) = if self.axis == 0 {
-            ([0, 2], [1, 3])
-        } else {
-            ([0, 1], [2, 3])
-        };
-        if self.max {
-            (high, low, true)
-        } else {
-            (low, high, false)
-        }
-    }
-
-    fn leaf(&self, bits: u64) -> Option<u64> {
-        if bits == 0 {
-            return None;
-        }
-        let lines = if self.axis == 0 {
-            // columns with a live cell, as the bits of one byte
-            let mut columns = bits;
-            columns |= columns >> 32;
-            columns |= columns >> 16;
-            columns |= columns >> 8;
-            columns & 0xff
-        } else {
-            // rows with a live cell
-            (0..8).fold(0u64, |rows, row| {
-                rows | (((bits >> (8 * row)) & 0xff != 0) as u64) << row
-            })
-        };
-        Some(if self.max {
-            63 - lines.leading_zeros() as u64
-        } else {
-            lines.trailing_zeros() as u64
-        })
-    }
-
-    fn small(&mut self, store: &Store, quad: Handle, level: u32) -> Option<u64> {
-        if quad.is_leaf() {
-            return self.leaf(store.leaf_bits(quad));
-        }
-        if quad == store.known_empty(level) {
-            return None;
-        }
-        if let Some(&found) = self.small.get(&quad) {
-            return found;
-        }
-        let kids = store.kids(quad);
-        let (near, far, near_is_high) = self.groups();
-        let half = 1u64 << (level - 1);
-        let pick = |group: [usize; 2], offset: u64, this: &mut Self| {
-            let mut best: Option<u64> = None;
-            for at in group {
-                if let Some(found) = this.small(store, kids[at], level - 1) {
-                    let found = found + offset;
-                    best = Some(match best {
-                        Some(b) if this.max => b.max(found),
-                        Some(b) => b.min(found),
-                        None => found,
-                    });
-                }
-            }
-            best
-        };
-        let near_offset = if near_is_high { half } else { 0 };
-        let far_offset = if near_is_high { 0 } else { half };
-        let found = pick(near, near_offset, self).or_else(|| pick(far, far_offset, self));
-        self.small.insert(quad, found);
-        found
-    }
-
-    fn big(&mut self, store: &Store, quad: Handle, level: u32) -> Option<BigUint> {
-        if level <= 62 {
-            return self.small(store, quad, level).map(BigUint::from);
-        }
-        if quad == store.known_empty(level) {
-            return None;
-        }
-        if let Some(found) = self.big.get(&quad) {
-            return found.clone();
-        }
-        let kids = store.kids(quad);
-        let (near, far, near_is_high) = self.groups();
-        let half = BigUint::one() << (level - 1);
-        let mut found = None;
-        for (group, high) in [(near, near_is_high), (far, !near_is_high)] {
-            for at in group {
-                if let Some(offset) = self.big(store, kids[at], level - 1) {
-                    let offset = if high { offset + &half } else { offset };
-                    found = Some(match found {
-                        Some(best) if self.max => std::cmp::max(best, offset),
-                        Some(best) => std::cmp::min(best, offset),
-                        None => offset,
-                    });
-                }
-            }
-            if found.is_some() {
-                break;
-            }
-        }
-        self.big.insert(quad, found.clone());
-        found
-    }
-}
-
-/// The content id of a quad, memoised in the store.
-fn content_id(store: &mut Store, quad: Handle, level: u32) -> ContentId {
-    if quad.is_leaf() {
-        return ContentId::of_leaf(store.leaf_bits(quad));
-    }
-    if let Some(&id) = store.ids.get(&quad) {
-        return id;
-    }
-    let kids = store.kids(quad);
-    let ids = kids.map(|kid| content_id(store, kid, level - 1));
-    let id = ContentId::of_inner(level, ids);
-    store.ids.insert(quad, id);
-    id
 }
 
 /// Collects (leaf row, leaf column, bits) of the non-empty leaves of a quad
