@@ -183,11 +183,10 @@ fn chaotic(settings: &Settings) -> anyhow::Result<Vec<Figure>> {
     let pattern = soup(side, 1);
     let rule = Rule::LIFE;
     let steps = BigUint::from(generations);
-    let ((mut universe, live_at_start), hashlife) = timed(|| {
+    let (mut universe, hashlife) = timed(|| {
         let mut universe = Universe::from_pattern(&pattern, rule, BUDGET)?;
-        let live_at_start = universe.live_quads();
         universe.advance(&steps, None)?;
-        Ok((universe, live_at_start))
+        Ok(universe)
     })?;
     let (grid, direct) = timed(|| {
         let mut grid = Grid::from_pattern(&pattern, rule);
@@ -230,19 +229,28 @@ fn chaotic(settings: &Settings) -> anyhow::Result<Vec<Figure>> {
             Some(Goal::AtMost(28.0)),
         )
         .detail(format!(
-            "{} for {} quads (no collection ran)",
+            "{} for {} quads ({} leaves; no collection ran)",
             human_bytes(stats.bytes),
-            stats.quads
+            stats.quads,
+            stats.leaves
         )),
     ];
 
-    // Memory pressure: a budget of twice the live set (the larger of the
-    // state's own quads at the start and at the end), at the measured
-    // bytes per quad.
-    let live_at_end = universe.live_quads();
-    let per_quad = stats.bytes as f64 / stats.quads as f64;
-    let live = (live_at_start.0 + live_at_start.1).max(live_at_end.0 + live_at_end.1);
-    let budget = ((2 * live) as f64 * per_quad) as u64;
+    // Memory pressure: a budget of twice the live set. An advance holds the
+    // state it starts from and the one it makes, so the live set is the
+    // bytes of a store holding nothing but the start state, plus those of
+    // one holding nothing but the end state.
+    let end_state = grid
+        .to_pattern()
+        .map(|(pattern, _, _)| pattern)
+        .unwrap_or_default();
+    let live = [&pattern, &end_state]
+        .into_iter()
+        .map(|state| Universe::from_pattern(state, rule, BUDGET).map(|u| u.store_stats().bytes))
+        .collect::<Result<Vec<u64>, _>>()?
+        .into_iter()
+        .sum::<u64>();
+    let budget = 2 * live;
     let pressured = timed(|| {
         let mut universe = Universe::from_pattern(&pattern, rule, budget)?;
         universe.advance(&steps, None)?;
@@ -264,9 +272,9 @@ fn chaotic(settings: &Settings) -> anyhow::Result<Vec<Figure>> {
                     Some(Goal::AtLeast(0.5)),
                 )
                 .detail(format!(
-                    "budget {} ({} live quads), {:.2} s, {} collections; same digest {}",
+                    "budget {} (live set {}), {:.2} s, {} collections; same digest {}",
                     human_bytes(budget),
-                    live,
+                    human_bytes(live),
                     elapsed.as_secs_f64(),
                     tight.store_stats().collections,
                     digest.short()
