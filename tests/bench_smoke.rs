@@ -24,7 +24,10 @@ fn the_quick_suite_runs_and_reports_every_figure() {
     assert!(report["machine"]["cores"].as_u64().unwrap() >= 1);
     assert_eq!(report["quick"], true);
     let figures = report["figures"].as_array().unwrap();
-    let groups: Vec<&str> = figures.iter().map(|f| f["group"].as_str().unwrap()).collect();
+    let groups: Vec<&str> = figures
+        .iter()
+        .map(|f| f["group"].as_str().unwrap())
+        .collect();
     for group in ["reach", "stepping", "chaotic", "pressure", "numpy"] {
         assert!(groups.contains(&group), "no {group} figure in {groups:?}");
     }
@@ -36,6 +39,10 @@ fn the_quick_suite_runs_and_reports_every_figure() {
     }
     // The table names every figure.
     for figure in figures {
-        assert!(run.stdout.contains(figure["name"].as_str().unwrap()), "{}", run.stdout);
+        assert!(
+            run.stdout.contains(figure["name"].as_str().unwrap()),
+            "{}",
+            run.stdout
+        );
     }
 }

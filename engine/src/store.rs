@@ -1,19 +1,22 @@
 //! The quad store: an arena of canonical (hash-consed) quads addressed by
 //! `u32` handles, under a memory budget, with a mark-and-sweep collector.
 //!
-//! Two arenas share one handle space: leaves (8×8 cells in a `u64`, level 3)
-//! and inner quads (four child handles and a memoised result). A handle's top
-//! bit says which arena it indexes. Each arena has an open-addressing table
-//! of `u32` slots that makes quads canonical: the same four children (or the
-//! same leaf bits) always give the same handle, so equal squares are shared
-//! and a result computed once serves every copy.
+//! One arena holds both kinds of quad in 20-byte slots: inner quads (four
+//! child handles and a memoised result) and leaves (8×8 cells in a `u64`,
+//! level 3, marked by a child slot no inner quad can have). A handle's top bit
+//! says which kind it names, so the recursion never reads a slot to know. One
+//! open-addressing table of `u32` slots makes quads canonical: the same four
+//! children (or the same leaf bits) always give the same handle, so equal
+//! squares are shared and a result computed once serves every copy. One
+//! arena, not one per kind, so that the budget freed by one kind can be used
+//! by the other.
 //!
-//! Memory per inner quad is 20 bytes in the arena plus 4 bytes per table slot
-//! at a load of at most 3/4 (so between 5.3 and 10.7 bytes); leaves take 8
-//! bytes plus their slots. The collector never moves a quad: it marks what is
-//! reachable from the roots (pinned states, the empty quads, and the scratch
-//! stack that the recursion keeps its intermediate handles on), threads the
-//! rest onto free lists and rebuilds the tables.
+//! Memory per quad is 20 bytes in the arena plus 4 bytes per table slot at a
+//! load between 1/2 and 3/4 (between 5.3 and 8 bytes). The collector never
+//! moves a quad: it marks what is reachable from the roots (pinned states,
+//! the empty quads, and the scratch stack that the recursion keeps its
+//! intermediate handles on), threads the rest onto a free list and rebuilds
+//! the table.
 
 use ahash::RandomState;
 
@@ -28,9 +31,9 @@ pub struct Handle(u32);
 
 impl Handle {
     const LEAF_BIT: u32 = 1 << 31;
-    /// No quad: an unset result.
+    /// No quad: an unset result, and the mark of a leaf's slot.
     pub(crate) const NONE: Handle = Handle(u32::MAX);
-    /// Leaf and inner indices must stay below this (the top leaf index is NONE).
+    /// Slot indices stay below this (the top leaf index is NONE).
     const MAX_INDEX: u32 = (1 << 31) - 1;
 
     fn leaf(index: u32) -> Handle {
@@ -54,8 +57,11 @@ impl Handle {
 /// The level of leaves: 8×8 cells.
 pub const LEAF_LEVEL: u32 = 3;
 
-/// An inner quad: children in the order nw, ne, sw, se, and the memoised
-/// result of advancing it by its full stride (2^(level-2) generations).
+/// A slot of the arena. An inner quad: children in the order nw, ne, sw, se,
+/// and the memoised result of advancing it by its full stride (2^(level-2)
+/// generations). A leaf: its cells in `kids[0]` (low half) and `kids[1]`
+/// (high half), `kids[2]` = NONE. A free slot: the next free index in
+/// `kids[0]`.
 #[derive(Clone, Copy, Debug)]
 #[repr(C)]
 pub(crate) struct Node {
@@ -63,10 +69,31 @@ pub(crate) struct Node {
     pub(crate) result: Handle,
 }
 
+impl Node {
+    fn of_leaf(bits: u64) -> Node {
+        Node {
+            kids: [
+                Handle(bits as u32),
+                Handle((bits >> 32) as u32),
+                Handle::NONE,
+                Handle::NONE,
+            ],
+            result: Handle::NONE,
+        }
+    }
+
+    fn is_leaf(&self) -> bool {
+        self.kids[2] == Handle::NONE
+    }
+
+    fn bits(&self) -> u64 {
+        self.kids[0].0 as u64 | (self.kids[1].0 as u64) << 32
+    }
+}
+
 const EMPTY_SLOT: u32 = u32::MAX;
 const NO_FREE: u32 = u32::MAX;
 const NODE_BYTES: u64 = std::mem::size_of::<Node>() as u64;
-const LEAF_BYTES: u64 = 8;
 const SLOT_BYTES: u64 = 4;
 /// Smallest arena growth step, in quads.
 const MIN_CAPACITY: usize = 1 << 10;
@@ -84,7 +111,7 @@ const SEEDS: [u64; 4] = [
 /// Counters about the store, for reports and progress lines.
 #[derive(Clone, Copy, Debug, Default, PartialEq, Eq)]
 pub struct StoreStats {
-    /// inner quads and leaves currently allocated (live or not yet collected)
+    /// quads currently allocated (live or not yet collected)
     pub quads: u64,
     /// of which leaves
     pub leaves: u64,
@@ -92,50 +119,34 @@ pub struct StoreStats {
     pub created: u64,
     /// collections run so far
     pub collections: u64,
-    /// bytes held by the arenas, tables and memo maps
+    /// bytes in use by the arena's filled slots, the table and the memo maps
     pub bytes: u64,
     /// the memory budget in bytes
     pub budget: u64,
 }
 
-/// One arena's table and free list bookkeeping.
-#[derive(Default)]
-struct Table {
-    slots: Vec<u32>,
-    free_head: u32,
-    free_count: usize,
+/// The length of a table that holds `count` quads at a load of 1/2; it
+/// grows again (by half) when the load passes 3/4, so slots cost 5.3 to 8
+/// bytes per quad.
+fn table_len_for(count: usize) -> usize {
+    (2 * count).max(MIN_TABLE)
 }
 
-impl Table {
-    fn new() -> Table {
-        Table {
-            slots: Vec::new(),
-            free_head: NO_FREE,
-            free_count: 0,
-        }
-    }
-
-    fn mask(&self) -> usize {
-        self.slots.len() - 1
-    }
-
-    /// The table length that keeps the load at most 3/4 for `count` quads.
-    fn len_for(count: usize) -> usize {
-        (count + count / 3 + 1).next_power_of_two().max(MIN_TABLE)
-    }
-
-    /// Whether one more entry keeps the load at most 3/4.
-    fn has_room(&self, count: usize) -> bool {
-        (count + 1) * 4 <= self.slots.len() * 3
-    }
+/// The home slot of a hash in a table of `len` slots (any length: the hash
+/// is scaled into range, not masked).
+#[inline]
+fn home(hash: usize, len: usize) -> usize {
+    ((hash as u64 as u128 * len as u128) >> 64) as usize
 }
 
-/// The arena of quads, its canonicalising tables and its memory budget.
+/// The arena of quads, its canonicalising table and its memory budget.
 pub struct Store {
     pub(crate) nodes: Vec<Node>,
-    pub(crate) leaves: Vec<u64>,
-    node_table: Table,
-    leaf_table: Table,
+    /// open addressing, linear probing: slot indices, EMPTY_SLOT when unused
+    table: Vec<u32>,
+    free_head: u32,
+    free_count: usize,
+    leaf_count: usize,
     hasher: RandomState,
     /// `empties[level]` is the canonical empty quad of that level (from 3 up).
     empties: Vec<Handle>,
@@ -157,14 +168,15 @@ pub struct Store {
 }
 
 impl Store {
-    /// An empty store that will keep its arenas, tables and memo maps within
+    /// An empty store that will keep its arena, table and memo maps within
     /// `budget` bytes.
     pub fn new(budget: u64) -> Store {
-        let mut store = Store {
+        Store {
             nodes: Vec::new(),
-            leaves: Vec::new(),
-            node_table: Table::new(),
-            leaf_table: Table::new(),
+            table: vec![EMPTY_SLOT; table_len_for(0)],
+            free_head: NO_FREE,
+            free_count: 0,
+            leaf_count: 0,
             hasher: RandomState::with_seeds(SEEDS[0], SEEDS[1], SEEDS[2], SEEDS[3]),
             empties: Vec::new(),
             scratch: Vec::new(),
@@ -175,17 +187,14 @@ impl Store {
             collect_allowed: true,
             created: 0,
             collections: 0,
-        };
-        store.node_table.slots = vec![EMPTY_SLOT; Table::len_for(0)];
-        store.leaf_table.slots = vec![EMPTY_SLOT; Table::len_for(0)];
-        store
+        }
     }
 
     /// Counters and the memory in use.
     pub fn stats(&self) -> StoreStats {
         StoreStats {
-            quads: (self.count(true) + self.count(false)) as u64,
-            leaves: self.count(false) as u64,
+            quads: self.count() as u64,
+            leaves: self.leaf_count as u64,
             created: self.created,
             collections: self.collections,
             bytes: self.bytes_in_use(),
@@ -193,38 +202,42 @@ impl Store {
         }
     }
 
-    /// Quads allocated in one arena (live or not yet collected).
-    fn count(&self, inner: bool) -> usize {
-        if inner {
-            self.nodes.len() - self.node_table.free_count
-        } else {
-            self.leaves.len() - self.leaf_table.free_count
-        }
+    /// Quads allocated (live or not yet collected).
+    fn count(&self) -> usize {
+        self.nodes.len() - self.free_count
     }
 
-    /// Bytes in use: the arenas' filled slots, the tables and the memo maps.
+    /// Bytes in use: the arena's filled slots, the table and the memo maps.
     /// (Arena capacity beyond the filled slots is reserved address space
     /// that is not touched; the budget counts it all the same.)
     pub fn bytes_in_use(&self) -> u64 {
-        self.nodes.len() as u64 * NODE_BYTES
-            + self.leaves.len() as u64 * LEAF_BYTES
-            + self.tables_and_maps()
+        self.nodes.len() as u64 * NODE_BYTES + self.table_and_maps()
     }
 
-    /// Bytes the budget is held against: arenas at their capacity.
-    fn bytes_reserved(&self, node_capacity: usize, leaf_capacity: usize) -> u64 {
-        node_capacity as u64 * NODE_BYTES
-            + leaf_capacity as u64 * LEAF_BYTES
-            + self.tables_and_maps()
+    /// Bytes the budget is held against: the arena at `capacity`, and a
+    /// table of `table` slots or of what a full arena needs, if more.
+    fn bytes_reserved(&self, capacity: usize, table: usize) -> u64 {
+        capacity as u64 * NODE_BYTES
+            + self
+                .table_len_reserved(capacity)
+                .max(table as u64 * SLOT_BYTES)
+            + self.maps()
     }
 
-    fn tables_and_maps(&self) -> u64 {
+    /// Bytes of the table a full arena of `capacity` needs (load 3/4).
+    fn table_len_reserved(&self, capacity: usize) -> u64 {
+        (capacity + capacity / 3 + 1) as u64 * SLOT_BYTES
+    }
+
+    fn table_and_maps(&self) -> u64 {
+        self.table.len() as u64 * SLOT_BYTES + self.maps()
+    }
+
+    fn maps(&self) -> u64 {
         // A hash-map entry of the memo maps: key, value and one control byte.
         let residual_entry = 2 * 4 + 1;
         let id_entry = 4 + 16 + 1;
-        (self.node_table.slots.len() + self.leaf_table.slots.len()) as u64 * SLOT_BYTES
-            + self.residual.capacity() as u64 * residual_entry
-            + self.ids.capacity() as u64 * id_entry
+        self.residual.capacity() as u64 * residual_entry + self.ids.capacity() as u64 * id_entry
     }
 
     /// Allows or forbids collection when the budget is reached.
@@ -255,7 +268,7 @@ impl Store {
     #[inline]
     pub fn leaf_bits(&self, handle: Handle) -> u64 {
         debug_assert!(handle.is_leaf());
-        self.leaves[handle.index()]
+        self.nodes[handle.index()].bits()
     }
 
     #[inline]
@@ -296,55 +309,31 @@ impl Store {
 
     /// The canonical leaf with these cells.
     pub fn leaf(&mut self, bits: u64) -> Result<Handle, BudgetExceeded> {
-        let hash = self.hasher.hash_one(bits) as usize;
-        if let Some(found) = self.find_leaf(bits, hash) {
-            return Ok(found);
+        let hash = self.hash_leaf(bits);
+        if let Some(index) = self.find(hash, |node| node.is_leaf() && node.bits() == bits) {
+            return Ok(Handle::leaf(index));
         }
-        self.make_room(false, &[])?;
-        let index = match self.leaf_table.free_head {
-            NO_FREE => {
-                let index = self.leaves.len() as u32;
-                self.leaves.push(bits);
-                index
-            }
-            head => {
-                self.leaf_table.free_head = self.leaves[head as usize] as u32;
-                self.leaf_table.free_count -= 1;
-                self.leaves[head as usize] = bits;
-                head
-            }
-        };
-        self.insert_slot(false, hash, index);
-        self.created += 1;
+        self.make_room(&[])?;
+        let index = self.insert(hash, Node::of_leaf(bits));
+        self.leaf_count += 1;
         Ok(Handle::leaf(index))
     }
 
     /// The canonical inner quad with these children (nw, ne, sw, se).
     pub fn join(&mut self, kids: [Handle; 4]) -> Result<Handle, BudgetExceeded> {
         let hash = self.hash_kids(kids);
-        if let Some(found) = self.find_node(kids, hash) {
-            return Ok(found);
+        // A leaf's slot never matches: its third child is NONE.
+        if let Some(index) = self.find(hash, |node| node.kids == kids) {
+            return Ok(Handle::inner(index));
         }
-        self.make_room(true, &kids)?;
-        let node = Node {
-            kids,
-            result: Handle::NONE,
-        };
-        let index = match self.node_table.free_head {
-            NO_FREE => {
-                let index = self.nodes.len() as u32;
-                self.nodes.push(node);
-                index
-            }
-            head => {
-                self.node_table.free_head = self.nodes[head as usize].kids[0].0;
-                self.node_table.free_count -= 1;
-                self.nodes[head as usize] = node;
-                head
-            }
-        };
-        self.insert_slot(true, hash, index);
-        self.created += 1;
+        self.make_room(&kids)?;
+        let index = self.insert(
+            hash,
+            Node {
+                kids,
+                result: Handle::NONE,
+            },
+        );
         Ok(Handle::inner(index))
     }
 
@@ -358,56 +347,71 @@ impl Store {
     }
 
     #[inline]
-    fn find_node(&self, kids: [Handle; 4], hash: usize) -> Option<Handle> {
-        let mask = self.node_table.mask();
-        let mut at = hash & mask;
-        loop {
-            let slot = self.node_table.slots[at];
-            if slot == EMPTY_SLOT {
-                return None;
-            }
-            if self.nodes[slot as usize].kids == kids {
-                return Some(Handle::inner(slot));
-            }
-            at = (at + 1) & mask;
-        }
+    fn hash_leaf(&self, bits: u64) -> usize {
+        self.hasher.hash_one(bits) as usize
     }
 
-    #[inline]
-    fn find_leaf(&self, bits: u64, hash: usize) -> Option<Handle> {
-        let mask = self.leaf_table.mask();
-        let mut at = hash & mask;
-        loop {
-            let slot = self.leaf_table.slots[at];
-            if slot == EMPTY_SLOT {
-                return None;
-            }
-            if self.leaves[slot as usize] == bits {
-                return Some(Handle::leaf(slot));
-            }
-            at = (at + 1) & mask;
-        }
-    }
-
-    fn insert_slot(&mut self, inner: bool, hash: usize, index: u32) {
-        let table = if inner {
-            &mut self.node_table
+    fn hash_of(&self, node: &Node) -> usize {
+        if node.is_leaf() {
+            self.hash_leaf(node.bits())
         } else {
-            &mut self.leaf_table
-        };
-        let mask = table.mask();
-        let mut at = hash & mask;
-        while table.slots[at] != EMPTY_SLOT {
-            at = (at + 1) & mask;
+            self.hash_kids(node.kids)
         }
-        table.slots[at] = index;
     }
 
-    /// Ensures one more quad of the given arena fits: a free slot and table
-    /// room, grown within the budget, or made by collecting. `protect` are
-    /// extra roots (the children about to be joined).
-    fn make_room(&mut self, inner: bool, protect: &[Handle]) -> Result<(), BudgetExceeded> {
-        if self.has_room(inner) || self.grow(inner) {
+    /// The slot index of the quad the table holds under `hash` that
+    /// satisfies `matches`, if any.
+    #[inline]
+    fn find(&self, hash: usize, matches: impl Fn(&Node) -> bool) -> Option<u32> {
+        let len = self.table.len();
+        let mut at = home(hash, len);
+        loop {
+            let slot = self.table[at];
+            if slot == EMPTY_SLOT {
+                return None;
+            }
+            if matches(&self.nodes[slot as usize]) {
+                return Some(slot);
+            }
+            at += 1;
+            if at == len {
+                at = 0;
+            }
+        }
+    }
+
+    /// Puts `node` in a free slot (room was made) and the table.
+    fn insert(&mut self, hash: usize, node: Node) -> u32 {
+        let index = match self.free_head {
+            NO_FREE => {
+                self.nodes.push(node);
+                (self.nodes.len() - 1) as u32
+            }
+            head => {
+                self.free_head = self.nodes[head as usize].kids[0].0;
+                self.free_count -= 1;
+                self.nodes[head as usize] = node;
+                head
+            }
+        };
+        let len = self.table.len();
+        let mut at = home(hash, len);
+        while self.table[at] != EMPTY_SLOT {
+            at += 1;
+            if at == len {
+                at = 0;
+            }
+        }
+        self.table[at] = index;
+        self.created += 1;
+        index
+    }
+
+    /// Ensures one more quad fits: a free slot and table room, grown within
+    /// the budget, or made by collecting. `protect` are extra roots (the
+    /// children about to be joined).
+    fn make_room(&mut self, protect: &[Handle]) -> Result<(), BudgetExceeded> {
+        if self.has_room() || self.grow() {
             return Ok(());
         }
         if !self.collect_allowed {
@@ -417,89 +421,59 @@ impl Store {
         // Collecting again after a handful of new quads would thrash: demand
         // that a useful share of the arena came free, or that it can grow
         // into what the collection released.
-        let (free, capacity) = if inner {
-            (self.node_table.free_count, self.nodes.capacity())
-        } else {
-            (self.leaf_table.free_count, self.leaves.capacity())
-        };
-        let table_room = if inner {
-            self.node_table.has_room(self.count(true))
-        } else {
-            self.leaf_table.has_room(self.count(false))
-        };
-        if (free > 0 && free >= capacity / 16 && table_room) || self.grow(inner) {
+        let useful = self.free_count > 0 && self.free_count >= self.nodes.capacity() / 16;
+        if (useful && self.table_has_room()) || self.grow() {
             return Ok(());
         }
         Err(self.exceeded())
     }
 
+    fn table_has_room(&self) -> bool {
+        (self.count() + 1) * 4 <= self.table.len() * 3
+    }
+
     /// A free slot (or spare capacity) and room in the table.
-    fn has_room(&self, inner: bool) -> bool {
-        let count = self.count(inner);
-        if inner {
-            (self.node_table.free_head != NO_FREE || self.nodes.len() < self.nodes.capacity())
-                && self.node_table.has_room(count)
-        } else {
-            (self.leaf_table.free_head != NO_FREE || self.leaves.len() < self.leaves.capacity())
-                && self.leaf_table.has_room(count)
-        }
+    fn has_room(&self) -> bool {
+        (self.free_head != NO_FREE || self.nodes.len() < self.nodes.capacity())
+            && self.table_has_room()
     }
 
     fn exceeded(&self) -> BudgetExceeded {
         // What is allocated after the last collection: the live quads.
-        let live = self.count(true) as u64 * NODE_BYTES
-            + self.count(false) as u64 * LEAF_BYTES
-            + self.tables_and_maps();
         BudgetExceeded {
             budget: self.budget,
-            in_use: live,
+            in_use: self.count() as u64 * NODE_BYTES + self.table_and_maps(),
         }
     }
 
-    /// Grows one arena's table (doubling it) and the arena itself (at most
-    /// doubling it) as far as the budget allows, until one more quad fits.
-    /// Returns false when that is not possible.
-    fn grow(&mut self, inner: bool) -> bool {
-        let count = self.count(inner);
-        let table = if inner {
-            &self.node_table
-        } else {
-            &self.leaf_table
-        };
-        if !table.has_room(count) {
-            let new_len = table.slots.len() * 2;
-            let extra = ((new_len - table.slots.len()) as u64) * SLOT_BYTES;
-            let reserved = self.bytes_reserved(self.nodes.capacity(), self.leaves.capacity());
-            if reserved + extra > self.budget {
+    /// Grows the table (doubling it) and the arena (at most doubling it) as
+    /// far as the budget allows, until one more quad fits. Returns false
+    /// when that is not possible.
+    fn grow(&mut self) -> bool {
+        if !self.table_has_room() {
+            // Half full if the budget allows, else as large as it allows
+            // (the budget always leaves room for the table of a full arena).
+            let count = self.count() + 1;
+            let capacity = self.nodes.capacity();
+            let spare = self.budget.saturating_sub(
+                self.bytes_reserved(capacity, 0) - self.table_len_reserved(capacity),
+            );
+            let affordable = (spare / SLOT_BYTES) as usize;
+            let new_len = table_len_for(count).min(affordable);
+            if new_len < count + count / 3 + 2 {
                 return false;
             }
-            self.rebuild_table(inner, new_len, None);
+            self.rebuild_table(new_len, None);
         }
-        let (len, capacity, free_head) = if inner {
-            (
-                self.nodes.len(),
-                self.nodes.capacity(),
-                self.node_table.free_head,
-            )
-        } else {
-            (
-                self.leaves.len(),
-                self.leaves.capacity(),
-                self.leaf_table.free_head,
-            )
-        };
-        if free_head != NO_FREE || len < capacity {
+        let (len, capacity) = (self.nodes.len(), self.nodes.capacity());
+        if self.free_head != NO_FREE || len < capacity {
             return true;
         }
-        let limit = Handle::MAX_INDEX as usize;
-        let want = (capacity * 2).max(MIN_CAPACITY).min(limit);
+        let want = (capacity * 2)
+            .max(MIN_CAPACITY)
+            .min(Handle::MAX_INDEX as usize);
         let fits = |store: &Store, new: usize| {
-            let bytes = if inner {
-                store.bytes_reserved(new, store.leaves.capacity())
-            } else {
-                store.bytes_reserved(store.nodes.capacity(), new)
-            };
-            bytes <= store.budget
+            store.bytes_reserved(new, store.table.len()) <= store.budget
         };
         let new_capacity = if fits(self, want) {
             want
@@ -519,50 +493,27 @@ impl Store {
         if new_capacity <= capacity {
             return false;
         }
-        if inner {
-            self.nodes.reserve_exact(new_capacity - len);
-        } else {
-            self.leaves.reserve_exact(new_capacity - len);
-        }
+        self.nodes.reserve_exact(new_capacity - len);
         true
     }
 
-    /// Refills a table with every allocated quad of its arena (or only the
-    /// marked ones).
-    fn rebuild_table(&mut self, inner: bool, len: usize, marks: Option<&[u64]>) {
-        let mut slots = if inner {
-            std::mem::take(&mut self.node_table.slots)
-        } else {
-            std::mem::take(&mut self.leaf_table.slots)
-        };
-        slots.clear();
-        slots.resize(len, EMPTY_SLOT);
-        let mask = len - 1;
-        let count = if inner {
-            self.nodes.len()
-        } else {
-            self.leaves.len()
-        };
-        let free = if inner {
-            self.node_table.free_head
-        } else {
-            self.leaf_table.free_head
-        };
+    /// Refills the table, at `len` slots, with every allocated quad (or only
+    /// the marked ones).
+    fn rebuild_table(&mut self, len: usize, marks: Option<&[u64]>) {
+        let mut table = std::mem::take(&mut self.table);
+        table.clear();
+        table.resize(len, EMPTY_SLOT);
         // Without marks every allocated quad is kept, except the free ones.
         let mut on_free_list = Vec::new();
-        if marks.is_none() && free != NO_FREE {
-            on_free_list = vec![false; count];
-            let mut at = free;
+        if marks.is_none() && self.free_head != NO_FREE {
+            on_free_list = vec![false; self.nodes.len()];
+            let mut at = self.free_head;
             while at != NO_FREE {
                 on_free_list[at as usize] = true;
-                at = if inner {
-                    self.nodes[at as usize].kids[0].0
-                } else {
-                    self.leaves[at as usize] as u32
-                };
+                at = self.nodes[at as usize].kids[0].0;
             }
         }
-        for index in 0..count {
+        for (index, node) in self.nodes.iter().enumerate() {
             let keep = match marks {
                 Some(marks) => marks[index / 64] >> (index % 64) & 1 == 1,
                 None => on_free_list.get(index) != Some(&true),
@@ -570,28 +521,21 @@ impl Store {
             if !keep {
                 continue;
             }
-            let hash = if inner {
-                self.hash_kids(self.nodes[index].kids)
-            } else {
-                self.hasher.hash_one(self.leaves[index]) as usize
-            };
-            let mut at = hash & mask;
-            while slots[at] != EMPTY_SLOT {
-                at = (at + 1) & mask;
+            let mut at = home(self.hash_of(node), len);
+            while table[at] != EMPTY_SLOT {
+                at += 1;
+                if at == len {
+                    at = 0;
+                }
             }
-            slots[at] = index as u32;
+            table[at] = index as u32;
         }
-        if inner {
-            self.node_table.slots = slots;
-        } else {
-            self.leaf_table.slots = slots;
-        }
+        self.table = table;
     }
 
-    /// Bit sets of the inner quads and leaves reachable from `roots`.
-    fn mark(&self, roots: &[Handle]) -> (Vec<u64>, Vec<u64>) {
-        let mut node_marks = vec![0u64; self.nodes.len().div_ceil(64)];
-        let mut leaf_marks = vec![0u64; self.leaves.len().div_ceil(64)];
+    /// A bit set of the quads reachable from `roots`.
+    fn mark(&self, roots: &[Handle]) -> Vec<u64> {
+        let mut marks = vec![0u64; self.nodes.len().div_ceil(64)];
         let mut stack: Vec<Handle> = roots
             .iter()
             .copied()
@@ -599,11 +543,6 @@ impl Store {
             .collect();
         while let Some(handle) = stack.pop() {
             let index = handle.index();
-            let marks = if handle.is_leaf() {
-                &mut leaf_marks
-            } else {
-                &mut node_marks
-            };
             if marks[index / 64] >> (index % 64) & 1 == 1 {
                 continue;
             }
@@ -612,14 +551,23 @@ impl Store {
                 stack.extend_from_slice(&self.nodes[index].kids);
             }
         }
-        (node_marks, leaf_marks)
+        marks
     }
 
     /// How many distinct quads (inner, leaves) are reachable from `root`.
     pub fn reachable(&self, root: Handle) -> (u64, u64) {
-        let (nodes, leaves) = self.mark(&[root]);
-        let count = |marks: &[u64]| marks.iter().map(|word| word.count_ones() as u64).sum();
-        (count(&nodes), count(&leaves))
+        let marks = self.mark(&[root]);
+        let (mut inner, mut leaves) = (0, 0);
+        for (index, node) in self.nodes.iter().enumerate() {
+            if marks[index / 64] >> (index % 64) & 1 == 1 {
+                if node.is_leaf() {
+                    leaves += 1;
+                } else {
+                    inner += 1;
+                }
+            }
+        }
+        (inner, leaves)
     }
 
     /// Frees every quad not reachable from the roots: the pinned states, the
@@ -634,30 +582,33 @@ impl Store {
             .chain(protect.iter())
             .copied()
             .collect();
-        let (node_marks, leaf_marks) = self.mark(&roots);
-        // Unmarked quads at the end of an arena go back to the allocator, so
-        // the other arena can grow into the budget they held.
-        release_tail(&mut self.nodes, &node_marks);
-        release_tail(&mut self.leaves, &leaf_marks);
+        let marks = self.mark(&roots);
         let marked = |handle: Handle| {
             let index = handle.index();
-            let marks = if handle.is_leaf() {
-                &leaf_marks
-            } else {
-                &node_marks
-            };
             index / 64 < marks.len() && marks[index / 64] >> (index % 64) & 1 == 1
         };
+        // Unmarked quads at the end of the arena go back to the allocator.
+        let mut keep = self.nodes.len();
+        while keep > 0 && !marked(Handle::inner((keep - 1) as u32)) {
+            keep -= 1;
+        }
+        self.nodes.truncate(keep);
+        if self.nodes.capacity() - keep >= self.nodes.capacity() / 8 {
+            self.nodes.shrink_to(keep.max(MIN_CAPACITY));
+        }
 
-        // Sweep inner quads: thread the unmarked onto the free list, forget
-        // results that point at quads about to be reused.
+        // Sweep: thread the unmarked onto the free list, lowest index first;
+        // forget results that point at quads about to be reused.
         let mut free_head = NO_FREE;
         let mut free_count = 0;
+        let mut leaf_count = 0;
         for index in (0..self.nodes.len()).rev() {
-            if node_marks[index / 64] >> (index % 64) & 1 == 1 {
-                let result = self.nodes[index].result;
-                if result != Handle::NONE && !marked(result) {
-                    self.nodes[index].result = Handle::NONE;
+            if marks[index / 64] >> (index % 64) & 1 == 1 {
+                let node = &mut self.nodes[index];
+                if node.is_leaf() {
+                    leaf_count += 1;
+                } else if node.result != Handle::NONE && !marked(node.result) {
+                    node.result = Handle::NONE;
                 }
             } else {
                 self.nodes[index] = Node {
@@ -668,52 +619,22 @@ impl Store {
                 free_count += 1;
             }
         }
-        self.node_table.free_head = free_head;
-        self.node_table.free_count = free_count;
-
-        let mut free_head = NO_FREE;
-        let mut free_count = 0;
-        for index in (0..self.leaves.len()).rev() {
-            if leaf_marks[index / 64] >> (index % 64) & 1 == 0 {
-                self.leaves[index] = free_head as u64;
-                free_head = index as u32;
-                free_count += 1;
-            }
-        }
-        self.leaf_table.free_head = free_head;
-        self.leaf_table.free_count = free_count;
+        self.free_head = free_head;
+        self.free_count = free_count;
+        self.leaf_count = leaf_count;
 
         self.residual
             .retain(|&key, &mut value| marked(key) && marked(value));
         self.ids.retain(|&key, _| marked(key));
+        // The maps count against the budget at their capacity: give back
+        // what the collection emptied.
+        self.residual.shrink_to_fit();
+        self.ids.shrink_to_fit();
 
-        // Tables shrink with what is left, down to half full at most.
-        let node_len = self
-            .node_table
-            .slots
-            .len()
-            .min(Table::len_for(2 * self.count(true)));
-        let leaf_len = self
-            .leaf_table
-            .slots
-            .len()
-            .min(Table::len_for(2 * self.count(false)));
-        self.rebuild_table(true, node_len, Some(&node_marks));
-        self.rebuild_table(false, leaf_len, Some(&leaf_marks));
+        // The table shrinks with what is left, to half full.
+        let len = self.table.len().min(table_len_for(self.count()));
+        self.rebuild_table(len, Some(&marks));
         self.collections += 1;
-    }
-}
-
-/// Drops the unmarked quads at the end of an arena and, when that frees an
-/// eighth of it or more, gives the memory back.
-fn release_tail<T>(arena: &mut Vec<T>, marks: &[u64]) {
-    let mut keep = arena.len();
-    while keep > 0 && marks[(keep - 1) / 64] >> ((keep - 1) % 64) & 1 == 0 {
-        keep -= 1;
-    }
-    arena.truncate(keep);
-    if arena.capacity() - keep >= arena.capacity() / 8 {
-        arena.shrink_to(keep.max(MIN_CAPACITY));
     }
 }
 
@@ -775,5 +696,28 @@ mod tests {
         assert_eq!(error.budget, 64 * 1024);
         assert!(store.stats().bytes <= 64 * 1024);
         let _ = e;
+    }
+}
+
+#[cfg(test)]
+mod balance {
+    use super::*;
+
+    #[test]
+    fn leaves_can_use_what_inner_quads_freed() {
+        // One arena serves both kinds: a run that first makes inner quads
+        // and then leaves, under a budget that holds only one batch at a
+        // time, succeeds.
+        let mut store = Store::new(256 * 1024);
+        let e = store.empty(3).unwrap();
+        let a = store.leaf(1).unwrap();
+        store.pin(a);
+        for round in 0..3u64 {
+            for bits in 0..4000u64 {
+                let other = store.leaf(2 + bits + round * 10_000).unwrap();
+                store.join([other, a, e, e]).unwrap();
+            }
+        }
+        assert!(store.stats().collections > 0);
     }
 }

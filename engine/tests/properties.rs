@@ -119,3 +119,38 @@ fn a_state_reached_through_a_huge_root_has_the_digest_of_its_cells() {
     let mut near = state(&block, "B3/S23");
     assert_eq!(far.digest().unwrap(), near.digest().unwrap());
 }
+
+#[test]
+fn every_budget_either_gives_the_same_state_or_a_budget_error() {
+    // Common practice for a bounded cache: a tight budget may fail cleanly
+    // or succeed, never give a different result or stall. A B2/S soup grows
+    // at light speed, so its live set passes each budget below mid-run
+    // (this once stalled in table growth at 1.5 MiB).
+    let bits: Vec<bool> = (0..256u32)
+        .map(|i| (i * 2_654_435_761u32) >> 29 & 1 == 1)
+        .collect();
+    let pattern = soup(&bits, 16, (0, 0));
+    let rule = Rule::parse("B2/S").unwrap();
+    let steps = BigUint::from(300u32);
+    let mut free = Universe::from_pattern(&pattern, rule, BUDGET).unwrap();
+    free.advance(&steps, None).unwrap();
+    let expected = free.digest().unwrap();
+    let mut successes = 0;
+    for quarter_mib in 3..=8u64 {
+        let budget = quarter_mib << 18;
+        let outcome = Universe::from_pattern(&pattern, rule, budget)
+            .map_err(deeptime_engine::AdvanceError::from)
+            .and_then(|mut tight| tight.advance(&steps, None).map(|()| tight));
+        match outcome {
+            Ok(mut tight) => {
+                assert_eq!(tight.digest().unwrap(), expected, "budget {budget}");
+                successes += 1;
+            }
+            Err(deeptime_engine::AdvanceError::Budget(error)) => {
+                assert_eq!(error.budget, budget);
+            }
+            Err(other) => panic!("budget {budget}: {other}"),
+        }
+    }
+    assert!(successes > 0, "no budget up to 2 MiB was enough");
+}
