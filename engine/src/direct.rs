@@ -176,50 +176,56 @@ impl Grid {
     /// Steps one tile into the back buffer; returns whether it holds life.
     fn step_tile(&mut self, tile_row: usize, column: usize) -> bool {
         let words = self.words;
-        let word_at = |cells: &[u64], row: usize, column: usize| -> u64 {
-            if column < words && row < cells.len() / words {
-                cells[row * words + column]
-            } else {
-                0
+        let rows = self.rows;
+        let cells = &self.cells;
+        // One line of the column: the word and its neighbours' facing bits,
+        // as the 3-cell horizontal sum (two bit planes) and the 2-cell sum
+        // without the centre. Lines outside the grid are empty.
+        let line = |row: usize| -> Line {
+            if row >= rows {
+                return Line::default();
+            }
+            let at = row * words + column;
+            let word = cells[at];
+            let west = if column > 0 { cells[at - 1] } else { 0 };
+            let east = if column + 1 < words { cells[at + 1] } else { 0 };
+            let left = word << 1 | west >> 63;
+            let right = word >> 1 | east << 63;
+            let sides = left ^ right;
+            Line {
+                word,
+                ones: sides ^ word,
+                twos: (left & right) | (sides & word),
+                side_ones: sides,
+                side_twos: left & right,
             }
         };
+        let first = tile_row * TILE;
+        let mut up = line(first.wrapping_sub(1));
+        let mut mid = line(first);
         let mut any = 0u64;
-        for row in tile_row * TILE..(tile_row + 1) * TILE {
-            let mut lines = [(0u64, 0u64, 0u64); 3];
-            for (at, line) in lines.iter_mut().enumerate() {
-                let r = (row + at).wrapping_sub(1);
-                *line = (
-                    word_at(&self.cells, r, column.wrapping_sub(1)),
-                    word_at(&self.cells, r, column),
-                    word_at(&self.cells, r, column + 1),
-                );
-            }
-            // Each line's cells moved one column right (west neighbour)
-            // and one left (east neighbour), with the bits of the words beside.
-            let shifted = |(west, word, east): (u64, u64, u64)| {
-                (word << 1 | west >> 63, word, word >> 1 | east << 63)
-            };
-            let (u0, u1, u2) = shifted(lines[0]);
-            let (m0, mid, m2) = shifted(lines[1]);
-            let (d0, d1, d2) = shifted(lines[2]);
-            let (s1, c1) = full_add(u0, u1, u2);
-            let (s2, c2) = full_add(m0, m2, d1);
-            let (s3, c3) = (d0 ^ d2, d0 & d2);
-            let (bit0, c4) = full_add(s1, s2, s3);
-            let (t, e1) = full_add(c1, c2, c3);
-            let bit1 = t ^ c4;
-            let e2 = t & c4;
-            let planes = [bit0, bit1, e1 ^ e2, e1 & e2];
+        for row in first..first + TILE {
+            let down = line(row + 1);
+            // Neighbour count = up (3 cells) + mid (2 cells) + down (3 cells),
+            // each a 2-bit number, added into four bit planes.
+            let (bit0, carry0) = full_add(up.ones, mid.side_ones, down.ones);
+            let (t, carry1) = full_add(up.twos, mid.side_twos, down.twos);
+            let bit1 = t ^ carry0;
+            let carry2 = t & carry0;
+            let planes = [bit0, bit1, carry1 ^ carry2, carry1 & carry2];
+            let alive = mid.word;
             let mut out = 0u64;
             for (want, born, stays) in &self.counts {
                 let differs = (planes[0] ^ want[0])
                     | (planes[1] ^ want[1])
                     | (planes[2] ^ want[2])
                     | (planes[3] ^ want[3]);
-                out |= !differs & ((born & !mid) | (stays & mid));
+                out |= !differs & ((born & !alive) | (stays & alive));
             }
             self.back[row * words + column] = out;
             any |= out;
+            up = mid;
+            mid = down;
         }
         any != 0
     }
@@ -274,6 +280,18 @@ impl Grid {
         self.occupied_back = vec![false; words * rows / TILE];
         self.refresh_occupancy();
     }
+}
+
+/// One row's word of a tile column with its horizontal neighbour sums.
+#[derive(Clone, Copy, Default)]
+struct Line {
+    word: u64,
+    /// low and high bit of the sum of each cell and its two neighbours
+    ones: u64,
+    twos: u64,
+    /// the same for the two neighbours alone
+    side_ones: u64,
+    side_twos: u64,
 }
 
 fn compile(rule: &Rule) -> Vec<([u64; 4], u64, u64)> {
