@@ -5,6 +5,7 @@
 
 pub mod direct;
 pub mod generation;
+pub mod pack;
 pub mod pattern;
 pub mod rule;
 

@@ -16,6 +16,7 @@ use crate::advance::{self, Advance, Observer};
 use crate::content_id::ContentId;
 use crate::error::{AdvanceError, BudgetExceeded, TooLargeForText};
 use crate::figures::{self, Side};
+use crate::pack;
 use crate::pattern::{MAX_COORDINATE, Pattern, write};
 use crate::rule::Rule;
 use crate::stack;
@@ -136,6 +137,67 @@ impl Universe {
         let (root, level) = built?;
         universe.set_root(root, level);
         Ok(universe)
+    }
+
+    /// Writes the quads of this state that `known` does not hold into a
+    /// pack; returns the state's digest (the id of its canonical root, which
+    /// a checkpoint names as its root) and the pack, if anything was new.
+    pub fn write_pack(
+        &mut self,
+        known: &dyn Fn(&ContentId) -> bool,
+    ) -> Result<(ContentId, Option<pack::WrittenPack>), BudgetExceeded> {
+        let digest = self.digest()?;
+        let (quad, level) = self.canonical_root()?;
+        let base = self.store.scratch.len();
+        self.store.scratch.push(quad);
+        let written = pack::write_pack(&mut self.store, quad, level, known);
+        self.store.scratch.truncate(base);
+        Ok((digest, written))
+    }
+
+    /// The state stored as packs (in the order a checkpoint lists them)
+    /// with root `root`, at `generation`. Returns it and the content ids of
+    /// every quad the packs hold. Errors name the pack (by index) and where
+    /// in it the damage is.
+    pub fn from_packs<'p>(
+        packs: impl IntoIterator<Item = &'p [u8]>,
+        root: ContentId,
+        rule: Rule,
+        generation: BigUint,
+        budget: u64,
+    ) -> Result<(Universe, Vec<ContentId>), (usize, pack::PackError)> {
+        let mut universe = Universe::new(rule, budget).map_err(|e| (0, e.into()))?;
+        let store = &mut universe.store;
+        // As when building a pattern: the reader's map holds handles the
+        // collector cannot see, and nothing read is garbage.
+        store.set_collect_allowed(false);
+        let mut reader = pack::Reader::new();
+        let mut count = 0;
+        let mut outcome = Ok(());
+        for (index, bytes) in packs.into_iter().enumerate() {
+            count = index + 1;
+            if let Err(error) = reader.read(store, bytes) {
+                outcome = Err((index, error));
+                break;
+            }
+        }
+        let placed = outcome.and_then(|()| {
+            let Some(&(quad, level)) = reader.quads.get(&root) else {
+                return Err((
+                    count.saturating_sub(1),
+                    pack::PackError::Malformed {
+                        offset: 0,
+                        what: format!("no pack holds the root quad {root}"),
+                    },
+                ));
+            };
+            centred_root(store, quad, level).map_err(|e| (count.saturating_sub(1), e.into()))
+        });
+        store.set_collect_allowed(true);
+        let (quad, level) = placed?;
+        universe.set_root(quad, level);
+        universe.generation = generation;
+        Ok((universe, reader.quads.into_keys().collect()))
     }
 
     /// The rule this state evolves under.
@@ -461,6 +523,51 @@ impl Universe {
         }
         Some(quad)
     }
+}
+
+/// A root of at least `MIN_ROOT_LEVEL` centred like `quad` (of `level`),
+/// which is centred on the origin: padded with empty quads around it.
+fn centred_root(
+    store: &mut Store,
+    mut quad: Handle,
+    mut level: u32,
+) -> Result<(Handle, u32), BudgetExceeded> {
+    if level == LEAF_LEVEL {
+        // A leaf covers [-4, 4): its quarters go to the inner corners of
+        // four leaves of a level-4 quad.
+        let bits = store.leaf_bits(quad);
+        let quarter = |x: u32, y: u32| {
+            let mut out = 0u64;
+            for row in 0..4 {
+                let line = (bits >> (8 * (y * 4 + row) + x * 4)) & 0xf;
+                // move to the opposite corner of the new leaf
+                out |= line << (8 * ((1 - y) * 4 + row) + (1 - x) * 4);
+            }
+            out
+        };
+        let kids = [
+            store.leaf(quarter(0, 0))?,
+            store.leaf(quarter(1, 0))?,
+            store.leaf(quarter(0, 1))?,
+            store.leaf(quarter(1, 1))?,
+        ];
+        quad = store.join(kids)?;
+        level += 1;
+    }
+    while level < MIN_ROOT_LEVEL {
+        let empty = store.empty(level - 1)?;
+        let [nw, ne, sw, se] = store.kids(quad);
+        let kids = [
+            store.join([empty, empty, empty, nw])?,
+            store.join([empty, empty, ne, empty])?,
+            store.join([empty, sw, empty, empty])?,
+            store.join([se, empty, empty, empty])?,
+        ];
+        quad = store.join(kids)?;
+        level += 1;
+    }
+    store.empty(level + 1)?;
+    Ok((quad, level))
 }
 
 /// Builds the quadtree of the square [0, 2^k)² (k ≥ 4, 2^k ≥ extent) from
