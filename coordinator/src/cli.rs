@@ -21,8 +21,34 @@ pub struct Cli {
 pub enum Command {
     /// Advance a pattern by any number of generations and report the result
     Evolve(EvolveArgs),
+    /// Run a job file to its target, writing checkpoints; resume after a crash
+    Run(RunArgs),
+    /// List the checkpoints stored in a run's folder
+    Checkpoints(DirArgs),
+    /// Read every checkpoint of a run back whole; exit non-zero naming damage
+    Verify(DirArgs),
     /// Run the speed and memory suite; print a table, optionally write JSON
     Bench(BenchArgs),
+}
+
+#[derive(Args, Debug)]
+pub struct RunArgs {
+    /// The job file (TOML): pattern, rule, target, checkpoint folder and interval
+    pub job: PathBuf,
+
+    /// Print exactly one JSON object on standard output at the end
+    #[arg(long)]
+    pub json: bool,
+}
+
+#[derive(Args, Debug)]
+pub struct DirArgs {
+    /// A run's checkpoint folder (the job's checkpoint.dir)
+    pub dir: PathBuf,
+
+    /// Print JSON instead of a table
+    #[arg(long)]
+    pub json: bool,
 }
 
 #[derive(Args, Debug)]

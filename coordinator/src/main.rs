@@ -4,13 +4,18 @@
 //! module of its own and returns a `Result`.
 
 mod bench;
+mod checkpoint;
 mod cli;
 mod evolve;
 mod failure;
 mod input;
+mod inspect;
+mod job;
 mod memory;
 mod progress;
 mod report;
+mod run;
+mod storage;
 
 use std::process::ExitCode;
 
@@ -19,9 +24,20 @@ use clap::Parser;
 use crate::cli::{Cli, Command};
 
 fn main() -> ExitCode {
+    // Output piped into `head` and the like: end quietly when the reader
+    // goes away, as command-line tools do, rather than fail on a write.
+    #[cfg(unix)]
+    // SAFETY: restoring the default disposition of SIGPIPE at start-up,
+    // before any thread exists, is what a C program starts with.
+    unsafe {
+        libc::signal(libc::SIGPIPE, libc::SIG_DFL);
+    }
     let cli = Cli::parse();
     let outcome = match cli.command {
         Command::Evolve(args) => evolve::run(args),
+        Command::Run(args) => run::run(args),
+        Command::Checkpoints(args) => inspect::list(args),
+        Command::Verify(args) => inspect::verify(args),
         Command::Bench(args) => bench::run(args),
     };
     match outcome {

@@ -1,0 +1,314 @@
+//! A run's checkpoints over a storage backend: manifests (one per stored
+//! generation, written last and atomically) naming the packs they need.
+//! CHECKPOINTS.md specifies the layout and the manifest's fields.
+
+use std::collections::HashSet;
+
+use anyhow::{Context, bail};
+use deeptime_engine::pack::{WrittenPack, pack_name};
+use deeptime_engine::rule::Rule;
+use deeptime_engine::{ContentId, Universe};
+use num_bigint::BigUint;
+use serde::{Deserialize, Serialize};
+
+use crate::storage::Storage;
+
+/// The manifest format's name and version.
+pub const FORMAT: &str = "deeptime-checkpoint";
+pub const VERSION: u32 = 1;
+/// Manifests larger than this are not read (a real one is a few KiB).
+const MAX_MANIFEST_BYTES: usize = 64 << 20;
+/// A checkpoint that would need more packs than this writes its whole
+/// state into one pack instead, so manifests and reads stay bounded.
+pub const MAX_PACKS: usize = 64;
+
+/// One stored generation.
+#[derive(Serialize, Deserialize, Debug, Clone)]
+#[serde(deny_unknown_fields)]
+pub struct Manifest {
+    /// always "deeptime-checkpoint"
+    pub format: String,
+    /// the manifest format version (1)
+    pub version: u32,
+    /// 1, 2, 3... in the order checkpoints were written
+    pub sequence: u64,
+    /// the job's name
+    pub name: String,
+    /// the rule, canonical B/S text
+    pub rule: String,
+    /// the digest of the job's pattern at generation 0 (identifies the run)
+    pub pattern: String,
+    /// the generation stored, decimal
+    pub generation: String,
+    /// content id of the state's canonical root: its digest
+    pub root: String,
+    /// live cells, decimal
+    pub population: String,
+    /// every pack the state needs, in the order to read them
+    pub packs: Vec<PackEntry>,
+    /// seconds since 1970 when the manifest was written
+    pub written: u64,
+}
+
+/// A pack a manifest needs.
+#[derive(Serialize, Deserialize, Debug, Clone, PartialEq, Eq)]
+#[serde(deny_unknown_fields)]
+pub struct PackEntry {
+    /// the pack's BLAKE3-128 hash in hex, also its file name
+    pub name: String,
+    /// its size in bytes
+    pub bytes: u64,
+    /// quad records in it
+    pub records: u64,
+}
+
+impl Manifest {
+    fn key(sequence: u64) -> String {
+        format!("manifests/{sequence:010}.json")
+    }
+
+    pub fn generation(&self) -> anyhow::Result<BigUint> {
+        self.generation
+            .parse()
+            .with_context(|| format!("generation {:?} is not a number", self.generation))
+    }
+
+    /// Bytes of all packs this checkpoint needs.
+    pub fn pack_bytes(&self) -> u64 {
+        self.packs.iter().map(|pack| pack.bytes).sum()
+    }
+}
+
+fn pack_key(name: &str) -> String {
+    format!("packs/{name}.pack")
+}
+
+/// A state loaded from a checkpoint, with the content ids its packs hold.
+pub struct Loaded {
+    pub manifest: Manifest,
+    pub universe: Universe,
+    pub known: HashSet<ContentId>,
+}
+
+/// The checkpoints of one run.
+pub struct Checkpoints {
+    storage: Box<dyn Storage>,
+}
+
+impl Checkpoints {
+    pub fn new(storage: Box<dyn Storage>) -> Checkpoints {
+        Checkpoints { storage }
+    }
+
+    /// The manifest keys, oldest first.
+    pub fn manifest_keys(&self) -> anyhow::Result<Vec<String>> {
+        let keys = self
+            .storage
+            .list("manifests/")
+            .with_context(|| format!("cannot list {}", self.storage.locate("manifests")))?;
+        Ok(keys
+            .into_iter()
+            .filter(|key| key.ends_with(".json"))
+            .collect())
+    }
+
+    /// Reads and checks one manifest.
+    pub fn manifest(&self, key: &str) -> anyhow::Result<Manifest> {
+        let place = self.storage.locate(key);
+        let bytes = self
+            .storage
+            .get(key)
+            .with_context(|| format!("cannot read {place}"))?
+            .with_context(|| format!("{place} is missing"))?;
+        if bytes.len() > MAX_MANIFEST_BYTES {
+            bail!(
+                "{place}: manifest of {} bytes is over the limit",
+                bytes.len()
+            );
+        }
+        let manifest: Manifest = serde_json::from_slice(&bytes).map_err(|error| {
+            anyhow::anyhow!("{place}:{}:{}: {error}", error.line(), error.column())
+        })?;
+        if manifest.format != FORMAT || manifest.version != VERSION {
+            bail!(
+                "{place}: format {} version {} (this build reads {FORMAT} version {VERSION})",
+                manifest.format,
+                manifest.version
+            );
+        }
+        if Manifest::key(manifest.sequence) != key {
+            bail!("{place}: holds sequence {}", manifest.sequence);
+        }
+        Ok(manifest)
+    }
+
+    /// Reads every pack of `manifest`, checks each against its name and
+    /// size, and rebuilds the state. Errors name the damaged file.
+    pub fn load(&self, manifest: Manifest, budget: u64) -> anyhow::Result<Loaded> {
+        let mut packs = Vec::with_capacity(manifest.packs.len());
+        for entry in &manifest.packs {
+            let key = pack_key(&entry.name);
+            let place = self.storage.locate(&key);
+            let bytes = self
+                .storage
+                .get(&key)
+                .with_context(|| format!("cannot read {place}"))?
+                .with_context(|| format!("{place} is missing"))?;
+            if bytes.len() as u64 != entry.bytes {
+                bail!(
+                    "{place}: {} bytes, the manifest says {}",
+                    bytes.len(),
+                    entry.bytes
+                );
+            }
+            if pack_name(&bytes) != entry.name {
+                bail!("{place}: content does not match its checksum (damaged)");
+            }
+            packs.push(bytes);
+        }
+        let root: ContentId = manifest
+            .root
+            .parse()
+            .with_context(|| format!("manifest {}: bad root", manifest.sequence))?;
+        let rule = Rule::parse(&manifest.rule)
+            .with_context(|| format!("manifest {}: bad rule", manifest.sequence))?;
+        let generation = manifest.generation()?;
+        let (mut universe, ids) = Universe::from_packs(
+            packs.iter().map(|bytes| bytes.as_slice()),
+            root,
+            rule,
+            generation,
+            budget,
+        )
+        .map_err(|(index, error)| {
+            let place = manifest
+                .packs
+                .get(index)
+                .map(|entry| self.storage.locate(&pack_key(&entry.name)))
+                .unwrap_or_else(|| "the packs".to_string());
+            anyhow::anyhow!("{place}: {error}")
+        })?;
+        let digest = universe.digest()?;
+        if digest != root {
+            bail!(
+                "checkpoint {}: state has digest {digest}, the manifest says {root}",
+                manifest.sequence
+            );
+        }
+        if universe.population().to_string() != manifest.population {
+            bail!(
+                "checkpoint {}: population differs from the manifest",
+                manifest.sequence
+            );
+        }
+        Ok(Loaded {
+            manifest,
+            universe,
+            known: ids.into_iter().collect(),
+        })
+    }
+
+    /// The newest checkpoint that loads whole, going back past damaged
+    /// ones (each reported through `warn`). None when there is none.
+    pub fn latest_valid(
+        &self,
+        budget: u64,
+        mut warn: impl FnMut(String),
+    ) -> anyhow::Result<Option<Loaded>> {
+        for key in self.manifest_keys()?.iter().rev() {
+            let loaded = self
+                .manifest(key)
+                .and_then(|manifest| self.load(manifest, budget));
+            match loaded {
+                Ok(loaded) => return Ok(Some(loaded)),
+                Err(error) => {
+                    if error
+                        .chain()
+                        .any(|cause| cause.is::<deeptime_engine::BudgetExceeded>())
+                    {
+                        return Err(error);
+                    }
+                    warn(format!("skipping damaged checkpoint: {error:#}"));
+                }
+            }
+        }
+        Ok(None)
+    }
+
+    /// Writes a checkpoint of `universe`: the pack of quads no earlier pack
+    /// holds, then the manifest, last. `previous` is the checkpoint it
+    /// follows (its packs are needed too); `known` grows with the new ids.
+    pub fn write(
+        &self,
+        universe: &mut Universe,
+        previous: Option<&Manifest>,
+        known: &mut HashSet<ContentId>,
+        name: &str,
+        pattern: &ContentId,
+    ) -> anyhow::Result<Manifest> {
+        let mut packs = previous.map(|m| m.packs.clone()).unwrap_or_default();
+        if packs.len() >= MAX_PACKS {
+            // Consolidate: this checkpoint stands on one pack of its own.
+            packs.clear();
+            known.clear();
+        }
+        let (digest, pack) = universe.write_pack(&|id| known.contains(id))?;
+        if let Some(WrittenPack {
+            bytes,
+            records,
+            ids,
+        }) = pack
+        {
+            let name = pack_name(&bytes);
+            let key = pack_key(&name);
+            self.storage
+                .put_new(&key, &bytes)
+                .with_context(|| format!("cannot write {}", self.storage.locate(&key)))?;
+            packs.push(PackEntry {
+                name,
+                bytes: bytes.len() as u64,
+                records,
+            });
+            known.extend(ids);
+        }
+        let sequence = match self.manifest_keys()?.last() {
+            Some(last) => {
+                last.trim_start_matches("manifests/")
+                    .trim_end_matches(".json")
+                    .parse::<u64>()
+                    .unwrap_or(0)
+                    .max(previous.map_or(0, |m| m.sequence))
+                    + 1
+            }
+            None => 1,
+        };
+        let manifest = Manifest {
+            format: FORMAT.to_string(),
+            version: VERSION,
+            sequence,
+            name: name.to_string(),
+            rule: universe.rule().to_string(),
+            pattern: pattern.to_string(),
+            generation: universe.generation().to_string(),
+            root: digest.to_string(),
+            population: universe.population().to_string(),
+            packs,
+            written: std::time::SystemTime::now()
+                .duration_since(std::time::UNIX_EPOCH)
+                .map_or(0, |elapsed| elapsed.as_secs()),
+        };
+        let key = Manifest::key(sequence);
+        let text = serde_json::to_vec_pretty(&manifest)?;
+        let wrote = self
+            .storage
+            .put_new(&key, &text)
+            .with_context(|| format!("cannot write {}", self.storage.locate(&key)))?;
+        if !wrote {
+            bail!(
+                "{} appeared while writing it: is another run using this folder?",
+                self.storage.locate(&key)
+            );
+        }
+        Ok(manifest)
+    }
+}

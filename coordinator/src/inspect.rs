@@ -1,0 +1,86 @@
+//! Commands over a run's storage: `checkpoints` lists the stored
+//! generations, `verify` reads every one back whole.
+
+use anyhow::bail;
+use serde::Serialize;
+
+use crate::checkpoint::Checkpoints;
+use crate::cli::DirArgs;
+use crate::storage::LocalDir;
+
+#[derive(Serialize)]
+struct Row {
+    sequence: u64,
+    generation: String,
+    population: String,
+    digest: String,
+    pack_bytes: u64,
+}
+
+pub fn list(args: DirArgs) -> anyhow::Result<()> {
+    let checkpoints = Checkpoints::new(Box::new(LocalDir::new(args.dir.clone())));
+    let mut rows = Vec::new();
+    for key in checkpoints.manifest_keys()? {
+        let manifest = checkpoints.manifest(&key)?;
+        rows.push(Row {
+            sequence: manifest.sequence,
+            pack_bytes: manifest.pack_bytes(),
+            generation: manifest.generation,
+            population: manifest.population,
+            digest: manifest.root,
+        });
+    }
+    if args.json {
+        println!("{}", serde_json::to_string(&rows)?);
+        return Ok(());
+    }
+    if rows.is_empty() {
+        println!("no checkpoints in {}", args.dir.display());
+        return Ok(());
+    }
+    println!(
+        "{:>8}  {:>24}  {:>16}  {:32}  {:>12}",
+        "sequence", "generation", "population", "digest", "pack bytes"
+    );
+    for row in rows {
+        println!(
+            "{:>8}  {:>24}  {:>16}  {:32}  {:>12}",
+            row.sequence, row.generation, row.population, row.digest, row.pack_bytes
+        );
+    }
+    Ok(())
+}
+
+pub fn verify(args: DirArgs) -> anyhow::Result<()> {
+    let checkpoints = Checkpoints::new(Box::new(LocalDir::new(args.dir.clone())));
+    let keys = checkpoints.manifest_keys()?;
+    if keys.is_empty() {
+        bail!("{}: no checkpoints to verify", args.dir.display());
+    }
+    let mut damaged = Vec::new();
+    for key in &keys {
+        let checked = checkpoints
+            .manifest(key)
+            .and_then(|manifest| checkpoints.load(manifest, crate::memory::budget(None)?));
+        match checked {
+            Ok(loaded) => println!(
+                "ok       checkpoint {} generation {} digest {}",
+                loaded.manifest.sequence, loaded.manifest.generation, loaded.manifest.root
+            ),
+            Err(error) => {
+                println!("DAMAGED  {key}: {error:#}");
+                damaged.push(key.clone());
+            }
+        }
+    }
+    if !damaged.is_empty() {
+        bail!(
+            "{} of {} checkpoints in {} are damaged: {}",
+            damaged.len(),
+            keys.len(),
+            args.dir.display(),
+            damaged.join(", ")
+        );
+    }
+    Ok(())
+}

@@ -1,0 +1,109 @@
+//! The local-directory backend: each object a file, written to a temporary
+//! file beside it, flushed to disk, then renamed into place without
+//! replacing anything, and the folder flushed too.
+
+use std::fs::{self, File};
+use std::io::{self, Write};
+use std::path::PathBuf;
+
+use super::{Storage, check_key};
+
+/// Objects as files under one folder.
+pub struct LocalDir {
+    root: PathBuf,
+}
+
+impl LocalDir {
+    pub fn new(root: PathBuf) -> LocalDir {
+        LocalDir { root }
+    }
+}
+
+impl Storage for LocalDir {
+    fn put_new(&self, key: &str, bytes: &[u8]) -> io::Result<bool> {
+        check_key(key)?;
+        let path = self.root.join(key);
+        if path.exists() {
+            return Ok(false);
+        }
+        let folder = path.parent().expect("keys have a folder").to_path_buf();
+        fs::create_dir_all(&folder)?;
+        let mut temporary = tempfile::Builder::new()
+            .prefix(".incoming-")
+            .tempfile_in(&folder)?;
+        temporary.write_all(bytes)?;
+        temporary.as_file().sync_all()?;
+        match temporary.persist_noclobber(&path) {
+            Ok(_) => {}
+            Err(error) if error.error.kind() == io::ErrorKind::AlreadyExists => return Ok(false),
+            Err(error) => return Err(error.error),
+        }
+        // The rename is durable only once the folder is.
+        File::open(&folder)?.sync_all()?;
+        Ok(true)
+    }
+
+    fn get(&self, key: &str) -> io::Result<Option<Vec<u8>>> {
+        check_key(key)?;
+        match fs::read(self.root.join(key)) {
+            Ok(bytes) => Ok(Some(bytes)),
+            Err(error) if error.kind() == io::ErrorKind::NotFound => Ok(None),
+            Err(error) => Err(error),
+        }
+    }
+
+    fn list(&self, prefix: &str) -> io::Result<Vec<String>> {
+        let folder = prefix.trim_end_matches('/');
+        check_key(folder)?;
+        let entries = match fs::read_dir(self.root.join(folder)) {
+            Ok(entries) => entries,
+            Err(error) if error.kind() == io::ErrorKind::NotFound => return Ok(Vec::new()),
+            Err(error) => return Err(error),
+        };
+        let mut keys = Vec::new();
+        for entry in entries {
+            let name = entry?.file_name();
+            let Some(name) = name.to_str() else { continue };
+            if name.starts_with('.') {
+                continue; // an unfinished write
+            }
+            keys.push(format!("{folder}/{name}"));
+        }
+        keys.sort();
+        Ok(keys)
+    }
+
+    fn locate(&self, key: &str) -> String {
+        self.root.join(key).display().to_string()
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn objects_are_written_once_and_listed_in_order() {
+        let dir = tempfile::tempdir().unwrap();
+        let store = LocalDir::new(dir.path().to_path_buf());
+        assert_eq!(store.list("manifests/").unwrap(), Vec::<String>::new());
+        assert!(store.put_new("manifests/0000000002.json", b"two").unwrap());
+        assert!(store.put_new("manifests/0000000001.json", b"one").unwrap());
+        assert!(
+            !store
+                .put_new("manifests/0000000001.json", b"other")
+                .unwrap()
+        );
+        assert_eq!(
+            store.get("manifests/0000000001.json").unwrap().unwrap(),
+            b"one"
+        );
+        assert_eq!(store.get("manifests/0000000009.json").unwrap(), None);
+        assert_eq!(
+            store.list("manifests/").unwrap(),
+            vec!["manifests/0000000001.json", "manifests/0000000002.json"]
+        );
+        assert!(store.get("../etc/passwd").is_err());
+        assert!(store.put_new("/abs", b"x").is_err());
+    }
+}

@@ -1,0 +1,226 @@
+//! Runs that survive: real `deeptime run` processes killed with SIGKILL at
+//! random moments, damaged checkpoints, changed jobs. The final digest must
+//! always equal that of one uninterrupted `deeptime evolve` (common practice
+//! for crash-consistent storage: a crash loses at most the work since the
+//! last durable checkpoint, never correctness).
+
+use std::path::{Path, PathBuf};
+use std::process::{Command, Stdio};
+use std::time::Duration;
+
+use deeptime_tests::{Run, deeptime_bin, run_deeptime, temp_dir};
+
+/// A seeded `side`×`side` soup and a job over it in `dir`.
+fn job_of(dir: &Path, side: usize, target: u32, every: u32, rule: &str) -> PathBuf {
+    let mut state = 0x9e37_79b9_7f4a_7c15u64;
+    let mut rows = Vec::new();
+    for _ in 0..side {
+        let mut row = String::new();
+        for _ in 0..side {
+            state ^= state << 13;
+            state ^= state >> 7;
+            state ^= state << 17;
+            row.push(if state % 8 < 3 { 'o' } else { 'b' });
+        }
+        rows.push(row);
+    }
+    std::fs::write(
+        dir.join("soup.rle"),
+        format!("x = {side}, y = {side}\n{}!", rows.join("$")),
+    )
+    .unwrap();
+    let path = dir.join("soup.toml");
+    std::fs::write(
+        &path,
+        format!(
+            "version = 1\nname = \"soup\"\npattern = \"soup.rle\"\nrule = \"{rule}\"\n\
+             target = \"{target}\"\n[checkpoint]\ndir = \"runs\"\nevery = \"{every}\"\n"
+        ),
+    )
+    .unwrap();
+    path
+}
+
+/// A 160×160 soup job.
+fn job(dir: &Path, target: u32, every: u32, rule: &str) -> PathBuf {
+    job_of(dir, 160, target, every, rule)
+}
+
+fn digest_of(run: &Run) -> String {
+    run.assert_success();
+    let report: serde_json::Value =
+        serde_json::from_str(&run.stdout).unwrap_or_else(|e| panic!("{e}: {}", run.describe()));
+    report["digest"].as_str().unwrap().to_string()
+}
+
+fn evolved(dir: &Path, generations: u32) -> String {
+    let pattern = dir.join("soup.rle");
+    digest_of(&run_deeptime([
+        "evolve",
+        pattern.to_str().unwrap(),
+        "--gens",
+        &generations.to_string(),
+        "--json",
+    ]))
+}
+
+/// The manifests of a run, oldest first.
+fn manifests(dir: &Path) -> Vec<PathBuf> {
+    let mut found: Vec<PathBuf> = std::fs::read_dir(dir.join("runs/manifests"))
+        .unwrap()
+        .map(|entry| entry.unwrap().path())
+        .filter(|path| path.extension().is_some_and(|e| e == "json"))
+        .collect();
+    found.sort();
+    found
+}
+
+#[test]
+fn a_run_killed_many_times_finishes_with_the_uninterrupted_digest() {
+    let dir = temp_dir();
+    // About 3 s uninterrupted: 300 checkpoints of a 512² soup.
+    let job = job_of(dir.path(), 512, 3000, 10, "B3/S23");
+    let expected = evolved(dir.path(), 3000);
+    // Deterministic "random" kill moments, 30 to 400 ms into each start.
+    let mut state = 12345u64;
+    let mut kills = 0;
+    for _ in 0..6 {
+        state = state
+            .wrapping_mul(6364136223846793005)
+            .wrapping_add(1442695040888963407);
+        let wait = 30 + (state >> 33) % 370;
+        let mut child = Command::new(deeptime_bin())
+            .arg("run")
+            .arg(&job)
+            .stdout(Stdio::null())
+            .stderr(Stdio::null())
+            .spawn()
+            .unwrap();
+        std::thread::sleep(Duration::from_millis(wait));
+        if child.try_wait().unwrap().is_none() {
+            child.kill().unwrap(); // SIGKILL
+            kills += 1;
+        }
+        child.wait().unwrap();
+    }
+    assert!(kills >= 3, "the run ended before most kills ({kills})");
+    let last = run_deeptime(["run", job.to_str().unwrap(), "--json"]);
+    assert!(
+        last.stderr.contains("resuming soup from checkpoint"),
+        "{}",
+        last.describe()
+    );
+    assert_eq!(digest_of(&last), expected);
+    let runs = dir.path().join("runs");
+    let verify = run_deeptime(["verify", runs.to_str().unwrap()]);
+    verify.assert_success();
+    assert!(!verify.stdout.contains("DAMAGED"), "{}", verify.describe());
+}
+
+#[test]
+fn a_damaged_newest_checkpoint_is_reported_and_the_previous_one_used() {
+    let dir = temp_dir();
+    let job_path = job(dir.path(), 300, 100, "B3/S23");
+    run_deeptime(["run", job_path.to_str().unwrap()]).assert_success();
+    let runs = dir.path().join("runs");
+    run_deeptime(["verify", runs.to_str().unwrap()]).assert_success();
+
+    // Flip one bit in the newest pack (used only by the newest checkpoint).
+    let newest = manifests(dir.path()).pop().unwrap();
+    let manifest: serde_json::Value =
+        serde_json::from_str(&std::fs::read_to_string(&newest).unwrap()).unwrap();
+    let pack_name = manifest["packs"].as_array().unwrap().last().unwrap()["name"]
+        .as_str()
+        .unwrap()
+        .to_string();
+    let pack = runs.join("packs").join(format!("{pack_name}.pack"));
+    let mut bytes = std::fs::read(&pack).unwrap();
+    let middle = bytes.len() / 2;
+    bytes[middle] ^= 0x10;
+    std::fs::write(&pack, &bytes).unwrap();
+
+    let verify = run_deeptime(["verify", runs.to_str().unwrap()]);
+    assert_ne!(verify.code, Some(0), "{}", verify.describe());
+    assert!(
+        verify.stdout.contains(&format!("{pack_name}.pack")),
+        "{}",
+        verify.describe()
+    );
+    assert!(verify.stdout.contains("damaged"), "{}", verify.describe());
+
+    // Carry on to 400: the run warns, resumes from generation 200.
+    let job_path = job(dir.path(), 400, 100, "B3/S23");
+    let resumed = run_deeptime(["run", job_path.to_str().unwrap(), "--json"]);
+    assert!(
+        resumed
+            .stderr
+            .contains("warning: skipping damaged checkpoint"),
+        "{}",
+        resumed.describe()
+    );
+    assert!(
+        resumed.stderr.contains("at generation 200"),
+        "{}",
+        resumed.describe()
+    );
+    assert_eq!(digest_of(&resumed), evolved(dir.path(), 400));
+
+    // A truncated newest manifest is skipped the same way.
+    let newest = manifests(dir.path()).pop().unwrap();
+    let text = std::fs::read(&newest).unwrap();
+    std::fs::write(&newest, &text[..text.len() / 2]).unwrap();
+    let verify = run_deeptime(["verify", runs.to_str().unwrap()]);
+    assert_ne!(verify.code, Some(0));
+    assert!(
+        verify
+            .stdout
+            .contains(newest.file_name().unwrap().to_str().unwrap()),
+        "{}",
+        verify.describe()
+    );
+    let job_path = job(dir.path(), 500, 100, "B3/S23");
+    let resumed = run_deeptime(["run", job_path.to_str().unwrap(), "--json"]);
+    assert!(
+        resumed
+            .stderr
+            .contains("warning: skipping damaged checkpoint"),
+        "{}",
+        resumed.describe()
+    );
+    assert_eq!(digest_of(&resumed), evolved(dir.path(), 500));
+}
+
+#[test]
+fn a_job_that_no_longer_matches_its_run_is_refused() {
+    let dir = temp_dir();
+    let job_path = job(dir.path(), 50, 25, "B3/S23");
+    run_deeptime(["run", job_path.to_str().unwrap()]).assert_success();
+    let job_path = job(dir.path(), 100, 25, "B36/S23");
+    let refused = run_deeptime(["run", job_path.to_str().unwrap()]);
+    assert_eq!(refused.code, Some(2), "{}", refused.describe());
+    assert!(
+        refused
+            .stderr
+            .contains("the stored run uses rule B3/S23, the job now says B36/S23"),
+        "{}",
+        refused.describe()
+    );
+    // A changed target and interval are fine.
+    let job_path = job(dir.path(), 90, 30, "B3/S23");
+    let more = run_deeptime(["run", job_path.to_str().unwrap(), "--json"]);
+    assert_eq!(digest_of(&more), evolved(dir.path(), 90));
+    // An unknown key is refused with its place.
+    let text = std::fs::read_to_string(&job_path)
+        .unwrap()
+        .replace("target", "tagret");
+    std::fs::write(&job_path, text).unwrap();
+    let refused = run_deeptime(["run", job_path.to_str().unwrap()]);
+    assert_eq!(refused.code, Some(2), "{}", refused.describe());
+    assert!(
+        refused
+            .stderr
+            .contains("soup.toml:5:1: unknown field `tagret`"),
+        "{}",
+        refused.describe()
+    );
+}
