@@ -39,13 +39,17 @@ pub fn list(args: DirArgs) -> anyhow::Result<()> {
         return Ok(());
     }
     println!(
-        "{:>8}  {:>24}  {:>16}  {:32}  {:>12}",
+        "{:>8}  {:>24}  {:>24}  {:32}  {:>12}",
         "sequence", "generation", "population", "digest", "pack bytes"
     );
     for row in rows {
         println!(
-            "{:>8}  {:>24}  {:>16}  {:32}  {:>12}",
-            row.sequence, row.generation, row.population, row.digest, row.pack_bytes
+            "{:>8}  {:>24}  {:>24}  {:32}  {:>12}",
+            row.sequence,
+            short(&row.generation),
+            short(&row.population),
+            row.digest,
+            row.pack_bytes
         );
     }
     Ok(())
@@ -83,4 +87,12 @@ pub fn verify(args: DirArgs) -> anyhow::Result<()> {
         );
     }
     Ok(())
+}
+
+/// A decimal for a table column: whole when it fits, else its size.
+fn short(decimal: &str) -> String {
+    if decimal.len() <= 24 {
+        return decimal.to_string();
+    }
+    format!("{}.{}e{}", &decimal[..1], &decimal[1..4], decimal.len() - 1)
 }
