@@ -22,4 +22,4 @@ pub use advance::{Observer, Progress};
 pub use content_id::{BadContentId, ContentId};
 pub use error::{AdvanceError, BudgetExceeded, StackRefused, TooLargeForText, human_bytes};
 pub use store::{Handle, StoreStats};
-pub use universe::{BoundingBox, MAX_TEXT_CELLS, Universe, WriteError};
+pub use universe::{BoundingBox, MAX_TEXT_CELLS, Region, Universe, WriteError};

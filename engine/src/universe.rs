@@ -40,6 +40,39 @@ pub struct BoundingBox {
     pub height: BigUint,
 }
 
+/// A rectangle of the plane, in cells: columns left..left+width, rows
+/// top..top+height.
+#[derive(Clone, Debug, PartialEq, Eq)]
+pub struct Region {
+    pub left: BigInt,
+    pub top: BigInt,
+    pub width: u64,
+    pub height: u64,
+}
+
+impl Region {
+    /// The region of a bounding box, if it fits text's limits.
+    pub fn of_box(bbox: &BoundingBox) -> Result<Region, TooLargeForText> {
+        let too_large = || TooLargeForText {
+            what: format!(
+                "its bounding box is {}×{} cells (at most {MAX_COORDINATE} each way)",
+                bbox.width, bbox.height
+            ),
+        };
+        let width = u64::try_from(&bbox.width).map_err(|_| too_large())?;
+        let height = u64::try_from(&bbox.height).map_err(|_| too_large())?;
+        if width > MAX_COORDINATE || height > MAX_COORDINATE {
+            return Err(too_large());
+        }
+        Ok(Region {
+            left: bbox.left.clone(),
+            top: bbox.top.clone(),
+            width,
+            height,
+        })
+    }
+}
+
 /// Why a state could not be written as pattern text.
 #[derive(Debug, thiserror::Error)]
 pub enum WriteError {
@@ -388,8 +421,9 @@ impl Universe {
         };
         let left = i64::try_from(&bbox.left).map_err(|_| too_far())?;
         let top = i64::try_from(&bbox.top).map_err(|_| too_far())?;
+        let region = Region::of_box(&bbox)?;
         let mut cells = Vec::new();
-        for (y, runs) in self.rows(&bbox)? {
+        for (y, runs) in self.rows_in(&region)? {
             for (x, len) in runs {
                 for dx in 0..len {
                     cells.push((left + (x + dx) as i64, top + y as i64));
@@ -406,70 +440,117 @@ impl Universe {
             write::write_rle(out, 0, 0, &rule, Vec::new())?;
             return Ok(());
         };
-        let rows = self.rows(&bbox)?;
-        let width = u64::try_from(&bbox.width).expect("checked by rows");
-        let height = u64::try_from(&bbox.height).expect("checked by rows");
-        write::write_rle(out, width, height, &rule, rows)?;
+        let region = Region::of_box(&bbox)?;
+        self.write_rle_region(out, &region)
+    }
+
+    /// Writes the cells of `region` as RLE text whose (0, 0) is the
+    /// region's top-left corner.
+    pub fn write_rle_region(
+        &mut self,
+        out: &mut impl Write,
+        region: &Region,
+    ) -> Result<(), WriteError> {
+        let rule = self.rule.to_string();
+        let rows = self.rows_in(region)?;
+        write::write_rle(out, region.width, region.height, &rule, rows)?;
         Ok(())
     }
 
-    /// The non-empty rows of the bounding box with their runs of live cells
-    /// (x, len), both relative to the box.
+    /// The non-empty rows of `region` with their runs of live cells
+    /// (x, len), both relative to the region's corner.
     #[allow(clippy::type_complexity)]
-    fn rows(&mut self, bbox: &BoundingBox) -> Result<Vec<(u64, Vec<(u64, u64)>)>, WriteError> {
-        let limit = BigUint::from(MAX_COORDINATE);
-        if bbox.width > limit || bbox.height > limit {
+    fn rows_in(&mut self, region: &Region) -> Result<Vec<(u64, Vec<(u64, u64)>)>, WriteError> {
+        if region.width > MAX_COORDINATE || region.height > MAX_COORDINATE {
             return Err(TooLargeForText {
                 what: format!(
-                    "its bounding box is {}×{} cells (at most {MAX_COORDINATE} each way)",
-                    bbox.width, bbox.height
+                    "the region is {}×{} cells (at most {MAX_COORDINATE} each way)",
+                    region.width, region.height
                 ),
             }
             .into());
         }
-        let population = self.population();
-        if population > BigUint::from(MAX_TEXT_CELLS) {
-            return Err(TooLargeForText {
-                what: format!("it has {population} live cells (at most {MAX_TEXT_CELLS})"),
-            }
-            .into());
-        }
-        // The box, from the root's corner, may be astronomically far; it is
-        // covered by at most 2×2 aligned squares of level BLOCK, within which
-        // offsets fit u64.
-        const BLOCK: u32 = MAX_COORDINATE.trailing_zeros() + 1;
+        // The region from the root's corner; cells beyond the root are dead.
         let half = BigInt::one() << (self.level - 1);
-        let left = (&bbox.left + &half).magnitude().clone();
-        let top = (&bbox.top + &half).magnitude().clone();
-        let mut blocks = Vec::new();
-        let (left_offset, top_offset);
-        if self.level <= BLOCK + 1 {
-            left_offset = u64::try_from(&left).expect("inside a small root");
-            top_offset = u64::try_from(&top).expect("inside a small root");
-            leaf_blocks(&self.store, self.root, self.level, 0, 0, &mut blocks);
+        let size = BigInt::one() << self.level;
+        let left = &region.left + &half;
+        let top = &region.top + &half;
+        let zero = BigInt::from(0);
+        if left >= size
+            || top >= size
+            || &left + region.width <= zero
+            || &top + region.height <= zero
+            || region.width == 0
+            || region.height == 0
+        {
+            return Ok(Vec::new());
+        }
+        let clip_left = std::cmp::max(left.clone(), zero.clone())
+            .magnitude()
+            .clone();
+        let clip_top = std::cmp::max(top.clone(), zero).magnitude().clone();
+        // Covered by at most 2×2 aligned squares of level BLOCK (the region
+        // is at most 2^40 wide), within which offsets fit u64.
+        const BLOCK: u32 = MAX_COORDINATE.trailing_zeros() + 1;
+        let (origin_x, origin_y) = if self.level <= BLOCK + 1 {
+            (BigUint::from(0u32), BigUint::from(0u32))
         } else {
-            let origin_x = (&left >> BLOCK) << BLOCK;
-            let origin_y = (&top >> BLOCK) << BLOCK;
-            left_offset = u64::try_from(&left - &origin_x).expect("below 2^BLOCK");
-            top_offset = u64::try_from(&top - &origin_y).expect("below 2^BLOCK");
+            (
+                (&clip_left >> BLOCK) << BLOCK,
+                (&clip_top >> BLOCK) << BLOCK,
+            )
+        };
+        // The region's corner from the origin, in cells (may be negative).
+        let shift_x =
+            i64::try_from(&left - BigInt::from(origin_x.clone())).expect("near the origin");
+        let shift_y =
+            i64::try_from(&top - BigInt::from(origin_y.clone())).expect("near the origin");
+        // The window of leaves to collect, from the origin, in leaf units.
+        let window = [
+            shift_x.max(0) as u64 / 8,
+            shift_y.max(0) as u64 / 8,
+            (shift_x + region.width as i64 - 1).max(0) as u64 / 8,
+            (shift_y + region.height as i64 - 1).max(0) as u64 / 8,
+        ];
+        let mut blocks = Vec::new();
+        let mut allowance = MAX_TEXT_CELLS;
+        let too_many = || TooLargeForText {
+            what: format!("the region has more than {MAX_TEXT_CELLS} live cells"),
+        };
+        if self.level <= BLOCK + 1 {
+            leaf_blocks(
+                &self.store,
+                self.root,
+                self.level,
+                [0, 0],
+                window,
+                &mut blocks,
+                &mut allowance,
+            )
+            .map_err(|()| too_many())?;
+        } else {
             let side = BigUint::one() << BLOCK;
             for (dx, dy) in [(0u64, 0u64), (1, 0), (0, 1), (1, 1)] {
                 let x = &origin_x + &side * dx;
                 let y = &origin_y + &side * dy;
                 if let Some(quad) = self.descend(x, y, BLOCK) {
                     let leaves = 1u64 << (BLOCK - LEAF_LEVEL);
+                    let corner = [dx * leaves, dy * leaves];
                     leaf_blocks(
                         &self.store,
                         quad,
                         BLOCK,
-                        dx * leaves,
-                        dy * leaves,
+                        corner,
+                        window,
                         &mut blocks,
-                    );
+                        &mut allowance,
+                    )
+                    .map_err(|()| too_many())?;
                 }
             }
         }
         blocks.sort_unstable();
+        let (width, height) = (region.width as i64, region.height as i64);
         let mut rows = Vec::new();
         let mut at = 0;
         while at < blocks.len() {
@@ -479,6 +560,10 @@ impl Universe {
                 end += 1;
             }
             for row in 0..8u64 {
+                let y = (band * 8 + row) as i64 - shift_y;
+                if y < 0 || y >= height {
+                    continue;
+                }
                 let mut runs: Vec<(u64, u64)> = Vec::new();
                 for &(_, column, bits) in &blocks[at..end] {
                     let mut byte = (bits >> (8 * row)) & 0xff;
@@ -486,7 +571,13 @@ impl Universe {
                         let start = byte.trailing_zeros() as u64;
                         let len = (!(byte >> start)).trailing_zeros() as u64;
                         byte &= !(((1u64 << len) - 1) << start);
-                        let x = column * 8 + start - left_offset;
+                        // Clip the run to the region's columns.
+                        let from = ((column * 8 + start) as i64 - shift_x).max(0);
+                        let to = ((column * 8 + start + len) as i64 - shift_x).min(width);
+                        if from >= to {
+                            continue;
+                        }
+                        let (x, len) = (from as u64, (to - from) as u64);
                         match runs.last_mut() {
                             Some(last) if last.0 + last.1 == x => last.1 += len,
                             _ => runs.push((x, len)),
@@ -494,7 +585,7 @@ impl Universe {
                     }
                 }
                 if !runs.is_empty() {
-                    rows.push((band * 8 + row - top_offset, runs));
+                    rows.push((y as u64, runs));
                 }
             }
             at = end;
@@ -604,28 +695,47 @@ fn build_tree(
 }
 
 /// Collects (leaf row, leaf column, bits) of the non-empty leaves of a quad
-/// whose corner is at leaf row `y`, leaf column `x`.
+/// whose corner is at leaf column `corner[0]`, row `corner[1]`, that lie in
+/// `window` (first column, first row, last column, last row, in leaves).
+/// Fails when more than `allowance` live cells would be collected.
 fn leaf_blocks(
     store: &Store,
     quad: Handle,
     level: u32,
-    x: u64,
-    y: u64,
+    corner: [u64; 2],
+    window: [u64; 4],
     out: &mut Vec<(u64, u64, u64)>,
-) {
+    allowance: &mut u64,
+) -> Result<(), ()> {
+    let [x, y] = corner;
+    let span = 1u64 << (level - LEAF_LEVEL);
+    if x > window[2] || y > window[3] || x + span <= window[0] || y + span <= window[1] {
+        return Ok(());
+    }
     if quad.is_leaf() {
         let bits = store.leaf_bits(quad);
         if bits != 0 {
+            let count = bits.count_ones() as u64;
+            *allowance = allowance.checked_sub(count).ok_or(())?;
             out.push((y, x, bits));
         }
-        return;
+        return Ok(());
     }
     if quad == store.known_empty(level) {
-        return;
+        return Ok(());
     }
-    let half = 1u64 << (level - 1 - LEAF_LEVEL);
+    let half = span / 2;
     for (at, kid) in store.kids(quad).into_iter().enumerate() {
         let (dx, dy) = ((at as u64 % 2) * half, (at as u64 / 2) * half);
-        leaf_blocks(store, kid, level - 1, x + dx, y + dy, out);
+        leaf_blocks(
+            store,
+            kid,
+            level - 1,
+            [x + dx, y + dy],
+            window,
+            out,
+            allowance,
+        )?;
     }
+    Ok(())
 }

@@ -154,3 +154,38 @@ fn every_budget_either_gives_the_same_state_or_a_budget_error() {
     }
     assert!(successes > 0, "no budget up to 2 MiB was enough");
 }
+
+proptest! {
+    #![proptest_config(ProptestConfig::with_cases(32))]
+
+    #[test]
+    fn a_region_written_as_rle_holds_exactly_the_cells_inside_it(
+        bits in proptest::collection::vec(any::<bool>(), 400),
+        steps in 0u64..30,
+        left in -40i64..40,
+        top in -40i64..40,
+        width in 0u64..70,
+        height in 0u64..70,
+    ) {
+        // Common practice: a crop keeps the cells inside and nothing else.
+        let mut state = state(&soup(&bits, 20, (0, 0)), "B3/S23");
+        state.advance(&BigUint::from(steps), None).unwrap();
+        let region = deeptime_engine::Region { left: left.into(), top: top.into(), width, height };
+        let mut text = Vec::new();
+        state.write_rle_region(&mut text, &region).unwrap();
+        let read = read_pattern(&text).unwrap();
+        let mut got: Vec<(i64, i64)> = Vec::new();
+        for run in &read.runs {
+            for dx in 0..run.len {
+                got.push(((run.x + dx) as i64 + left, run.y as i64 + top));
+            }
+        }
+        let expected: Vec<(i64, i64)> = state
+            .cells()
+            .unwrap()
+            .into_iter()
+            .filter(|&(x, y)| x >= left && x < left + width as i64 && y >= top && y < top + height as i64)
+            .collect();
+        prop_assert_eq!(got, expected);
+    }
+}
