@@ -224,3 +224,164 @@ fn a_job_that_no_longer_matches_its_run_is_refused() {
         refused.describe()
     );
 }
+
+#[test]
+fn a_snapshot_of_any_generation_matches_evolve() {
+    let dir = temp_dir();
+    let job_path = job(dir.path(), 400, 100, "B3/S23");
+    run_deeptime(["run", job_path.to_str().unwrap()]).assert_success();
+    let runs = dir.path().join("runs");
+    let runs = runs.to_str().unwrap();
+    // Stored (200) and between checkpoints (250, 399): the same digest as
+    // one evolve from the pattern.
+    for generation in [200u32, 250, 399] {
+        let snap = run_deeptime(["snapshot", runs, "--gen", &generation.to_string(), "--json"]);
+        assert_eq!(
+            digest_of(&snap),
+            evolved(dir.path(), generation),
+            "generation {generation}"
+        );
+    }
+    // Beyond the last checkpoint: advanced from it.
+    let snap = run_deeptime(["snapshot", runs, "--gen", "1000", "--json"]);
+    assert_eq!(digest_of(&snap), evolved(dir.path(), 1000));
+
+    // The RLE of the whole state is byte for byte evolve's.
+    let from_snapshot = dir.path().join("snap.rle");
+    let from_evolve = dir.path().join("evolve.rle");
+    run_deeptime([
+        "snapshot",
+        runs,
+        "--gen",
+        "250",
+        "--out",
+        from_snapshot.to_str().unwrap(),
+    ])
+    .assert_success();
+    let pattern = dir.path().join("soup.rle");
+    run_deeptime([
+        "evolve",
+        pattern.to_str().unwrap(),
+        "--gens",
+        "250",
+        "--out",
+        from_evolve.to_str().unwrap(),
+    ])
+    .assert_success();
+    assert_eq!(
+        std::fs::read(&from_snapshot).unwrap(),
+        std::fs::read(&from_evolve).unwrap()
+    );
+
+    // A picture at one cell per pixel of a region is black exactly where
+    // the region's RLE has live cells.
+    let region = "-20,-10,90,60";
+    let picture = dir.path().join("region.png");
+    let text = dir.path().join("region.rle");
+    run_deeptime([
+        "snapshot",
+        runs,
+        "--gen",
+        "250",
+        "--region",
+        region,
+        "--scale",
+        "0",
+        "--out",
+        picture.to_str().unwrap(),
+    ])
+    .assert_success();
+    run_deeptime([
+        "snapshot",
+        runs,
+        "--gen",
+        "250",
+        "--region",
+        region,
+        "--out",
+        text.to_str().unwrap(),
+    ])
+    .assert_success();
+    let decoder = png::Decoder::new(std::io::BufReader::new(
+        std::fs::File::open(&picture).unwrap(),
+    ));
+    let mut reader = decoder.read_info().unwrap();
+    let mut pixels = vec![0; reader.output_buffer_size().unwrap()];
+    let info = reader.next_frame(&mut pixels).unwrap();
+    assert_eq!((info.width, info.height), (90, 60));
+    let cells = rle_cells(&std::fs::read_to_string(&text).unwrap());
+    for y in 0..60usize {
+        for x in 0..90usize {
+            let dark = pixels[y * 90 + x] < 128;
+            assert_eq!(dark, cells.contains(&(x, y)), "pixel ({x}, {y})");
+        }
+    }
+}
+
+#[test]
+fn a_snapshot_before_any_checkpoint_or_of_a_bad_region_is_refused() {
+    let dir = temp_dir();
+    let job_path = job(dir.path(), 20, 10, "B3/S23");
+    run_deeptime(["run", job_path.to_str().unwrap()]).assert_success();
+    let runs = dir.path().join("runs");
+    let bad = run_deeptime([
+        "snapshot",
+        runs.to_str().unwrap(),
+        "--gen",
+        "5",
+        "--region",
+        "1,2,3",
+    ]);
+    assert_eq!(bad.code, Some(2), "{}", bad.describe());
+    assert!(
+        bad.stderr
+            .contains("--region \"1,2,3\": expected LEFT,TOP,WIDTH,HEIGHT"),
+        "{}",
+        bad.describe()
+    );
+    let empty = temp_dir();
+    let none = run_deeptime(["snapshot", empty.path().to_str().unwrap(), "--gen", "5"]);
+    assert_ne!(none.code, Some(0));
+    assert!(
+        none.stderr.contains("no checkpoints"),
+        "{}",
+        none.describe()
+    );
+}
+
+/// Live cells of a small RLE text, read here without the engine (common
+/// practice: the RLE tags b, o, $ and !).
+fn rle_cells(text: &str) -> std::collections::HashSet<(usize, usize)> {
+    let mut cells = std::collections::HashSet::new();
+    let (mut x, mut y, mut count) = (0usize, 0usize, 0usize);
+    for line in text
+        .lines()
+        .filter(|line| !line.starts_with('x') && !line.starts_with('#'))
+    {
+        for c in line.chars() {
+            match c {
+                '0'..='9' => count = count * 10 + c.to_digit(10).unwrap() as usize,
+                'b' | 'o' | '$' => {
+                    let n = count.max(1);
+                    count = 0;
+                    match c {
+                        'b' => x += n,
+                        'o' => {
+                            for dx in 0..n {
+                                cells.insert((x + dx, y));
+                            }
+                            x += n;
+                        }
+                        _ => {
+                            y += n;
+                            x = 0;
+                        }
+                    }
+                }
+                '!' => return cells,
+                _ => {}
+            }
+        }
+    }
+    cells
+}

@@ -27,6 +27,8 @@ pub enum Command {
     Checkpoints(DirArgs),
     /// Read every checkpoint of a run back whole; exit non-zero naming damage
     Verify(DirArgs),
+    /// The state at any generation of a stored run: figures, RLE or a picture
+    Snapshot(SnapshotArgs),
     /// Run the speed and memory suite; print a table, optionally write JSON
     Bench(BenchArgs),
 }
@@ -94,4 +96,34 @@ pub struct BenchArgs {
     /// Run one part only: reach, stepping, chaotic or numpy
     #[arg(long, value_name = "PART")]
     pub only: Option<String>,
+}
+
+#[derive(Args, Debug)]
+pub struct SnapshotArgs {
+    /// A run's checkpoint folder (the job's checkpoint.dir)
+    pub dir: PathBuf,
+
+    /// The generation: stored, or reached from the nearest earlier checkpoint
+    #[arg(long = "gen", value_name = "G", allow_hyphen_values = true)]
+    pub generation: String,
+
+    /// Only this rectangle of cells: LEFT,TOP,WIDTH,HEIGHT (default: the bounding box)
+    #[arg(long, value_name = "L,T,W,H", allow_hyphen_values = true)]
+    pub region: Option<String>,
+
+    /// Write the state (or the region) as RLE (.rle) or as a picture (.png)
+    #[arg(long, value_name = "FILE")]
+    pub out: Option<PathBuf>,
+
+    /// For pictures: each pixel is 2^SCALE × 2^SCALE cells (default: fit 1024 pixels)
+    #[arg(long, value_name = "SCALE")]
+    pub scale: Option<u32>,
+
+    /// Print exactly one JSON object on standard output
+    #[arg(long)]
+    pub json: bool,
+
+    /// Memory budget for quads, as for evolve
+    #[arg(long, value_name = "SIZE")]
+    pub memory: Option<String>,
 }

@@ -15,6 +15,7 @@ mod memory;
 mod progress;
 mod report;
 mod run;
+mod snapshot;
 mod storage;
 
 use std::process::ExitCode;
@@ -38,6 +39,7 @@ fn main() -> ExitCode {
         Command::Run(args) => run::run(args),
         Command::Checkpoints(args) => inspect::list(args),
         Command::Verify(args) => inspect::verify(args),
+        Command::Snapshot(args) => snapshot::run(args),
         Command::Bench(args) => bench::run(args),
     };
     match outcome {

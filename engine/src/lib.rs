@@ -7,6 +7,7 @@ pub mod direct;
 pub mod generation;
 pub mod pack;
 pub mod pattern;
+pub mod render;
 pub mod rule;
 
 mod advance;

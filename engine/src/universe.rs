@@ -89,10 +89,10 @@ pub enum WriteError {
 
 /// A state of the plane under a rule, at a generation.
 pub struct Universe {
-    store: Store,
+    pub(crate) store: Store,
     rule: Rule,
-    root: Handle,
-    level: u32,
+    pub(crate) root: Handle,
+    pub(crate) level: u32,
     generation: BigUint,
     /// The advance the residual memo was filled for (N's words).
     residual_for: Vec<u64>,
@@ -595,7 +595,7 @@ impl Universe {
 
     /// The aligned quad of `level` whose corner is at (x, y) from the root's
     /// corner, or None when that lies outside the root.
-    fn descend(&self, mut x: BigUint, mut y: BigUint, level: u32) -> Option<Handle> {
+    pub(crate) fn descend(&self, mut x: BigUint, mut y: BigUint, level: u32) -> Option<Handle> {
         let (mut quad, mut at) = (self.root, self.level);
         if x.bits() > at as u64 || y.bits() > at as u64 {
             return None;

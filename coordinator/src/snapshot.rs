@@ -1,0 +1,192 @@
+//! `deeptime snapshot DIR --gen G`: the state at any generation of a stored
+//! run — the stored one if G is stored, else the nearest earlier one
+//! advanced to G — as figures, as RLE of a region, or as a picture.
+
+use std::io::{BufWriter, Write};
+use std::path::Path;
+use std::time::Instant;
+
+use anyhow::{Context, bail};
+use deeptime_engine::generation::parse_generations;
+use deeptime_engine::{Progress, Region, Universe};
+use num_bigint::{BigInt, BigUint};
+
+use crate::checkpoint::Checkpoints;
+use crate::cli::SnapshotArgs;
+use crate::failure::BadInput;
+use crate::report::Report;
+use crate::storage::LocalDir;
+use crate::{memory, progress};
+
+/// Pictures are at most this many pixels on their longer side by default.
+const DEFAULT_PICTURE: u64 = 1024;
+
+pub fn run(args: SnapshotArgs) -> anyhow::Result<()> {
+    let generation =
+        parse_generations(&args.generation).map_err(|error| BadInput(format!("--gen: {error}")))?;
+    let region = args.region.as_deref().map(parse_region).transpose()?;
+    let budget = memory::budget(args.memory.as_deref())?;
+    let started = Instant::now();
+    let checkpoints = Checkpoints::new(Box::new(LocalDir::new(args.dir.clone())));
+    let keys = checkpoints.manifest_keys()?;
+    if keys.is_empty() {
+        bail!("{}: no checkpoints", args.dir.display());
+    }
+    // The newest stored generation at or before G.
+    let mut best = None;
+    let mut earliest: Option<BigUint> = None;
+    for key in &keys {
+        let manifest = checkpoints.manifest(key)?;
+        let stored = manifest.generation()?;
+        if earliest.as_ref().is_none_or(|e| &stored < e) {
+            earliest = Some(stored.clone());
+        }
+        if stored <= generation && best.as_ref().is_none_or(|(g, _)| &stored >= g) {
+            best = Some((stored, manifest));
+        }
+    }
+    let Some((stored, manifest)) = best else {
+        return Err(BadInput(format!(
+            "no checkpoint at or before generation {generation} (the earliest is {})",
+            earliest.map(|e| e.to_string()).unwrap_or_default()
+        ))
+        .into());
+    };
+    let mut universe = checkpoints.load(manifest, budget)?.universe;
+    if stored < generation {
+        let steps = &generation - &stored;
+        eprintln!("deeptime: advancing from the checkpoint at generation {stored}");
+        let line = progress::Line::start("advancing");
+        let mut observe = |progress: &Progress| line.update(progress);
+        let advanced = universe.advance(&steps, Some(&mut observe));
+        line.finish();
+        advanced.with_context(|| format!("advancing {steps} generations"))?;
+    }
+    if let Some(out) = &args.out {
+        write_out(&mut universe, out, region.as_ref(), args.scale)?;
+    }
+    Report::of(&mut universe, started.elapsed())?.print(args.json)
+}
+
+fn parse_region(text: &str) -> Result<Region, BadInput> {
+    let bad = || {
+        BadInput(format!(
+            "--region {text:?}: expected LEFT,TOP,WIDTH,HEIGHT (integers, width and height ≥ 0)"
+        ))
+    };
+    let parts: Vec<&str> = text.split(',').map(str::trim).collect();
+    let [left, top, width, height] = parts.as_slice() else {
+        return Err(bad());
+    };
+    Ok(Region {
+        left: left.parse::<BigInt>().map_err(|_| bad())?,
+        top: top.parse::<BigInt>().map_err(|_| bad())?,
+        width: width.parse().map_err(|_| bad())?,
+        height: height.parse().map_err(|_| bad())?,
+    })
+}
+
+fn write_out(
+    universe: &mut Universe,
+    out: &Path,
+    region: Option<&Region>,
+    scale: Option<u32>,
+) -> anyhow::Result<()> {
+    let extension = out
+        .extension()
+        .and_then(|e| e.to_str())
+        .unwrap_or("")
+        .to_ascii_lowercase();
+    let directory = match out.parent() {
+        Some(parent) if !parent.as_os_str().is_empty() => parent,
+        _ => Path::new("."),
+    };
+    let mut temporary = tempfile::NamedTempFile::new_in(directory)
+        .with_context(|| format!("cannot write {}", out.display()))?;
+    {
+        let mut writer = BufWriter::new(temporary.as_file_mut());
+        match extension.as_str() {
+            "rle" => match region {
+                Some(region) => universe.write_rle_region(&mut writer, region),
+                None => universe.write_rle(&mut writer),
+            }
+            .with_context(|| format!("--out {}", out.display()))?,
+            "png" => draw(universe, &mut writer, region, scale)
+                .with_context(|| format!("--out {}", out.display()))?,
+            _ => {
+                return Err(
+                    BadInput(format!("--out {}: write .rle or .png", out.display())).into(),
+                );
+            }
+        }
+        writer
+            .flush()
+            .with_context(|| format!("cannot write {}", out.display()))?;
+    }
+    temporary
+        .persist(out)
+        .with_context(|| format!("cannot write {}", out.display()))?;
+    Ok(())
+}
+
+/// A grey picture: white where nothing lives, darker the denser.
+fn draw(
+    universe: &Universe,
+    writer: &mut impl Write,
+    region: Option<&Region>,
+    scale: Option<u32>,
+) -> anyhow::Result<()> {
+    let (left, top, width, height) = match region {
+        Some(region) => (
+            region.left.clone(),
+            region.top.clone(),
+            BigUint::from(region.width),
+            BigUint::from(region.height),
+        ),
+        None => match universe.bounding_box() {
+            Some(bbox) => (bbox.left, bbox.top, bbox.width, bbox.height),
+            None => (
+                BigInt::from(0),
+                BigInt::from(0),
+                BigUint::from(1u32),
+                BigUint::from(1u32),
+            ),
+        },
+    };
+    // The scale: as given, else the smallest that fits the default size.
+    let longer = std::cmp::max(width.clone(), height.clone());
+    let scale = scale.unwrap_or_else(|| {
+        let mut scale = 0;
+        while (&longer >> scale) > BigUint::from(DEFAULT_PICTURE) {
+            scale += 1;
+        }
+        scale
+    });
+    let pixels = |cells: &BigUint| -> u64 {
+        let whole: BigUint = (cells + ((BigUint::from(1u32) << scale) - 1u32)) >> scale;
+        u64::try_from(whole).unwrap_or(u64::MAX)
+    };
+    let picture = universe.picture(&left, &top, pixels(&width), pixels(&height), scale)?;
+    let mut encoder = png::Encoder::new(writer, picture.columns.max(1), picture.rows.max(1));
+    encoder.set_color(png::ColorType::Grayscale);
+    encoder.set_depth(png::BitDepth::Eight);
+    let mut png = encoder.write_header()?;
+    let grey: Vec<u8> = if picture.shares.is_empty() {
+        vec![255]
+    } else {
+        picture
+            .shares
+            .iter()
+            .map(|&share| {
+                if share <= 0.0 {
+                    255
+                } else {
+                    (223.0 - 223.0 * share.min(1.0)) as u8
+                }
+            })
+            .collect()
+    };
+    png.write_image_data(&grey)?;
+    png.finish()?;
+    Ok(())
+}
