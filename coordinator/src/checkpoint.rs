@@ -235,6 +235,41 @@ impl Checkpoints {
         Ok(None)
     }
 
+    /// Keeps the newest `keep` checkpoints (at least one) and deletes the
+    /// rest: manifests first, oldest first, then every pack no kept
+    /// manifest needs. Returns (manifests, packs) deleted. A crash part way
+    /// leaves only unneeded packs behind, which the next prune removes.
+    pub fn prune(&self, keep: usize) -> anyhow::Result<(usize, usize)> {
+        let keep = keep.max(1);
+        let keys = self.manifest_keys()?;
+        let cut = keys.len().saturating_sub(keep);
+        let (old, kept) = keys.split_at(cut);
+        // What the kept checkpoints need; a kept manifest that cannot be
+        // read stops the prune rather than risk deleting what it needs.
+        let mut needed = HashSet::new();
+        for key in kept {
+            let manifest = self
+                .manifest(key)
+                .with_context(|| format!("not pruning: cannot read kept checkpoint {key}"))?;
+            needed.extend(manifest.packs.into_iter().map(|pack| pack_key(&pack.name)));
+        }
+        for key in old {
+            self.storage
+                .delete(key)
+                .with_context(|| format!("cannot delete {}", self.storage.locate(key)))?;
+        }
+        let mut packs = 0;
+        for key in self.storage.list("packs/")? {
+            if key.ends_with(".pack") && !needed.contains(&key) {
+                self.storage
+                    .delete(&key)
+                    .with_context(|| format!("cannot delete {}", self.storage.locate(&key)))?;
+                packs += 1;
+            }
+        }
+        Ok((old.len(), packs))
+    }
+
     /// Writes a checkpoint of `universe`: the pack of quads no earlier pack
     /// holds, then the manifest, last. `previous` is the checkpoint it
     /// follows (its packs are needed too); `known` grows with the new ids.

@@ -29,6 +29,8 @@ pub enum Command {
     Verify(DirArgs),
     /// The state at any generation of a stored run: figures, RLE or a picture
     Snapshot(SnapshotArgs),
+    /// Delete all but the newest checkpoints, and the packs only they needed
+    Prune(PruneArgs),
     /// Run the speed and memory suite; print a table, optionally write JSON
     Bench(BenchArgs),
 }
@@ -126,4 +128,14 @@ pub struct SnapshotArgs {
     /// Memory budget for quads, as for evolve
     #[arg(long, value_name = "SIZE")]
     pub memory: Option<String>,
+}
+
+#[derive(Args, Debug)]
+pub struct PruneArgs {
+    /// A run's checkpoint folder (the job's checkpoint.dir)
+    pub dir: PathBuf,
+
+    /// How many of the newest checkpoints to keep (at least 1)
+    #[arg(long, value_name = "N")]
+    pub keep: usize,
 }

@@ -96,3 +96,14 @@ fn short(decimal: &str) -> String {
     }
     format!("{}.{}e{}", &decimal[..1], &decimal[1..4], decimal.len() - 1)
 }
+
+pub fn prune(args: crate::cli::PruneArgs) -> anyhow::Result<()> {
+    let checkpoints = Checkpoints::new(Box::new(LocalDir::new(args.dir.clone())));
+    let (manifests, packs) = checkpoints.prune(args.keep)?;
+    println!(
+        "deleted {manifests} checkpoints and {packs} packs from {}; kept the newest {}",
+        args.dir.display(),
+        args.keep.max(1)
+    );
+    Ok(())
+}

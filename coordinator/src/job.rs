@@ -31,6 +31,7 @@ struct JobFile {
 struct CheckpointFile {
     dir: String,
     every: String,
+    keep: Option<usize>,
 }
 
 /// A job, validated.
@@ -43,6 +44,8 @@ pub struct Job {
     pub memory: Option<String>,
     pub checkpoint_dir: PathBuf,
     pub every: BigUint,
+    /// how many of the newest checkpoints to keep (None: all)
+    pub keep: Option<usize>,
 }
 
 impl Job {
@@ -73,6 +76,11 @@ impl Job {
                 "{place}: checkpoint.every must be at least 1"
             )));
         }
+        if file.checkpoint.keep == Some(0) {
+            return Err(BadInput(format!(
+                "{place}: checkpoint.keep must be at least 1"
+            )));
+        }
         if file.checkpoint.dir.contains("://") {
             return Err(BadInput(format!(
                 "{place}: checkpoint.dir {:?}: only local folders are supported so far",
@@ -92,6 +100,7 @@ impl Job {
             memory: file.memory,
             checkpoint_dir: base.join(&file.checkpoint.dir),
             every,
+            keep: file.checkpoint.keep,
         })
     }
 }

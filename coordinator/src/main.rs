@@ -40,6 +40,7 @@ fn main() -> ExitCode {
         Command::Checkpoints(args) => inspect::list(args),
         Command::Verify(args) => inspect::verify(args),
         Command::Snapshot(args) => snapshot::run(args),
+        Command::Prune(args) => inspect::prune(args),
         Command::Bench(args) => bench::run(args),
     };
     match outcome {

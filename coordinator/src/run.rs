@@ -86,6 +86,9 @@ pub fn run(args: RunArgs) -> anyhow::Result<()> {
             &pattern_digest,
         )?;
         previous = Some(manifest);
+        if let Some(keep) = job.keep {
+            checkpoints.prune(keep)?;
+        }
     }
     Report::of(&mut universe, started.elapsed())?.print(args.json)
 }

@@ -73,6 +73,15 @@ impl Storage for LocalDir {
         Ok(keys)
     }
 
+    fn delete(&self, key: &str) -> io::Result<()> {
+        check_key(key)?;
+        match fs::remove_file(self.root.join(key)) {
+            Ok(()) => Ok(()),
+            Err(error) if error.kind() == io::ErrorKind::NotFound => Ok(()),
+            Err(error) => Err(error),
+        }
+    }
+
     fn locate(&self, key: &str) -> String {
         self.root.join(key).display().to_string()
     }

@@ -25,6 +25,9 @@ pub trait Storage: Send + Sync {
     /// sorted. A missing folder lists as empty.
     fn list(&self, prefix: &str) -> io::Result<Vec<String>>;
 
+    /// Removes the object under `key`; Ok if there was none.
+    fn delete(&self, key: &str) -> io::Result<()>;
+
     /// Where `key` is, for messages: a path or a URL.
     fn locate(&self, key: &str) -> String;
 }
