@@ -28,14 +28,23 @@ fn the_quick_suite_runs_and_reports_every_figure() {
         .iter()
         .map(|f| f["group"].as_str().unwrap())
         .collect();
-    for group in ["reach", "stepping", "chaotic", "pressure", "numpy"] {
+    for group in [
+        "reach",
+        "stepping",
+        "chaotic",
+        "pressure",
+        "numpy",
+        "checkpoint",
+    ] {
         assert!(groups.contains(&group), "no {group} figure in {groups:?}");
     }
     for figure in figures {
         let value = figure["value"].as_f64().unwrap();
         assert!(value.is_finite() && value > 0.0, "{figure}");
-        assert!(figure["goal"].is_object(), "{figure}");
-        assert!(figure["met"].is_boolean(), "{figure}");
+        if !figure["goal"].is_null() {
+            assert!(figure["goal"].is_object(), "{figure}");
+            assert!(figure["met"].is_boolean(), "{figure}");
+        }
     }
     // The table names every figure.
     for figure in figures {

@@ -37,6 +37,10 @@ pub const PARTS: &[Part] = &[
         name: "numpy",
         run: numpy,
     },
+    Part {
+        name: "checkpoints",
+        run: checkpoints,
+    },
 ];
 
 /// The Gosper glider gun (the usual RLE, from memory).
@@ -373,4 +377,87 @@ fn run_python(
         String::from_utf8_lossy(&output.stderr).trim()
     );
     serde_json::from_slice(&output.stdout).context("the numpy program printed no JSON")
+}
+
+/// Checkpoints of a large chaotic state: bytes per quad on disk, write and
+/// resume speed, and an incremental checkpoint against a full one.
+fn checkpoints(settings: &Settings) -> anyhow::Result<Vec<Figure>> {
+    use std::collections::HashSet;
+
+    use crate::checkpoint::Checkpoints;
+    use crate::storage::LocalDir;
+
+    let side = if settings.quick { 512 } else { 23_200 };
+    let pattern = soup(side, 3);
+    let rule = Rule::LIFE;
+    let mut universe = Universe::from_pattern(&pattern, rule, BUDGET)?;
+    let (inner, leaves) = universe.live_quads();
+    let quads = inner + leaves;
+    let directory = tempfile::tempdir()?;
+    let checkpoints = Checkpoints::new(Box::new(LocalDir::new(directory.path().to_path_buf())));
+    let digest = universe.digest()?;
+    let mut known = HashSet::new();
+    let (full, full_time) =
+        timed(|| checkpoints.write(&mut universe, None, &mut known, "bench", &digest))?;
+    let full_bytes = full.pack_bytes();
+    let (loaded, resume_time) = timed(|| checkpoints.load(full.clone(), BUDGET))?;
+    ensure!(
+        loaded.manifest.root == digest.to_string(),
+        "the resumed state differs from the one written"
+    );
+    drop(loaded);
+    // Incremental: a few generations on, only what changed is written.
+    universe.advance(&BigUint::from(16u32), None)?;
+    let (incremental, incremental_time) =
+        timed(|| checkpoints.write(&mut universe, Some(&full), &mut known, "bench", &digest))?;
+    let new_bytes = incremental.pack_bytes() - full_bytes;
+    let label = format!("{side}² soup ({} quads)", super::compact(quads as f64));
+    Ok(vec![
+        Figure::new(
+            "checkpoint",
+            &format!("{label}: bytes per quad on disk"),
+            full_bytes as f64 / quads as f64,
+            "B",
+            Some(Goal::AtMost(8.0)),
+        )
+        .detail(format!(
+            "{} for {quads} quads, zstd level 3",
+            human_bytes(full_bytes)
+        )),
+        Figure::new(
+            "checkpoint",
+            &format!("{label}: full checkpoint written, quads per second"),
+            quads as f64 / full_time.as_secs_f64(),
+            "quads/s",
+            None,
+        )
+        .detail(format!(
+            "{:.2} s including content ids, compression and fsync",
+            full_time.as_secs_f64()
+        )),
+        Figure::new(
+            "checkpoint",
+            &format!("{label}: resumed, quads per second"),
+            quads as f64 / resume_time.as_secs_f64(),
+            "quads/s",
+            None,
+        )
+        .detail(format!(
+            "{:.2} s reading, checking and rebuilding the state",
+            resume_time.as_secs_f64()
+        )),
+        Figure::new(
+            "checkpoint",
+            &format!("{label}, 16 generations on: incremental / full cost"),
+            incremental_time.as_secs_f64() / full_time.as_secs_f64(),
+            "×",
+            None,
+        )
+        .detail(format!(
+            "{:.2} s and {} (of the full {}): a chaotic soup changes almost everywhere",
+            incremental_time.as_secs_f64(),
+            human_bytes(new_bytes),
+            human_bytes(full_bytes)
+        )),
+    ])
 }
