@@ -8,6 +8,7 @@ use std::time::Instant;
 use anyhow::Context;
 use deeptime_engine::{Progress, Universe};
 use num_bigint::BigUint;
+use num_traits::ToPrimitive;
 
 use crate::checkpoint::Checkpoints;
 use crate::cli::RunArgs;
@@ -70,13 +71,27 @@ pub fn run(args: RunArgs) -> anyhow::Result<()> {
         ))
         .into());
     }
+    // One progress line for the whole run: generation, population at the
+    // last checkpoint, rate, time left and memory.
+    let from = universe.generation().clone();
+    let line = progress::Line::start(&job.name);
+    let advancing = Instant::now();
     while universe.generation() < &job.target {
         let left: BigUint = &job.target - universe.generation();
         let step = left.min(job.every.clone());
-        let line = progress::Line::start(&format!("to {}", universe.generation() + &step));
-        let mut observe = |progress: &Progress| line.update(progress);
+        let before = share(&(universe.generation() - &from), &(&job.target - &from));
+        let span = share(&step, &(&job.target - &from));
+        let population = previous.as_ref().map_or("?", |m| m.population.as_str());
+        let seconds = advancing.elapsed().as_secs_f64().max(1e-9);
+        let rate = approximate(&(universe.generation() - &from)) / seconds;
+        let note = format!(
+            "gen {} pop {} {}/s ",
+            short(&universe.generation().to_string()),
+            short(population),
+            short_float(rate)
+        );
+        let mut observe = |progress: &Progress| line.update_part(before, span, progress, &note);
         let advanced = universe.advance(&step, Some(&mut observe));
-        line.finish();
         advanced.with_context(|| format!("advancing {step} generations"))?;
         let manifest = checkpoints.write(
             &mut universe,
@@ -90,5 +105,39 @@ pub fn run(args: RunArgs) -> anyhow::Result<()> {
             checkpoints.prune(keep)?;
         }
     }
+    line.finish();
     Report::of(&mut universe, started.elapsed())?.print(args.json)
+}
+
+/// `part / whole` as a float, for big integers of any size.
+fn share(part: &BigUint, whole: &BigUint) -> f64 {
+    let drop = whole.bits().max(part.bits()).saturating_sub(60);
+    let part = (part >> drop).to_f64().unwrap_or(0.0);
+    let whole = (whole >> drop)
+        .to_f64()
+        .unwrap_or(1.0)
+        .max(f64::MIN_POSITIVE);
+    part / whole
+}
+
+/// A big integer as the nearest float (infinite beyond about 10^308).
+fn approximate(value: &BigUint) -> f64 {
+    let drop = value.bits().saturating_sub(60);
+    (value >> drop).to_f64().unwrap_or(0.0) * 2f64.powi(drop.min(2000) as i32)
+}
+
+/// A decimal shortened for a progress line.
+fn short(decimal: &str) -> String {
+    if decimal.len() <= 12 {
+        return decimal.to_string();
+    }
+    format!("{}.{}e{}", &decimal[..1], &decimal[1..3], decimal.len() - 1)
+}
+
+fn short_float(value: f64) -> String {
+    if value < 1e6 {
+        format!("{value:.0}")
+    } else {
+        format!("{value:.2e}")
+    }
 }
