@@ -426,3 +426,96 @@ fn retention_bounds_the_checkpoints_and_keeps_what_they_need() {
     );
     assert_eq!(digest_of(&resumed), evolved(dir.path(), 340));
 }
+
+/// A tmpfs of `size` mounted on a fresh folder, unmounted when dropped
+/// (the tests run as root, as CI does).
+struct SmallDisk {
+    path: PathBuf,
+    _parent: tempfile::TempDir,
+}
+
+impl SmallDisk {
+    fn mount(size: &str) -> SmallDisk {
+        let parent = temp_dir();
+        let path = parent.path().join("disk");
+        std::fs::create_dir(&path).unwrap();
+        let status = Command::new("mount")
+            .args(["-t", "tmpfs", "-o", &format!("size={size}"), "tmpfs"])
+            .arg(&path)
+            .status()
+            .expect("mount runs");
+        assert!(
+            status.success(),
+            "mounting a tmpfs needs root (CI runs as root)"
+        );
+        SmallDisk {
+            path,
+            _parent: parent,
+        }
+    }
+
+    fn read_only(&self) {
+        let status = Command::new("mount")
+            .args(["-o", "remount,ro"])
+            .arg(&self.path)
+            .status()
+            .unwrap();
+        assert!(status.success());
+    }
+}
+
+impl Drop for SmallDisk {
+    fn drop(&mut self) {
+        let _ = Command::new("umount").arg(&self.path).status();
+    }
+}
+
+#[test]
+fn a_full_disk_or_read_only_folder_is_a_clear_error_and_keeps_what_is_stored() {
+    // The run's folder on a 200 KiB disk: a 512² soup's checkpoints fill it.
+    let disk = SmallDisk::mount("200k");
+    let dir = temp_dir();
+    let job_path = job_of(dir.path(), 512, 400, 20, "B3/S23");
+    let text = std::fs::read_to_string(&job_path).unwrap().replace(
+        "dir = \"runs\"",
+        &format!("dir = {:?}", disk.path.join("runs")),
+    );
+    std::fs::write(&job_path, text).unwrap();
+    let full = run_deeptime(["run", job_path.to_str().unwrap()]);
+    assert_eq!(full.code, Some(1), "{}", full.describe());
+    let message = full.stderr.trim();
+    assert_eq!(message.lines().count(), 1, "{message}");
+    assert!(
+        message.contains("cannot write") && message.contains("No space left on device"),
+        "{message}"
+    );
+    let runs = disk.path.join("runs");
+    let verify = run_deeptime(["verify", runs.to_str().unwrap()]);
+    verify.assert_success();
+    let stored = verify
+        .stdout
+        .lines()
+        .filter(|line| line.starts_with("ok"))
+        .count();
+    assert!(stored >= 1, "{}", verify.describe());
+
+    // Read-only: the run resumes, then cannot write, and says so.
+    disk.read_only();
+    let refused = run_deeptime(["run", job_path.to_str().unwrap()]);
+    assert_eq!(refused.code, Some(1), "{}", refused.describe());
+    assert!(
+        refused.stderr.contains("Read-only file system"),
+        "{}",
+        refused.describe()
+    );
+    let verify = run_deeptime(["verify", runs.to_str().unwrap()]);
+    verify.assert_success();
+    assert_eq!(
+        verify
+            .stdout
+            .lines()
+            .filter(|line| line.starts_with("ok"))
+            .count(),
+        stored
+    );
+}
