@@ -519,3 +519,55 @@ fn a_full_disk_or_read_only_folder_is_a_clear_error_and_keeps_what_is_stored() {
         stored
     );
 }
+
+#[test]
+fn a_run_on_s3_compatible_storage_matches_the_local_one() {
+    // tests/run-tests starts an S3-compatible server on loopback and names
+    // a bucket in it; the run, its verification and a snapshot go there.
+    let url = std::env::var("DEEPTIME_S3_URL").expect(
+        "DEEPTIME_S3_URL is not set: run the tests with tests/run-tests, which starts an \
+         S3-compatible server on loopback",
+    );
+    let nonce = std::time::SystemTime::now()
+        .duration_since(std::time::UNIX_EPOCH)
+        .unwrap()
+        .as_nanos();
+    let remote = format!("{url}/run-{nonce}");
+    let dir = temp_dir();
+    let job_path = job(dir.path(), 300, 50, "B3/S23");
+    let text = std::fs::read_to_string(&job_path)
+        .unwrap()
+        .replace("dir = \"runs\"", &format!("dir = \"{remote}\""));
+    std::fs::write(&job_path, text).unwrap();
+    let done = run_deeptime(["run", job_path.to_str().unwrap(), "--json"]);
+    assert_eq!(digest_of(&done), evolved(dir.path(), 300));
+    let verify = run_deeptime(["verify", &remote]);
+    verify.assert_success();
+    assert_eq!(
+        verify
+            .stdout
+            .lines()
+            .filter(|l| l.starts_with("ok"))
+            .count(),
+        7
+    );
+    let listed = run_deeptime(["checkpoints", &remote, "--json"]);
+    listed.assert_success();
+    let rows: serde_json::Value = serde_json::from_str(&listed.stdout).unwrap();
+    assert_eq!(rows.as_array().unwrap().len(), 7);
+    let snap = run_deeptime(["snapshot", &remote, "--gen", "275", "--json"]);
+    assert_eq!(digest_of(&snap), evolved(dir.path(), 275));
+    // Resumed from S3 after the target grows.
+    let job_path2 = job(dir.path(), 350, 50, "B3/S23");
+    let text = std::fs::read_to_string(&job_path2)
+        .unwrap()
+        .replace("dir = \"runs\"", &format!("dir = \"{remote}\""));
+    std::fs::write(&job_path2, text).unwrap();
+    let more = run_deeptime(["run", job_path2.to_str().unwrap(), "--json"]);
+    assert!(
+        more.stderr.contains("at generation 300"),
+        "{}",
+        more.describe()
+    );
+    assert_eq!(digest_of(&more), evolved(dir.path(), 350));
+}

@@ -6,7 +6,6 @@ use serde::Serialize;
 
 use crate::checkpoint::Checkpoints;
 use crate::cli::DirArgs;
-use crate::storage::LocalDir;
 
 #[derive(Serialize)]
 struct Row {
@@ -18,7 +17,7 @@ struct Row {
 }
 
 pub fn list(args: DirArgs) -> anyhow::Result<()> {
-    let checkpoints = Checkpoints::new(Box::new(LocalDir::new(args.dir.clone())));
+    let checkpoints = Checkpoints::new(crate::storage::open(&args.dir)?);
     let mut rows = Vec::new();
     for key in checkpoints.manifest_keys()? {
         let manifest = checkpoints.manifest(&key)?;
@@ -56,7 +55,7 @@ pub fn list(args: DirArgs) -> anyhow::Result<()> {
 }
 
 pub fn verify(args: DirArgs) -> anyhow::Result<()> {
-    let checkpoints = Checkpoints::new(Box::new(LocalDir::new(args.dir.clone())));
+    let checkpoints = Checkpoints::new(crate::storage::open(&args.dir)?);
     let keys = checkpoints.manifest_keys()?;
     if keys.is_empty() {
         bail!("{}: no checkpoints to verify", args.dir.display());
@@ -98,7 +97,7 @@ fn short(decimal: &str) -> String {
 }
 
 pub fn prune(args: crate::cli::PruneArgs) -> anyhow::Result<()> {
-    let checkpoints = Checkpoints::new(Box::new(LocalDir::new(args.dir.clone())));
+    let checkpoints = Checkpoints::new(crate::storage::open(&args.dir)?);
     let (manifests, packs) = checkpoints.prune(args.keep)?;
     println!(
         "deleted {manifests} checkpoints and {packs} packs from {}; kept the newest {}",

@@ -81,10 +81,10 @@ impl Job {
                 "{place}: checkpoint.keep must be at least 1"
             )));
         }
-        if file.checkpoint.dir.contains("://") {
+        let dir = &file.checkpoint.dir;
+        if dir.contains("://") && !dir.starts_with("s3://") {
             return Err(BadInput(format!(
-                "{place}: checkpoint.dir {:?}: only local folders are supported so far",
-                file.checkpoint.dir
+                "{place}: checkpoint.dir {dir:?}: a local folder or an s3:// URL"
             )));
         }
         let name = file.name.unwrap_or_else(|| {
@@ -98,7 +98,12 @@ impl Job {
             rule: file.rule,
             target,
             memory: file.memory,
-            checkpoint_dir: base.join(&file.checkpoint.dir),
+            // A URL as it is; a folder relative to the job file.
+            checkpoint_dir: if dir.starts_with("s3://") {
+                PathBuf::from(dir)
+            } else {
+                base.join(dir)
+            },
             every,
             keep: file.checkpoint.keep,
         })

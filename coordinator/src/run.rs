@@ -15,7 +15,6 @@ use crate::cli::RunArgs;
 use crate::failure::BadInput;
 use crate::job::Job;
 use crate::report::Report;
-use crate::storage::LocalDir;
 use crate::{input, memory, progress};
 
 pub fn run(args: RunArgs) -> anyhow::Result<()> {
@@ -28,7 +27,7 @@ pub fn run(args: RunArgs) -> anyhow::Result<()> {
         .with_context(|| format!("{}: building the pattern", loaded.name))?;
     let pattern_digest = fresh.digest()?;
 
-    let checkpoints = Checkpoints::new(Box::new(LocalDir::new(job.checkpoint_dir.clone())));
+    let checkpoints = Checkpoints::new(crate::storage::open(&job.checkpoint_dir)?);
     let resumed =
         checkpoints.latest_valid(budget, |warning| eprintln!("deeptime: warning: {warning}"))?;
     let (mut universe, mut previous, mut known) = match resumed {

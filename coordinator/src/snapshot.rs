@@ -15,7 +15,6 @@ use crate::checkpoint::Checkpoints;
 use crate::cli::SnapshotArgs;
 use crate::failure::BadInput;
 use crate::report::Report;
-use crate::storage::LocalDir;
 use crate::{memory, progress};
 
 /// Pictures are at most this many pixels on their longer side by default.
@@ -27,7 +26,7 @@ pub fn run(args: SnapshotArgs) -> anyhow::Result<()> {
     let region = args.region.as_deref().map(parse_region).transpose()?;
     let budget = memory::budget(args.memory.as_deref())?;
     let started = Instant::now();
-    let checkpoints = Checkpoints::new(Box::new(LocalDir::new(args.dir.clone())));
+    let checkpoints = Checkpoints::new(crate::storage::open(&args.dir)?);
     let keys = checkpoints.manifest_keys()?;
     if keys.is_empty() {
         bail!("{}: no checkpoints", args.dir.display());

@@ -86,33 +86,3 @@ impl Storage for LocalDir {
         self.root.join(key).display().to_string()
     }
 }
-
-#[cfg(test)]
-mod tests {
-    use super::*;
-
-    #[test]
-    fn objects_are_written_once_and_listed_in_order() {
-        let dir = tempfile::tempdir().unwrap();
-        let store = LocalDir::new(dir.path().to_path_buf());
-        assert_eq!(store.list("manifests/").unwrap(), Vec::<String>::new());
-        assert!(store.put_new("manifests/0000000002.json", b"two").unwrap());
-        assert!(store.put_new("manifests/0000000001.json", b"one").unwrap());
-        assert!(
-            !store
-                .put_new("manifests/0000000001.json", b"other")
-                .unwrap()
-        );
-        assert_eq!(
-            store.get("manifests/0000000001.json").unwrap().unwrap(),
-            b"one"
-        );
-        assert_eq!(store.get("manifests/0000000009.json").unwrap(), None);
-        assert_eq!(
-            store.list("manifests/").unwrap(),
-            vec!["manifests/0000000001.json", "manifests/0000000002.json"]
-        );
-        assert!(store.get("../etc/passwd").is_err());
-        assert!(store.put_new("/abs", b"x").is_err());
-    }
-}
