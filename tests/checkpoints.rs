@@ -571,3 +571,34 @@ fn a_run_on_s3_compatible_storage_matches_the_local_one() {
     );
     assert_eq!(digest_of(&more), evolved(dir.path(), 350));
 }
+
+#[test]
+fn a_prune_while_a_run_writes_is_refused() {
+    // Common practice for a write-once store with deletion: one writer at
+    // a time, so a prune can never delete a pack a running job just wrote.
+    let dir = temp_dir();
+    let job = job_of(dir.path(), 512, 3000, 10, "B3/S23");
+    let mut child = Command::new(deeptime_bin())
+        .arg("run")
+        .arg(&job)
+        .stdout(Stdio::null())
+        .stderr(Stdio::null())
+        .spawn()
+        .unwrap();
+    std::thread::sleep(Duration::from_millis(400));
+    let runs = dir.path().join("runs");
+    let prune = run_deeptime(["prune", runs.to_str().unwrap(), "--keep", "1"]);
+    let still_running = child.try_wait().unwrap().is_none();
+    child.kill().unwrap();
+    child.wait().unwrap();
+    assert!(still_running, "the run ended before the prune");
+    assert_eq!(prune.code, Some(1), "{}", prune.describe());
+    assert!(
+        prune.stderr.contains("another deeptime process is writing"),
+        "{}",
+        prune.describe()
+    );
+    // With the run gone, the prune goes ahead.
+    run_deeptime(["prune", runs.to_str().unwrap(), "--keep", "1"]).assert_success();
+    run_deeptime(["verify", runs.to_str().unwrap()]).assert_success();
+}

@@ -18,8 +18,9 @@ pub const FORMAT: &str = "deeptime-checkpoint";
 pub const VERSION: u32 = 1;
 /// Manifests larger than this are not read (a real one is a few KiB).
 const MAX_MANIFEST_BYTES: usize = 64 << 20;
-/// A checkpoint that would need more packs than this writes its whole
-/// state into one pack instead, so manifests and reads stay bounded.
+/// A manifest lists at most this many packs: the checkpoint after one that
+/// lists this many writes its whole state into one pack, so manifests and
+/// reads stay bounded.
 pub const MAX_PACKS: usize = 64;
 
 /// One stored generation.
@@ -100,6 +101,13 @@ impl Checkpoints {
         Checkpoints { storage }
     }
 
+    /// Takes the store's writer lock (see `Storage::lock`).
+    pub fn lock(&self) -> anyhow::Result<Option<std::fs::File>> {
+        self.storage
+            .lock()
+            .with_context(|| format!("cannot lock {}", self.storage.locate(".lock")))
+    }
+
     /// The manifest keys, oldest first.
     pub fn manifest_keys(&self) -> anyhow::Result<Vec<String>> {
         let keys = self
@@ -138,6 +146,18 @@ impl Checkpoints {
         }
         if Manifest::key(manifest.sequence) != key {
             bail!("{place}: holds sequence {}", manifest.sequence);
+        }
+        if manifest.packs.len() > MAX_PACKS {
+            bail!(
+                "{place}: lists {} packs (at most {MAX_PACKS})",
+                manifest.packs.len()
+            );
+        }
+        let mut names = HashSet::new();
+        for pack in &manifest.packs {
+            if !names.insert(pack.name.as_str()) {
+                bail!("{place}: lists pack {} twice", pack.name);
+            }
         }
         Ok(manifest)
     }
@@ -241,19 +261,22 @@ impl Checkpoints {
     /// leaves only unneeded packs behind, which the next prune removes.
     pub fn prune(&self, keep: usize) -> anyhow::Result<(usize, usize)> {
         let keep = keep.max(1);
-        let keys = self.manifest_keys()?;
-        let cut = keys.len().saturating_sub(keep);
-        let (old, kept) = keys.split_at(cut);
-        // What the kept checkpoints need; a kept manifest that cannot be
-        // read stops the prune rather than risk deleting what it needs.
-        let mut needed = HashSet::new();
-        for key in kept {
-            let manifest = self
-                .manifest(key)
-                .with_context(|| format!("not pruning: cannot read kept checkpoint {key}"))?;
-            needed.extend(manifest.packs.into_iter().map(|pack| pack_key(&pack.name)));
+        // Only checkpoints that can be read count towards `keep`; damaged
+        // manifests are left alone (verify reports them).
+        let mut readable = Vec::new();
+        for key in self.manifest_keys()? {
+            if let Ok(manifest) = self.manifest(&key) {
+                readable.push((key, manifest));
+            }
         }
-        for key in old {
+        let cut = readable.len().saturating_sub(keep);
+        let (old, kept) = readable.split_at(cut);
+        let mut needed = HashSet::new();
+        for (_, manifest) in kept {
+            needed.extend(manifest.packs.iter().map(|pack| pack_key(&pack.name)));
+        }
+        let old: Vec<&String> = old.iter().map(|(key, _)| key).collect();
+        for key in &old {
             self.storage
                 .delete(key)
                 .with_context(|| format!("cannot delete {}", self.storage.locate(key)))?;
@@ -296,9 +319,24 @@ impl Checkpoints {
         {
             let name = pack_name(&bytes);
             let key = pack_key(&name);
-            self.storage
+            let place = self.storage.locate(&key);
+            let wrote = self
+                .storage
                 .put_new(&key, &bytes)
-                .with_context(|| format!("cannot write {}", self.storage.locate(&key)))?;
+                .with_context(|| format!("cannot write {place}"))?;
+            // The same pack may be there from an earlier attempt: use it
+            // only if it is whole, else put the good bytes in its place.
+            if !wrote {
+                let stored = self
+                    .storage
+                    .get(&key)
+                    .with_context(|| format!("cannot read {place}"))?;
+                if stored.as_deref() != Some(bytes.as_slice()) {
+                    self.storage
+                        .replace(&key, &bytes)
+                        .with_context(|| format!("cannot repair {place}"))?;
+                }
+            }
             packs.push(PackEntry {
                 name,
                 bytes: bytes.len() as u64,

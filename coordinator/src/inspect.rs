@@ -20,7 +20,13 @@ pub fn list(args: DirArgs) -> anyhow::Result<()> {
     let checkpoints = Checkpoints::new(crate::storage::open(&args.dir)?);
     let mut rows = Vec::new();
     for key in checkpoints.manifest_keys()? {
-        let manifest = checkpoints.manifest(&key)?;
+        let manifest = match checkpoints.manifest(&key) {
+            Ok(manifest) => manifest,
+            Err(error) => {
+                eprintln!("deeptime: warning: skipping damaged checkpoint: {error:#}");
+                continue;
+            }
+        };
         rows.push(Row {
             sequence: manifest.sequence,
             pack_bytes: manifest.pack_bytes(),
@@ -98,6 +104,7 @@ fn short(decimal: &str) -> String {
 
 pub fn prune(args: crate::cli::PruneArgs) -> anyhow::Result<()> {
     let checkpoints = Checkpoints::new(crate::storage::open(&args.dir)?);
+    let _lock = checkpoints.lock()?;
     let (manifests, packs) = checkpoints.prune(args.keep)?;
     println!(
         "deleted {manifests} checkpoints and {packs} packs from {}; kept the newest {}",

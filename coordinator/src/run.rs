@@ -28,6 +28,8 @@ pub fn run(args: RunArgs) -> anyhow::Result<()> {
     let pattern_digest = fresh.digest()?;
 
     let checkpoints = Checkpoints::new(crate::storage::open(&job.checkpoint_dir)?);
+    // One writer at a time: held until the run ends.
+    let _lock = checkpoints.lock()?;
     let resumed =
         checkpoints.latest_valid(budget, |warning| eprintln!("deeptime: warning: {warning}"))?;
     let (mut universe, mut previous, mut known) = match resumed {
@@ -100,8 +102,10 @@ pub fn run(args: RunArgs) -> anyhow::Result<()> {
             &pattern_digest,
         )?;
         previous = Some(manifest);
-        if let Some(keep) = job.keep {
-            checkpoints.prune(keep)?;
+        if let Some(keep) = job.keep
+            && let Err(error) = checkpoints.prune(keep)
+        {
+            eprintln!("deeptime: warning: retention: {error:#}");
         }
     }
     line.finish();

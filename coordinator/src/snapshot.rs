@@ -31,27 +31,57 @@ pub fn run(args: SnapshotArgs) -> anyhow::Result<()> {
     if keys.is_empty() {
         bail!("{}: no checkpoints", args.dir.display());
     }
-    // The newest stored generation at or before G.
-    let mut best = None;
+    // The stored generations at or before G, newest first; damaged
+    // manifests and checkpoints are skipped with a warning.
+    let mut candidates = Vec::new();
     let mut earliest: Option<BigUint> = None;
     for key in &keys {
-        let manifest = checkpoints.manifest(key)?;
+        let manifest = match checkpoints.manifest(key) {
+            Ok(manifest) => manifest,
+            Err(error) => {
+                eprintln!("deeptime: warning: skipping damaged checkpoint: {error:#}");
+                continue;
+            }
+        };
         let stored = manifest.generation()?;
         if earliest.as_ref().is_none_or(|e| &stored < e) {
             earliest = Some(stored.clone());
         }
-        if stored <= generation && best.as_ref().is_none_or(|(g, _)| &stored >= g) {
-            best = Some((stored, manifest));
+        if stored <= generation {
+            candidates.push((stored, manifest));
         }
     }
-    let Some((stored, manifest)) = best else {
+    candidates.sort_by(|a, b| b.0.cmp(&a.0));
+    if candidates.is_empty() {
         return Err(BadInput(format!(
             "no checkpoint at or before generation {generation} (the earliest is {})",
-            earliest.map(|e| e.to_string()).unwrap_or_default()
+            earliest
+                .map(|e| e.to_string())
+                .unwrap_or_else(|| "none".to_string())
         ))
         .into());
+    }
+    let mut opened = None;
+    for (stored, manifest) in candidates {
+        match checkpoints.load(manifest, budget) {
+            Ok(loaded) => {
+                opened = Some((stored, loaded.universe));
+                break;
+            }
+            Err(error) => {
+                if error
+                    .chain()
+                    .any(|cause| cause.is::<deeptime_engine::BudgetExceeded>())
+                {
+                    return Err(error);
+                }
+                eprintln!("deeptime: warning: skipping damaged checkpoint: {error:#}");
+            }
+        }
+    }
+    let Some((stored, mut universe)) = opened else {
+        bail!("no undamaged checkpoint at or before generation {generation}");
     };
-    let mut universe = checkpoints.load(manifest, budget)?.universe;
     if stored < generation {
         let steps = &generation - &stored;
         eprintln!("deeptime: advancing from the checkpoint at generation {stored}");
@@ -161,11 +191,20 @@ fn draw(
         }
         scale
     });
-    let pixels = |cells: &BigUint| -> u64 {
-        let whole: BigUint = (cells + ((BigUint::from(1u32) << scale) - 1u32)) >> scale;
+    // Pixels start at multiples of 2^scale at or before the corner, so
+    // count them from there: every cell of the region is drawn.
+    let pixel = BigInt::from(1u32) << scale;
+    let pixels = |start: &BigInt, cells: &BigUint| -> u64 {
+        let before = ((start % &pixel) + &pixel) % &pixel; // start mod 2^scale, ≥ 0
+        let span = before + BigInt::from(cells.clone());
+        let whole: BigInt = (span + &pixel - 1u32) >> scale;
         u64::try_from(whole).unwrap_or(u64::MAX)
     };
-    let picture = universe.picture(&left, &top, pixels(&width), pixels(&height), scale)?;
+    let (columns, rows) = (pixels(&left, &width), pixels(&top, &height));
+    if columns == 0 || rows == 0 {
+        return Err(BadInput("the region to draw is empty".to_string()).into());
+    }
+    let picture = universe.picture(&left, &top, columns, rows, scale)?;
     let mut encoder = png::Encoder::new(writer, picture.columns.max(1), picture.rows.max(1));
     encoder.set_color(png::ColorType::Grayscale);
     encoder.set_depth(png::BitDepth::Eight);

@@ -252,8 +252,9 @@ impl Reader {
                 format!("body of {body_len} bytes is over the limit"),
             ));
         }
-        // Each record takes at least 2 bytes: a count beyond that is a lie.
-        if records > body_len / 2 + 1 {
+        // Each record takes at least 6 bytes (an inner quad of four empty
+        // references): a count beyond that is a lie.
+        if records > body_len / 6 + 1 {
             return Err(malformed(
                 16,
                 format!("{records} records cannot fit {body_len} bytes"),
@@ -269,7 +270,8 @@ impl Reader {
                 format!("body is {} bytes, the header says {body_len}", body.len()),
             ));
         }
-        let mut local: Vec<(Handle, u32, ContentId)> = Vec::with_capacity(records as usize);
+        let mut local: Vec<(Handle, u32, ContentId)> =
+            Vec::with_capacity((records as usize).min(body.len() / 6 + 1));
         let mut at = 0usize;
         while at < body.len() {
             let start = at;
@@ -284,7 +286,9 @@ impl Reader {
                     at += 8;
                     let handle = store.leaf(bits)?;
                     let id = ContentId::of_leaf(bits);
-                    self.quads.insert(id, (handle, LEAF_LEVEL));
+                    if self.quads.insert(id, (handle, LEAF_LEVEL)).is_some() {
+                        return Err(malformed(start, format!("quad {id} is stored twice")));
+                    }
                     local.push((handle, LEAF_LEVEL, id));
                 }
                 TAG_INNER => {
@@ -351,8 +355,13 @@ impl Reader {
                         kid_ids[slot] = id;
                     }
                     let handle = store.join(kids)?;
+                    if handle == store.known_empty(level) {
+                        return Err(malformed(start, "an empty quad is stored, not referred to"));
+                    }
                     let id = ContentId::of_inner(level, kid_ids);
-                    self.quads.insert(id, (handle, level));
+                    if self.quads.insert(id, (handle, level)).is_some() {
+                        return Err(malformed(start, format!("quad {id} is stored twice")));
+                    }
                     local.push((handle, level, id));
                 }
                 other => return Err(malformed(start, format!("unknown record tag {other}"))),

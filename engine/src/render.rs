@@ -84,6 +84,22 @@ impl Universe {
             picture: &mut picture,
             counts: HashMap::default(),
         };
+        if self.level <= scale {
+            // The root is at most a pixel: each child lies whole in one of
+            // the four pixels around the origin (absolute pixel -1 or 0).
+            let left_pixel = floor_div(left.clone());
+            let top_pixel = floor_div(top.clone());
+            for (at, kid) in self.store.kids(self.root).into_iter().enumerate() {
+                let x = BigInt::from(at as i64 % 2 - 1) - &left_pixel;
+                let y = BigInt::from(at as i64 / 2 - 1) - &top_pixel;
+                if let (Some(x), Some(y)) = (x.to_i64(), y.to_i64()) {
+                    let population = figures::population(&self.store, kid, self.level - 1);
+                    let share = share_of(&population, scale);
+                    painter.add(x, y, share);
+                }
+            }
+            return Ok(picture);
+        }
         let top_level = scale + BLOCK;
         if self.level <= top_level {
             // The whole root: its corner is pixel 0.
@@ -121,6 +137,24 @@ impl Universe {
     }
 }
 
+/// `population` over 4^level, kept above zero when anything lives (so
+/// sparse life still shows).
+fn share_of(population: &BigUint, level: u32) -> f32 {
+    let dropped = population.bits().saturating_sub(60);
+    let mantissa = (population >> dropped).to_f64().unwrap_or(0.0);
+    let exponent = 2 * level as i64 - dropped as i64;
+    let share = if exponent > 1000 {
+        0.0
+    } else {
+        mantissa * 2f64.powi(-(exponent as i32))
+    };
+    if population.bits() > 0 {
+        (share as f32).max(f32::MIN_POSITIVE)
+    } else {
+        0.0
+    }
+}
+
 struct Painter<'a> {
     store: &'a Store,
     scale: u32,
@@ -133,6 +167,7 @@ struct Painter<'a> {
 impl Painter<'_> {
     /// Paints `quad` (of `level` ≥ scale) whose corner is pixel `corner`.
     fn paint(&mut self, quad: Handle, level: u32, corner: (i64, i64)) {
+        debug_assert!(level >= self.scale.min(LEAF_LEVEL));
         let span = 1i64 << (level.saturating_sub(self.scale)).min(62);
         let (x, y) = corner;
         if x >= self.window.2 || y >= self.window.3 || x + span <= 0 || y + span <= 0 {
@@ -177,28 +212,24 @@ impl Painter<'_> {
         }
     }
 
-    /// The share of live cells in a quad: its population over 4^level,
-    /// kept above zero when anything lives (so sparse life still shows).
+    /// The share of live cells in a quad of the pixel's level.
     fn share(&mut self, quad: Handle, level: u32) -> f32 {
         if let Some(&share) = self.counts.get(&quad) {
             return share;
         }
         let population = figures::population(self.store, quad, level);
-        let dropped = population.bits().saturating_sub(60);
-        let mantissa = (&population >> dropped).to_f64().unwrap_or(0.0);
-        let exponent = 2 * level as i64 - dropped as i64;
-        let share = if exponent > 1000 {
-            0.0
-        } else {
-            mantissa * 2f64.powi(-(exponent as i32))
-        };
-        let share = if population.bits() > 0 {
-            (share as f32).max(f32::MIN_POSITIVE)
-        } else {
-            0.0
-        };
+        let share = share_of(&population, level);
         self.counts.insert(quad, share);
         share
+    }
+
+    /// Adds to a pixel's share (several small quads in one pixel).
+    fn add(&mut self, x: i64, y: i64, share: f32) {
+        if x >= 0 && y >= 0 && x < self.window.2 && y < self.window.3 {
+            let at = y as usize * self.picture.columns as usize + x as usize;
+            let total = self.picture.shares[at] + share;
+            self.picture.shares[at] = total.min(1.0);
+        }
     }
 
     fn put(&mut self, x: i64, y: i64, share: f32) {

@@ -43,6 +43,21 @@ impl Storage for LocalDir {
         Ok(true)
     }
 
+    fn replace(&self, key: &str, bytes: &[u8]) -> io::Result<()> {
+        check_key(key)?;
+        let path = self.root.join(key);
+        let folder = path.parent().expect("keys have a folder").to_path_buf();
+        fs::create_dir_all(&folder)?;
+        let mut temporary = tempfile::Builder::new()
+            .prefix(".incoming-")
+            .tempfile_in(&folder)?;
+        temporary.write_all(bytes)?;
+        temporary.as_file().sync_all()?;
+        temporary.persist(&path).map_err(|error| error.error)?;
+        File::open(&folder)?.sync_all()?;
+        Ok(())
+    }
+
     fn get(&self, key: &str) -> io::Result<Option<Vec<u8>>> {
         check_key(key)?;
         match fs::read(self.root.join(key)) {
@@ -79,6 +94,26 @@ impl Storage for LocalDir {
             Ok(()) => Ok(()),
             Err(error) if error.kind() == io::ErrorKind::NotFound => Ok(()),
             Err(error) => Err(error),
+        }
+    }
+
+    fn lock(&self) -> io::Result<Option<File>> {
+        fs::create_dir_all(&self.root)?;
+        let file = fs::OpenOptions::new()
+            .create(true)
+            .truncate(false)
+            .write(true)
+            .open(self.root.join(".lock"))?;
+        match file.try_lock() {
+            Ok(()) => Ok(Some(file)),
+            Err(fs::TryLockError::WouldBlock) => Err(io::Error::new(
+                io::ErrorKind::WouldBlock,
+                format!(
+                    "another deeptime process is writing to {} (run or prune)",
+                    self.root.display()
+                ),
+            )),
+            Err(fs::TryLockError::Error(error)) => Err(error),
         }
     }
 

@@ -31,6 +31,11 @@ pub trait Storage: Send + Sync {
     /// object under `key`.
     fn put_new(&self, key: &str, bytes: &[u8]) -> io::Result<bool>;
 
+    /// Stores `bytes` under `key`, replacing what is there, atomically (a
+    /// reader sees the old object or the new one, whole). Only for repairing
+    /// a content-named object whose stored bytes are damaged.
+    fn replace(&self, key: &str, bytes: &[u8]) -> io::Result<()>;
+
     /// The bytes under `key`, or None when there is no such object.
     fn get(&self, key: &str) -> io::Result<Option<Vec<u8>>>;
 
@@ -40,6 +45,12 @@ pub trait Storage: Send + Sync {
 
     /// Removes the object under `key`; Ok if there was none.
     fn delete(&self, key: &str) -> io::Result<()>;
+
+    /// Takes this store's writer lock, held until the returned guard is
+    /// dropped: one process writes (runs, prunes) at a time. Fails at once
+    /// if another process holds it. A store without locks returns None
+    /// (then the operator keeps to one writer per store).
+    fn lock(&self) -> io::Result<Option<std::fs::File>>;
 
     /// Where `key` is, for messages: a path or a URL.
     fn locate(&self, key: &str) -> String;
@@ -94,6 +105,8 @@ mod contract {
             vec!["manifests/0000000001.json", "manifests/0000000002.json"]
         );
         assert_eq!(store.list("packs/").unwrap(), vec!["packs/abc.pack"]);
+        store.replace("packs/abc.pack", b"repaired").unwrap();
+        assert_eq!(store.get("packs/abc.pack").unwrap().unwrap(), b"repaired");
         store.delete("manifests/0000000002.json").unwrap();
         store.delete("manifests/0000000002.json").unwrap(); // absent: fine
         assert_eq!(

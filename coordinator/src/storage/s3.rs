@@ -88,6 +88,16 @@ impl Storage for S3 {
         }
     }
 
+    fn replace(&self, key: &str, bytes: &[u8]) -> io::Result<()> {
+        check_key(key)?;
+        let path = self.path(key);
+        let payload = PutPayload::from(bytes.to_vec());
+        self.runtime
+            .block_on(self.store.put(&path, payload))
+            .map(|_| ())
+            .map_err(failed)
+    }
+
     fn get(&self, key: &str) -> io::Result<Option<Vec<u8>>> {
         check_key(key)?;
         let path = self.path(key);
@@ -132,6 +142,10 @@ impl Storage for S3 {
             Ok(()) | Err(object_store::Error::NotFound { .. }) => Ok(()),
             Err(error) => Err(failed(error)),
         }
+    }
+
+    fn lock(&self) -> io::Result<Option<std::fs::File>> {
+        Ok(None)
     }
 
     fn locate(&self, key: &str) -> String {
