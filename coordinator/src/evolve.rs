@@ -1,7 +1,6 @@
 //! `deeptime evolve`: read a pattern, advance it, report and optionally
 //! write the result.
 
-use std::io::Write;
 use std::path::Path;
 use std::time::Instant;
 
@@ -13,7 +12,7 @@ use crate::cli::EvolveArgs;
 use crate::failure::BadInput;
 use crate::progress;
 use crate::report::Report;
-use crate::{input, memory};
+use crate::{input, memory, output};
 
 pub fn run(args: EvolveArgs) -> anyhow::Result<()> {
     // Validate everything the user typed before any work starts.
@@ -53,30 +52,13 @@ fn check_output_path(out: &Path) -> Result<(), BadInput> {
     Ok(())
 }
 
-/// Writes the RLE to a temporary file beside `out`, then renames it: a
-/// failure never leaves a half-written pattern under the final name.
+/// Writes the final pattern as RLE, whole or not at all.
 fn write_rle(universe: &mut Universe, out: &Path) -> anyhow::Result<()> {
-    let directory = match out.parent() {
-        Some(parent) if !parent.as_os_str().is_empty() => parent,
-        _ => Path::new("."),
-    };
-    let mut temporary = tempfile::NamedTempFile::new_in(directory)
-        .with_context(|| format!("cannot write {}", out.display()))?;
-    {
-        let mut writer = std::io::BufWriter::new(temporary.as_file_mut());
-        match universe.write_rle(&mut writer) {
-            Ok(()) => {}
-            Err(WriteError::Io(error)) => {
-                return Err(error).with_context(|| format!("cannot write {}", out.display()));
-            }
-            Err(error) => return Err(error).with_context(|| format!("--out {}", out.display())),
+    output::write_whole(out, |writer| match universe.write_rle(writer) {
+        Ok(()) => Ok(()),
+        Err(WriteError::Io(error)) => {
+            Err(error).with_context(|| format!("cannot write {}", out.display()))
         }
-        writer
-            .flush()
-            .with_context(|| format!("cannot write {}", out.display()))?;
-    }
-    temporary
-        .persist(out)
-        .with_context(|| format!("cannot write {}", out.display()))?;
-    Ok(())
+        Err(error) => Err(error).with_context(|| format!("--out {}", out.display())),
+    })
 }

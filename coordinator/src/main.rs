@@ -12,6 +12,7 @@ mod input;
 mod inspect;
 mod job;
 mod memory;
+mod output;
 mod progress;
 mod report;
 mod run;

@@ -2,7 +2,7 @@
 //! run — the stored one if G is stored, else the nearest earlier one
 //! advanced to G — as figures, as RLE of a region, or as a picture.
 
-use std::io::{BufWriter, Write};
+use std::io::Write;
 use std::path::Path;
 use std::time::Instant;
 
@@ -15,7 +15,7 @@ use crate::checkpoint::Checkpoints;
 use crate::cli::SnapshotArgs;
 use crate::failure::BadInput;
 use crate::report::Report;
-use crate::{memory, progress};
+use crate::{memory, output, progress};
 
 /// Pictures are at most this many pixels on their longer side by default.
 const DEFAULT_PICTURE: u64 = 1024;
@@ -126,36 +126,16 @@ fn write_out(
         .and_then(|e| e.to_str())
         .unwrap_or("")
         .to_ascii_lowercase();
-    let directory = match out.parent() {
-        Some(parent) if !parent.as_os_str().is_empty() => parent,
-        _ => Path::new("."),
-    };
-    let mut temporary = tempfile::NamedTempFile::new_in(directory)
-        .with_context(|| format!("cannot write {}", out.display()))?;
-    {
-        let mut writer = BufWriter::new(temporary.as_file_mut());
-        match extension.as_str() {
-            "rle" => match region {
-                Some(region) => universe.write_rle_region(&mut writer, region),
-                None => universe.write_rle(&mut writer),
-            }
-            .with_context(|| format!("--out {}", out.display()))?,
-            "png" => draw(universe, &mut writer, region, scale)
-                .with_context(|| format!("--out {}", out.display()))?,
-            _ => {
-                return Err(
-                    BadInput(format!("--out {}: write .rle or .png", out.display())).into(),
-                );
-            }
+    output::write_whole(out, |writer| match extension.as_str() {
+        "rle" => match region {
+            Some(region) => universe.write_rle_region(writer, region),
+            None => universe.write_rle(writer),
         }
-        writer
-            .flush()
-            .with_context(|| format!("cannot write {}", out.display()))?;
-    }
-    temporary
-        .persist(out)
-        .with_context(|| format!("cannot write {}", out.display()))?;
-    Ok(())
+        .with_context(|| format!("--out {}", out.display())),
+        "png" => draw(universe, writer, region, scale)
+            .with_context(|| format!("--out {}", out.display())),
+        _ => Err(BadInput(format!("--out {}: write .rle or .png", out.display())).into()),
+    })
 }
 
 /// A grey picture: white where nothing lives, darker the denser.

@@ -295,18 +295,13 @@ struct Line {
 }
 
 fn compile(rule: &Rule) -> Vec<([u64; 4], u64, u64)> {
-    let mut counts = Vec::new();
-    for count in 0..9u32 {
-        let born = rule.birth_mask() >> count & 1 == 1;
-        let stays = rule.survive_mask() >> count & 1 == 1;
-        if !born && !stays {
-            continue;
-        }
-        let word = |yes: bool| if yes { u64::MAX } else { 0 };
-        let want = [0, 1, 2, 3].map(|bit| word(count >> bit & 1 == 1));
-        counts.push((want, word(born), word(stays)));
-    }
-    counts
+    let word = |yes: bool| if yes { u64::MAX } else { 0 };
+    rule.active_counts()
+        .map(|(count, born, stays)| {
+            let want = [0, 1, 2, 3].map(|bit| word(count >> bit & 1 == 1));
+            (want, word(born), word(stays))
+        })
+        .collect()
 }
 
 #[inline]

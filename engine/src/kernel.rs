@@ -25,17 +25,14 @@ pub struct Kernel {
 
 impl Kernel {
     pub fn new(rule: &Rule) -> Kernel {
-        let mut counts = Vec::new();
-        for count in 0..9u32 {
-            let born = rule.birth_mask() >> count & 1 == 1;
-            let stays = rule.survive_mask() >> count & 1 == 1;
-            if !born && !stays {
-                continue;
-            }
-            let want = [0, 1, 2, 3].map(|bit| if count >> bit & 1 == 1 { u32::MAX } else { 0 });
-            let word = |yes: bool| if yes { u32::MAX } else { 0 };
-            counts.push((want, word(born), word(stays)));
-        }
+        let word = |yes: bool| if yes { u32::MAX } else { 0 };
+        let counts = rule
+            .active_counts()
+            .map(|(count, born, stays)| {
+                let want = [0, 1, 2, 3].map(|bit| word(count >> bit & 1 == 1));
+                (want, word(born), word(stays))
+            })
+            .collect();
         Kernel { counts }
     }
 

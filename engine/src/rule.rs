@@ -168,6 +168,17 @@ impl Rule {
         self.survive
     }
 
+    /// The neighbour counts that matter (in B or in S), each with whether a
+    /// dead cell is born and a live one stays: what a bit-parallel stepper
+    /// compares its count planes against.
+    pub fn active_counts(&self) -> impl Iterator<Item = (u32, bool, bool)> + '_ {
+        (0..9u32).filter_map(|count| {
+            let born = self.birth >> count & 1 == 1;
+            let stays = self.survive >> count & 1 == 1;
+            (born || stays).then_some((count, born, stays))
+        })
+    }
+
     /// Whether a cell is alive in the next generation, given its state and its
     /// number of live neighbours. A count above 8 cannot happen on the
     /// square grid and gives `false`.

@@ -26,13 +26,7 @@ impl Storage for LocalDir {
         if path.exists() {
             return Ok(false);
         }
-        let folder = path.parent().expect("keys have a folder").to_path_buf();
-        fs::create_dir_all(&folder)?;
-        let mut temporary = tempfile::Builder::new()
-            .prefix(".incoming-")
-            .tempfile_in(&folder)?;
-        temporary.write_all(bytes)?;
-        temporary.as_file().sync_all()?;
+        let (folder, temporary) = flushed_temporary(&path, bytes)?;
         match temporary.persist_noclobber(&path) {
             Ok(_) => {}
             Err(error) if error.error.kind() == io::ErrorKind::AlreadyExists => return Ok(false),
@@ -46,13 +40,7 @@ impl Storage for LocalDir {
     fn replace(&self, key: &str, bytes: &[u8]) -> io::Result<()> {
         check_key(key)?;
         let path = self.root.join(key);
-        let folder = path.parent().expect("keys have a folder").to_path_buf();
-        fs::create_dir_all(&folder)?;
-        let mut temporary = tempfile::Builder::new()
-            .prefix(".incoming-")
-            .tempfile_in(&folder)?;
-        temporary.write_all(bytes)?;
-        temporary.as_file().sync_all()?;
+        let (folder, temporary) = flushed_temporary(&path, bytes)?;
         temporary.persist(&path).map_err(|error| error.error)?;
         File::open(&folder)?.sync_all()?;
         Ok(())
@@ -120,4 +108,20 @@ impl Storage for LocalDir {
     fn locate(&self, key: &str) -> String {
         self.root.join(key).display().to_string()
     }
+}
+
+/// `bytes` in a temporary file beside `path` (in its folder, made if
+/// needed), flushed to disk: ready to be renamed into place.
+fn flushed_temporary(
+    path: &std::path::Path,
+    bytes: &[u8],
+) -> io::Result<(PathBuf, tempfile::NamedTempFile)> {
+    let folder = path.parent().expect("keys have a folder").to_path_buf();
+    fs::create_dir_all(&folder)?;
+    let mut temporary = tempfile::Builder::new()
+        .prefix(".incoming-")
+        .tempfile_in(&folder)?;
+    temporary.write_all(bytes)?;
+    temporary.as_file().sync_all()?;
+    Ok((folder, temporary))
 }

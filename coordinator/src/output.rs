@@ -1,0 +1,30 @@
+//! Output files written whole or not at all: into a temporary file beside
+//! the destination, renamed over it only when everything was written, so a
+//! failure never leaves a half-written file or destroys the old one.
+
+use std::io::{BufWriter, Write};
+use std::path::Path;
+
+use anyhow::Context;
+
+/// Writes `out` with `fill`, which gets a buffered writer. Errors from
+/// `fill` are reported as they are (they say what was wrong); errors of
+/// the file itself as "cannot write OUT".
+pub fn write_whole(
+    out: &Path,
+    fill: impl FnOnce(&mut BufWriter<&mut std::fs::File>) -> anyhow::Result<()>,
+) -> anyhow::Result<()> {
+    let cannot = || format!("cannot write {}", out.display());
+    let directory = match out.parent() {
+        Some(parent) if !parent.as_os_str().is_empty() => parent,
+        _ => Path::new("."),
+    };
+    let mut temporary = tempfile::NamedTempFile::new_in(directory).with_context(cannot)?;
+    {
+        let mut writer = BufWriter::new(temporary.as_file_mut());
+        fill(&mut writer)?;
+        writer.flush().with_context(cannot)?;
+    }
+    temporary.persist(out).with_context(cannot)?;
+    Ok(())
+}
