@@ -69,15 +69,21 @@ impl Manifest {
     }
 
     pub fn generation(&self) -> anyhow::Result<BigUint> {
-        self.generation
-            .parse()
-            .with_context(|| format!("generation {:?} is not a number", self.generation))
+        decimal(&self.generation, "generation")
     }
 
     /// Bytes of all packs this checkpoint needs.
     pub fn pack_bytes(&self) -> u64 {
         self.packs.iter().map(|pack| pack.bytes).sum()
     }
+}
+
+/// A decimal string as written by deeptime: digits only.
+fn decimal(text: &str, what: &str) -> anyhow::Result<BigUint> {
+    if text.is_empty() || !text.bytes().all(|b| b.is_ascii_digit()) {
+        bail!("{what} {text:?} is not a decimal number");
+    }
+    Ok(text.parse().expect("digits parse"))
 }
 
 fn pack_key(name: &str) -> String {
@@ -147,6 +153,8 @@ impl Checkpoints {
         if Manifest::key(manifest.sequence) != key {
             bail!("{place}: holds sequence {}", manifest.sequence);
         }
+        decimal(&manifest.generation, "generation").with_context(|| place.clone())?;
+        decimal(&manifest.population, "population").with_context(|| place.clone())?;
         if manifest.packs.len() > MAX_PACKS {
             bail!(
                 "{place}: lists {} packs (at most {MAX_PACKS})",
@@ -184,12 +192,28 @@ impl Checkpoints {
             if pack_name(&bytes) != entry.name {
                 bail!("{place}: content does not match its checksum (damaged)");
             }
+            let records = bytes
+                .get(16..24)
+                .map(|field| u64::from_le_bytes(field.try_into().expect("8 bytes")));
+            if records != Some(entry.records) {
+                bail!(
+                    "{place}: holds {records:?} records, the manifest says {}",
+                    entry.records
+                );
+            }
             packs.push(bytes);
         }
         let root: ContentId = manifest
             .root
             .parse()
-            .with_context(|| format!("manifest {}: bad root", manifest.sequence))?;
+            .ok()
+            .filter(|id: &ContentId| id.to_string() == manifest.root)
+            .with_context(|| {
+                format!(
+                    "manifest {}: root {:?} is not 32 lowercase hex digits",
+                    manifest.sequence, manifest.root
+                )
+            })?;
         let rule = Rule::parse(&manifest.rule)
             .with_context(|| format!("manifest {}: bad rule", manifest.sequence))?;
         let generation = manifest.generation()?;

@@ -377,6 +377,8 @@ impl Reader {
     }
 }
 
+/// A LEB128 varint in its shortest form (a longer spelling of the same
+/// number is refused: every quad has one encoding).
 fn read_varint(bytes: &[u8], at: &mut usize) -> Option<u64> {
     let mut value = 0u64;
     for shift in (0..64).step_by(7) {
@@ -384,8 +386,35 @@ fn read_varint(bytes: &[u8], at: &mut usize) -> Option<u64> {
         *at += 1;
         value |= ((byte & 0x7f) as u64).checked_shl(shift)?;
         if byte & 0x80 == 0 {
+            if byte == 0 && shift > 0 {
+                return None;
+            }
             return Some(value);
         }
     }
     None
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn varints_are_read_in_their_shortest_form_only() {
+        // LEB128 (common practice): 5, 128 = 0x80 0x01; 0x80 0x00 spells 0
+        // the long way and is refused, as are cut and endless ones.
+        let read = |bytes: &[u8]| read_varint(bytes, &mut 0);
+        assert_eq!(read(&[0x05]), Some(5));
+        assert_eq!(read(&[0x80, 0x01]), Some(128));
+        assert_eq!(read(&[0x00]), Some(0));
+        assert_eq!(read(&[0x80, 0x00]), None);
+        assert_eq!(read(&[0x80]), None);
+        assert_eq!(read(&[0xff; 11]), None);
+        let mut out = Vec::new();
+        for value in [0u64, 1, 127, 128, 300, u32::MAX as u64, u64::MAX] {
+            out.clear();
+            write_varint(&mut out, value);
+            assert_eq!(read(&out), Some(value));
+        }
+    }
 }
