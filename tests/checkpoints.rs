@@ -41,6 +41,14 @@ fn job_of(dir: &Path, side: usize, target: u32, every: u32, rule: &str) -> PathB
     path
 }
 
+/// Points the job at another checkpoint folder (or URL).
+fn store_runs_in(job_path: &Path, place: &str) {
+    let text = std::fs::read_to_string(job_path)
+        .unwrap()
+        .replace("dir = \"runs\"", &format!("dir = {place:?}"));
+    std::fs::write(job_path, text).unwrap();
+}
+
 /// A 160×160 soup job.
 fn job(dir: &Path, target: u32, every: u32, rule: &str) -> PathBuf {
     job_of(dir, 160, target, every, rule)
@@ -479,11 +487,7 @@ fn a_full_disk_or_read_only_folder_is_a_clear_error_and_keeps_what_is_stored() {
     let disk = SmallDisk::mount("200k");
     let dir = temp_dir();
     let job_path = job_of(dir.path(), 512, 400, 20, "B3/S23");
-    let text = std::fs::read_to_string(&job_path).unwrap().replace(
-        "dir = \"runs\"",
-        &format!("dir = {:?}", disk.path.join("runs")),
-    );
-    std::fs::write(&job_path, text).unwrap();
+    store_runs_in(&job_path, disk.path.join("runs").to_str().unwrap());
     let full = run_deeptime(["run", job_path.to_str().unwrap()]);
     assert_eq!(full.code, Some(1), "{}", full.describe());
     let message = full.stderr.trim();
@@ -538,10 +542,7 @@ fn a_run_on_s3_compatible_storage_matches_the_local_one() {
     let remote = format!("{url}/run-{nonce}");
     let dir = temp_dir();
     let job_path = job(dir.path(), 300, 50, "B3/S23");
-    let text = std::fs::read_to_string(&job_path)
-        .unwrap()
-        .replace("dir = \"runs\"", &format!("dir = \"{remote}\""));
-    std::fs::write(&job_path, text).unwrap();
+    store_runs_in(&job_path, &remote);
     let done = run_deeptime(["run", job_path.to_str().unwrap(), "--json"]);
     assert_eq!(digest_of(&done), evolved(dir.path(), 300));
     let verify = run_deeptime(["verify", &remote]);
@@ -562,10 +563,7 @@ fn a_run_on_s3_compatible_storage_matches_the_local_one() {
     assert_eq!(digest_of(&snap), evolved(dir.path(), 275));
     // Resumed from S3 after the target grows.
     let job_path2 = job(dir.path(), 350, 50, "B3/S23");
-    let text = std::fs::read_to_string(&job_path2)
-        .unwrap()
-        .replace("dir = \"runs\"", &format!("dir = \"{remote}\""));
-    std::fs::write(&job_path2, text).unwrap();
+    store_runs_in(&job_path2, &remote);
     let more = run_deeptime(["run", job_path2.to_str().unwrap(), "--json"]);
     assert!(
         more.stderr.contains("at generation 300"),

@@ -117,26 +117,32 @@ fn check_rule(rule: &str, soups: &[Soup]) {
             pattern.display().to_string(),
         ])
         .assert_success();
-        let gens = GENS
-            .iter()
-            .map(u64::to_string)
-            .collect::<Vec<_>>()
-            .join(",");
-        run_reference([
-            "expect".to_string(),
-            "--pattern".into(),
-            pattern.display().to_string(),
-            "--rule".into(),
-            rule.into(),
-            "--gens".into(),
-            gens,
-            "--out".into(),
-            expected.display().to_string(),
-        ])
-        .assert_success();
+        reference_expect(&pattern, rule, &expected);
         assert_interesting(&read_expected(&expected), &what);
         compare_all(dir.path(), &pattern, rule, GENS, &expected, &what);
     }
+}
+
+/// Has the reference evolve `pattern` under `rule` and record every
+/// generation of GENS in `expected`.
+fn reference_expect(pattern: &Path, rule: &str, expected: &Path) {
+    let gens = GENS
+        .iter()
+        .map(u64::to_string)
+        .collect::<Vec<_>>()
+        .join(",");
+    run_reference([
+        "expect".to_string(),
+        "--pattern".into(),
+        pattern.display().to_string(),
+        "--rule".into(),
+        rule.into(),
+        "--gens".into(),
+        gens,
+        "--out".into(),
+        expected.display().to_string(),
+    ])
+    .assert_success();
 }
 
 /// The soup must stay interesting through the run, or the comparison says
@@ -339,23 +345,7 @@ fn glider_northwest() {
     let pattern = dir.path().join("glider.rle");
     std::fs::write(&pattern, "x = 3, y = 3, rule = B3/S23\n3o$o$bo!\n").expect("write glider.rle");
     let expected = dir.path().join("expected.json");
-    let gens = GENS
-        .iter()
-        .map(u64::to_string)
-        .collect::<Vec<_>>()
-        .join(",");
-    run_reference([
-        "expect".to_string(),
-        "--pattern".into(),
-        pattern.display().to_string(),
-        "--rule".into(),
-        "B3/S23".into(),
-        "--gens".into(),
-        gens,
-        "--out".into(),
-        expected.display().to_string(),
-    ])
-    .assert_success();
+    reference_expect(&pattern, "B3/S23", &expected);
     // Common practice: at generation 300 = 75 * 4 the glider is its first
     // phase again, moved by (-75, -75); population 5, bbox 3 x 3.
     let record = &read_expected(&expected)["generations"]["300"];

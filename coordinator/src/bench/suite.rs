@@ -92,6 +92,29 @@ fn timed<T>(work: impl FnOnce() -> anyhow::Result<T>) -> anyhow::Result<(T, Dura
     Ok((value, started.elapsed()))
 }
 
+/// The pattern advanced `steps` generations in one HashLife jump under
+/// `budget`, timed from building it.
+fn timed_jump(
+    pattern: &Pattern,
+    rule: Rule,
+    steps: &BigUint,
+    budget: u64,
+) -> anyhow::Result<(Universe, Duration)> {
+    timed(|| {
+        let mut universe = Universe::from_pattern(pattern, rule, budget)?;
+        universe.advance(steps, None)?;
+        Ok(universe)
+    })
+}
+
+/// The pattern stepped `generations` times by the direct stepper, timed.
+fn timed_direct(pattern: &Pattern, rule: Rule, generations: u64) -> (Grid, Duration) {
+    let started = Instant::now();
+    let mut grid = Grid::from_pattern(pattern, rule);
+    grid.advance(generations);
+    (grid, started.elapsed())
+}
+
 /// Far-future reach: advance to 10^D for growing D (population included)
 /// until one run takes the target time; digits of D per second.
 fn reach(settings: &Settings) -> anyhow::Result<Vec<Figure>> {
@@ -148,11 +171,7 @@ fn stepping(settings: &Settings) -> anyhow::Result<Vec<Figure>> {
         }
         Ok(universe)
     })?;
-    let (grid, direct) = timed(|| {
-        let mut grid = Grid::from_pattern(&pattern, rule);
-        grid.advance(generations);
-        Ok(grid)
-    })?;
+    let (grid, direct) = timed_direct(&pattern, rule, generations);
     ensure!(
         memoised.cells()? == grid.cells(),
         "the memoised and direct runs of the gun differ after {generations} generations"
@@ -187,16 +206,8 @@ fn chaotic(settings: &Settings) -> anyhow::Result<Vec<Figure>> {
     let pattern = soup(side, 1);
     let rule = Rule::LIFE;
     let steps = BigUint::from(generations);
-    let (mut universe, hashlife) = timed(|| {
-        let mut universe = Universe::from_pattern(&pattern, rule, BUDGET)?;
-        universe.advance(&steps, None)?;
-        Ok(universe)
-    })?;
-    let (grid, direct) = timed(|| {
-        let mut grid = Grid::from_pattern(&pattern, rule);
-        grid.advance(generations);
-        Ok(grid)
-    })?;
+    let (mut universe, hashlife) = timed_jump(&pattern, rule, &steps, BUDGET)?;
+    let (grid, direct) = timed_direct(&pattern, rule, generations);
     ensure!(
         universe.cells()? == grid.cells(),
         "HashLife and the direct stepper differ on the {label} soup"
@@ -255,11 +266,7 @@ fn chaotic(settings: &Settings) -> anyhow::Result<Vec<Figure>> {
         .into_iter()
         .sum::<u64>();
     let budget = 2 * live;
-    let pressured = timed(|| {
-        let mut universe = Universe::from_pattern(&pattern, rule, budget)?;
-        universe.advance(&steps, None)?;
-        Ok(universe)
-    });
+    let pressured = timed_jump(&pattern, rule, &steps, budget);
     match pressured {
         Ok((mut tight, elapsed)) => {
             ensure!(
