@@ -82,11 +82,20 @@ pub(crate) fn population(store: &Store, quad: Handle, level: u32) -> BigUint {
 
 /// Populations in machine words, memoised (4^31 cells fit a `u64`).
 #[derive(Default)]
-struct Counter {
+pub(crate) struct Counter {
     memo: Map<Handle, u64>,
 }
 
 impl Counter {
+    /// The population of `quad` (of `level`), memoised up to level 31.
+    pub(crate) fn population(&mut self, store: &Store, quad: Handle, level: u32) -> BigUint {
+        if level <= 31 {
+            BigUint::from(self.count(store, quad, level))
+        } else {
+            population(store, quad, level)
+        }
+    }
+
     fn count(&mut self, store: &Store, quad: Handle, level: u32) -> u64 {
         if quad.is_leaf() {
             return store.leaf_bits(quad).count_ones() as u64;

@@ -9,6 +9,7 @@ pub mod pack;
 pub mod pattern;
 pub mod render;
 pub mod rule;
+pub mod stored;
 
 mod advance;
 mod content_id;
@@ -18,9 +19,12 @@ mod kernel;
 mod stack;
 mod store;
 mod universe;
+mod view;
 
 pub use advance::{Observer, Progress};
 pub use content_id::{BadContentId, ContentId};
 pub use error::{AdvanceError, BudgetExceeded, StackRefused, TooLargeForText, human_bytes};
 pub use store::{Handle, StoreStats};
-pub use universe::{BoundingBox, MAX_TEXT_CELLS, Region, Universe, WriteError};
+pub use universe::{
+    BoundingBox, KnownQuads, MAX_TEXT_CELLS, PackInput, Region, Universe, WriteError,
+};

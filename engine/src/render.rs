@@ -9,9 +9,10 @@ use std::collections::HashMap;
 use num_bigint::{BigInt, BigUint};
 use num_traits::{One, Signed, ToPrimitive};
 
-use crate::figures;
-use crate::store::{Handle, LEAF_LEVEL, Store};
+use crate::store::LEAF_LEVEL;
+use crate::stored::ReadError;
 use crate::universe::Universe;
+use crate::view::{QuadView, StoreView, descend};
 
 /// Pictures wider or taller than this are refused (ask for a larger scale).
 pub const MAX_PIXELS: u32 = 16_384;
@@ -32,6 +33,8 @@ pub enum RenderError {
     TooLarge { columns: u64, rows: u64 },
     #[error("scale {0} is too large (at most 2^21)")]
     Scale(u32),
+    #[error(transparent)]
+    Read(#[from] ReadError),
 }
 
 impl Universe {
@@ -46,6 +49,23 @@ impl Universe {
         rows: u64,
         scale: u32,
     ) -> Result<Picture, RenderError> {
+        let mut view = StoreView::new(&self.store, self.root, self.level);
+        picture_of(&mut view, left, top, columns, rows, scale)
+    }
+}
+
+/// The picture of the cells from (`left`, `top`) of any quadtree view (see
+/// `Universe::picture`): only quads down to the pixel's level are visited.
+pub(crate) fn picture_of<V: QuadView>(
+    view: &mut V,
+    left: &BigInt,
+    top: &BigInt,
+    columns: u64,
+    rows: u64,
+    scale: u32,
+) -> Result<Picture, RenderError> {
+    let (root, root_level) = view.root();
+    {
         if scale > 1 << 21 {
             return Err(RenderError::Scale(scale));
         }
@@ -62,7 +82,7 @@ impl Universe {
             return Ok(picture);
         }
         // The window in pixels from the root's corner (may start outside it).
-        let half = BigInt::one() << (self.level - 1);
+        let half = BigInt::one() << (root_level - 1);
         let pixel = BigInt::one() << scale;
         let floor_div = |value: BigInt| {
             let quotient = &value / &pixel;
@@ -78,22 +98,23 @@ impl Universe {
         // above the pixel (each 2^15 pixels wide, more than the window).
         const BLOCK: u32 = 15;
         let mut painter = Painter {
-            store: &self.store,
+            view,
             scale,
             window: (0, 0, columns as i64, rows as i64),
             picture: &mut picture,
             counts: HashMap::default(),
         };
-        if self.level <= scale {
+        if root_level <= scale {
             // The root is at most a pixel: each child lies whole in one of
             // the four pixels around the origin (absolute pixel -1 or 0).
             let left_pixel = floor_div(left.clone());
             let top_pixel = floor_div(top.clone());
-            for (at, kid) in self.store.kids(self.root).into_iter().enumerate() {
+            let kids = painter.view.kids(root, root_level)?;
+            for (at, kid) in kids.into_iter().enumerate() {
                 let x = BigInt::from(at as i64 % 2 - 1) - &left_pixel;
                 let y = BigInt::from(at as i64 / 2 - 1) - &top_pixel;
                 if let (Some(x), Some(y)) = (x.to_i64(), y.to_i64()) {
-                    let population = figures::population(&self.store, kid, self.level - 1);
+                    let population = painter.view.population(kid, root_level - 1)?;
                     let share = share_of(&population, scale);
                     painter.add(x, y, share);
                 }
@@ -101,13 +122,13 @@ impl Universe {
             return Ok(picture);
         }
         let top_level = scale + BLOCK;
-        if self.level <= top_level {
+        if root_level <= top_level {
             // The whole root: its corner is pixel 0.
             let offset = (
                 px.to_i64().unwrap_or(i64::MAX),
                 py.to_i64().unwrap_or(i64::MAX),
             );
-            painter.paint(self.root, self.level, (-offset.0, -offset.1));
+            painter.paint(root, root_level, (-offset.0, -offset.1))?;
             return Ok(picture);
         }
         let zero = BigInt::from(0);
@@ -122,7 +143,7 @@ impl Universe {
             // In cells, for the descent.
             let cell_x = &x << scale;
             let cell_y = &y << scale;
-            let Some(quad) = self.descend(cell_x, cell_y, top_level) else {
+            let Some(quad) = descend(painter.view, cell_x, cell_y, top_level)? else {
                 continue;
             };
             let corner = (
@@ -130,7 +151,7 @@ impl Universe {
                 (BigInt::from(y) - &py).to_i64(),
             );
             if let (Some(cx), Some(cy)) = corner {
-                painter.paint(quad, top_level, (cx, cy));
+                painter.paint(quad, top_level, (cx, cy))?;
             }
         }
         Ok(picture)
@@ -155,46 +176,47 @@ fn share_of(population: &BigUint, level: u32) -> f32 {
     }
 }
 
-struct Painter<'a> {
-    store: &'a Store,
+struct Painter<'a, V: QuadView> {
+    view: &'a mut V,
     scale: u32,
     /// pixels to fill: 0 ≤ x < window.2, 0 ≤ y < window.3
     window: (i64, i64, i64, i64),
     picture: &'a mut Picture,
-    counts: HashMap<Handle, f32, ahash::RandomState>,
+    counts: HashMap<V::Node, f32, ahash::RandomState>,
 }
 
-impl Painter<'_> {
+impl<V: QuadView> Painter<'_, V> {
     /// Paints `quad` (of `level` ≥ scale) whose corner is pixel `corner`.
-    fn paint(&mut self, quad: Handle, level: u32, corner: (i64, i64)) {
+    fn paint(&mut self, quad: V::Node, level: u32, corner: (i64, i64)) -> Result<(), ReadError> {
         debug_assert!(level >= self.scale.min(LEAF_LEVEL));
         let span = 1i64 << (level.saturating_sub(self.scale)).min(62);
         let (x, y) = corner;
         if x >= self.window.2 || y >= self.window.3 || x + span <= 0 || y + span <= 0 {
-            return;
+            return Ok(());
         }
-        if quad == self.store.known_empty(level) {
-            return;
+        if self.view.is_empty(quad, level) {
+            return Ok(());
         }
-        if level == self.scale || (quad.is_leaf() && self.scale < LEAF_LEVEL) {
+        if level == self.scale || (level == LEAF_LEVEL && self.scale < LEAF_LEVEL) {
             if level == self.scale {
-                let share = self.share(quad, level);
+                let share = self.share(quad, level)?;
                 self.put(x, y, share);
             } else {
-                self.paint_leaf(quad, corner);
+                self.paint_leaf(quad, corner)?;
             }
-            return;
+            return Ok(());
         }
         let half = span / 2;
-        for (at, kid) in self.store.kids(quad).into_iter().enumerate() {
+        for (at, kid) in self.view.kids(quad, level)?.into_iter().enumerate() {
             let (dx, dy) = ((at as i64 % 2) * half, (at as i64 / 2) * half);
-            self.paint(kid, level - 1, (x + dx, y + dy));
+            self.paint(kid, level - 1, (x + dx, y + dy))?;
         }
+        Ok(())
     }
 
     /// A leaf drawn at a scale below 3: blocks of 2^scale cells.
-    fn paint_leaf(&mut self, leaf: Handle, corner: (i64, i64)) {
-        let bits = self.store.leaf_bits(leaf);
+    fn paint_leaf(&mut self, leaf: V::Node, corner: (i64, i64)) -> Result<(), ReadError> {
+        let bits = self.view.leaf_bits(leaf)?;
         let cell = 1u32 << self.scale;
         let per_side = 8 / cell;
         for by in 0..per_side {
@@ -210,17 +232,18 @@ impl Painter<'_> {
                 self.put(corner.0 + bx as i64, corner.1 + by as i64, share);
             }
         }
+        Ok(())
     }
 
     /// The share of live cells in a quad of the pixel's level.
-    fn share(&mut self, quad: Handle, level: u32) -> f32 {
+    fn share(&mut self, quad: V::Node, level: u32) -> Result<f32, ReadError> {
         if let Some(&share) = self.counts.get(&quad) {
-            return share;
+            return Ok(share);
         }
-        let population = figures::population(self.store, quad, level);
+        let population = self.view.population(quad, level)?;
         let share = share_of(&population, level);
         self.counts.insert(quad, share);
-        share
+        Ok(share)
     }
 
     /// Adds to a pixel's share (several small quads in one pixel).

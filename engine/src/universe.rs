@@ -16,10 +16,12 @@ use crate::advance::{self, Advance, Observer};
 use crate::content_id::ContentId;
 use crate::error::{AdvanceError, BudgetExceeded, TooLargeForText};
 use crate::figures::{self, Side};
-use crate::pack;
+use crate::pack::{self, Checksum, QuadAt};
+use crate::view::{QuadView, StoreView, descend};
 use crate::pattern::{MAX_COORDINATE, Pattern, write};
 use crate::rule::Rule;
 use crate::stack;
+use crate::stored::ReadError;
 use crate::store::{Handle, LEAF_LEVEL, Store, StoreStats};
 
 /// The smallest root level kept while evolving (32×32 cells).
@@ -85,6 +87,20 @@ pub enum WriteError {
     /// the output failed
     #[error("cannot write the pattern: {0}")]
     Io(#[from] std::io::Error),
+    /// a stored quad could not be read
+    #[error(transparent)]
+    Read(#[from] ReadError),
+}
+
+/// Where each stored quad of a run is, by content id.
+pub type KnownQuads = HashMap<ContentId, QuadAt, ahash::RandomState>;
+
+/// One whole pack to read: its bytes and, when a manifest lists it, the
+/// checksum its table must have.
+#[derive(Clone, Copy)]
+pub struct PackInput<'p> {
+    pub bytes: &'p [u8],
+    pub table: Option<Checksum>,
 }
 
 /// A state of the plane under a rule, at a generation.
@@ -172,33 +188,37 @@ impl Universe {
         Ok(universe)
     }
 
-    /// Writes the quads of this state that `known` does not hold into a
-    /// pack; returns the state's digest (the id of its canonical root, which
-    /// a checkpoint names as its root) and the pack, if anything was new.
+    /// Writes the quads of this state that `known` does not locate into a
+    /// pack (`packs` names the packs `known` points into, by index);
+    /// returns the state's digest (the id of its canonical root, which a
+    /// checkpoint names as its root) and the pack, if anything was new. A
+    /// new root is the pack's last record.
     pub fn write_pack(
         &mut self,
-        known: &dyn Fn(&ContentId) -> bool,
+        known: &dyn Fn(&ContentId) -> Option<QuadAt>,
+        packs: &[Checksum],
     ) -> Result<(ContentId, Option<pack::WrittenPack>), BudgetExceeded> {
         let digest = self.digest()?;
         let (quad, level) = self.canonical_root()?;
         let base = self.store.scratch.len();
         self.store.scratch.push(quad);
-        let written = pack::write_pack(&mut self.store, quad, level, known);
+        let written = pack::write_pack(&mut self.store, quad, level, known, packs);
         self.store.scratch.truncate(base);
         Ok((digest, written))
     }
 
-    /// The state stored as packs (in the order a checkpoint lists them)
-    /// with root `root`, at `generation`. Returns it and the content ids of
-    /// every quad the packs hold. Errors name the pack (by index) and where
-    /// in it the damage is.
+    /// The state stored as packs (whole, in the order a checkpoint lists
+    /// them) whose root record is at `root_at` and has content id `root`,
+    /// at `generation`. Returns it and where each quad the packs hold is.
+    /// Errors name the pack (by index) and where in it the damage is.
     pub fn from_packs<'p>(
-        packs: impl IntoIterator<Item = &'p [u8]>,
+        packs: impl IntoIterator<Item = PackInput<'p>>,
         root: ContentId,
+        root_at: QuadAt,
         rule: Rule,
         generation: BigUint,
         budget: u64,
-    ) -> Result<(Universe, Vec<ContentId>), (usize, pack::PackError)> {
+    ) -> Result<(Universe, KnownQuads), (usize, pack::PackError)> {
         let mut universe = Universe::new(rule, budget).map_err(|e| (0, e.into()))?;
         let store = &mut universe.store;
         // As when building a pattern: the reader's map holds handles the
@@ -207,30 +227,36 @@ impl Universe {
         let mut reader = pack::Reader::new();
         let mut count = 0;
         let mut outcome = Ok(());
-        for (index, bytes) in packs.into_iter().enumerate() {
+        for (index, input) in packs.into_iter().enumerate() {
             count = index + 1;
-            if let Err(error) = reader.read(store, bytes) {
+            let name = pack::pack_name(input.bytes);
+            if let Err(error) = reader.read(store, input.bytes, name, input.table) {
                 outcome = Err((index, error));
                 break;
             }
         }
+        let at = (root_at.pack as usize).min(count.saturating_sub(1));
         let placed = outcome.and_then(|()| {
-            let Some(&(quad, level)) = reader.quads.get(&root) else {
+            let found = reader.quad(root_at).filter(|&(_, _, id)| id == root);
+            let Some((quad, level, _)) = found else {
                 return Err((
-                    count.saturating_sub(1),
+                    at,
                     pack::PackError::Malformed {
                         offset: 0,
-                        what: format!("no pack holds the root quad {root}"),
+                        what: format!(
+                            "record {} of pack {} is not the root quad {root}",
+                            root_at.record, root_at.pack
+                        ),
                     },
                 ));
             };
-            centred_root(store, quad, level).map_err(|e| (count.saturating_sub(1), e.into()))
+            centred_root(store, quad, level).map_err(|e| (at, e.into()))
         });
         store.set_collect_allowed(true);
         let (quad, level) = placed?;
         universe.set_root(quad, level);
         universe.generation = generation;
-        Ok((universe, reader.quads.into_keys().collect()))
+        Ok((universe, reader.known))
     }
 
     /// The rule this state evolves under.
@@ -423,7 +449,7 @@ impl Universe {
         let top = i64::try_from(&bbox.top).map_err(|_| too_far())?;
         let region = Region::of_box(&bbox)?;
         let mut cells = Vec::new();
-        for (y, runs) in self.rows_in(&region)? {
+        for (y, runs) in rows_in(&mut StoreView::new(&self.store, self.root, self.level), &region)? {
             for (x, len) in runs {
                 for dx in 0..len {
                     cells.push((left + (x + dx) as i64, top + y as i64));
@@ -452,169 +478,153 @@ impl Universe {
         region: &Region,
     ) -> Result<(), WriteError> {
         let rule = self.rule.to_string();
-        let rows = self.rows_in(region)?;
+        let rows = rows_in(&mut StoreView::new(&self.store, self.root, self.level), region)?;
         write::write_rle(out, region.width, region.height, &rule, rows)?;
         Ok(())
     }
 
-    /// The non-empty rows of `region` with their runs of live cells
-    /// (x, len), both relative to the region's corner.
-    #[allow(clippy::type_complexity)]
-    fn rows_in(&mut self, region: &Region) -> Result<Vec<(u64, Vec<(u64, u64)>)>, WriteError> {
-        if region.width > MAX_COORDINATE || region.height > MAX_COORDINATE {
-            return Err(TooLargeForText {
-                what: format!(
-                    "the region is {}×{} cells (at most {MAX_COORDINATE} each way)",
-                    region.width, region.height
-                ),
-            }
-            .into());
+}
+
+/// The non-empty rows of `region` with their runs of live cells
+/// (x, len), both relative to the region's corner.
+#[allow(clippy::type_complexity)]
+pub(crate) fn rows_in<V: QuadView>(
+view: &mut V,
+region: &Region,
+) -> Result<Vec<(u64, Vec<(u64, u64)>)>, WriteError> {
+let (root, root_level) = view.root();
+    if region.width > MAX_COORDINATE || region.height > MAX_COORDINATE {
+        return Err(TooLargeForText {
+            what: format!(
+                "the region is {}×{} cells (at most {MAX_COORDINATE} each way)",
+                region.width, region.height
+            ),
         }
-        // The region from the root's corner; cells beyond the root are dead.
-        let half = BigInt::one() << (self.level - 1);
-        let size = BigInt::one() << self.level;
-        let left = &region.left + &half;
-        let top = &region.top + &half;
-        let zero = BigInt::from(0);
-        if left >= size
-            || top >= size
-            || &left + region.width <= zero
-            || &top + region.height <= zero
-            || region.width == 0
-            || region.height == 0
-        {
-            return Ok(Vec::new());
-        }
-        let clip_left = std::cmp::max(left.clone(), zero.clone())
-            .magnitude()
-            .clone();
-        let clip_top = std::cmp::max(top.clone(), zero).magnitude().clone();
-        // Covered by at most 2×2 aligned squares of level BLOCK (the region
-        // is at most 2^40 wide), within which offsets fit u64.
-        const BLOCK: u32 = MAX_COORDINATE.trailing_zeros() + 1;
-        let (origin_x, origin_y) = if self.level <= BLOCK + 1 {
-            (BigUint::from(0u32), BigUint::from(0u32))
-        } else {
-            (
-                (&clip_left >> BLOCK) << BLOCK,
-                (&clip_top >> BLOCK) << BLOCK,
-            )
-        };
-        // The region's corner from the origin, in cells (may be negative).
-        let shift_x =
-            i64::try_from(&left - BigInt::from(origin_x.clone())).expect("near the origin");
-        let shift_y =
-            i64::try_from(&top - BigInt::from(origin_y.clone())).expect("near the origin");
-        // The window of leaves to collect, from the origin, in leaf units.
-        let window = [
-            shift_x.max(0) as u64 / 8,
-            shift_y.max(0) as u64 / 8,
-            (shift_x + region.width as i64 - 1).max(0) as u64 / 8,
-            (shift_y + region.height as i64 - 1).max(0) as u64 / 8,
-        ];
-        let mut blocks = Vec::new();
-        let mut allowance = MAX_TEXT_CELLS;
-        let too_many = || TooLargeForText {
-            what: format!("the region has more than {MAX_TEXT_CELLS} live cells"),
-        };
-        if self.level <= BLOCK + 1 {
-            leaf_blocks(
-                &self.store,
-                self.root,
-                self.level,
-                [0, 0],
-                window,
-                &mut blocks,
-                &mut allowance,
-            )
-            .map_err(|()| too_many())?;
-        } else {
-            let side = BigUint::one() << BLOCK;
-            for (dx, dy) in [(0u64, 0u64), (1, 0), (0, 1), (1, 1)] {
-                let x = &origin_x + &side * dx;
-                let y = &origin_y + &side * dy;
-                if let Some(quad) = self.descend(x, y, BLOCK) {
-                    let leaves = 1u64 << (BLOCK - LEAF_LEVEL);
-                    let corner = [dx * leaves, dy * leaves];
-                    leaf_blocks(
-                        &self.store,
-                        quad,
-                        BLOCK,
-                        corner,
-                        window,
-                        &mut blocks,
-                        &mut allowance,
-                    )
-                    .map_err(|()| too_many())?;
-                }
+        .into());
+    }
+    // The region from the root's corner; cells beyond the root are dead.
+    let half = BigInt::one() << (root_level - 1);
+    let size = BigInt::one() << root_level;
+    let left = &region.left + &half;
+    let top = &region.top + &half;
+    let zero = BigInt::from(0);
+    if left >= size
+        || top >= size
+        || &left + region.width <= zero
+        || &top + region.height <= zero
+        || region.width == 0
+        || region.height == 0
+    {
+        return Ok(Vec::new());
+    }
+    let clip_left = std::cmp::max(left.clone(), zero.clone())
+        .magnitude()
+        .clone();
+    let clip_top = std::cmp::max(top.clone(), zero).magnitude().clone();
+    // Covered by at most 2×2 aligned squares of level BLOCK (the region
+    // is at most 2^40 wide), within which offsets fit u64.
+    const BLOCK: u32 = MAX_COORDINATE.trailing_zeros() + 1;
+    let (origin_x, origin_y) = if root_level <= BLOCK + 1 {
+        (BigUint::from(0u32), BigUint::from(0u32))
+    } else {
+        (
+            (&clip_left >> BLOCK) << BLOCK,
+            (&clip_top >> BLOCK) << BLOCK,
+        )
+    };
+    // The region's corner from the origin, in cells (may be negative).
+    let shift_x =
+        i64::try_from(&left - BigInt::from(origin_x.clone())).expect("near the origin");
+    let shift_y =
+        i64::try_from(&top - BigInt::from(origin_y.clone())).expect("near the origin");
+    // The window of leaves to collect, from the origin, in leaf units.
+    let window = [
+        shift_x.max(0) as u64 / 8,
+        shift_y.max(0) as u64 / 8,
+        (shift_x + region.width as i64 - 1).max(0) as u64 / 8,
+        (shift_y + region.height as i64 - 1).max(0) as u64 / 8,
+    ];
+    let mut blocks = Vec::new();
+    let mut allowance = MAX_TEXT_CELLS;
+    let too_many = || TooLargeForText {
+        what: format!("the region has more than {MAX_TEXT_CELLS} live cells"),
+    };
+    if root_level <= BLOCK + 1 {
+        leaf_blocks(
+            view,
+            root,
+            root_level,
+            [0, 0],
+            window,
+            &mut blocks,
+            &mut allowance,
+        )
+        .map_err(|failure| failure.into_write(too_many))?;
+    } else {
+        let side = BigUint::one() << BLOCK;
+        for (dx, dy) in [(0u64, 0u64), (1, 0), (0, 1), (1, 1)] {
+            let x = &origin_x + &side * dx;
+            let y = &origin_y + &side * dy;
+            if let Some(quad) = descend(view, x, y, BLOCK)? {
+                let leaves = 1u64 << (BLOCK - LEAF_LEVEL);
+                let corner = [dx * leaves, dy * leaves];
+                leaf_blocks(
+                    view,
+                    quad,
+                    BLOCK,
+                    corner,
+                    window,
+                    &mut blocks,
+                    &mut allowance,
+                )
+                .map_err(|failure| failure.into_write(too_many))?;
             }
         }
-        blocks.sort_unstable();
-        let (width, height) = (region.width as i64, region.height as i64);
-        let mut rows = Vec::new();
-        let mut at = 0;
-        while at < blocks.len() {
-            let band = blocks[at].0;
-            let mut end = at;
-            while end < blocks.len() && blocks[end].0 == band {
-                end += 1;
+    }
+    blocks.sort_unstable();
+    let (width, height) = (region.width as i64, region.height as i64);
+    let mut rows = Vec::new();
+    let mut at = 0;
+    while at < blocks.len() {
+        let band = blocks[at].0;
+        let mut end = at;
+        while end < blocks.len() && blocks[end].0 == band {
+            end += 1;
+        }
+        for row in 0..8u64 {
+            let y = (band * 8 + row) as i64 - shift_y;
+            if y < 0 || y >= height {
+                continue;
             }
-            for row in 0..8u64 {
-                let y = (band * 8 + row) as i64 - shift_y;
-                if y < 0 || y >= height {
-                    continue;
-                }
-                let mut runs: Vec<(u64, u64)> = Vec::new();
-                for &(_, column, bits) in &blocks[at..end] {
-                    let mut byte = (bits >> (8 * row)) & 0xff;
-                    while byte != 0 {
-                        let start = byte.trailing_zeros() as u64;
-                        let len = (!(byte >> start)).trailing_zeros() as u64;
-                        byte &= !(((1u64 << len) - 1) << start);
-                        // Clip the run to the region's columns.
-                        let from = ((column * 8 + start) as i64 - shift_x).max(0);
-                        let to = ((column * 8 + start + len) as i64 - shift_x).min(width);
-                        if from >= to {
-                            continue;
-                        }
-                        let (x, len) = (from as u64, (to - from) as u64);
-                        match runs.last_mut() {
-                            Some(last) if last.0 + last.1 == x => last.1 += len,
-                            _ => runs.push((x, len)),
-                        }
+            let mut runs: Vec<(u64, u64)> = Vec::new();
+            for &(_, column, bits) in &blocks[at..end] {
+                let mut byte = (bits >> (8 * row)) & 0xff;
+                while byte != 0 {
+                    let start = byte.trailing_zeros() as u64;
+                    let len = (!(byte >> start)).trailing_zeros() as u64;
+                    byte &= !(((1u64 << len) - 1) << start);
+                    // Clip the run to the region's columns.
+                    let from = ((column * 8 + start) as i64 - shift_x).max(0);
+                    let to = ((column * 8 + start + len) as i64 - shift_x).min(width);
+                    if from >= to {
+                        continue;
+                    }
+                    let (x, len) = (from as u64, (to - from) as u64);
+                    match runs.last_mut() {
+                        Some(last) if last.0 + last.1 == x => last.1 += len,
+                        _ => runs.push((x, len)),
                     }
                 }
-                if !runs.is_empty() {
-                    rows.push((y as u64, runs));
-                }
             }
-            at = end;
+            if !runs.is_empty() {
+                rows.push((y as u64, runs));
+            }
         }
-        Ok(rows)
+        at = end;
     }
-
-    /// The aligned quad of `level` whose corner is at (x, y) from the root's
-    /// corner, or None when that lies outside the root.
-    pub(crate) fn descend(&self, mut x: BigUint, mut y: BigUint, level: u32) -> Option<Handle> {
-        let (mut quad, mut at) = (self.root, self.level);
-        if x.bits() > at as u64 || y.bits() > at as u64 {
-            return None;
-        }
-        while at > level {
-            let half = BigUint::one() << (at - 1);
-            let (east, south) = (x >= half, y >= half);
-            if east {
-                x -= &half;
-            }
-            if south {
-                y -= &half;
-            }
-            quad = self.store.kids(quad)[south as usize * 2 + east as usize];
-            at -= 1;
-        }
-        Some(quad)
-    }
+    Ok(rows)
 }
+
 
 /// A root of at least `MIN_ROOT_LEVEL` centred like `quad` (of `level`),
 /// which is centred on the origin: padded with empty quads around it.
@@ -694,41 +704,59 @@ fn build_tree(
     Ok((quad, level))
 }
 
+/// Why collecting leaves stopped.
+enum Stop {
+    /// more live cells than allowed
+    TooMany,
+    /// a stored quad could not be read
+    Read(ReadError),
+}
+
+impl Stop {
+    fn into_write(self, too_many: impl Fn() -> TooLargeForText) -> WriteError {
+        match self {
+            Stop::TooMany => too_many().into(),
+            Stop::Read(error) => error.into(),
+        }
+    }
+}
+
 /// Collects (leaf row, leaf column, bits) of the non-empty leaves of a quad
 /// whose corner is at leaf column `corner[0]`, row `corner[1]`, that lie in
 /// `window` (first column, first row, last column, last row, in leaves).
 /// Fails when more than `allowance` live cells would be collected.
-fn leaf_blocks(
-    store: &Store,
-    quad: Handle,
+fn leaf_blocks<V: QuadView>(
+    view: &mut V,
+    quad: V::Node,
     level: u32,
     corner: [u64; 2],
     window: [u64; 4],
     out: &mut Vec<(u64, u64, u64)>,
     allowance: &mut u64,
-) -> Result<(), ()> {
+) -> Result<(), Stop> {
     let [x, y] = corner;
     let span = 1u64 << (level - LEAF_LEVEL);
     if x > window[2] || y > window[3] || x + span <= window[0] || y + span <= window[1] {
         return Ok(());
     }
-    if quad.is_leaf() {
-        let bits = store.leaf_bits(quad);
+    if view.is_empty(quad, level) {
+        return Ok(());
+    }
+    if level == LEAF_LEVEL {
+        let bits = view.leaf_bits(quad).map_err(Stop::Read)?;
         if bits != 0 {
             let count = bits.count_ones() as u64;
-            *allowance = allowance.checked_sub(count).ok_or(())?;
+            *allowance = allowance.checked_sub(count).ok_or(Stop::TooMany)?;
             out.push((y, x, bits));
         }
         return Ok(());
     }
-    if quad == store.known_empty(level) {
-        return Ok(());
-    }
     let half = span / 2;
-    for (at, kid) in store.kids(quad).into_iter().enumerate() {
+    let kids = view.kids(quad, level).map_err(Stop::Read)?;
+    for (at, kid) in kids.into_iter().enumerate() {
         let (dx, dy) = ((at as u64 % 2) * half, (at as u64 / 2) * half);
         leaf_blocks(
-            store,
+            view,
             kid,
             level - 1,
             [x + dx, y + dy],
