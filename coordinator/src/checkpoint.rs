@@ -1,23 +1,27 @@
 //! A run's checkpoints over a storage backend: manifests (one per stored
-//! generation, written last and atomically) naming the packs they need.
+//! generation, written last and atomically) naming the packs they need and
+//! where the root record is; whole reads (resume, verify) that check
+//! everything, and on-demand reads of one stored state (snapshots).
 //! CHECKPOINTS.md specifies the layout and the manifest's fields.
 
 use std::collections::HashSet;
 
 use anyhow::{Context, bail};
-use deeptime_engine::pack::{WrittenPack, pack_name};
+use deeptime_engine::pack::{Checksum, QuadAt, WrittenPack, pack_name};
 use deeptime_engine::rule::Rule;
-use deeptime_engine::{ContentId, Universe};
-use num_bigint::BigUint;
+use deeptime_engine::stored::{Fetch, StoredPack, StoredState};
+use deeptime_engine::{BoundingBox, ContentId, KnownQuads, PackInput, Universe};
+use num_bigint::{BigInt, BigUint};
 use serde::{Deserialize, Serialize};
 
+use crate::failure::BadInput;
 use crate::storage::Storage;
 
 /// The manifest format's name and version.
 pub const FORMAT: &str = "deeptime-checkpoint";
-pub const VERSION: u32 = 1;
+pub const VERSION: u32 = 2;
 /// Manifests larger than this are not read (a real one is a few KiB).
-const MAX_MANIFEST_BYTES: usize = 64 << 20;
+const MAX_MANIFEST_BYTES: u64 = 64 << 20;
 /// A manifest lists at most this many packs: the checkpoint after one that
 /// lists this many writes its whole state into one pack, so manifests and
 /// reads stay bounded.
@@ -29,7 +33,7 @@ pub const MAX_PACKS: usize = 64;
 pub struct Manifest {
     /// always "deeptime-checkpoint"
     pub format: String,
-    /// the manifest format version (1)
+    /// the manifest format version (2)
     pub version: u32,
     /// 1, 2, 3... in the order checkpoints were written
     pub sequence: u64,
@@ -43,8 +47,14 @@ pub struct Manifest {
     pub generation: String,
     /// content id of the state's canonical root: its digest
     pub root: String,
+    /// the pack that holds the root record, by index in `packs`
+    pub root_pack: u32,
+    /// the root's record number in that pack
+    pub root_record: u32,
     /// live cells, decimal
     pub population: String,
+    /// the extent of the live cells (decimal strings), null when none live
+    pub bbox: Option<BoxText>,
     /// every pack the state needs, in the order to read them
     pub packs: Vec<PackEntry>,
     /// seconds since 1970 when the manifest was written
@@ -61,6 +71,48 @@ pub struct PackEntry {
     pub bytes: u64,
     /// quad records in it
     pub records: u64,
+    /// the BLAKE3-128 checksum of its table, in hex
+    pub table: String,
+}
+
+/// A bounding box in a manifest: decimal strings.
+#[derive(Serialize, Deserialize, Debug, Clone, PartialEq, Eq)]
+#[serde(deny_unknown_fields)]
+pub struct BoxText {
+    pub left: String,
+    pub top: String,
+    pub width: String,
+    pub height: String,
+}
+
+impl BoxText {
+    fn of(bbox: &BoundingBox) -> BoxText {
+        BoxText {
+            left: bbox.left.to_string(),
+            top: bbox.top.to_string(),
+            width: bbox.width.to_string(),
+            height: bbox.height.to_string(),
+        }
+    }
+
+    /// The box, checked: integers, width and height at least 1.
+    pub fn parse(&self) -> anyhow::Result<BoundingBox> {
+        let signed = |text: &str, what: &str| -> anyhow::Result<BigInt> {
+            let digits = text.strip_prefix('-').unwrap_or(text);
+            decimal(digits, what)?;
+            Ok(text.parse().expect("digits parse"))
+        };
+        let bbox = BoundingBox {
+            left: signed(&self.left, "bbox.left")?,
+            top: signed(&self.top, "bbox.top")?,
+            width: decimal(&self.width, "bbox.width")?,
+            height: decimal(&self.height, "bbox.height")?,
+        };
+        if bbox.width == BigUint::ZERO || bbox.height == BigUint::ZERO {
+            bail!("bbox is empty");
+        }
+        Ok(bbox)
+    }
 }
 
 impl Manifest {
@@ -70,6 +122,18 @@ impl Manifest {
 
     pub fn generation(&self) -> anyhow::Result<BigUint> {
         decimal(&self.generation, "generation")
+    }
+
+    pub fn population(&self) -> anyhow::Result<BigUint> {
+        decimal(&self.population, "population")
+    }
+
+    /// Where the root record is.
+    pub fn root_at(&self) -> QuadAt {
+        QuadAt {
+            pack: self.root_pack,
+            record: self.root_record,
+        }
     }
 
     /// Bytes of all packs this checkpoint needs.
@@ -86,6 +150,30 @@ fn decimal(text: &str, what: &str) -> anyhow::Result<BigUint> {
     Ok(text.parse().expect("digits parse"))
 }
 
+/// A checksum or content id as written by deeptime: 32 lowercase hex digits.
+fn hex(text: &str, what: &str) -> anyhow::Result<Checksum> {
+    text.parse()
+        .ok()
+        .with_context(|| format!("{what} {text:?} is not 32 lowercase hex digits"))
+}
+
+/// Byte ranges of a checkpoint's packs, from its storage.
+struct StorageFetch<'s> {
+    storage: &'s dyn Storage,
+    keys: Vec<String>,
+}
+
+impl Fetch for StorageFetch<'_> {
+    fn fetch(&mut self, pack: usize, offset: u64, len: u64) -> Result<Vec<u8>, String> {
+        let key = &self.keys[pack];
+        match self.storage.get_range(key, offset, len) {
+            Ok(Some(bytes)) => Ok(bytes),
+            Ok(None) => Err("missing".to_string()),
+            Err(error) => Err(format!("cannot read: {error}")),
+        }
+    }
+}
+
 fn pack_key(name: &str) -> String {
     format!("packs/{name}.pack")
 }
@@ -94,7 +182,7 @@ fn pack_key(name: &str) -> String {
 pub struct Loaded {
     pub manifest: Manifest,
     pub universe: Universe,
-    pub known: HashSet<ContentId>,
+    pub known: KnownQuads,
 }
 
 /// The checkpoints of one run.
@@ -131,18 +219,29 @@ impl Checkpoints {
         let place = self.storage.locate(key);
         let bytes = self
             .storage
-            .get(key)
+            .get(key, MAX_MANIFEST_BYTES)
             .with_context(|| format!("cannot read {place}"))?
             .with_context(|| format!("{place} is missing"))?;
-        if bytes.len() > MAX_MANIFEST_BYTES {
-            bail!(
-                "{place}: manifest of {} bytes is over the limit",
-                bytes.len()
-            );
-        }
-        let manifest: Manifest = serde_json::from_slice(&bytes).map_err(|error| {
+        let at = |error: serde_json::Error| {
             anyhow::anyhow!("{place}:{}:{}: {error}", error.line(), error.column())
-        })?;
+        };
+        // The version first: a manifest of another version is not damaged,
+        // and its fields differ.
+        let value: serde_json::Value = serde_json::from_slice(&bytes).map_err(at)?;
+        let format = value.get("format").and_then(|v| v.as_str());
+        let version = value.get("version").and_then(|v| v.as_u64());
+        if format == Some(FORMAT)
+            && let Some(version) = version
+            && version != VERSION as u64
+        {
+            return Err(BadInput(format!(
+                "{place}: checkpoint format version {version}, which this build does not read \
+                 (it reads version {VERSION}): run the job into a new checkpoint.dir, or open \
+                 this one with the deeptime that wrote it"
+            ))
+            .into());
+        }
+        let manifest: Manifest = serde_json::from_slice(&bytes).map_err(at)?;
         if manifest.format != FORMAT || manifest.version != VERSION {
             bail!(
                 "{place}: format {} version {} (this build reads {FORMAT} version {VERSION})",
@@ -166,12 +265,34 @@ impl Checkpoints {
             if !names.insert(pack.name.as_str()) {
                 bail!("{place}: lists pack {} twice", pack.name);
             }
+            hex(&pack.name, "pack name").with_context(|| place.clone())?;
+            hex(&pack.table, "pack table").with_context(|| place.clone())?;
+        }
+        hex(&manifest.root, "root").with_context(|| place.clone())?;
+        let root_pack = manifest.packs.get(manifest.root_pack as usize);
+        if root_pack.is_none_or(|pack| manifest.root_record as u64 >= pack.records) {
+            bail!(
+                "{place}: the root record {} of pack {} is not among the packs listed",
+                manifest.root_record,
+                manifest.root_pack
+            );
+        }
+        let empty = manifest.population()? == BigUint::ZERO;
+        match &manifest.bbox {
+            None if !empty => bail!("{place}: live cells but no bbox"),
+            Some(_) if empty => bail!("{place}: a bbox but no live cells"),
+            Some(bbox) => {
+                bbox.parse().with_context(|| place.clone())?;
+            }
+            None => {}
         }
         Ok(manifest)
     }
 
-    /// Reads every pack of `manifest`, checks each against its name and
-    /// size, and rebuilds the state. Errors name the damaged file.
+    /// Reads every pack of `manifest` whole, checks each against its name,
+    /// size and table checksum, rebuilds the state and checks its digest,
+    /// population and bounding box against the manifest's. Errors name the
+    /// damaged file.
     pub fn load(&self, manifest: Manifest, budget: u64) -> anyhow::Result<Loaded> {
         let mut packs = Vec::with_capacity(manifest.packs.len());
         for entry in &manifest.packs {
@@ -179,7 +300,7 @@ impl Checkpoints {
             let place = self.storage.locate(&key);
             let bytes = self
                 .storage
-                .get(&key)
+                .get(&key, entry.bytes)
                 .with_context(|| format!("cannot read {place}"))?
                 .with_context(|| format!("{place} is missing"))?;
             if bytes.len() as u64 != entry.bytes {
@@ -189,37 +310,32 @@ impl Checkpoints {
                     entry.bytes
                 );
             }
-            if pack_name(&bytes) != entry.name {
+            if pack_name(&bytes).to_string() != entry.name {
                 bail!("{place}: content does not match its checksum (damaged)");
-            }
-            let records = bytes
-                .get(16..24)
-                .map(|field| u64::from_le_bytes(field.try_into().expect("8 bytes")));
-            if records != Some(entry.records) {
-                bail!(
-                    "{place}: holds {records:?} records, the manifest says {}",
-                    entry.records
-                );
             }
             packs.push(bytes);
         }
-        let root: ContentId = manifest
-            .root
-            .parse()
-            .ok()
-            .filter(|id: &ContentId| id.to_string() == manifest.root)
-            .with_context(|| {
-                format!(
-                    "manifest {}: root {:?} is not 32 lowercase hex digits",
-                    manifest.sequence, manifest.root
-                )
-            })?;
+        let root: ContentId = manifest.root.parse().with_context(|| {
+            format!(
+                "manifest {}: root {:?} is not 32 lowercase hex digits",
+                manifest.sequence, manifest.root
+            )
+        })?;
         let rule = Rule::parse(&manifest.rule)
             .with_context(|| format!("manifest {}: bad rule", manifest.sequence))?;
         let generation = manifest.generation()?;
-        let (mut universe, ids) = Universe::from_packs(
-            packs.iter().map(|bytes| bytes.as_slice()),
+        let mut inputs = Vec::with_capacity(packs.len());
+        for (bytes, entry) in packs.iter().zip(&manifest.packs) {
+            inputs.push(PackInput {
+                bytes,
+                table: Some(hex(&entry.table, "pack table")?),
+                records: Some(entry.records),
+            });
+        }
+        let (mut universe, known) = Universe::from_packs(
+            inputs,
             root,
+            manifest.root_at(),
             rule,
             generation,
             budget,
@@ -245,10 +361,48 @@ impl Checkpoints {
                 manifest.sequence
             );
         }
+        if universe.bounding_box().as_ref().map(BoxText::of) != manifest.bbox {
+            bail!(
+                "checkpoint {}: bounding box differs from the manifest",
+                manifest.sequence
+            );
+        }
         Ok(Loaded {
             manifest,
             universe,
-            known: ids.into_iter().collect(),
+            known,
+        })
+    }
+
+    /// Opens the state of `manifest` for reading on demand: only its root
+    /// record now, then whatever a region or picture walks to. Each chunk
+    /// read is checked against its table, each table against the manifest.
+    pub fn open_stored(&self, manifest: &Manifest) -> anyhow::Result<StoredParts<'_>> {
+        let mut packs = Vec::with_capacity(manifest.packs.len());
+        for entry in &manifest.packs {
+            packs.push(StoredPack {
+                name: hex(&entry.name, "pack name")?,
+                bytes: entry.bytes,
+                records: entry.records,
+                table: hex(&entry.table, "pack table")?,
+                place: self.storage.locate(&pack_key(&entry.name)),
+            });
+        }
+        let fetch = StorageFetch {
+            storage: self.storage.as_ref(),
+            keys: manifest
+                .packs
+                .iter()
+                .map(|entry| pack_key(&entry.name))
+                .collect(),
+        };
+        Ok(StoredParts {
+            fetch,
+            packs,
+            root: manifest.root_at(),
+            population: manifest.population()?,
+            rule: Rule::parse(&manifest.rule)
+                .with_context(|| format!("manifest {}: bad rule", manifest.sequence))?,
         })
     }
 
@@ -266,10 +420,11 @@ impl Checkpoints {
             match loaded {
                 Ok(loaded) => return Ok(Some(loaded)),
                 Err(error) => {
-                    if error
-                        .chain()
-                        .any(|cause| cause.is::<deeptime_engine::BudgetExceeded>())
-                    {
+                    // A budget too small, or a checkpoint of another
+                    // version, is no damage: stop rather than skip it.
+                    if error.chain().any(|cause| {
+                        cause.is::<deeptime_engine::BudgetExceeded>() || cause.is::<BadInput>()
+                    }) {
                         return Err(error);
                     }
                     warn(format!("skipping damaged checkpoint: {error:#}"));
@@ -289,8 +444,13 @@ impl Checkpoints {
         // manifests are left alone (verify reports them).
         let mut readable = Vec::new();
         for key in self.manifest_keys()? {
-            if let Ok(manifest) = self.manifest(&key) {
-                readable.push((key, manifest));
+            match self.manifest(&key) {
+                Ok(manifest) => readable.push((key, manifest)),
+                // Packs of checkpoints of another version are not ours to judge.
+                Err(error) if error.chain().any(|cause| cause.is::<BadInput>()) => {
+                    return Err(error);
+                }
+                Err(_) => {}
             }
         }
         let cut = readable.len().saturating_sub(keep);
@@ -324,7 +484,7 @@ impl Checkpoints {
         &self,
         universe: &mut Universe,
         previous: Option<&Manifest>,
-        known: &mut HashSet<ContentId>,
+        known: &mut KnownQuads,
         name: &str,
         pattern: &ContentId,
     ) -> anyhow::Result<Manifest> {
@@ -334,40 +494,66 @@ impl Checkpoints {
             packs.clear();
             known.clear();
         }
-        let (digest, pack) = universe.write_pack(&|id| known.contains(id))?;
-        if let Some(WrittenPack {
-            bytes,
-            records,
-            ids,
-        }) = pack
-        {
-            let name = pack_name(&bytes);
-            let key = pack_key(&name);
-            let place = self.storage.locate(&key);
-            let wrote = self
-                .storage
-                .put_new(&key, &bytes)
-                .with_context(|| format!("cannot write {place}"))?;
-            // The same pack may be there from an earlier attempt: use it
-            // only if it is whole, else put the good bytes in its place.
-            if !wrote {
-                let stored = self
+        let mut names = Vec::with_capacity(packs.len());
+        for entry in &packs {
+            names.push(hex(&entry.name, "pack name")?);
+        }
+        let (digest, pack) = universe.write_pack(&|id| known.get(id).copied(), &names)?;
+        let root_at = match pack {
+            Some(WrittenPack {
+                bytes,
+                records,
+                ids,
+                table,
+            }) => {
+                let name = pack_name(&bytes).to_string();
+                let key = pack_key(&name);
+                let place = self.storage.locate(&key);
+                let wrote = self
                     .storage
-                    .get(&key)
-                    .with_context(|| format!("cannot read {place}"))?;
-                if stored.as_deref() != Some(bytes.as_slice()) {
-                    self.storage
-                        .replace(&key, &bytes)
-                        .with_context(|| format!("cannot repair {place}"))?;
+                    .put_new(&key, &bytes)
+                    .with_context(|| format!("cannot write {place}"))?;
+                // The same pack may be there from an earlier attempt: use it
+                // only if it is whole, else put the good bytes in its place.
+                if !wrote {
+                    let stored = match self.storage.get(&key, bytes.len() as u64) {
+                        Ok(stored) => stored,
+                        // Longer than it should be: damaged.
+                        Err(error) if error.kind() == std::io::ErrorKind::InvalidData => None,
+                        Err(error) => {
+                            return Err(error).with_context(|| format!("cannot read {place}"));
+                        }
+                    };
+                    if stored.as_deref() != Some(bytes.as_slice()) {
+                        self.storage
+                            .replace(&key, &bytes)
+                            .with_context(|| format!("cannot repair {place}"))?;
+                    }
+                }
+                let index = packs.len() as u32;
+                packs.push(PackEntry {
+                    name,
+                    bytes: bytes.len() as u64,
+                    records,
+                    table: table.to_string(),
+                });
+                for (record, id) in ids.into_iter().enumerate() {
+                    let at = QuadAt {
+                        pack: index,
+                        record: record as u32,
+                    };
+                    known.insert(id, at);
+                }
+                // A new root is its pack's last record.
+                QuadAt {
+                    pack: index,
+                    record: (records - 1) as u32,
                 }
             }
-            packs.push(PackEntry {
-                name,
-                bytes: bytes.len() as u64,
-                records,
-            });
-            known.extend(ids);
-        }
+            None => *known
+                .get(&digest)
+                .context("the state's root is in no pack of the run")?,
+        };
         let sequence = match self.manifest_keys()?.last() {
             Some(last) => {
                 last.trim_start_matches("manifests/")
@@ -388,7 +574,10 @@ impl Checkpoints {
             pattern: pattern.to_string(),
             generation: universe.generation().to_string(),
             root: digest.to_string(),
+            root_pack: root_at.pack,
+            root_record: root_at.record,
             population: universe.population().to_string(),
+            bbox: universe.bounding_box().as_ref().map(BoxText::of),
             packs,
             written: std::time::SystemTime::now()
                 .duration_since(std::time::UNIX_EPOCH)
@@ -407,5 +596,28 @@ impl Checkpoints {
             );
         }
         Ok(manifest)
+    }
+}
+
+/// What reading a stored state on demand needs: open it with
+/// `StoredParts::state`.
+pub struct StoredParts<'s> {
+    fetch: StorageFetch<'s>,
+    packs: Vec<StoredPack>,
+    root: QuadAt,
+    population: BigUint,
+    rule: Rule,
+}
+
+impl StoredParts<'_> {
+    /// The state, its root record read and checked.
+    pub fn state(&mut self) -> anyhow::Result<StoredState<'_>> {
+        Ok(StoredState::open(
+            &mut self.fetch,
+            self.packs.clone(),
+            self.root,
+            &self.population,
+            self.rule,
+        )?)
     }
 }

@@ -3,6 +3,7 @@
 //! with their name and position; paths are relative to the job file.
 
 use std::path::{Path, PathBuf};
+use std::time::Duration;
 
 use deeptime_engine::generation::parse_generations;
 use num_bigint::BigUint;
@@ -30,7 +31,8 @@ struct JobFile {
 #[serde(deny_unknown_fields)]
 struct CheckpointFile {
     dir: String,
-    every: String,
+    every: Option<String>,
+    wall_clock: Option<String>,
     keep: Option<usize>,
 }
 
@@ -43,7 +45,11 @@ pub struct Job {
     pub target: BigUint,
     pub memory: Option<String>,
     pub checkpoint_dir: PathBuf,
-    pub every: BigUint,
+    /// checkpoints at the multiples of this generation count (None: only
+    /// as the wall clock says, and at the target)
+    pub every: Option<BigUint>,
+    /// a checkpoint at least about this often in time
+    pub wall_clock: Option<Duration>,
     /// how many of the newest checkpoints to keep (None: all)
     pub keep: Option<usize>,
 }
@@ -69,11 +75,31 @@ impl Job {
         let base = path.parent().unwrap_or(Path::new("."));
         let target = parse_generations(&file.target)
             .map_err(|error| BadInput(format!("{place}: target: {error}")))?;
-        let every = parse_generations(&file.checkpoint.every)
-            .map_err(|error| BadInput(format!("{place}: checkpoint.every: {error}")))?;
-        if every.is_zero() {
+        let every = match &file.checkpoint.every {
+            None => None,
+            Some(text) => {
+                let every = parse_generations(text)
+                    .map_err(|error| BadInput(format!("{place}: checkpoint.every: {error}")))?;
+                if every.is_zero() {
+                    return Err(BadInput(format!(
+                        "{place}: checkpoint.every must be at least 1"
+                    )));
+                }
+                Some(every)
+            }
+        };
+        let wall_clock = match &file.checkpoint.wall_clock {
+            None => None,
+            Some(text) => Some(parse_duration(text).ok_or_else(|| {
+                BadInput(format!(
+                    "{place}: checkpoint.wall_clock {text:?}: a whole number of seconds, \
+                     minutes, hours or days, at least 1 (\"90s\", \"10m\", \"2h\", \"1d\")"
+                ))
+            })?),
+        };
+        if every.is_none() && wall_clock.is_none() {
             return Err(BadInput(format!(
-                "{place}: checkpoint.every must be at least 1"
+                "{place}: [checkpoint] needs every (generations) or wall_clock (time), or both"
             )));
         }
         if file.checkpoint.keep == Some(0) {
@@ -105,9 +131,29 @@ impl Job {
                 base.join(dir)
             },
             every,
+            wall_clock,
             keep: file.checkpoint.keep,
         })
     }
+}
+
+/// A time span as a whole number and a unit: `90s`, `10m`, `2h`, `1d`.
+fn parse_duration(text: &str) -> Option<Duration> {
+    let unit = text.chars().last()?;
+    let seconds: u64 = match unit {
+        's' => 1,
+        'm' => 60,
+        'h' => 3600,
+        'd' => 86_400,
+        _ => return None,
+    };
+    let number = &text[..text.len() - 1];
+    if number.is_empty() || !number.bytes().all(|b| b.is_ascii_digit()) {
+        return None;
+    }
+    let count: u64 = number.parse().ok()?;
+    let total = count.checked_mul(seconds).filter(|&total| total >= 1)?;
+    Some(Duration::from_secs(total))
 }
 
 /// 1-based line and column of a byte offset.
@@ -139,7 +185,8 @@ mod tests {
         let job = load(GOOD).unwrap();
         assert_eq!(job.name, "job");
         assert_eq!(job.target, BigUint::from(10u32).pow(12));
-        assert_eq!(job.every, BigUint::from(1u32 << 16));
+        assert_eq!(job.every, Some(BigUint::from(1u32 << 16)));
+        assert_eq!(job.wall_clock, None);
         assert!(job.pattern.ends_with("a.rle"));
         assert!(job.checkpoint_dir.ends_with("runs/a"));
     }
@@ -160,5 +207,36 @@ mod tests {
         assert_eq!(error.0, "JOB: checkpoint.every must be at least 1");
         let error = load(&GOOD.replace("10^12", "ten")).unwrap_err();
         assert!(error.0.starts_with("JOB: target: "), "{}", error.0);
+        let error = load(&GOOD.replace("every = \"2^16\"", "keep = 3")).unwrap_err();
+        assert_eq!(
+            error.0,
+            "JOB: [checkpoint] needs every (generations) or wall_clock (time), or both"
+        );
+        let error = load(&GOOD.replace("every", "wall_clok")).unwrap_err();
+        assert!(
+            error.0.starts_with("JOB:6:1: unknown field `wall_clok`"),
+            "{}",
+            error.0
+        );
+    }
+
+    #[test]
+    fn a_wall_clock_interval_reads_in_its_units() {
+        // Seconds in a minute, an hour, a day (common practice).
+        let job = load(&GOOD.replace("every = \"2^16\"", "wall_clock = \"10m\"")).unwrap();
+        assert_eq!(job.every, None);
+        assert_eq!(job.wall_clock, Some(Duration::from_secs(600)));
+        for (text, seconds) in [("90s", 90), ("2h", 7200), ("1d", 86_400)] {
+            assert_eq!(parse_duration(text), Some(Duration::from_secs(seconds)));
+        }
+        for bad in ["0s", "10", "m", "1.5h", "-3m", "10 m", "10M"] {
+            assert_eq!(parse_duration(bad), None, "{bad}");
+        }
+        let error = load(&format!("{GOOD}wall_clock = \"soon\"\n")).unwrap_err();
+        assert!(
+            error.0.starts_with("JOB: checkpoint.wall_clock \"soon\": a whole number"),
+            "{}",
+            error.0
+        );
     }
 }

@@ -15,6 +15,12 @@ pub struct Report {
     pub rule: String,
     pub digest: String,
     pub engine: EngineReport,
+    /// bytes read from a run's storage (snapshots only)
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub bytes_read: Option<u64>,
+    /// bytes of all packs the checkpoint read from needs (snapshots only)
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub pack_bytes: Option<u64>,
 }
 
 #[derive(Serialize, Debug)]
@@ -71,6 +77,8 @@ impl Report {
                 root_level: universe.root_level(),
                 seconds: elapsed.as_secs_f64(),
             },
+            bytes_read: None,
+            pack_bytes: None,
         })
     }
 
@@ -102,6 +110,13 @@ impl Report {
             human_bytes(engine.bytes),
             engine.collections
         );
+        if let (Some(read), Some(packs)) = (self.bytes_read, self.pack_bytes) {
+            println!(
+                "storage       {} read; the checkpoint's packs hold {}",
+                human_bytes(read),
+                human_bytes(packs)
+            );
+        }
         Ok(())
     }
 }

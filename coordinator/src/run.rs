@@ -1,14 +1,15 @@
 //! `deeptime run JOB.toml`: a job in this one process (the embedded mode):
-//! advance to the target in steps of the checkpoint interval, writing a
-//! checkpoint after each; started again, resume from the newest good one.
+//! advance to the target, writing a checkpoint at every multiple of the
+//! job's `every` and, with a `wall_clock` interval, often enough in time
+//! (an advance cannot be cut part way, so the step sizes are chosen by the
+//! measured pace); started again, resume from the newest good one.
 
-use std::collections::HashSet;
-use std::time::Instant;
+use std::time::{Duration, Instant};
 
 use anyhow::Context;
-use deeptime_engine::{Progress, Universe};
+use deeptime_engine::{KnownQuads, Progress, Universe};
 use num_bigint::BigUint;
-use num_traits::ToPrimitive;
+use num_traits::{One, ToPrimitive, Zero};
 
 use crate::checkpoint::Checkpoints;
 use crate::cli::RunArgs;
@@ -58,7 +59,7 @@ pub fn run(args: RunArgs) -> anyhow::Result<()> {
             (stored.universe, Some(manifest), stored.known)
         }
         None => {
-            let mut known = HashSet::new();
+            let mut known = KnownQuads::default();
             let manifest =
                 checkpoints.write(&mut fresh, None, &mut known, &job.name, &pattern_digest)?;
             (fresh, Some(manifest), known)
@@ -77,9 +78,19 @@ pub fn run(args: RunArgs) -> anyhow::Result<()> {
     let from = universe.generation().clone();
     let line = progress::Line::start(&job.name);
     let advancing = Instant::now();
+    let mut pacer = job.wall_clock.map(Pacer::new);
+    let mut last_checkpoint = Instant::now();
     while universe.generation() < &job.target {
-        let left: BigUint = &job.target - universe.generation();
-        let step = left.min(job.every.clone());
+        // The next generation that must be stored: a multiple of `every`,
+        // or the target.
+        let stop = match &job.every {
+            Some(every) => ((universe.generation() / every + 1u32) * every).min(job.target.clone()),
+            None => job.target.clone(),
+        };
+        let mut step: BigUint = &stop - universe.generation();
+        if let Some(pacer) = &pacer {
+            step = step.min(pacer.step.clone());
+        }
         let before = share(&(universe.generation() - &from), &(&job.target - &from));
         let span = share(&step, &(&job.target - &from));
         let population = previous.as_ref().map_or("?", |m| m.population.as_str());
@@ -92,8 +103,20 @@ pub fn run(args: RunArgs) -> anyhow::Result<()> {
             short_float(rate)
         );
         let mut observe = |progress: &Progress| line.update_part(before, span, progress, &note);
+        let started_step = Instant::now();
         let advanced = universe.advance(&step, Some(&mut observe));
         advanced.with_context(|| format!("advancing {step} generations"))?;
+        let took = started_step.elapsed();
+        let due = match pacer.as_mut() {
+            Some(pacer) => {
+                pacer.record(&step, took);
+                pacer.due(last_checkpoint.elapsed())
+            }
+            None => false,
+        };
+        if universe.generation() != &stop && !due {
+            continue;
+        }
         let manifest = checkpoints.write(
             &mut universe,
             previous.as_ref(),
@@ -101,6 +124,7 @@ pub fn run(args: RunArgs) -> anyhow::Result<()> {
             &job.name,
             &pattern_digest,
         )?;
+        last_checkpoint = Instant::now();
         previous = Some(manifest);
         if let Some(keep) = job.keep
             && let Err(error) = checkpoints.prune(keep)
@@ -110,6 +134,48 @@ pub fn run(args: RunArgs) -> anyhow::Result<()> {
     }
     line.finish();
     Report::of(&mut universe, started.elapsed())?.print(args.json)
+}
+
+/// Chooses power-of-two step sizes so that one advance takes between about
+/// an eighth and a half of the wall-clock interval, and says when a
+/// checkpoint is due: when the next step, at the last one's pace, would
+/// carry the time since the last checkpoint past the interval.
+pub struct Pacer {
+    interval: Duration,
+    /// the next step's size: a power of two
+    pub step: BigUint,
+    /// how long the last advance took
+    last: Duration,
+}
+
+impl Pacer {
+    pub fn new(interval: Duration) -> Pacer {
+        Pacer {
+            interval,
+            step: BigUint::one(),
+            last: Duration::ZERO,
+        }
+    }
+
+    /// Learns from an advance of `generations` that took `took`: halves
+    /// the step when it took more than half the interval, doubles it when
+    /// a whole step took less than a quarter.
+    pub fn record(&mut self, generations: &BigUint, took: Duration) {
+        self.last = took;
+        if took * 2 > self.interval {
+            if self.step > BigUint::one() {
+                self.step >>= 1;
+            }
+        } else if took * 4 < self.interval && generations == &self.step {
+            self.step <<= 1;
+        }
+        debug_assert!(!self.step.is_zero());
+    }
+
+    /// Whether to write a checkpoint now, `since` the last one.
+    pub fn due(&self, since: Duration) -> bool {
+        since + self.last >= self.interval
+    }
 }
 
 /// `part / whole` as a float, for big integers of any size.
@@ -142,5 +208,41 @@ fn short_float(value: f64) -> String {
         format!("{value:.0}")
     } else {
         format!("{value:.2e}")
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn the_pacer_doubles_fast_steps_halves_slow_ones_and_keeps_checkpoints_in_time() {
+        let second = Duration::from_secs(1);
+        let mut pacer = Pacer::new(10 * second);
+        let ms = Duration::from_millis;
+        // Fast whole steps double: 1, 2, 4, 8.
+        for expected in [2u32, 4, 8] {
+            let step = pacer.step.clone();
+            pacer.record(&step, ms(10));
+            assert_eq!(pacer.step, BigUint::from(expected));
+        }
+        // A step cut short by a stop (3 of 8) does not double it.
+        pacer.record(&BigUint::from(3u32), ms(10));
+        assert_eq!(pacer.step, BigUint::from(8u32));
+        // Between a quarter and a half of the interval: kept.
+        pacer.record(&BigUint::from(8u32), 3 * second);
+        assert_eq!(pacer.step, BigUint::from(8u32));
+        // Over half: halved, never below 1.
+        pacer.record(&BigUint::from(8u32), 6 * second);
+        assert_eq!(pacer.step, BigUint::from(4u32));
+        for _ in 0..5 {
+            let step = pacer.step.clone();
+            pacer.record(&step, 60 * second);
+        }
+        assert_eq!(pacer.step, BigUint::one());
+        // Due once the next step, at the last pace, would pass the interval.
+        pacer.record(&BigUint::one(), 3 * second);
+        assert!(!pacer.due(6 * second));
+        assert!(pacer.due(7 * second));
     }
 }

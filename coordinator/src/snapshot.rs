@@ -1,20 +1,30 @@
 //! `deeptime snapshot DIR --gen G`: the state at any generation of a stored
 //! run — the stored one if G is stored, else the nearest earlier one
 //! advanced to G — as figures, as RLE of a region, or as a picture.
+//!
+//! A stored generation is read on demand: the figures come from its
+//! manifest (checked against its root record), and a region or picture
+//! reads only the chunks of the quads it needs. A generation between
+//! checkpoints needs the whole earlier state, read and checked whole, to
+//! advance it.
 
 use std::io::Write;
 use std::path::Path;
-use std::time::Instant;
+use std::sync::Arc;
+use std::time::{Duration, Instant};
 
 use anyhow::{Context, bail};
 use deeptime_engine::generation::parse_generations;
-use deeptime_engine::{Progress, Region, Universe};
+use deeptime_engine::render::Picture;
+use deeptime_engine::stored::StoredState;
+use deeptime_engine::{BoundingBox, Progress, Region, Universe};
 use num_bigint::{BigInt, BigUint};
 
-use crate::checkpoint::Checkpoints;
+use crate::checkpoint::{Checkpoints, Manifest};
 use crate::cli::SnapshotArgs;
 use crate::failure::BadInput;
-use crate::report::Report;
+use crate::report::{BoxReport, EngineReport, Report};
+use crate::storage::Counting;
 use crate::{memory, output, progress};
 
 /// Pictures are at most this many pixels on their longer side by default.
@@ -26,7 +36,9 @@ pub fn run(args: SnapshotArgs) -> anyhow::Result<()> {
     let region = args.region.as_deref().map(parse_region).transpose()?;
     let budget = memory::budget(args.memory.as_deref())?;
     let started = Instant::now();
-    let checkpoints = Checkpoints::new(crate::storage::open(&args.dir)?);
+    // Every byte read from the run's storage is counted, for the report.
+    let counted = Arc::new(Counting::new(crate::storage::open(&args.dir)?));
+    let checkpoints = Checkpoints::new(Box::new(counted.clone()));
     let keys = checkpoints.manifest_keys()?;
     if keys.is_empty() {
         bail!("{}: no checkpoints", args.dir.display());
@@ -63,23 +75,40 @@ pub fn run(args: SnapshotArgs) -> anyhow::Result<()> {
     }
     let mut opened = None;
     for (stored, manifest) in candidates {
+        let pack_bytes = manifest.pack_bytes();
+        if stored == generation {
+            // Stored: read on demand.
+            match from_stored(&checkpoints, &manifest, &args, region.as_ref(), budget) {
+                Ok(Some(mut report)) => {
+                    report.engine.seconds = started.elapsed().as_secs_f64();
+                    report.bytes_read = Some(counted.bytes_read());
+                    report.pack_bytes = Some(pack_bytes);
+                    return report.print(args.json);
+                }
+                Ok(None) => {} // a state within one leaf: read whole below
+                Err(error) => {
+                    if stops(&error) {
+                        return Err(error);
+                    }
+                    eprintln!("deeptime: warning: skipping damaged checkpoint: {error:#}");
+                    continue;
+                }
+            }
+        }
         match checkpoints.load(manifest, budget) {
             Ok(loaded) => {
-                opened = Some((stored, loaded.universe));
+                opened = Some((stored, loaded.universe, pack_bytes));
                 break;
             }
             Err(error) => {
-                if error
-                    .chain()
-                    .any(|cause| cause.is::<deeptime_engine::BudgetExceeded>())
-                {
+                if stops(&error) {
                     return Err(error);
                 }
                 eprintln!("deeptime: warning: skipping damaged checkpoint: {error:#}");
             }
         }
     }
-    let Some((stored, mut universe)) = opened else {
+    let Some((stored, mut universe, pack_bytes)) = opened else {
         bail!("no undamaged checkpoint at or before generation {generation}");
     };
     if stored < generation {
@@ -92,9 +121,106 @@ pub fn run(args: SnapshotArgs) -> anyhow::Result<()> {
         advanced.with_context(|| format!("advancing {steps} generations"))?;
     }
     if let Some(out) = &args.out {
-        write_out(&mut universe, out, region.as_ref(), args.scale)?;
+        let bbox = universe.bounding_box();
+        write_out(&mut Source::Memory(&mut universe), bbox, out, region.as_ref(), args.scale)?;
     }
-    Report::of(&mut universe, started.elapsed())?.print(args.json)
+    let mut report = Report::of(&mut universe, started.elapsed())?;
+    report.bytes_read = Some(counted.bytes_read());
+    report.pack_bytes = Some(pack_bytes);
+    report.print(args.json)
+}
+
+/// Errors that end the snapshot rather than send it to an earlier
+/// checkpoint: a budget too small, a checkpoint of another version, bad
+/// options.
+fn stops(error: &anyhow::Error) -> bool {
+    error.chain().any(|cause| {
+        cause.is::<deeptime_engine::BudgetExceeded>() || cause.is::<BadInput>()
+    })
+}
+
+/// The snapshot of a stored generation read on demand: the figures from
+/// its manifest, checked against its root record, and the output from the
+/// quads it needs. None when the state lies within one leaf (then reading
+/// it whole costs as little).
+fn from_stored(
+    checkpoints: &Checkpoints,
+    manifest: &Manifest,
+    args: &SnapshotArgs,
+    region: Option<&Region>,
+    budget: u64,
+) -> anyhow::Result<Option<Report>> {
+    let mut parts = checkpoints.open_stored(manifest)?;
+    let mut state = parts.state()?;
+    if state.root_level() <= 3 {
+        return Ok(None);
+    }
+    let bbox = manifest.bbox.as_ref().map(|b| b.parse()).transpose()?;
+    if let Some(out) = &args.out {
+        write_out(&mut Source::Stored(&mut state), bbox, out, region, args.scale)?;
+    }
+    Ok(Some(Report {
+        generation: manifest.generation.clone(),
+        population: manifest.population.clone(),
+        bbox: manifest.bbox.as_ref().map(|bbox| BoxReport {
+            left: bbox.left.clone(),
+            top: bbox.top.clone(),
+            width: bbox.width.clone(),
+            height: bbox.height.clone(),
+        }),
+        rule: manifest.rule.clone(),
+        digest: manifest.root.clone(),
+        engine: EngineReport {
+            quads: state.records_decoded,
+            leaves: state.leaves_decoded,
+            quads_created: state.records_decoded,
+            bytes: 0,
+            budget,
+            collections: 0,
+            root_level: state.root_level().max(5),
+            seconds: Duration::ZERO.as_secs_f64(),
+        },
+        bytes_read: None,
+        pack_bytes: None,
+    }))
+}
+
+/// What a snapshot draws from: a state in memory, or a stored one read on
+/// demand.
+enum Source<'a, 'f> {
+    Memory(&'a mut Universe),
+    Stored(&'a mut StoredState<'f>),
+}
+
+impl Source<'_, '_> {
+    fn rule(&self) -> String {
+        match self {
+            Source::Memory(universe) => universe.rule().to_string(),
+            Source::Stored(state) => state.rule().to_string(),
+        }
+    }
+
+    fn write_rle_region(&mut self, out: &mut impl Write, region: &Region) -> anyhow::Result<()> {
+        match self {
+            Source::Memory(universe) => universe.write_rle_region(out, region)?,
+            Source::Stored(state) => state.write_rle_region(out, region)?,
+        }
+        Ok(())
+    }
+
+    fn picture(
+        &mut self,
+        left: &BigInt,
+        top: &BigInt,
+        columns: u64,
+        rows: u64,
+        scale: u32,
+    ) -> anyhow::Result<Picture> {
+        Ok(match self {
+            Source::Memory(universe) => universe.picture(left, top, columns, rows, scale)?,
+            Source::Stored(state) => state.picture(left, top, columns, rows, scale)?,
+        })
+    }
 }
 
 fn parse_region(text: &str) -> Result<Region, BadInput> {
@@ -116,7 +242,8 @@ fn parse_region(text: &str) -> Result<Region, BadInput> {
 }
 
 fn write_out(
-    universe: &mut Universe,
+    source: &mut Source,
+    bbox: Option<BoundingBox>,
     out: &Path,
     region: Option<&Region>,
     scale: Option<u32>,
@@ -128,11 +255,18 @@ fn write_out(
         .to_ascii_lowercase();
     output::write_whole(out, |writer| match extension.as_str() {
         "rle" => match region {
-            Some(region) => universe.write_rle_region(writer, region),
-            None => universe.write_rle(writer),
+            Some(region) => source.write_rle_region(writer, region),
+            // The whole state: the region of its bounding box.
+            None => match &bbox {
+                Some(bbox) => source.write_rle_region(writer, &Region::of_box(bbox)?),
+                None => {
+                    deeptime_engine::pattern::write::write_rle(writer, 0, 0, &source.rule(), [])?;
+                    Ok(())
+                }
+            },
         }
         .with_context(|| format!("--out {}", out.display())),
-        "png" => draw(universe, writer, region, scale)
+        "png" => draw(source, bbox, writer, region, scale)
             .with_context(|| format!("--out {}", out.display())),
         _ => Err(BadInput(format!("--out {}: write .rle or .png", out.display())).into()),
     })
@@ -140,7 +274,8 @@ fn write_out(
 
 /// A grey picture: white where nothing lives, darker the denser.
 fn draw(
-    universe: &Universe,
+    source: &mut Source,
+    bbox: Option<BoundingBox>,
     writer: &mut impl Write,
     region: Option<&Region>,
     scale: Option<u32>,
@@ -152,7 +287,7 @@ fn draw(
             BigUint::from(region.width),
             BigUint::from(region.height),
         ),
-        None => match universe.bounding_box() {
+        None => match bbox {
             Some(bbox) => (bbox.left, bbox.top, bbox.width, bbox.height),
             None => (
                 BigInt::from(0),
@@ -184,7 +319,7 @@ fn draw(
     if columns == 0 || rows == 0 {
         return Err(BadInput("the region to draw is empty".to_string()).into());
     }
-    let picture = universe.picture(&left, &top, columns, rows, scale)?;
+    let picture = source.picture(&left, &top, columns, rows, scale)?;
     let mut encoder = png::Encoder::new(writer, picture.columns.max(1), picture.rows.max(1));
     encoder.set_color(png::ColorType::Grayscale);
     encoder.set_depth(png::BitDepth::Eight);

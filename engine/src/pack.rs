@@ -894,8 +894,20 @@ impl Reader {
         bytes: &[u8],
         name: Checksum,
         table_sum: Option<Checksum>,
+        expected_records: Option<u64>,
     ) -> Result<(), PackError> {
         let (table, records) = open_whole(bytes, table_sum)?;
+        if let Some(expected) = expected_records
+            && expected != table.records
+        {
+            return Err(malformed(
+                bytes.len() as u64 - TRAILER_BYTES,
+                format!(
+                    "holds {} records, the manifest says {expected}",
+                    table.records
+                ),
+            ));
+        }
         // Slots name packs read before this one.
         let mut slots = Vec::with_capacity(table.slots.len());
         for (slot, wanted) in table.slots.iter().enumerate() {

@@ -84,6 +84,8 @@ pub struct StoredState<'f> {
     rule: Rule,
     /// records decoded so far (whole chunks)
     pub records_decoded: u64,
+    /// of which leaves
+    pub leaves_decoded: u64,
     /// chunks fetched so far
     pub chunks_read: u64,
 }
@@ -110,6 +112,7 @@ impl<'f> StoredState<'f> {
             level: LEAF_LEVEL,
             rule,
             records_decoded: 0,
+            leaves_decoded: 0,
             chunks_read: 0,
         };
         let place = |state: &StoredState| {
@@ -148,6 +151,11 @@ impl<'f> StoredState<'f> {
     /// The level of the root record (3 for a state within one leaf).
     pub fn root_level(&self) -> u32 {
         self.level
+    }
+
+    /// The rule the state evolves under.
+    pub fn rule(&self) -> Rule {
+        self.rule
     }
 
     fn fail(&self, pack: usize, error: PackError) -> ReadError {
@@ -247,6 +255,10 @@ impl<'f> StoredState<'f> {
                 .map_err(|e| self.fail(pack, e))?;
             self.chunks_read += 1;
             self.records_decoded += records.len() as u64;
+            self.leaves_decoded += records
+                .iter()
+                .filter(|record| matches!(record, RawRecord::Leaf(_)))
+                .count() as u64;
             self.chunks.insert((pack, chunk), records);
         }
         Ok(self.chunks[&(pack, chunk)][(at.record as u64 - first) as usize].clone())

@@ -101,6 +101,8 @@ pub type KnownQuads = HashMap<ContentId, QuadAt, ahash::RandomState>;
 pub struct PackInput<'p> {
     pub bytes: &'p [u8],
     pub table: Option<Checksum>,
+    /// the record count the manifest lists, when there is one
+    pub records: Option<u64>,
 }
 
 /// A state of the plane under a rule, at a generation.
@@ -230,7 +232,7 @@ impl Universe {
         for (index, input) in packs.into_iter().enumerate() {
             count = index + 1;
             let name = pack::pack_name(input.bytes);
-            if let Err(error) = reader.read(store, input.bytes, name, input.table) {
+            if let Err(error) = reader.read(store, input.bytes, name, input.table, input.records) {
                 outcome = Err((index, error));
                 break;
             }

@@ -155,6 +155,7 @@ fn an_incremental_pack_holds_only_new_quads() {
         [PackInput {
             bytes: &first.bytes,
             table: Some(second.table),
+            records: None,
         }],
         first_digest,
         last(0, first.records),
@@ -178,7 +179,11 @@ fn damaged_packs_are_refused_never_misread() {
     let (bytes, records) = (pack.bytes, pack.records);
     let read = |bytes: &[u8]| {
         Universe::from_packs(
-            [PackInput { bytes, table: None }],
+            [PackInput {
+        bytes,
+        table: None,
+        records: None,
+    }],
             digest,
             last(0, records),
             Rule::LIFE,
@@ -255,7 +260,11 @@ fn with_second_frame(pack: &[u8]) -> Vec<u8> {
 
 /// A whole pack read without a manifest's table checksum.
 fn whole(bytes: &[u8]) -> PackInput<'_> {
-    PackInput { bytes, table: None }
+    PackInput {
+        bytes,
+        table: None,
+        records: None,
+    }
 }
 
 /// The last record of pack `pack`, which holds `records`: where a new root is.

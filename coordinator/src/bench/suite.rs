@@ -389,8 +389,6 @@ fn run_python(
 /// Checkpoints of a large chaotic state: bytes per quad on disk, write and
 /// resume speed, and an incremental checkpoint against a full one.
 fn checkpoints(settings: &Settings) -> anyhow::Result<Vec<Figure>> {
-    use std::collections::HashSet;
-
     use crate::checkpoint::Checkpoints;
     use crate::storage::LocalDir;
 
@@ -403,7 +401,7 @@ fn checkpoints(settings: &Settings) -> anyhow::Result<Vec<Figure>> {
     let directory = tempfile::tempdir()?;
     let checkpoints = Checkpoints::new(Box::new(LocalDir::new(directory.path().to_path_buf())));
     let digest = universe.digest()?;
-    let mut known = HashSet::new();
+    let mut known = deeptime_engine::KnownQuads::default();
     let (full, full_time) =
         timed(|| checkpoints.write(&mut universe, None, &mut known, "bench", &digest))?;
     let full_bytes = full.pack_bytes();

@@ -1,14 +1,17 @@
 //! Where a run's checkpoints live: one interface, with a local-directory
-//! backend (the embedded default). Keys are our own relative names such as
+//! backend (the embedded default) and an S3-compatible one, and a counting
+//! decorator that wraps either. Keys are our own relative names such as
 //! `packs/<id>.pack` and `manifests/0000000003.json`; objects are written
 //! once and never changed.
 
+mod counting;
 mod local;
 mod s3;
 
 use std::io;
 use std::path::Path;
 
+pub use counting::Counting;
 pub use local::LocalDir;
 pub use s3::S3;
 
@@ -36,8 +39,15 @@ pub trait Storage: Send + Sync {
     /// a content-named object whose stored bytes are damaged.
     fn replace(&self, key: &str, bytes: &[u8]) -> io::Result<()>;
 
-    /// The bytes under `key`, or None when there is no such object.
-    fn get(&self, key: &str) -> io::Result<Option<Vec<u8>>>;
+    /// The bytes under `key`, or None when there is no such object. An
+    /// object larger than `max` bytes is refused (`InvalidData`, naming its
+    /// size) before its bytes are read.
+    fn get(&self, key: &str, max: u64) -> io::Result<Option<Vec<u8>>>;
+
+    /// Exactly `len` bytes from `offset` of the object under `key`, or None
+    /// when there is no such object. A range that runs past the object's
+    /// end is an error (`UnexpectedEof`); only the range is read.
+    fn get_range(&self, key: &str, offset: u64, len: u64) -> io::Result<Option<Vec<u8>>>;
 
     /// The keys that start with `prefix` (a folder such as `manifests/`),
     /// sorted. A missing folder lists as empty.
@@ -48,12 +58,50 @@ pub trait Storage: Send + Sync {
 
     /// Takes this store's writer lock, held until the returned guard is
     /// dropped: one process writes (runs, prunes) at a time. Fails at once
-    /// if another process holds it. A store without locks returns None
-    /// (then the operator keeps to one writer per store).
+    /// if another process holds it. Once held, removes what unfinished
+    /// writes of a killed writer left (readers never see those). A store
+    /// without locks returns None (then the operator keeps to one writer
+    /// per store); its writes leave nothing unfinished behind.
     fn lock(&self) -> io::Result<Option<std::fs::File>>;
 
     /// Where `key` is, for messages: a path or a URL.
     fn locate(&self, key: &str) -> String;
+}
+
+/// A shared backend is a backend (so a caller can keep a handle on a
+/// decorator, such as `Counting`, that it hands over).
+impl<T: Storage + ?Sized> Storage for std::sync::Arc<T> {
+    fn put_new(&self, key: &str, bytes: &[u8]) -> io::Result<bool> {
+        (**self).put_new(key, bytes)
+    }
+
+    fn replace(&self, key: &str, bytes: &[u8]) -> io::Result<()> {
+        (**self).replace(key, bytes)
+    }
+
+    fn get(&self, key: &str, max: u64) -> io::Result<Option<Vec<u8>>> {
+        (**self).get(key, max)
+    }
+
+    fn get_range(&self, key: &str, offset: u64, len: u64) -> io::Result<Option<Vec<u8>>> {
+        (**self).get_range(key, offset, len)
+    }
+
+    fn list(&self, prefix: &str) -> io::Result<Vec<String>> {
+        (**self).list(prefix)
+    }
+
+    fn delete(&self, key: &str) -> io::Result<()> {
+        (**self).delete(key)
+    }
+
+    fn lock(&self) -> io::Result<Option<std::fs::File>> {
+        (**self).lock()
+    }
+
+    fn locate(&self, key: &str) -> String {
+        (**self).locate(key)
+    }
 }
 
 /// Keys are made by deeptime from hex ids and numbers; anything else (a
@@ -94,19 +142,42 @@ mod contract {
                 .unwrap()
         );
         assert_eq!(
-            store.get("manifests/0000000001.json").unwrap().unwrap(),
+            store.get("manifests/0000000001.json", 3).unwrap().unwrap(),
             b"one"
         );
-        assert_eq!(store.get("manifests/0000000009.json").unwrap(), None);
-        assert!(store.put_new("packs/abc.pack", &[0u8; 100_000]).unwrap());
-        assert_eq!(store.get("packs/abc.pack").unwrap().unwrap().len(), 100_000);
+        assert_eq!(store.get("manifests/0000000009.json", 100).unwrap(), None);
+        let counted: Vec<u8> = (0..100_000u32).map(|at| (at % 251) as u8).collect();
+        assert!(store.put_new("packs/abc.pack", &counted).unwrap());
+        assert_eq!(
+            store.get("packs/abc.pack", 100_000).unwrap().unwrap(),
+            counted
+        );
+        // Over the limit: refused before reading, naming the size.
+        let error = store.get("packs/abc.pack", 99_999).unwrap_err();
+        assert_eq!(error.kind(), io::ErrorKind::InvalidData);
+        assert!(error.to_string().contains("100000 bytes"), "{error}");
+        // Ranges: exactly the bytes asked for; past the end is an error.
+        assert_eq!(
+            store.get_range("packs/abc.pack", 70_000, 5).unwrap().unwrap(),
+            &counted[70_000..70_005]
+        );
+        assert_eq!(
+            store.get_range("packs/abc.pack", 99_990, 10).unwrap().unwrap(),
+            &counted[99_990..]
+        );
+        assert_eq!(store.get_range("packs/none.pack", 0, 1).unwrap(), None);
+        let error = store.get_range("packs/abc.pack", 99_990, 11).unwrap_err();
+        assert_eq!(error.kind(), io::ErrorKind::UnexpectedEof, "{error}");
         assert_eq!(
             store.list("manifests/").unwrap(),
             vec!["manifests/0000000001.json", "manifests/0000000002.json"]
         );
         assert_eq!(store.list("packs/").unwrap(), vec!["packs/abc.pack"]);
         store.replace("packs/abc.pack", b"repaired").unwrap();
-        assert_eq!(store.get("packs/abc.pack").unwrap().unwrap(), b"repaired");
+        assert_eq!(
+            store.get("packs/abc.pack", 100).unwrap().unwrap(),
+            b"repaired"
+        );
         store.delete("manifests/0000000002.json").unwrap();
         store.delete("manifests/0000000002.json").unwrap(); // absent: fine
         assert_eq!(
@@ -114,7 +185,8 @@ mod contract {
             vec!["manifests/0000000001.json"]
         );
         // Keys from elsewhere are refused, never joined onto a path.
-        assert!(store.get("../etc/passwd").is_err());
+        assert!(store.get("../etc/passwd", 100).is_err());
+        assert!(store.get_range("../etc/passwd", 0, 1).is_err());
         assert!(store.put_new("/abs", b"x").is_err());
         assert!(store.delete("a/../b").is_err());
     }
@@ -123,6 +195,39 @@ mod contract {
     fn a_local_directory_keeps_the_contract() {
         let dir = tempfile::tempdir().unwrap();
         keeps_the_contract(&LocalDir::new(dir.path().to_path_buf()));
+    }
+
+    #[test]
+    fn a_counted_store_keeps_the_contract_and_counts_what_it_reads() {
+        let dir = tempfile::tempdir().unwrap();
+        let counted = Counting::new(Box::new(LocalDir::new(dir.path().to_path_buf())));
+        keeps_the_contract(&counted);
+        // The bytes the contract read back: "one", 100000, 5, 10, "repaired"
+        // (counted by hand from the suite above).
+        assert_eq!(counted.bytes_read(), 3 + 100_000 + 5 + 10 + 8);
+    }
+
+    #[test]
+    fn the_writer_lock_clears_unfinished_writes_and_readers_ignore_them() {
+        let dir = tempfile::tempdir().unwrap();
+        let store = LocalDir::new(dir.path().to_path_buf());
+        assert!(store.put_new("packs/abc.pack", b"whole").unwrap());
+        let left = dir.path().join("packs/.incoming-killed");
+        std::fs::write(&left, b"half a pack").unwrap();
+        assert_eq!(store.list("packs/").unwrap(), vec!["packs/abc.pack"]);
+        let guard = store.lock().unwrap();
+        assert!(guard.is_some());
+        assert!(!left.exists(), "the writer removes what a killed one left");
+        assert_eq!(store.list("packs/").unwrap(), vec!["packs/abc.pack"]);
+    }
+
+    #[test]
+    fn folders_are_made_whole_from_the_nearest_existing_one() {
+        let dir = tempfile::tempdir().unwrap();
+        let deep = dir.path().join("a/b/c");
+        local::make_folder(&deep).unwrap();
+        assert!(deep.is_dir());
+        local::make_folder(&deep).unwrap(); // already there: fine
     }
 
     #[test]

@@ -98,12 +98,69 @@ impl Storage for S3 {
             .map_err(failed)
     }
 
-    fn get(&self, key: &str) -> io::Result<Option<Vec<u8>>> {
+    fn get(&self, key: &str, max: u64) -> io::Result<Option<Vec<u8>>> {
         check_key(key)?;
         let path = self.path(key);
         self.runtime.block_on(async {
             match self.store.get(&path).await {
-                Ok(result) => Ok(Some(result.bytes().await.map_err(failed)?.to_vec())),
+                Ok(result) => {
+                    // The size is known from the response's head, before
+                    // the body is read.
+                    let size = result.meta.size;
+                    if size > max {
+                        return Err(io::Error::new(
+                            io::ErrorKind::InvalidData,
+                            format!(
+                                "{} is {size} bytes, over the limit of {max} for it",
+                                self.locate(key)
+                            ),
+                        ));
+                    }
+                    Ok(Some(result.bytes().await.map_err(failed)?.to_vec()))
+                }
+                Err(object_store::Error::NotFound { .. }) => Ok(None),
+                Err(error) => Err(failed(error)),
+            }
+        })
+    }
+
+    fn get_range(&self, key: &str, offset: u64, len: u64) -> io::Result<Option<Vec<u8>>> {
+        check_key(key)?;
+        let path = self.path(key);
+        let end = offset.checked_add(len).ok_or_else(|| {
+            io::Error::new(io::ErrorKind::UnexpectedEof, "a range past any object")
+        })?;
+        self.runtime.block_on(async {
+            // A range request may be answered with less than asked (or an
+            // error) when it runs past the end: the size decides.
+            let meta = match self.store.head(&path).await {
+                Ok(meta) => meta,
+                Err(object_store::Error::NotFound { .. }) => return Ok(None),
+                Err(error) => return Err(failed(error)),
+            };
+            if end > meta.size {
+                return Err(io::Error::new(
+                    io::ErrorKind::UnexpectedEof,
+                    format!(
+                        "{}: {len} bytes at {offset} run past its end ({} bytes)",
+                        self.locate(key),
+                        meta.size
+                    ),
+                ));
+            }
+            if len == 0 {
+                return Ok(Some(Vec::new()));
+            }
+            match self.store.get_range(&path, offset..end).await {
+                Ok(bytes) if bytes.len() as u64 == len => Ok(Some(bytes.to_vec())),
+                Ok(bytes) => Err(io::Error::new(
+                    io::ErrorKind::UnexpectedEof,
+                    format!(
+                        "{}: asked for {len} bytes at {offset}, got {}",
+                        self.locate(key),
+                        bytes.len()
+                    ),
+                )),
                 Err(object_store::Error::NotFound { .. }) => Ok(None),
                 Err(error) => Err(failed(error)),
             }
