@@ -22,6 +22,10 @@ pub fn list(args: DirArgs) -> anyhow::Result<()> {
     for key in checkpoints.manifest_keys()? {
         let manifest = match checkpoints.manifest(&key) {
             Ok(manifest) => manifest,
+            // Another format version is no damage: say so and stop.
+            Err(error) if error.chain().any(|cause| cause.is::<crate::failure::BadInput>()) => {
+                return Err(error);
+            }
             Err(error) => {
                 eprintln!("deeptime: warning: skipping damaged checkpoint: {error:#}");
                 continue;

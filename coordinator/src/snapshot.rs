@@ -50,6 +50,7 @@ pub fn run(args: SnapshotArgs) -> anyhow::Result<()> {
     for key in &keys {
         let manifest = match checkpoints.manifest(key) {
             Ok(manifest) => manifest,
+            Err(error) if stops(&error) => return Err(error),
             Err(error) => {
                 eprintln!("deeptime: warning: skipping damaged checkpoint: {error:#}");
                 continue;
