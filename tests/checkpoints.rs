@@ -672,7 +672,10 @@ fn a_snapshot_of_a_small_region_of_a_stored_state_reads_a_small_part_of_its_pack
         .map(|(x, y)| (x as usize, y as usize))
         .collect();
     assert!(!expected.is_empty(), "a soup region holds live cells");
-    assert_eq!(rle_cells(&std::fs::read_to_string(&part).unwrap()), expected);
+    assert_eq!(
+        rle_cells(&std::fs::read_to_string(&part).unwrap()),
+        expected
+    );
 
     // A picture of the whole soup at 64 cells a pixel reads only the quads
     // of level 6 and up (stored together at each pack's end).
@@ -739,7 +742,10 @@ fn a_wall_clock_interval_writes_checkpoints_between_those_of_every() {
     }
     // ...and more: the clock asked for checkpoints in between.
     assert!(generations.len() > 3, "{generations:?}");
-    assert!(generations.windows(2).all(|w| w[0] < w[1]), "{generations:?}");
+    assert!(
+        generations.windows(2).all(|w| w[0] < w[1]),
+        "{generations:?}"
+    );
     // A wall clock alone is enough.
     let job_path = job_of(dir.path(), 64, 100, 1, "B3/S23");
     let text = std::fs::read_to_string(&job_path)
@@ -803,7 +809,12 @@ fn a_checkpoint_of_another_format_version_is_refused_in_one_line() {
             "{}",
             refused.describe()
         );
-        assert_eq!(refused.stderr.trim().lines().count(), 1, "{}", refused.describe());
+        assert_eq!(
+            refused.stderr.trim().lines().count(),
+            1,
+            "{}",
+            refused.describe()
+        );
     }
     assert!(runs.join("manifests/0000000001.json").exists());
 }

@@ -332,22 +332,16 @@ impl Checkpoints {
                 records: Some(entry.records),
             });
         }
-        let (mut universe, known) = Universe::from_packs(
-            inputs,
-            root,
-            manifest.root_at(),
-            rule,
-            generation,
-            budget,
-        )
-        .map_err(|(index, error)| {
-            let place = manifest
-                .packs
-                .get(index)
-                .map(|entry| self.storage.locate(&pack_key(&entry.name)))
-                .unwrap_or_else(|| "the packs".to_string());
-            anyhow::anyhow!("{place}: {error}")
-        })?;
+        let (mut universe, known) =
+            Universe::from_packs(inputs, root, manifest.root_at(), rule, generation, budget)
+                .map_err(|(index, error)| {
+                    let place = manifest
+                        .packs
+                        .get(index)
+                        .map(|entry| self.storage.locate(&pack_key(&entry.name)))
+                        .unwrap_or_else(|| "the packs".to_string());
+                    anyhow::anyhow!("{place}: {error}")
+                })?;
         let digest = universe.digest()?;
         if digest != root {
             bail!(

@@ -23,7 +23,11 @@ pub fn list(args: DirArgs) -> anyhow::Result<()> {
         let manifest = match checkpoints.manifest(&key) {
             Ok(manifest) => manifest,
             // Another format version is no damage: say so and stop.
-            Err(error) if error.chain().any(|cause| cause.is::<crate::failure::BadInput>()) => {
+            Err(error)
+                if error
+                    .chain()
+                    .any(|cause| cause.is::<crate::failure::BadInput>()) =>
+            {
                 return Err(error);
             }
             Err(error) => {

@@ -234,7 +234,9 @@ mod tests {
         }
         let error = load(&format!("{GOOD}wall_clock = \"soon\"\n")).unwrap_err();
         assert!(
-            error.0.starts_with("JOB: checkpoint.wall_clock \"soon\": a whole number"),
+            error
+                .0
+                .starts_with("JOB: checkpoint.wall_clock \"soon\": a whole number"),
             "{}",
             error.0
         );

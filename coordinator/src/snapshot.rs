@@ -123,7 +123,13 @@ pub fn run(args: SnapshotArgs) -> anyhow::Result<()> {
     }
     if let Some(out) = &args.out {
         let bbox = universe.bounding_box();
-        write_out(&mut Source::Memory(&mut universe), bbox, out, region.as_ref(), args.scale)?;
+        write_out(
+            &mut Source::Memory(&mut universe),
+            bbox,
+            out,
+            region.as_ref(),
+            args.scale,
+        )?;
     }
     let mut report = Report::of(&mut universe, started.elapsed())?;
     report.bytes_read = Some(counted.bytes_read());
@@ -135,9 +141,9 @@ pub fn run(args: SnapshotArgs) -> anyhow::Result<()> {
 /// checkpoint: a budget too small, a checkpoint of another version, bad
 /// options.
 fn stops(error: &anyhow::Error) -> bool {
-    error.chain().any(|cause| {
-        cause.is::<deeptime_engine::BudgetExceeded>() || cause.is::<BadInput>()
-    })
+    error
+        .chain()
+        .any(|cause| cause.is::<deeptime_engine::BudgetExceeded>() || cause.is::<BadInput>())
 }
 
 /// The snapshot of a stored generation read on demand: the figures from
@@ -158,7 +164,13 @@ fn from_stored(
     }
     let bbox = manifest.bbox.as_ref().map(|b| b.parse()).transpose()?;
     if let Some(out) = &args.out {
-        write_out(&mut Source::Stored(&mut state), bbox, out, region, args.scale)?;
+        write_out(
+            &mut Source::Stored(&mut state),
+            bbox,
+            out,
+            region,
+            args.scale,
+        )?;
     }
     Ok(Some(Report {
         generation: manifest.generation.clone(),

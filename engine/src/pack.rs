@@ -706,7 +706,8 @@ pub(crate) fn decode_chunk(
     let mut expected = 0u64;
     while at < body.len() {
         let number = entry.first + records.len() as u64;
-        let bad = |what: String| malformed(start, format!("chunk {index}, record {number}: {what}"));
+        let bad =
+            |what: String| malformed(start, format!("chunk {index}, record {number}: {what}"));
         if records.len() as u64 == count {
             return Err(bad("bytes after the chunk's last record".into()));
         }
@@ -842,10 +843,13 @@ pub(crate) fn open_whole(
     Ok((table, records))
 }
 
+/// A record once read: its quad in the store, level and content id.
+type ReadQuad = (Handle, u32, ContentId);
+
 /// The quads read so far from the packs of one checkpoint, pack by pack.
 pub(crate) struct Reader {
     /// per pack read: its name, and per record (handle, level, content id)
-    packs: Vec<(Checksum, Vec<(Handle, u32, ContentId)>)>,
+    packs: Vec<(Checksum, Vec<ReadQuad>)>,
     /// populations of the records, per pack (a big one in `big`)
     pops: Vec<Vec<u64>>,
     big: HashMap<(usize, u32), BigUint, ahash::RandomState>,

@@ -17,12 +17,12 @@ use crate::content_id::ContentId;
 use crate::error::{AdvanceError, BudgetExceeded, TooLargeForText};
 use crate::figures::{self, Side};
 use crate::pack::{self, Checksum, QuadAt};
-use crate::view::{QuadView, StoreView, descend};
 use crate::pattern::{MAX_COORDINATE, Pattern, write};
 use crate::rule::Rule;
 use crate::stack;
-use crate::stored::ReadError;
 use crate::store::{Handle, LEAF_LEVEL, Store, StoreStats};
+use crate::stored::ReadError;
+use crate::view::{QuadView, StoreView, descend};
 
 /// The smallest root level kept while evolving (32×32 cells).
 const MIN_ROOT_LEVEL: u32 = 5;
@@ -451,7 +451,10 @@ impl Universe {
         let top = i64::try_from(&bbox.top).map_err(|_| too_far())?;
         let region = Region::of_box(&bbox)?;
         let mut cells = Vec::new();
-        for (y, runs) in rows_in(&mut StoreView::new(&self.store, self.root, self.level), &region)? {
+        for (y, runs) in rows_in(
+            &mut StoreView::new(&self.store, self.root, self.level),
+            &region,
+        )? {
             for (x, len) in runs {
                 for dx in 0..len {
                     cells.push((left + (x + dx) as i64, top + y as i64));
@@ -480,21 +483,23 @@ impl Universe {
         region: &Region,
     ) -> Result<(), WriteError> {
         let rule = self.rule.to_string();
-        let rows = rows_in(&mut StoreView::new(&self.store, self.root, self.level), region)?;
+        let rows = rows_in(
+            &mut StoreView::new(&self.store, self.root, self.level),
+            region,
+        )?;
         write::write_rle(out, region.width, region.height, &rule, rows)?;
         Ok(())
     }
-
 }
 
 /// The non-empty rows of `region` with their runs of live cells
 /// (x, len), both relative to the region's corner.
 #[allow(clippy::type_complexity)]
 pub(crate) fn rows_in<V: QuadView>(
-view: &mut V,
-region: &Region,
+    view: &mut V,
+    region: &Region,
 ) -> Result<Vec<(u64, Vec<(u64, u64)>)>, WriteError> {
-let (root, root_level) = view.root();
+    let (root, root_level) = view.root();
     if region.width > MAX_COORDINATE || region.height > MAX_COORDINATE {
         return Err(TooLargeForText {
             what: format!(
@@ -535,10 +540,8 @@ let (root, root_level) = view.root();
         )
     };
     // The region's corner from the origin, in cells (may be negative).
-    let shift_x =
-        i64::try_from(&left - BigInt::from(origin_x.clone())).expect("near the origin");
-    let shift_y =
-        i64::try_from(&top - BigInt::from(origin_y.clone())).expect("near the origin");
+    let shift_x = i64::try_from(&left - BigInt::from(origin_x.clone())).expect("near the origin");
+    let shift_y = i64::try_from(&top - BigInt::from(origin_y.clone())).expect("near the origin");
     // The window of leaves to collect, from the origin, in leaf units.
     let window = [
         shift_x.max(0) as u64 / 8,
@@ -626,7 +629,6 @@ let (root, root_level) = view.root();
     }
     Ok(rows)
 }
-
 
 /// A root of at least `MIN_ROOT_LEVEL` centred like `quad` (of `level`),
 /// which is centred on the origin: padded with empty quads around it.

@@ -164,10 +164,7 @@ fn an_incremental_pack_holds_only_new_quads() {
         BUDGET,
     );
     let (_, error) = wrong.err().expect("the table is checked");
-    assert!(
-        error.to_string().contains("manifest's checksum"),
-        "{error}"
-    );
+    assert!(error.to_string().contains("manifest's checksum"), "{error}");
 }
 
 #[test]
@@ -180,10 +177,10 @@ fn damaged_packs_are_refused_never_misread() {
     let read = |bytes: &[u8]| {
         Universe::from_packs(
             [PackInput {
-        bytes,
-        table: None,
-        records: None,
-    }],
+                bytes,
+                table: None,
+                records: None,
+            }],
             digest,
             last(0, records),
             Rule::LIFE,
@@ -228,8 +225,10 @@ fn damaged_packs_are_refused_never_misread() {
 /// table rewritten to match (offsets, sizes, checksums): every check but
 /// the one-frame rule passes.
 fn with_second_frame(pack: &[u8]) -> Vec<u8> {
-    let u64_at = |bytes: &[u8], at: usize| u64::from_le_bytes(bytes[at..at + 8].try_into().unwrap());
-    let u32_at = |bytes: &[u8], at: usize| u32::from_le_bytes(bytes[at..at + 4].try_into().unwrap());
+    let u64_at =
+        |bytes: &[u8], at: usize| u64::from_le_bytes(bytes[at..at + 8].try_into().unwrap());
+    let u32_at =
+        |bytes: &[u8], at: usize| u32::from_le_bytes(bytes[at..at + 4].try_into().unwrap());
     let size = pack.len();
     let table_offset = u64_at(pack, size - 24) as usize;
     let table_len = u64_at(pack, size - 16) as usize;
@@ -284,7 +283,9 @@ struct Counted<'a> {
 impl Fetch for Counted<'_> {
     fn fetch(&mut self, pack: usize, offset: u64, len: u64) -> Result<Vec<u8>, String> {
         let bytes = self.packs[pack];
-        let end = offset.checked_add(len).filter(|&end| end <= bytes.len() as u64);
+        let end = offset
+            .checked_add(len)
+            .filter(|&end| end <= bytes.len() as u64);
         let end = end.ok_or_else(|| format!("{len} bytes at {offset} are past the end"))?;
         self.fetched += len;
         Ok(bytes[offset as usize..end as usize].to_vec())
@@ -370,8 +371,7 @@ fn a_region_and_a_picture_read_from_a_few_chunks_equal_those_of_the_whole_state(
         packs: vec![&first.bytes, &second.bytes],
         fetched: 0,
     };
-    let mut stored =
-        StoredState::open(&mut fetch, packs, root, &population, Rule::LIFE).unwrap();
+    let mut stored = StoredState::open(&mut fetch, packs, root, &population, Rule::LIFE).unwrap();
     let (left, top) = (BigInt::from(-40), BigInt::from(-40));
     let picture = stored.picture(&left, &top, 20, 20, 6).unwrap();
     drop(stored);
@@ -422,8 +422,7 @@ fn a_partial_read_refuses_a_damaged_chunk_or_a_wrong_population() {
         Err(error) => error.to_string(),
         Ok(mut stored) => stored
             .write_rle_region(&mut Vec::new(), &region)
-            .err()
-            .expect("the damaged chunk is refused")
+            .expect_err("the damaged chunk is refused")
             .to_string(),
     };
     assert!(

@@ -207,7 +207,11 @@ pub(super) fn make_folder(folder: &Path) -> io::Result<()> {
 /// Removes the temporary files of unfinished writes (a writer killed
 /// between writing and renaming) from the store's folders.
 fn clear_unfinished(root: &Path) -> io::Result<()> {
-    for folder in [root.to_path_buf(), root.join("packs"), root.join("manifests")] {
+    for folder in [
+        root.to_path_buf(),
+        root.join("packs"),
+        root.join("manifests"),
+    ] {
         let entries = match fs::read_dir(&folder) {
             Ok(entries) => entries,
             Err(error) if error.kind() == io::ErrorKind::NotFound => continue,
@@ -215,7 +219,11 @@ fn clear_unfinished(root: &Path) -> io::Result<()> {
         };
         for entry in entries {
             let entry = entry?;
-            if entry.file_name().to_string_lossy().starts_with(".incoming-") {
+            if entry
+                .file_name()
+                .to_string_lossy()
+                .starts_with(".incoming-")
+            {
                 match fs::remove_file(entry.path()) {
                     Ok(()) => {}
                     Err(error) if error.kind() == io::ErrorKind::NotFound => {}

@@ -158,11 +158,17 @@ mod contract {
         assert!(error.to_string().contains("100000 bytes"), "{error}");
         // Ranges: exactly the bytes asked for; past the end is an error.
         assert_eq!(
-            store.get_range("packs/abc.pack", 70_000, 5).unwrap().unwrap(),
+            store
+                .get_range("packs/abc.pack", 70_000, 5)
+                .unwrap()
+                .unwrap(),
             &counted[70_000..70_005]
         );
         assert_eq!(
-            store.get_range("packs/abc.pack", 99_990, 10).unwrap().unwrap(),
+            store
+                .get_range("packs/abc.pack", 99_990, 10)
+                .unwrap()
+                .unwrap(),
             &counted[99_990..]
         );
         assert_eq!(store.get_range("packs/none.pack", 0, 1).unwrap(), None);
