@@ -481,17 +481,17 @@ fn checkpoints(settings: &Settings) -> anyhow::Result<Vec<Figure>> {
         )),
         Figure::new(
             "checkpoint",
-            &format!("{label}: 64×64 region snapshot, bytes read / full load's"),
-            region_read as f64 / load_read as f64,
+            &format!("{label}: bytes read, full load / 64×64 region snapshot"),
+            load_read as f64 / region_read.max(1) as f64,
             "×",
             None,
         )
         .detail(format!(
-            "{} against {}; {:.3} s against {:.2} s for the full load (same RLE)",
-            human_bytes(region_read),
+            "{} against {}; {:.2} s against {:.3} s (same RLE of the region)",
             human_bytes(load_read),
-            region_time.as_secs_f64(),
-            resume_time.as_secs_f64()
+            human_bytes(region_read),
+            resume_time.as_secs_f64(),
+            region_time.as_secs_f64()
         )),
         Figure::new(
             "checkpoint",
