@@ -800,11 +800,13 @@ pub(crate) fn decode_chunk(
     Ok(records)
 }
 
-/// A checked whole pack: its table and every chunk's records.
+/// The table of a whole pack, with its header, trailer and table checked
+/// (the table against `table_sum` when given); its chunks are checked as
+/// they are decoded.
 pub(crate) fn open_whole(
     bytes: &[u8],
     table_sum: Option<Checksum>,
-) -> Result<(PackTable, Vec<RawRecord>), PackError> {
+) -> Result<PackTable, PackError> {
     let size = bytes.len() as u64;
     if size < HEADER_BYTES + TRAILER_BYTES {
         return Err(malformed(
@@ -832,15 +834,7 @@ pub(crate) fn open_whole(
             "table does not match the manifest's checksum (damaged)",
         ));
     }
-    let table = PackTable::parse(table_bytes, offset)?;
-    let mut decompressor = zstd::bulk::Decompressor::new().expect("a zstd decompressor");
-    let mut records = Vec::new();
-    for index in 0..table.chunks.len() {
-        let entry = table.chunks[index];
-        let data = &bytes[entry.offset as usize..(entry.offset + entry.compressed as u64) as usize];
-        records.extend(decode_chunk(data, &table, index, &mut decompressor)?);
-    }
-    Ok((table, records))
+    PackTable::parse(table_bytes, offset)
 }
 
 /// A record once read: its quad in the store, level and content id.
@@ -900,7 +894,7 @@ impl Reader {
         table_sum: Option<Checksum>,
         expected_records: Option<u64>,
     ) -> Result<(), PackError> {
-        let (table, records) = open_whole(bytes, table_sum)?;
+        let table = open_whole(bytes, table_sum)?;
         if let Some(expected) = expected_records
             && expected != table.records
         {
@@ -924,50 +918,57 @@ impl Reader {
             })?);
         }
         let pack = self.packs.len();
-        let mut local: Vec<(Handle, u32, ContentId)> = Vec::with_capacity(records.len());
-        let mut pops: Vec<u64> = Vec::with_capacity(records.len());
-        let chunk_of = |number: usize| table.chunk_of(number as u64);
-        for (number, record) in records.iter().enumerate() {
-            let bad = |what: String| {
-                let chunk = chunk_of(number);
-                malformed(
-                    table.chunks[chunk].offset,
-                    format!("chunk {chunk}, record {number}: {what}"),
-                )
-            };
-            let (handle, level, id, population) = match record {
-                RawRecord::Leaf(bits) => (
-                    store.leaf(*bits)?,
-                    LEAF_LEVEL,
-                    ContentId::of_leaf(*bits),
-                    Pop::Small(bits.count_ones() as u64),
-                ),
-                RawRecord::Inner {
-                    level,
-                    population,
-                    kids: refs,
-                } => {
-                    let level = *level;
-                    let mut kids = [Handle::NONE; 4];
-                    let mut kid_ids = [ContentId([0; 16]); 4];
-                    let mut kid_pops = [Pop::Small(0), Pop::Small(0), Pop::Small(0), Pop::Small(0)];
-                    for slot in 0..4 {
-                        let (handle, kid_level, id, kid_pop) = match refs[slot] {
-                            RawRef::Local(target) => {
-                                let (handle, kid_level, id) = local[target as usize];
-                                let kid_pop = match pops[target as usize] {
-                                    BIG_POP => Pop::Big(self.big[&(pack, target)].clone()),
-                                    small => Pop::Small(small),
-                                };
-                                (handle, kid_level, id, kid_pop)
-                            }
-                            RawRef::External {
-                                slot: which,
-                                record: target,
-                                id: stated,
-                            } => {
-                                let other = slots[which as usize];
-                                let (handle, kid_level, id) =
+        let mut local: Vec<ReadQuad> = Vec::with_capacity(table.records as usize);
+        let mut pops: Vec<u64> = Vec::with_capacity(table.records as usize);
+        let mut decompressor = zstd::bulk::Decompressor::new().expect("a zstd decompressor");
+        // Chunk by chunk: one chunk's records are held decoded at a time.
+        for chunk in 0..table.chunks.len() {
+            let entry = table.chunks[chunk];
+            let data =
+                &bytes[entry.offset as usize..(entry.offset + entry.compressed as u64) as usize];
+            let records = decode_chunk(data, &table, chunk, &mut decompressor)?;
+            for record in &records {
+                let number = local.len();
+                let bad = |what: String| {
+                    malformed(
+                        entry.offset,
+                        format!("chunk {chunk}, record {number}: {what}"),
+                    )
+                };
+                let (handle, level, id, population) = match record {
+                    RawRecord::Leaf(bits) => (
+                        store.leaf(*bits)?,
+                        LEAF_LEVEL,
+                        ContentId::of_leaf(*bits),
+                        Pop::Small(bits.count_ones() as u64),
+                    ),
+                    RawRecord::Inner {
+                        level,
+                        population,
+                        kids: refs,
+                    } => {
+                        let level = *level;
+                        let mut kids = [Handle::NONE; 4];
+                        let mut kid_ids = [ContentId([0; 16]); 4];
+                        let mut kid_pops =
+                            [Pop::Small(0), Pop::Small(0), Pop::Small(0), Pop::Small(0)];
+                        for slot in 0..4 {
+                            let (handle, kid_level, id, kid_pop) = match refs[slot] {
+                                RawRef::Local(target) => {
+                                    let (handle, kid_level, id) = local[target as usize];
+                                    let kid_pop = match pops[target as usize] {
+                                        BIG_POP => Pop::Big(self.big[&(pack, target)].clone()),
+                                        small => Pop::Small(small),
+                                    };
+                                    (handle, kid_level, id, kid_pop)
+                                }
+                                RawRef::External {
+                                    slot: which,
+                                    record: target,
+                                    id: stated,
+                                } => {
+                                    let other = slots[which as usize];
+                                    let (handle, kid_level, id) =
                                     *self.packs[other].1.get(target as usize).ok_or_else(|| {
                                         bad(format!(
                                             "reference to record {target} of pack {}, which holds {}",
@@ -975,72 +976,74 @@ impl Reader {
                                             self.packs[other].1.len()
                                         ))
                                     })?;
-                                if id != stated {
-                                    return Err(bad(format!(
-                                        "reference to quad {stated}, but that record holds {id}"
-                                    )));
+                                    if id != stated {
+                                        return Err(bad(format!(
+                                            "reference to quad {stated}, but that record holds {id}"
+                                        )));
+                                    }
+                                    (handle, kid_level, id, self.pop(other, target))
                                 }
-                                (handle, kid_level, id, self.pop(other, target))
+                                RawRef::Empty => (
+                                    store.empty(level - 1)?,
+                                    level - 1,
+                                    self.empties.of(level - 1),
+                                    Pop::Small(0),
+                                ),
+                            };
+                            if kid_level != level - 1 {
+                                return Err(bad(format!(
+                                    "a child of level {kid_level} in a quad of level {level}"
+                                )));
                             }
-                            RawRef::Empty => (
-                                store.empty(level - 1)?,
-                                level - 1,
-                                self.empties.of(level - 1),
-                                Pop::Small(0),
-                            ),
-                        };
-                        if kid_level != level - 1 {
+                            kids[slot] = handle;
+                            kid_ids[slot] = id;
+                            kid_pops[slot] = kid_pop;
+                        }
+                        let sum =
+                            Pop::sum([&kid_pops[0], &kid_pops[1], &kid_pops[2], &kid_pops[3]]);
+                        if &sum != population {
                             return Err(bad(format!(
-                                "a child of level {kid_level} in a quad of level {level}"
+                                "population {} stored, its children hold {}",
+                                population.to_big(),
+                                sum.to_big()
                             )));
                         }
-                        kids[slot] = handle;
-                        kid_ids[slot] = id;
-                        kid_pops[slot] = kid_pop;
+                        let handle = store.join(kids)?;
+                        if handle == store.known_empty(level) {
+                            return Err(bad("an empty quad is stored, not referred to".into()));
+                        }
+                        (
+                            handle,
+                            level,
+                            ContentId::of_inner(level, kid_ids),
+                            population.clone(),
+                        )
                     }
-                    let sum = Pop::sum([&kid_pops[0], &kid_pops[1], &kid_pops[2], &kid_pops[3]]);
-                    if &sum != population {
-                        return Err(bad(format!(
-                            "population {} stored, its children hold {}",
-                            population.to_big(),
-                            sum.to_big()
-                        )));
-                    }
-                    let handle = store.join(kids)?;
-                    if handle == store.known_empty(level) {
-                        return Err(bad("an empty quad is stored, not referred to".into()));
-                    }
-                    (
-                        handle,
-                        level,
-                        ContentId::of_inner(level, kid_ids),
-                        population.clone(),
-                    )
+                };
+                if let Some(last) = local.last()
+                    && last.1 > level
+                {
+                    return Err(bad(format!(
+                        "a quad of level {level} after one of level {}",
+                        last.1
+                    )));
                 }
-            };
-            if let Some(last) = local.last()
-                && last.1 > level
-            {
-                return Err(bad(format!(
-                    "a quad of level {level} after one of level {}",
-                    last.1
-                )));
-            }
-            let place = QuadAt {
-                pack: pack as u32,
-                record: number as u32,
-            };
-            if self.known.insert(id, place).is_some() {
-                return Err(bad(format!("quad {id} is stored twice")));
-            }
-            match population {
-                Pop::Small(small) if small != BIG_POP => pops.push(small),
-                other => {
-                    pops.push(BIG_POP);
-                    self.big.insert((pack, number as u32), other.to_big());
+                let place = QuadAt {
+                    pack: pack as u32,
+                    record: number as u32,
+                };
+                if self.known.insert(id, place).is_some() {
+                    return Err(bad(format!("quad {id} is stored twice")));
                 }
+                match population {
+                    Pop::Small(small) if small != BIG_POP => pops.push(small),
+                    other => {
+                        pops.push(BIG_POP);
+                        self.big.insert((pack, number as u32), other.to_big());
+                    }
+                }
+                local.push((handle, level, id));
             }
-            local.push((handle, level, id));
         }
         self.packs.push((name, local));
         self.pops.push(pops);
