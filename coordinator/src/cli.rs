@@ -33,6 +33,109 @@ pub enum Command {
     Prune(PruneArgs),
     /// Run the speed and memory suite; print a table, optionally write JSON
     Bench(BenchArgs),
+    /// Run a job on a cluster: wait for nodes, shard the tree, print the figures
+    Coordinator(CoordinatorArgs),
+    /// Serve as a cluster node: join a coordinator, compute and keep quads
+    Node(NodeArgs),
+    /// Show a running cluster job's live status
+    Status(StatusArgs),
+}
+
+#[derive(Args, Debug)]
+pub struct CoordinatorArgs {
+    /// The job file (TOML), as for `deeptime run`
+    pub job: PathBuf,
+
+    /// Address to listen on for nodes and status calls (e.g. 0.0.0.0:7100)
+    #[arg(long)]
+    pub listen: std::net::SocketAddr,
+
+    /// Wait for this many nodes before starting
+    #[arg(long, default_value_t = 1, value_parser = clap::builder::RangedU64ValueParser::<usize>::new().range(1..=4096))]
+    pub min_nodes: usize,
+
+    /// The cluster token file (one line); made with a fresh token if missing
+    #[arg(long)]
+    pub token_file: PathBuf,
+
+    /// The shard level K (6 to 48): tasks advance squares of 2^K cells a side
+    /// [default: chosen from the pattern and the number of nodes]
+    #[arg(long)]
+    pub shard_level: Option<u32>,
+
+    /// Print exactly one JSON object on standard output at the end
+    #[arg(long)]
+    pub json: bool,
+
+    /// Stay up after the target for status calls, until interrupted
+    #[arg(long)]
+    pub stay: bool,
+
+    /// Serve TLS with this certificate (PEM), with --tls-key
+    #[arg(long)]
+    pub tls_cert: Option<PathBuf>,
+
+    /// The private key (PEM) of --tls-cert
+    #[arg(long)]
+    pub tls_key: Option<PathBuf>,
+
+    /// The authority (PEM) that signs the nodes' certificates, for https:// nodes
+    #[arg(long)]
+    pub tls_ca: Option<PathBuf>,
+}
+
+#[derive(Args, Debug)]
+pub struct NodeArgs {
+    /// The coordinator's URL (http://HOST:PORT, or https:// with TLS)
+    #[arg(long)]
+    pub join: String,
+
+    /// Address to listen on for the coordinator and peers (e.g. 0.0.0.0:7200)
+    #[arg(long)]
+    pub listen: std::net::SocketAddr,
+
+    /// The URL others reach this node at [default: http://<bound address>]
+    #[arg(long)]
+    pub advertise: Option<String>,
+
+    /// Memory budget for this node's quads, e.g. 8GiB [default: half of RAM]
+    #[arg(long)]
+    pub memory: Option<String>,
+
+    /// The cluster token file (one line), the coordinator's
+    #[arg(long)]
+    pub token_file: PathBuf,
+
+    /// Serve TLS with this certificate (PEM), with --tls-key
+    #[arg(long)]
+    pub tls_cert: Option<PathBuf>,
+
+    /// The private key (PEM) of --tls-cert
+    #[arg(long)]
+    pub tls_key: Option<PathBuf>,
+
+    /// The authority (PEM) that signs the coordinator's and peers' certificates
+    #[arg(long)]
+    pub tls_ca: Option<PathBuf>,
+}
+
+#[derive(Args, Debug)]
+pub struct StatusArgs {
+    /// The coordinator's URL (http://HOST:PORT)
+    #[arg(long)]
+    pub coordinator: String,
+
+    /// The cluster token file
+    #[arg(long)]
+    pub token_file: PathBuf,
+
+    /// The authority (PEM) that signs the coordinator's certificate
+    #[arg(long)]
+    pub tls_ca: Option<PathBuf>,
+
+    /// Print JSON instead of a table
+    #[arg(long)]
+    pub json: bool,
 }
 
 #[derive(Args, Debug)]

@@ -6,12 +6,14 @@
 mod bench;
 mod checkpoint;
 mod cli;
+mod cluster;
 mod evolve;
 mod failure;
 mod input;
 mod inspect;
 mod job;
 mod memory;
+mod node;
 mod output;
 mod progress;
 mod report;
@@ -43,6 +45,9 @@ fn main() -> ExitCode {
         Command::Snapshot(args) => snapshot::run(args),
         Command::Prune(args) => inspect::prune(args),
         Command::Bench(args) => bench::run(args),
+        Command::Coordinator(args) => cluster::run(args),
+        Command::Node(args) => node::run(args),
+        Command::Status(args) => cluster::status::run(args),
     };
     match outcome {
         Ok(()) => ExitCode::SUCCESS,

@@ -19,6 +19,7 @@ use std::time::{Duration, Instant};
 
 use crate::error::BudgetExceeded;
 use crate::kernel::{self, Kernel};
+use crate::recursion::{self, SECOND_PHASE, Stride};
 use crate::rule::Rule;
 use crate::store::{Handle, LEAF_LEVEL, Store, StoreStats};
 
@@ -37,15 +38,6 @@ pub type Observer<'a> = &'a mut (dyn FnMut(&Progress) + Send);
 const PROGRESS_EVERY: Duration = Duration::from_millis(250);
 /// How many levels below the top are tracked for the progress estimate.
 const TRACKED_DEPTH: usize = 4;
-
-/// The stride of one advance at some level.
-#[derive(Clone, Copy, PartialEq, Eq, Debug)]
-enum Stride {
-    /// 2^(level-2) generations
-    Full,
-    /// N mod 2^(level-2) generations
-    Residual,
-}
 
 /// One advance of a state by N generations.
 pub(crate) struct Advance<'a, 'o> {
@@ -97,8 +89,18 @@ impl<'a, 'o> Advance<'a, 'o> {
 
     /// Runs the advance of `root` (of the top level); returns the centre.
     pub(crate) fn run(&mut self, root: Handle) -> Result<Handle, BudgetExceeded> {
-        debug_assert!(self.top_level > 4);
-        let result = self.advance(root, self.top_level, Stride::Residual)?;
+        self.run_as(root, Stride::Residual)
+    }
+
+    /// Runs the advance of `root` by `stride` at the top level (the full
+    /// stride 2^(top-2), or the residual: N itself, N < 2^(top-2)).
+    pub(crate) fn run_as(
+        &mut self,
+        root: Handle,
+        stride: Stride,
+    ) -> Result<Handle, BudgetExceeded> {
+        debug_assert!(self.top_level >= 4);
+        let result = self.advance(root, self.top_level, stride)?;
         if let Some(observer) = self.observer.as_mut() {
             observer(&Progress {
                 done: 1.0,
@@ -172,11 +174,7 @@ impl<'a, 'o> Advance<'a, 'o> {
     ) -> Result<Handle, BudgetExceeded> {
         // The first phase moves 2^(level-3) generations or none; the second
         // moves the rest.
-        let (first, second) = match stride {
-            Stride::Full => (Some(Stride::Full), Stride::Full),
-            Stride::Residual if self.bit(level - 3) => (Some(Stride::Full), Stride::Residual),
-            Stride::Residual => (None, Stride::Residual),
-        };
+        let (first, second) = recursion::phases(stride, self.bit(level - 3));
         let depth = (self.top_level - level) as usize;
         let parts = if first.is_some() { 13 } else { 4 };
         if depth < TRACKED_DEPTH {
@@ -187,7 +185,7 @@ impl<'a, 'o> Advance<'a, 'o> {
         let mut mid = [[Handle::NONE; 3]; 3];
         for (i, row) in mid.iter_mut().enumerate() {
             for (j, cell) in row.iter_mut().enumerate() {
-                let four = [g[i][j], g[i][j + 1], g[i + 1][j], g[i + 1][j + 1]];
+                let four = recursion::block(&g, i, j);
                 *cell = match first {
                     None => centre_of_four(self.store, four, level - 2)?,
                     Some(stride) => {
@@ -202,10 +200,8 @@ impl<'a, 'o> Advance<'a, 'o> {
             }
         }
         let mut out = [Handle::NONE; 4];
-        for (at, (i, j)) in [(0, 0), (0, 1), (1, 0), (1, 1)].into_iter().enumerate() {
-            let square =
-                self.store
-                    .join([mid[i][j], mid[i][j + 1], mid[i + 1][j], mid[i + 1][j + 1]])?;
+        for (at, (i, j)) in SECOND_PHASE.into_iter().enumerate() {
+            let square = self.store.join(recursion::block(&mid, i, j))?;
             self.store.scratch.push(square);
             out[at] = self.advance(square, level - 1, second)?;
             self.store.scratch.push(out[at]);
@@ -225,13 +221,9 @@ impl<'a, 'o> Advance<'a, 'o> {
         j: usize,
         four: [Handle; 4],
     ) -> Result<Handle, BudgetExceeded> {
-        let kids = self.store.kids(quad);
-        Ok(match (i, j) {
-            (0, 0) => kids[0],
-            (0, 2) => kids[1],
-            (2, 0) => kids[2],
-            (2, 2) => kids[3],
-            _ => self.store.join(four)?,
+        Ok(match recursion::corner_child(i, j) {
+            Some(at) => self.store.kids(quad)[at],
+            None => self.store.join(four)?,
         })
     }
 
@@ -273,13 +265,7 @@ impl<'a, 'o> Advance<'a, 'o> {
 
 /// The 4×4 grandchildren of an inner quad of level ≥ 5, row by row.
 fn grandchildren(store: &Store, quad: Handle) -> [[Handle; 4]; 4] {
-    let [nw, ne, sw, se] = store.kids(quad).map(|kid| store.kids(kid));
-    [
-        [nw[0], nw[1], ne[0], ne[1]],
-        [nw[2], nw[3], ne[2], ne[3]],
-        [sw[0], sw[1], se[0], se[1]],
-        [sw[2], sw[3], se[2], se[3]],
-    ]
+    recursion::grandchildren(store.kids(quad).map(|kid| store.kids(kid)))
 }
 
 /// The centre (level n-1) of a quad of level n ≥ 4.
@@ -303,6 +289,5 @@ pub(crate) fn centre_of_four(
         let bits = four.map(|leaf| store.leaf_bits(leaf));
         return store.leaf(kernel::centre_of_leaves(bits));
     }
-    let [nw, ne, sw, se] = four.map(|quad| store.kids(quad));
-    store.join([nw[3], ne[2], sw[1], se[0]])
+    store.join(recursion::centre_of_four(four.map(|quad| store.kids(quad))))
 }

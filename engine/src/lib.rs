@@ -3,12 +3,15 @@
 //!
 //! Synchronous and free of network code: the cluster layers build on it.
 
+pub mod cut;
 pub mod direct;
 pub mod generation;
 pub mod pack;
 pub mod pattern;
+pub mod recursion;
 pub mod render;
 pub mod rule;
+pub mod shard;
 pub mod stored;
 
 mod advance;

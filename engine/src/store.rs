@@ -153,11 +153,14 @@ pub struct Store {
     /// Handles the recursion is holding: roots for the collector.
     pub(crate) scratch: Vec<Handle>,
     /// Handles pinned by the states built on this store: roots for the collector.
-    pinned: Vec<Handle>,
+    pub(crate) pinned: Vec<Handle>,
     /// Memo of residual advances (by less than the full stride), see `advance`.
     pub(crate) residual: ahash::HashMap<Handle, Handle>,
     /// Memo of content ids, kept across calls and pruned by the collector.
     pub(crate) ids: ahash::HashMap<Handle, crate::ContentId>,
+    /// The reverse, with each quad's level, for the quads a cluster shard
+    /// has named (see `shard`); empty elsewhere. Pruned by the collector.
+    pub(crate) by_id: ahash::HashMap<crate::ContentId, (Handle, u32)>,
     budget: u64,
     /// When false, reaching the budget is an error at once (used while a
     /// pattern is built: there is nothing to collect, and the builder's own
@@ -183,6 +186,7 @@ impl Store {
             pinned: Vec::new(),
             residual: ahash::HashMap::default(),
             ids: ahash::HashMap::default(),
+            by_id: ahash::HashMap::default(),
             budget,
             collect_allowed: true,
             created: 0,
@@ -237,7 +241,10 @@ impl Store {
         // A hash-map entry of the memo maps: key, value and one control byte.
         let residual_entry = 2 * 4 + 1;
         let id_entry = 4 + 16 + 1;
-        self.residual.capacity() as u64 * residual_entry + self.ids.capacity() as u64 * id_entry
+        let by_id_entry = 16 + 8 + 1;
+        self.residual.capacity() as u64 * residual_entry
+            + self.ids.capacity() as u64 * id_entry
+            + self.by_id.capacity() as u64 * by_id_entry
     }
 
     /// Allows or forbids collection when the budget is reached.
@@ -626,10 +633,12 @@ impl Store {
         self.residual
             .retain(|&key, &mut value| marked(key) && marked(value));
         self.ids.retain(|&key, _| marked(key));
+        self.by_id.retain(|_, &mut (handle, _)| marked(handle));
         // The maps count against the budget at their capacity: give back
         // what the collection emptied.
         self.residual.shrink_to_fit();
         self.ids.shrink_to_fit();
+        self.by_id.shrink_to_fit();
 
         // The table shrinks with what is left, to half full.
         let len = self.table.len().min(table_len_for(self.count()));

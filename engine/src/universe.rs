@@ -343,7 +343,7 @@ impl Universe {
     }
 
     /// Doubles the root around the origin.
-    fn expand(&mut self) -> Result<(), BudgetExceeded> {
+    pub(crate) fn expand(&mut self) -> Result<(), BudgetExceeded> {
         let level = self.level;
         let empty = self.store.empty(level - 1)?;
         let [nw, ne, sw, se] = self.store.kids(self.root);
@@ -367,30 +367,8 @@ impl Universe {
         Ok(())
     }
 
-    /// Whether every live cell of `quad` (of `level` ≥ 4) lies in its
-    /// centre half.
     fn fits_centre_half(&self, quad: Handle, level: u32) -> bool {
-        let kids = self.store.kids(quad);
-        if level == LEAF_LEVEL + 1 {
-            // The inner quarter of each leaf: se of nw, sw of ne, ne of sw, nw of se.
-            const INNER: [u64; 4] = [
-                0xf0f0_f0f0_0000_0000,
-                0x0f0f_0f0f_0000_0000,
-                0x0000_0000_f0f0_f0f0,
-                0x0000_0000_0f0f_0f0f,
-            ];
-            return kids
-                .iter()
-                .zip(INNER)
-                .all(|(&leaf, inner)| self.store.leaf_bits(leaf) & !inner == 0);
-        }
-        let empty = self.store.known_empty(level - 2);
-        // Of each child, the three grandchildren away from the centre.
-        let outer = [[0, 1, 2], [0, 1, 3], [0, 2, 3], [1, 2, 3]];
-        kids.iter().zip(outer).all(|(&kid, away)| {
-            let grand = self.store.kids(kid);
-            away.iter().all(|&at| grand[at] == empty)
-        })
+        fits_centre_half(&self.store, quad, level)
     }
 
     /// The number of live cells.
@@ -770,4 +748,30 @@ fn leaf_blocks<V: QuadView>(
         )?;
     }
     Ok(())
+}
+
+/// Whether every live cell of `quad` (of `level` ≥ 4) lies in its centre
+/// half.
+pub(crate) fn fits_centre_half(store: &Store, quad: Handle, level: u32) -> bool {
+    let kids = store.kids(quad);
+    if level == LEAF_LEVEL + 1 {
+        // The inner quarter of each leaf: se of nw, sw of ne, ne of sw, nw of se.
+        const INNER: [u64; 4] = [
+            0xf0f0_f0f0_0000_0000,
+            0x0f0f_0f0f_0000_0000,
+            0x0000_0000_f0f0_f0f0,
+            0x0000_0000_0f0f_0f0f,
+        ];
+        return kids
+            .iter()
+            .zip(INNER)
+            .all(|(&leaf, inner)| store.leaf_bits(leaf) & !inner == 0);
+    }
+    let empty = store.known_empty(level - 2);
+    // Of each child, the three grandchildren away from the centre.
+    let outer = [[0, 1, 2], [0, 1, 3], [0, 2, 3], [1, 2, 3]];
+    kids.iter().zip(outer).all(|(&kid, away)| {
+        let grand = store.kids(kid);
+        away.iter().all(|&at| grand[at] == empty)
+    })
 }

@@ -1,0 +1,244 @@
+//! The coordinator's half of the one idea: the engine's HashLife recursion
+//! (its shape from `deeptime_engine::recursion`) run over content ids above
+//! the shard level K, with a task on a node as its base case. The nine
+//! first-phase sub-advances of a square are independent and run
+//! concurrently, then the four of the second phase; equal sub-advances are
+//! computed once, even while in flight.
+
+use std::collections::HashMap;
+use std::sync::{Arc, Mutex};
+
+use deeptime_engine::ContentId;
+use deeptime_engine::recursion::{self, SECOND_PHASE, Stride};
+use futures::future::{BoxFuture, FutureExt, Shared, try_join_all};
+use num_bigint::BigUint;
+
+use crate::cluster::tasks::Dispatcher;
+use crate::cluster::upper::Upper;
+
+type Failure = Arc<anyhow::Error>;
+type Pending = Shared<BoxFuture<'static, Result<ContentId, Failure>>>;
+
+/// What a memo entry is keyed by besides the quad.
+#[derive(Clone, Copy, PartialEq, Eq, Hash, Debug)]
+enum Kind {
+    Step(Stride),
+    /// the centre, no generations on
+    Centre,
+}
+
+/// Runs `work` as a task of its own, so that a finished sub-advance wakes
+/// only the advances waiting for it (one future tree polled as a whole
+/// costs time in proportion to its size at every wake), and sub-advances
+/// run on every thread of the runtime.
+fn spawned(
+    work: impl std::future::Future<Output = Result<ContentId, Failure>> + Send + 'static,
+) -> Pending {
+    let handle = tokio::spawn(work);
+    async move {
+        match handle.await {
+            Ok(outcome) => outcome,
+            Err(error) => Err(Arc::new(anyhow::anyhow!("a sub-advance failed: {error}"))),
+        }
+    }
+    .boxed()
+    .shared()
+}
+
+/// One advance of the whole state by N generations.
+pub struct Advance {
+    pub job: String,
+    pub upper: Arc<Mutex<Upper>>,
+    pub tasks: Arc<Dispatcher>,
+    shard_level: u32,
+    /// N as little-endian bits
+    steps: BigUint,
+    trailing_zeros: u64,
+    memo: Mutex<HashMap<(ContentId, Kind), Pending>>,
+}
+
+impl Advance {
+    pub fn new(
+        job: String,
+        upper: Arc<Mutex<Upper>>,
+        tasks: Arc<Dispatcher>,
+        steps: BigUint,
+    ) -> Arc<Advance> {
+        let shard_level = upper.lock().expect("upper").shard_level;
+        let trailing_zeros = steps.trailing_zeros().unwrap_or(0);
+        Arc::new(Advance {
+            job,
+            upper,
+            tasks,
+            shard_level,
+            steps,
+            trailing_zeros,
+            memo: Mutex::new(HashMap::new()),
+        })
+    }
+
+    /// Advances `root` (of `level`, with N < 2^(level-2)) by N; its centre.
+    pub async fn run(self: &Arc<Self>, root: ContentId, level: u32) -> anyhow::Result<ContentId> {
+        self.clone()
+            .advance(root, level, Stride::Residual)
+            .await
+            .map_err(|failure| anyhow::anyhow!("{failure:#}"))
+    }
+
+    fn bit(&self, index: u32) -> bool {
+        self.steps.bit(index as u64)
+    }
+
+    /// The generations a stride means at the shard level.
+    fn task_steps(&self, stride: Stride) -> u64 {
+        let full = 1u64 << (self.shard_level - 2);
+        match stride {
+            Stride::Full => full,
+            Stride::Residual => {
+                let low = self.steps.iter_u64_digits().next().unwrap_or(0);
+                low & (full - 1)
+            }
+        }
+    }
+
+    fn advance(
+        self: Arc<Self>,
+        quad: ContentId,
+        level: u32,
+        stride: Stride,
+    ) -> BoxFuture<'static, Result<ContentId, Failure>> {
+        async move {
+            {
+                let mut upper = self.upper.lock().expect("upper");
+                if quad == upper.empty(level) {
+                    return Ok(upper.empty(level - 1));
+                }
+            }
+            if stride == Stride::Residual && self.trailing_zeros >= (level - 2) as u64 {
+                return self.centre(quad, level).await;
+            }
+            let key = (quad, Kind::Step(stride));
+            let pending = {
+                let mut memo = self.memo.lock().expect("memo");
+                if let Some(pending) = memo.get(&key) {
+                    self.tasks
+                        .memoised
+                        .fetch_add(1, std::sync::atomic::Ordering::Relaxed);
+                    pending.clone()
+                } else {
+                    let this = self.clone();
+                    let work = spawned(async move {
+                        if level == this.shard_level {
+                            let kids = this.upper.lock().expect("upper").kids(&quad, level);
+                            let steps = this.task_steps(stride);
+                            this.task(kids, steps).await
+                        } else {
+                            this.advance_inner(quad, level, stride).await
+                        }
+                    });
+                    memo.insert(key, work.clone());
+                    work
+                }
+            };
+            pending.await
+        }
+        .boxed()
+    }
+
+    async fn task(&self, kids: [ContentId; 4], steps: u64) -> Result<ContentId, Failure> {
+        self.tasks
+            .advance(&self.job, self.shard_level, kids, steps)
+            .await
+            .map_err(Arc::new)
+    }
+
+    /// The centre of a quad (no generations on): from the top of the tree
+    /// when the quad is above K, else a task of stride 0.
+    fn centre(
+        self: Arc<Self>,
+        quad: ContentId,
+        level: u32,
+    ) -> BoxFuture<'static, Result<ContentId, Failure>> {
+        async move {
+            if level > self.shard_level {
+                return Ok(self.upper.lock().expect("upper").centre(&quad, level));
+            }
+            let key = (quad, Kind::Centre);
+            let pending = {
+                let mut memo = self.memo.lock().expect("memo");
+                memo.entry(key)
+                    .or_insert_with(|| {
+                        let this = self.clone();
+                        spawned(async move {
+                            let kids = this.upper.lock().expect("upper").kids(&quad, level);
+                            this.task(kids, 0).await
+                        })
+                    })
+                    .clone()
+            };
+            pending.await
+        }
+        .boxed()
+    }
+
+    async fn advance_inner(
+        self: Arc<Self>,
+        quad: ContentId,
+        level: u32,
+        stride: Stride,
+    ) -> Result<ContentId, Failure> {
+        let (first, second) = recursion::phases(stride, self.bit(level - 3));
+        let (g, kids) = {
+            let mut upper = self.upper.lock().expect("upper");
+            let kids = upper.kids(&quad, level);
+            let of_kids = kids.map(|kid| upper.kids(&kid, level - 1));
+            (recursion::grandchildren(of_kids), kids)
+        };
+        // Phase one: nine squares of level n-1, each advanced (or centred).
+        let mut nine = Vec::with_capacity(9);
+        for i in 0..3 {
+            for j in 0..3 {
+                let four = recursion::block(&g, i, j);
+                let this = self.clone();
+                nine.push(match first {
+                    None => {
+                        // The centre of four level-(n-2) quads: a level-(n-1)
+                        // square's centre.
+                        let square = self.upper.lock().expect("upper").join(level - 1, four);
+                        this.centre(square, level - 1)
+                    }
+                    Some(stride) => {
+                        let square = match recursion::corner_child(i, j) {
+                            Some(at) => kids[at],
+                            None => self.upper.lock().expect("upper").join(level - 1, four),
+                        };
+                        this.advance(square, level - 1, stride)
+                    }
+                });
+            }
+        }
+        let nine = try_join_all(nine).await?;
+        let mid: [[ContentId; 3]; 3] = [
+            [nine[0], nine[1], nine[2]],
+            [nine[3], nine[4], nine[5]],
+            [nine[6], nine[7], nine[8]],
+        ];
+        // Phase two: four squares of the results, advanced the rest.
+        let mut four = Vec::with_capacity(4);
+        for (i, j) in SECOND_PHASE {
+            let square = self
+                .upper
+                .lock()
+                .expect("upper")
+                .join(level - 1, recursion::block(&mid, i, j));
+            four.push(self.clone().advance(square, level - 1, second));
+        }
+        let out = try_join_all(four).await?;
+        let result = self
+            .upper
+            .lock()
+            .expect("upper")
+            .join(level - 1, [out[0], out[1], out[2], out[3]]);
+        Ok(result)
+    }
+}

@@ -1,0 +1,358 @@
+//! Tasks on nodes: the base case of the coordinator's recursion. Keeps the
+//! directory of which member holds which level-(K-1) piece (with its
+//! figures), places each task where most of its input lives while keeping
+//! load balanced, retries on another member when one stops answering, and
+//! hands pieces over at load time.
+
+use std::collections::{HashMap, HashSet};
+use std::sync::atomic::{AtomicU64, Ordering};
+use std::sync::{Arc, Mutex};
+use std::time::Duration;
+
+use anyhow::anyhow;
+use deeptime_engine::ContentId;
+use deeptime_engine::shard::{Figures, Record};
+use deeptime_node::wire::{self, MAX_BATCH};
+use deeptime_proto::v1;
+
+use crate::cluster::members::{Member, Members};
+
+/// A task that takes longer than this is taken as lost.
+const TASK_TIMEOUT: Duration = Duration::from_secs(600);
+/// A member may run this many more tasks than the least loaded one before
+/// work that would go to it for locality goes elsewhere.
+const LOAD_SLACK: u64 = 2;
+
+/// Where a piece lives and what it holds.
+struct Holding {
+    holders: Vec<u64>,
+    figures: Figures,
+}
+
+#[derive(Default, Clone, Copy)]
+pub struct Counters {
+    pub done: u64,
+    pub running: u64,
+    pub memoised: u64,
+    pub bytes_fetched: u64,
+    pub records_fetched: u64,
+    pub compute_us: u64,
+    pub round_trip_us: u64,
+}
+
+pub struct Dispatcher {
+    members: Arc<Members>,
+    directory: Mutex<HashMap<ContentId, Holding>>,
+    /// the empty piece: every member has it
+    empty_piece: ContentId,
+    done: AtomicU64,
+    running: AtomicU64,
+    pub memoised: AtomicU64,
+    bytes_fetched: AtomicU64,
+    records_fetched: AtomicU64,
+    /// microseconds nodes spent computing, and tasks took end to end
+    compute_us: AtomicU64,
+    round_trip_us: AtomicU64,
+}
+
+impl Dispatcher {
+    pub fn new(members: Arc<Members>, empty_piece: ContentId) -> Dispatcher {
+        Dispatcher {
+            members,
+            directory: Mutex::new(HashMap::new()),
+            empty_piece,
+            done: AtomicU64::new(0),
+            running: AtomicU64::new(0),
+            memoised: AtomicU64::new(0),
+            bytes_fetched: AtomicU64::new(0),
+            records_fetched: AtomicU64::new(0),
+            compute_us: AtomicU64::new(0),
+            round_trip_us: AtomicU64::new(0),
+        }
+    }
+
+    pub fn counters(&self) -> Counters {
+        Counters {
+            done: self.done.load(Ordering::Relaxed),
+            running: self.running.load(Ordering::Relaxed),
+            memoised: self.memoised.load(Ordering::Relaxed),
+            bytes_fetched: self.bytes_fetched.load(Ordering::Relaxed),
+            records_fetched: self.records_fetched.load(Ordering::Relaxed),
+            compute_us: self.compute_us.load(Ordering::Relaxed),
+            round_trip_us: self.round_trip_us.load(Ordering::Relaxed),
+        }
+    }
+
+    /// Pieces held per member.
+    pub fn holdings(&self) -> HashMap<u64, u64> {
+        let mut out = HashMap::new();
+        for holding in self.directory.lock().expect("directory").values() {
+            for holder in &holding.holders {
+                *out.entry(*holder).or_insert(0) += 1;
+            }
+        }
+        out
+    }
+
+    /// The figures of the pieces named.
+    pub fn figures(&self, pieces: &HashSet<ContentId>) -> HashMap<ContentId, Figures> {
+        let directory = self.directory.lock().expect("directory");
+        pieces
+            .iter()
+            .filter_map(|id| directory.get(id).map(|h| (*id, h.figures)))
+            .collect()
+    }
+
+    fn record_holding(&self, id: ContentId, member: u64, figures: Figures) {
+        if id == self.empty_piece {
+            return;
+        }
+        let mut directory = self.directory.lock().expect("directory");
+        let holding = directory.entry(id).or_insert(Holding {
+            holders: Vec::new(),
+            figures,
+        });
+        if !holding.holders.contains(&member) {
+            holding.holders.push(member);
+        }
+    }
+
+    /// The addresses of live members holding each quarter, and a score per
+    /// member: how much of the input it already holds.
+    fn sources(
+        &self,
+        kids: &[ContentId; 4],
+    ) -> anyhow::Result<(Vec<v1::Sources>, HashMap<u64, u64>)> {
+        let directory = self.directory.lock().expect("directory");
+        let mut sources = Vec::new();
+        let mut score: HashMap<u64, u64> = HashMap::new();
+        for kid in kids {
+            if *kid == self.empty_piece {
+                sources.push(v1::Sources::default());
+                continue;
+            }
+            let holding = directory
+                .get(kid)
+                .ok_or_else(|| anyhow!("piece {} is held by no node", kid.short()))?;
+            let mut addresses = Vec::new();
+            for holder in &holding.holders {
+                if let Some(member) = self.members.get(*holder).filter(|m| m.is_live()) {
+                    addresses.push(member.address.clone());
+                    *score.entry(member.id).or_insert(0) += holding.figures.population + 1;
+                }
+            }
+            if addresses.is_empty() {
+                return Err(anyhow!(
+                    "piece {} was lost with the node that held it",
+                    kid.short()
+                ));
+            }
+            sources.push(v1::Sources { addresses });
+        }
+        Ok((sources, score))
+    }
+
+    /// The member a task goes to: the one holding most of its input, unless
+    /// it is much busier than the least loaded one.
+    fn place(&self, score: &HashMap<u64, u64>) -> anyhow::Result<Arc<Member>> {
+        let live = self.members.live();
+        let load = |m: &Member| m.running.load(Ordering::Relaxed);
+        let least = live
+            .iter()
+            .min_by_key(|m| (load(m), m.id))
+            .ok_or_else(|| anyhow!("no node is live"))?;
+        let best = live
+            .iter()
+            .max_by_key(|m| {
+                (
+                    score.get(&m.id).copied().unwrap_or(0),
+                    std::cmp::Reverse(load(m)),
+                )
+            })
+            .expect("a live member exists");
+        if load(best) > load(least) + LOAD_SLACK {
+            Ok(least.clone())
+        } else {
+            Ok(best.clone())
+        }
+    }
+
+    /// Advances the level-K square made of `kids` by `stride` on a node;
+    /// returns the result's id (a piece the node now holds).
+    pub async fn advance(
+        &self,
+        job: &str,
+        level: u32,
+        kids: [ContentId; 4],
+        stride: u64,
+    ) -> anyhow::Result<ContentId> {
+        let attempts = self.members.all().len() + 2;
+        let mut last = anyhow!("no node is live");
+        for _ in 0..attempts {
+            let (sources, score) = self.sources(&kids)?;
+            let member = self.place(&score)?;
+            let _permit = member.permits.acquire().await.expect("never closed");
+            if !member.is_live() {
+                continue;
+            }
+            member.running.fetch_add(1, Ordering::Relaxed);
+            self.running.fetch_add(1, Ordering::Relaxed);
+            let mut request = tonic::Request::new(v1::AdvanceTask {
+                job: job.to_string(),
+                level,
+                square: Some(v1::Square {
+                    kids: wire::ids4_bytes(&kids),
+                    sources,
+                }),
+                stride,
+            });
+            request.set_timeout(TASK_TIMEOUT);
+            let sent = std::time::Instant::now();
+            let outcome = member.client.clone().advance(request).await;
+            self.round_trip_us
+                .fetch_add(sent.elapsed().as_micros() as u64, Ordering::Relaxed);
+            member.running.fetch_sub(1, Ordering::Relaxed);
+            self.running.fetch_sub(1, Ordering::Relaxed);
+            match outcome {
+                Ok(reply) => {
+                    let reply = reply.into_inner();
+                    let id = wire::id_from(&reply.id)?;
+                    member.done.fetch_add(1, Ordering::Relaxed);
+                    self.done.fetch_add(1, Ordering::Relaxed);
+                    self.bytes_fetched
+                        .fetch_add(reply.fetched_bytes, Ordering::Relaxed);
+                    self.records_fetched
+                        .fetch_add(reply.fetched_records, Ordering::Relaxed);
+                    self.compute_us
+                        .fetch_add(reply.compute_us, Ordering::Relaxed);
+                    let figures = wire::figures_from_wire(reply.population, reply.extent);
+                    self.record_holding(id, member.id, figures);
+                    return Ok(id);
+                }
+                Err(status) if wire::is_unreachable(&status) => {
+                    self.members.lose(&member, status.message());
+                    last = anyhow!(
+                        "node {} ({}): {}",
+                        member.id,
+                        member.address,
+                        status.message()
+                    );
+                }
+                Err(status) => {
+                    return Err(anyhow!(
+                        "node {} ({}) refused a task: {}",
+                        member.id,
+                        member.address,
+                        status.message()
+                    ));
+                }
+            }
+        }
+        Err(last)
+    }
+
+    /// The canonical id and level of the level-K square made of `kids`.
+    pub async fn describe(
+        &self,
+        job: &str,
+        level: u32,
+        kids: [ContentId; 4],
+    ) -> anyhow::Result<(ContentId, u32)> {
+        let (sources, score) = self.sources(&kids)?;
+        let member = self.place(&score)?;
+        let reply = member
+            .client
+            .clone()
+            .describe(v1::DescribeRequest {
+                job: job.to_string(),
+                level,
+                square: Some(v1::Square {
+                    kids: wire::ids4_bytes(&kids),
+                    sources,
+                }),
+            })
+            .await
+            .map_err(|status| anyhow!("node {}: {}", member.address, status.message()))?
+            .into_inner();
+        Ok((wire::id_from(&reply.canonical)?, reply.canonical_level))
+    }
+
+    /// Hands records to a member (children first, in batches) and records it
+    /// as the holder of `pieces`.
+    pub async fn hand_over(
+        &self,
+        job: &str,
+        member: &Member,
+        records: Vec<(ContentId, Record)>,
+        pieces: &[(ContentId, Figures)],
+    ) -> anyhow::Result<()> {
+        let mut client = member.client.clone();
+        let batches: Vec<&[(ContentId, Record)]> = records.chunks(MAX_BATCH / 4).collect();
+        let last = batches.len();
+        for (at, batch) in batches.into_iter().enumerate() {
+            let hold = if at + 1 == last {
+                pieces.iter().map(|(id, _)| id.0.to_vec()).collect()
+            } else {
+                Vec::new()
+            };
+            client
+                .put(v1::PutRequest {
+                    job: job.to_string(),
+                    records: batch
+                        .iter()
+                        .map(|(id, r)| wire::record_to_wire(id, r))
+                        .collect(),
+                    hold,
+                })
+                .await
+                .map_err(|status| anyhow!("node {}: {}", member.address, status.message()))?;
+        }
+        if last == 0 && !pieces.is_empty() {
+            client
+                .put(v1::PutRequest {
+                    job: job.to_string(),
+                    records: Vec::new(),
+                    hold: pieces.iter().map(|(id, _)| id.0.to_vec()).collect(),
+                })
+                .await
+                .map_err(|status| anyhow!("node {}: {}", member.address, status.message()))?;
+        }
+        for (id, figures) in pieces {
+            self.record_holding(*id, member.id, *figures);
+        }
+        Ok(())
+    }
+
+    /// Keeps only the `live` pieces in the directory and on the members.
+    pub async fn retain(&self, job: &str, live: &HashSet<ContentId>) -> anyhow::Result<()> {
+        let mut keep: HashMap<u64, Vec<Vec<u8>>> = HashMap::new();
+        {
+            let mut directory = self.directory.lock().expect("directory");
+            directory.retain(|id, _| live.contains(id));
+            for (id, holding) in directory.iter() {
+                for holder in &holding.holders {
+                    keep.entry(*holder).or_default().push(id.0.to_vec());
+                }
+            }
+        }
+        for member in self.members.live() {
+            let ids = keep.remove(&member.id).unwrap_or_default();
+            let outcome = member
+                .client
+                .clone()
+                .retain(v1::RetainRequest {
+                    job: job.to_string(),
+                    keep: ids,
+                })
+                .await;
+            if let Err(status) = outcome {
+                if wire::is_unreachable(&status) {
+                    self.members.lose(&member, status.message());
+                } else {
+                    return Err(anyhow!("node {}: {}", member.address, status.message()));
+                }
+            }
+        }
+        Ok(())
+    }
+}

@@ -1,0 +1,33 @@
+//! `deeptime node`: the node role, from the command line to the node crate.
+
+use deeptime_node::wire::TlsFiles;
+use deeptime_node::{NodeConfig, run_node};
+
+use crate::cli::NodeArgs;
+use crate::memory;
+
+pub fn run(args: NodeArgs) -> anyhow::Result<()> {
+    tracing_subscriber::fmt()
+        .with_writer(std::io::stderr)
+        .with_env_filter(
+            tracing_subscriber::EnvFilter::try_from_env("DEEPTIME_LOG")
+                .unwrap_or_else(|_| tracing_subscriber::EnvFilter::new("warn")),
+        )
+        .init();
+    let config = NodeConfig {
+        join: args.join,
+        listen: args.listen,
+        advertise: args.advertise,
+        budget: memory::budget(args.memory.as_deref())?,
+        token_file: args.token_file,
+        tls: TlsFiles {
+            cert: args.tls_cert,
+            key: args.tls_key,
+            ca: args.tls_ca,
+        },
+    };
+    let runtime = tokio::runtime::Builder::new_multi_thread()
+        .enable_all()
+        .build()?;
+    runtime.block_on(run_node(config))
+}

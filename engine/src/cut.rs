@@ -1,0 +1,185 @@
+//! A state cut at a cluster's shard level K: the quads of level K and up
+//! (the top of the tree, which the coordinator keeps as content ids) and
+//! the distinct level-(K-1) pieces below them (which nodes keep), with the
+//! records that carry a piece to a node.
+
+use std::collections::HashSet;
+
+use crate::content_id::ContentId;
+use crate::error::BudgetExceeded;
+use crate::figures;
+use crate::shard::{Figures, MAX_SHARD_LEVEL, Record, figures_of};
+use crate::store::{Handle, LEAF_LEVEL};
+use crate::universe::Universe;
+
+/// A quad of the top of the tree: its id, level (≥ K) and children's ids.
+#[derive(Clone, Copy, PartialEq, Eq, Debug)]
+pub struct UpperQuad {
+    pub id: ContentId,
+    pub level: u32,
+    pub kids: [ContentId; 4],
+}
+
+/// A distinct non-empty quad of level K-1 under the top of the tree.
+#[derive(Clone, Copy, Debug)]
+pub struct Piece {
+    pub id: ContentId,
+    /// where it is in the universe that was cut (for `Universe::records`)
+    pub handle: Handle,
+    pub figures: Figures,
+}
+
+/// A state cut at shard level K.
+#[derive(Clone, Debug)]
+pub struct Cut {
+    pub shard_level: u32,
+    /// the root's id and level (at least K + 1), centred on the origin
+    pub root: ContentId,
+    pub root_level: u32,
+    /// every distinct quad of level K and up, parents before children
+    pub upper: Vec<UpperQuad>,
+    /// every distinct non-empty level-(K-1) quad, in the order a walk of
+    /// the tree meets them (nw, ne, sw, se: nearby pieces are near in it)
+    pub pieces: Vec<Piece>,
+}
+
+impl Cut {
+    /// The four pieces of the level-K square centred on the origin, when the
+    /// root is of level K + 1 (for tests and small states).
+    pub fn centre_square(&self) -> Option<[ContentId; 4]> {
+        if self.root_level != self.shard_level + 1 {
+            return None;
+        }
+        let kids_of = |id: &ContentId| {
+            self.upper
+                .iter()
+                .find(|quad| quad.id == *id)
+                .map(|q| q.kids)
+        };
+        let root = kids_of(&self.root)?;
+        let [nw, ne, sw, se] = root.map(|kid| kids_of(&kid));
+        Some([nw?[3], ne?[2], sw?[1], se?[0]])
+    }
+}
+
+impl Universe {
+    /// Cuts the state at shard level `shard_level` (5 to 48), growing the
+    /// root (with empty space) to at least one level above it.
+    pub fn cut(&mut self, shard_level: u32) -> Result<Cut, BudgetExceeded> {
+        assert!(
+            (LEAF_LEVEL + 2..=MAX_SHARD_LEVEL).contains(&shard_level),
+            "shard level {shard_level} out of range"
+        );
+        while self.level < shard_level + 1 {
+            self.expand()?;
+        }
+        let empty_piece = self.store.empty(shard_level - 1)?;
+        let mut upper = Vec::new();
+        let mut pieces = Vec::new();
+        let mut seen: HashSet<Handle> = HashSet::new();
+        // Ids of the quads at or above K, computed children first.
+        let root_id = self.upper_ids(
+            self.root,
+            self.level,
+            shard_level,
+            &mut seen,
+            &mut upper,
+            &mut pieces,
+            empty_piece,
+        );
+        upper.reverse();
+        Ok(Cut {
+            shard_level,
+            root: root_id,
+            root_level: self.level,
+            upper,
+            pieces,
+        })
+    }
+
+    #[allow(clippy::too_many_arguments)]
+    fn upper_ids(
+        &mut self,
+        quad: Handle,
+        level: u32,
+        shard_level: u32,
+        seen: &mut HashSet<Handle>,
+        upper: &mut Vec<UpperQuad>,
+        pieces: &mut Vec<Piece>,
+        empty_piece: Handle,
+    ) -> ContentId {
+        if level == shard_level - 1 {
+            let id = figures::content_id(&mut self.store, quad, level);
+            if quad != empty_piece && seen.insert(quad) {
+                pieces.push(Piece {
+                    id,
+                    handle: quad,
+                    figures: figures_of(&self.store, quad, level),
+                });
+            }
+            return id;
+        }
+        let kids = self.store.kids(quad);
+        let mut ids = [ContentId([0; 16]); 4];
+        for (at, kid) in kids.into_iter().enumerate() {
+            ids[at] = self.upper_ids(
+                kid,
+                level - 1,
+                shard_level,
+                seen,
+                upper,
+                pieces,
+                empty_piece,
+            );
+        }
+        let id = ContentId::of_inner(level, ids);
+        if seen.insert(quad) {
+            upper.push(UpperQuad {
+                id,
+                level,
+                kids: ids,
+            });
+        }
+        id
+    }
+
+    /// The records of the quads under `quad` (of `level`, from this
+    /// universe, e.g. a piece of a cut), children before parents, leaving out
+    /// empty quads and those whose ids are in `sent` (which gains the rest).
+    pub fn records(
+        &mut self,
+        quad: Handle,
+        level: u32,
+        sent: &mut HashSet<ContentId>,
+    ) -> Vec<(ContentId, Record)> {
+        let mut out = Vec::new();
+        self.records_into(quad, level, sent, &mut out);
+        out
+    }
+
+    fn records_into(
+        &mut self,
+        quad: Handle,
+        level: u32,
+        sent: &mut HashSet<ContentId>,
+        out: &mut Vec<(ContentId, Record)>,
+    ) -> ContentId {
+        let id = figures::content_id(&mut self.store, quad, level);
+        if quad == self.store.known_empty(level) || sent.contains(&id) {
+            return id;
+        }
+        let record = if level == LEAF_LEVEL {
+            Record::Leaf(self.store.leaf_bits(quad))
+        } else {
+            let kids = self.store.kids(quad);
+            let mut ids = [ContentId([0; 16]); 4];
+            for (at, kid) in kids.into_iter().enumerate() {
+                ids[at] = self.records_into(kid, level - 1, sent, out);
+            }
+            Record::Inner { level, kids: ids }
+        };
+        sent.insert(id);
+        out.push((id, record));
+        id
+    }
+}

@@ -1,0 +1,152 @@
+//! Fetching quads a task needs from the peers that hold them: only what
+//! this node lacks, level by level (a record names its children; those not
+//! here are asked for next), batched per peer, every record checked
+//! against its id and level.
+
+use std::collections::{HashMap, HashSet};
+use std::sync::{Arc, Mutex};
+
+use deeptime_engine::ContentId;
+use deeptime_engine::shard::{Record, Shard};
+use deeptime_proto::v1;
+use tonic::Status;
+use tonic::transport::Channel;
+
+use crate::auth::Token;
+use crate::wire::{self, MAX_BATCH, NodeClient, TlsFiles};
+
+/// Clients of peers, made once per address.
+pub struct Peers {
+    token: Token,
+    tls: TlsFiles,
+    channels: Mutex<HashMap<String, Channel>>,
+}
+
+impl Peers {
+    pub fn new(token: Token, tls: TlsFiles) -> Peers {
+        Peers {
+            token,
+            tls,
+            channels: Mutex::new(HashMap::new()),
+        }
+    }
+
+    /// A client of the node at `address` (connected lazily).
+    pub fn client(&self, address: &str) -> Result<NodeClient, Status> {
+        let mut channels = self.channels.lock().expect("peer map");
+        if let Some(channel) = channels.get(address) {
+            return Ok(wire::node_client(channel.clone(), &self.token));
+        }
+        let endpoint = wire::endpoint(address, &self.tls)
+            .map_err(|error| Status::invalid_argument(format!("peer address: {error}")))?;
+        let channel = endpoint.connect_lazy();
+        channels.insert(address.to_string(), channel.clone());
+        Ok(wire::node_client(channel, &self.token))
+    }
+}
+
+/// What a fetch brought: records in an order that puts children first.
+pub struct Fetched {
+    pub records: Vec<(ContentId, Record)>,
+    pub bytes: u64,
+}
+
+/// Fetches the subtrees of `wanted` (id, level, sources) that `shard` lacks.
+pub async fn fetch_missing(
+    shard: &Arc<Mutex<Option<Shard>>>,
+    peers: &Peers,
+    wanted: Vec<(ContentId, u32, Vec<String>)>,
+) -> Result<Fetched, Status> {
+    let mut got: HashMap<ContentId, Record> = HashMap::new();
+    let mut bytes = 0u64;
+    let lacks = |ids: Vec<(ContentId, u32, Vec<String>)>| -> Result<Vec<_>, Status> {
+        let guard = shard.lock().expect("shard");
+        let shard = guard
+            .as_ref()
+            .ok_or_else(|| Status::failed_precondition("this node has not joined a job"))?;
+        Ok(ids
+            .into_iter()
+            .filter(|(id, _, _)| !shard.has(id))
+            .collect())
+    };
+    let mut round = lacks(wanted)?;
+    let mut asked: HashSet<ContentId> = HashSet::new();
+    while !round.is_empty() {
+        // One batch per source list (the ids a peer is asked for together).
+        let mut by_sources: HashMap<Vec<String>, Vec<(ContentId, u32)>> = HashMap::new();
+        for (id, level, sources) in round {
+            if got.contains_key(&id) || !asked.insert(id) {
+                continue;
+            }
+            by_sources.entry(sources).or_default().push((id, level));
+        }
+        let mut next = Vec::new();
+        for (sources, ids) in by_sources {
+            for batch in ids.chunks(MAX_BATCH) {
+                let (records, size) = fetch_batch(peers, &sources, batch).await?;
+                bytes += size;
+                for ((id, level), record) in batch.iter().zip(records) {
+                    if record.level() != *level {
+                        return Err(Status::data_loss(format!(
+                            "a peer sent quad {id} as level {}, expected {level}",
+                            record.level()
+                        )));
+                    }
+                    if let Record::Inner { level, kids } = record {
+                        for kid in kids {
+                            next.push((kid, level - 1, sources.clone()));
+                        }
+                    }
+                    got.insert(*id, record);
+                }
+            }
+        }
+        round = lacks(next)?;
+    }
+    // Children first: lower levels first.
+    let mut records: Vec<(ContentId, Record)> = got.into_iter().collect();
+    records.sort_by_key(|(_, record)| record.level());
+    Ok(Fetched { records, bytes })
+}
+
+/// One batch from the first source that answers with every record.
+async fn fetch_batch(
+    peers: &Peers,
+    sources: &[String],
+    batch: &[(ContentId, u32)],
+) -> Result<(Vec<Record>, u64), Status> {
+    let request = v1::FetchRequest {
+        ids: batch.iter().map(|(id, _)| id.0.to_vec()).collect(),
+    };
+    let mut last = Status::unavailable("no peer holds the quads this task needs");
+    for address in sources {
+        let mut client = peers.client(address)?;
+        match client.fetch(request.clone()).await {
+            Ok(reply) => {
+                let reply = reply.into_inner();
+                let size = prost::Message::encoded_len(&reply) as u64;
+                let mut records = Vec::with_capacity(batch.len());
+                let mut by_id: HashMap<ContentId, Record> = HashMap::new();
+                for wire_record in &reply.records {
+                    let (id, record) = wire::record_from_wire(wire_record)?;
+                    by_id.insert(id, record);
+                }
+                let complete = batch.iter().all(|(id, _)| by_id.contains_key(id));
+                if !complete {
+                    last = Status::unavailable(format!(
+                        "peer {address} lacks quads it was said to hold"
+                    ));
+                    continue;
+                }
+                for (id, _) in batch {
+                    records.push(by_id[id]);
+                }
+                return Ok((records, size));
+            }
+            Err(status) => {
+                last = Status::unavailable(format!("peer {address}: {}", status.message()))
+            }
+        }
+    }
+    Err(last)
+}

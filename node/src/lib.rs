@@ -1,0 +1,15 @@
+//! A deeptime cluster node, and the wire helpers both cluster roles share.
+//!
+//! A node joins a coordinator, holds a lease, and keeps a shard of quads
+//! (`deeptime_engine::shard`): it computes the coordinator's base-case
+//! tasks with its own engine, keeps what it computed, serves records to
+//! peers by content id and fetches from them only what it lacks.
+
+pub mod auth;
+pub mod fetch;
+pub mod membership;
+pub mod serve;
+pub mod service;
+pub mod wire;
+
+pub use serve::{NodeConfig, run_node};

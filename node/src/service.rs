@@ -1,0 +1,266 @@
+//! The node's gRPC service: tasks (the coordinator's base case), records
+//! for peers, quads handed over by the coordinator, retention and figures.
+//! CPU work runs on blocking threads; the shard is locked only briefly
+//! around engine calls, never across a network wait.
+
+use std::collections::HashSet;
+use std::sync::atomic::{AtomicU64, Ordering};
+use std::sync::{Arc, Mutex};
+use std::time::Instant;
+
+use deeptime_engine::ContentId;
+use deeptime_engine::shard::{Record, Shard, ShardError};
+use deeptime_proto::v1;
+use tonic::{Request, Response, Status};
+
+use crate::fetch::{Fetched, Peers, fetch_missing};
+use crate::wire::{self, MAX_BATCH};
+
+/// The job a node works for, as the coordinator described it at join.
+#[derive(Clone, Debug, PartialEq, Eq)]
+pub struct JobTerms {
+    pub job: String,
+    pub shard_level: u32,
+}
+
+/// A node's state, shared by its service and its membership loop.
+pub struct NodeState {
+    pub shard: Arc<Mutex<Option<Shard>>>,
+    pub terms: Mutex<Option<JobTerms>>,
+    pub peers: Peers,
+    pub budget: u64,
+    pub tasks_done: AtomicU64,
+}
+
+impl NodeState {
+    fn terms(&self, job: &str) -> Result<JobTerms, Status> {
+        let terms = self.terms.lock().expect("terms").clone();
+        match terms {
+            Some(terms) if terms.job == job => Ok(terms),
+            Some(_) => Err(Status::failed_precondition(
+                "this node works for another job",
+            )),
+            None => Err(Status::failed_precondition(
+                "this node has not joined a job",
+            )),
+        }
+    }
+
+    /// Runs `work` on the shard on a blocking thread.
+    async fn with_shard<T: Send + 'static>(
+        &self,
+        work: impl FnOnce(&mut Shard) -> Result<T, ShardError> + Send + 'static,
+    ) -> Result<T, Status> {
+        let shard = self.shard.clone();
+        tokio::task::spawn_blocking(move || {
+            let mut guard = shard.lock().expect("shard");
+            let shard = guard
+                .as_mut()
+                .ok_or_else(|| Status::failed_precondition("this node has not joined a job"))?;
+            work(shard).map_err(wire::shard_status)
+        })
+        .await
+        .map_err(|error| Status::internal(format!("a task failed: {error}")))?
+    }
+
+    /// Makes sure the four quarters of a square are here, fetching the
+    /// missing ones from their sources.
+    async fn gather(
+        &self,
+        square: &v1::Square,
+        level: u32,
+    ) -> Result<([ContentId; 4], Fetched), Status> {
+        let kids = wire::ids4_from(&square.kids)?;
+        if square.sources.len() > 4 {
+            return Err(Status::invalid_argument("a square has four quarters"));
+        }
+        let mut wanted = Vec::new();
+        for (at, kid) in kids.iter().enumerate() {
+            let sources = square
+                .sources
+                .get(at)
+                .map(|s| s.addresses.clone())
+                .unwrap_or_default();
+            wanted.push((*kid, level - 1, sources));
+        }
+        let fetched = fetch_missing(&self.shard, &self.peers, wanted).await?;
+        Ok((kids, fetched))
+    }
+}
+
+pub struct NodeService {
+    pub state: Arc<NodeState>,
+}
+
+/// Attempts at a task whose inputs the collector took between fetch and use.
+const ATTEMPTS: usize = 3;
+
+#[tonic::async_trait]
+impl v1::node_server::Node for NodeService {
+    async fn advance(
+        &self,
+        request: Request<v1::AdvanceTask>,
+    ) -> Result<Response<v1::AdvanceOutcome>, Status> {
+        let task = request.into_inner();
+        let terms = self.state.terms(&task.job)?;
+        if task.level != terms.shard_level {
+            return Err(Status::invalid_argument(format!(
+                "a task of level {}, the shard level is {}",
+                task.level, terms.shard_level
+            )));
+        }
+        let square = task
+            .square
+            .ok_or_else(|| Status::invalid_argument("a task needs its square"))?;
+        let mut fetched_records = 0;
+        let mut fetched_bytes = 0;
+        for attempt in 1..=ATTEMPTS {
+            let (kids, fetched) = self.state.gather(&square, task.level).await?;
+            fetched_records += fetched.records.len() as u64;
+            fetched_bytes += fetched.bytes;
+            let (level, stride) = (task.level, task.stride);
+            let started = Instant::now();
+            let outcome = self
+                .state
+                .with_shard(move |shard| {
+                    shard.put(&fetched.records, &[])?;
+                    shard.advance(&kids, level, stride)
+                })
+                .await;
+            match outcome {
+                Ok((id, figures)) => {
+                    self.state.tasks_done.fetch_add(1, Ordering::Relaxed);
+                    return Ok(Response::new(v1::AdvanceOutcome {
+                        id: id.0.to_vec(),
+                        population: figures.population,
+                        extent: wire::extent_to_wire(&figures.extent),
+                        fetched_records,
+                        fetched_bytes,
+                        compute_us: started.elapsed().as_micros() as u64,
+                    }));
+                }
+                Err(status)
+                    if status.code() == tonic::Code::FailedPrecondition && attempt < ATTEMPTS =>
+                {
+                    tracing::debug!(attempt, "inputs were collected before use, fetching again");
+                }
+                Err(status) => return Err(status),
+            }
+        }
+        Err(Status::internal("unreachable"))
+    }
+
+    async fn fetch(
+        &self,
+        request: Request<v1::FetchRequest>,
+    ) -> Result<Response<v1::FetchReply>, Status> {
+        let ids = request.into_inner().ids;
+        if ids.len() > MAX_BATCH {
+            return Err(Status::invalid_argument(format!(
+                "at most {MAX_BATCH} ids per call"
+            )));
+        }
+        let ids = ids
+            .iter()
+            .map(|id| wire::id_from(id))
+            .collect::<Result<Vec<_>, _>>()?;
+        let guard = self.state.shard.lock().expect("shard");
+        let Some(shard) = guard.as_ref() else {
+            return Err(Status::failed_precondition(
+                "this node has not joined a job",
+            ));
+        };
+        let records = ids
+            .iter()
+            .filter_map(|id| {
+                shard
+                    .record(id)
+                    .map(|record| wire::record_to_wire(id, &record))
+            })
+            .collect();
+        Ok(Response::new(v1::FetchReply { records }))
+    }
+
+    async fn put(
+        &self,
+        request: Request<v1::PutRequest>,
+    ) -> Result<Response<v1::PutReply>, Status> {
+        let put = request.into_inner();
+        self.state.terms(&put.job)?;
+        if put.records.len() > MAX_BATCH || put.hold.len() > MAX_BATCH {
+            return Err(Status::invalid_argument(format!(
+                "at most {MAX_BATCH} records per call"
+            )));
+        }
+        let records: Vec<(ContentId, Record)> = put
+            .records
+            .iter()
+            .map(wire::record_from_wire)
+            .collect::<Result<_, _>>()?;
+        let hold = put
+            .hold
+            .iter()
+            .map(|id| wire::id_from(id))
+            .collect::<Result<Vec<_>, _>>()?;
+        let held = self
+            .state
+            .with_shard(move |shard| {
+                shard.put(&records, &hold)?;
+                Ok(shard.held() as u64)
+            })
+            .await?;
+        Ok(Response::new(v1::PutReply { held }))
+    }
+
+    async fn retain(
+        &self,
+        request: Request<v1::RetainRequest>,
+    ) -> Result<Response<v1::RetainReply>, Status> {
+        let retain = request.into_inner();
+        self.state.terms(&retain.job)?;
+        let keep = retain
+            .keep
+            .iter()
+            .map(|id| wire::id_from(id))
+            .collect::<Result<HashSet<_>, _>>()?;
+        let (held, quads) = self
+            .state
+            .with_shard(move |shard| {
+                let held = shard.retain(&keep) as u64;
+                Ok((held, shard.stats().quads))
+            })
+            .await?;
+        Ok(Response::new(v1::RetainReply { held, quads }))
+    }
+
+    async fn describe(
+        &self,
+        request: Request<v1::DescribeRequest>,
+    ) -> Result<Response<v1::DescribeReply>, Status> {
+        let describe = request.into_inner();
+        let terms = self.state.terms(&describe.job)?;
+        if describe.level != terms.shard_level {
+            return Err(Status::invalid_argument(
+                "describe squares of the shard level",
+            ));
+        }
+        let square = describe
+            .square
+            .ok_or_else(|| Status::invalid_argument("describe needs a square"))?;
+        let (kids, fetched) = self.state.gather(&square, describe.level).await?;
+        let level = describe.level;
+        let (canonical, canonical_level, figures) = self
+            .state
+            .with_shard(move |shard| {
+                shard.put(&fetched.records, &[])?;
+                shard.describe(&kids, level)
+            })
+            .await?;
+        Ok(Response::new(v1::DescribeReply {
+            canonical: canonical.0.to_vec(),
+            canonical_level,
+            population: figures.population,
+            extent: wire::extent_to_wire(&figures.extent),
+        }))
+    }
+}
