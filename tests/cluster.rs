@@ -4,7 +4,6 @@
 //! box (common practice: a distributed run is checked against the
 //! sequential one).
 
-use std::io::{BufRead, BufReader};
 use std::net::TcpListener;
 use std::path::{Path, PathBuf};
 use std::process::{Child, Command, Stdio};
@@ -44,8 +43,15 @@ fn start_node(coordinator: u16, token: &Path, memory: &str) -> Child {
         .unwrap()
 }
 
-/// Runs `job` on a coordinator and `nodes` nodes; returns its JSON report.
-fn run_cluster(job: &Path, nodes: usize, extra: &[&str]) -> serde_json::Value {
+/// How a cluster run ended.
+struct Outcome {
+    code: Option<i32>,
+    stdout: String,
+    stderr: String,
+}
+
+/// Runs `job` on a coordinator and `nodes` nodes with `memory` each.
+fn run_cluster_with(job: &Path, nodes: usize, memory: &str, extra: &[&str]) -> Outcome {
     let dir = job.parent().unwrap();
     let token = dir.join("cluster.token");
     let port = free_port();
@@ -62,6 +68,7 @@ fn run_cluster(job: &Path, nodes: usize, extra: &[&str]) -> serde_json::Value {
         .spawn()
         .unwrap();
     let stdout = coordinator.stdout.take().unwrap();
+    let stderr = coordinator.stderr.take().unwrap();
     let mut processes = Processes(vec![coordinator]);
     // The coordinator writes the token file before it listens.
     let deadline = Instant::now() + Duration::from_secs(20);
@@ -70,13 +77,29 @@ fn run_cluster(job: &Path, nodes: usize, extra: &[&str]) -> serde_json::Value {
         std::thread::sleep(Duration::from_millis(20));
     }
     for _ in 0..nodes {
-        processes.0.push(start_node(port, &token, "256MiB"));
+        processes.0.push(start_node(port, &token, memory));
     }
-    let mut line = String::new();
-    BufReader::new(stdout).read_line(&mut line).unwrap();
+    let errors = std::thread::spawn(move || std::io::read_to_string(stderr).unwrap());
+    let stdout = std::io::read_to_string(stdout).unwrap();
     let status = processes.0[0].wait().unwrap();
-    assert!(status.success(), "the coordinator failed: {line}");
-    serde_json::from_str(&line).unwrap_or_else(|error| panic!("{error}: {line:?}"))
+    Outcome {
+        code: status.code(),
+        stdout,
+        stderr: errors.join().unwrap(),
+    }
+}
+
+/// Runs `job` on a coordinator and `nodes` nodes; returns its JSON report.
+fn run_cluster(job: &Path, nodes: usize, extra: &[&str]) -> serde_json::Value {
+    let outcome = run_cluster_with(job, nodes, "256MiB", extra);
+    assert_eq!(
+        outcome.code,
+        Some(0),
+        "the coordinator failed: {}",
+        outcome.stderr
+    );
+    serde_json::from_str(&outcome.stdout)
+        .unwrap_or_else(|error| panic!("{error}: {:?}", outcome.stdout))
 }
 
 fn evolve(pattern: &Path, gens: &str, rule: &str) -> serde_json::Value {
@@ -193,4 +216,27 @@ fn a_node_with_a_wrong_token_is_refused_and_exits_non_zero() {
         stderr.contains("refused this node's cluster token"),
         "{stderr}"
     );
+}
+
+#[test]
+fn a_state_too_big_for_one_node_runs_on_four_nodes_of_the_same_size() {
+    // A 2048² soup: about 4.7 MiB of live quads at the first step (measured
+    // on one node). One node of 4 MiB cannot hold it and says so; four nodes
+    // of 4 MiB each hold a quarter apiece and finish with evolve's figures.
+    let dir = temp_dir();
+    std::fs::write(dir.path().join("soup.rle"), soup(2048)).unwrap();
+    let job = write_job(dir.path(), "soup.rle", "B3/S23", "32", "16");
+    let alone = run_cluster_with(&job, 1, "4MiB", &["--shard-level", "8"]);
+    assert_eq!(alone.code, Some(3), "{}", alone.stderr);
+    assert!(
+        alone.stderr.contains("ran out of memory"),
+        "{}",
+        alone.stderr
+    );
+    assert!(alone.stderr.contains("add nodes"), "{}", alone.stderr);
+    let four = run_cluster_with(&job, 4, "4MiB", &["--shard-level", "8"]);
+    assert_eq!(four.code, Some(0), "{}", four.stderr);
+    let cluster: serde_json::Value = serde_json::from_str(&four.stdout).unwrap();
+    let single = evolve(&dir.path().join("soup.rle"), "32", "B3/S23");
+    assert_same_figures(&cluster, &single);
 }

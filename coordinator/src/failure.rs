@@ -36,7 +36,10 @@ pub fn describe(error: &anyhow::Error) -> String {
         }
         text.push_str(&cause.to_string());
     }
-    if error.chain().any(is_budget) {
+    if error
+        .chain()
+        .any(|cause| is_budget(cause) && !cause.is::<crate::cluster::NodeOutOfMemory>())
+    {
         text.push_str(" (--memory)");
     }
     text
@@ -44,6 +47,7 @@ pub fn describe(error: &anyhow::Error) -> String {
 
 fn is_budget(cause: &(dyn std::error::Error + 'static)) -> bool {
     cause.is::<BudgetExceeded>()
+        || cause.is::<crate::cluster::NodeOutOfMemory>()
         || matches!(
             cause.downcast_ref::<AdvanceError>(),
             Some(AdvanceError::Budget(_))

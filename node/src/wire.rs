@@ -189,7 +189,9 @@ pub fn shard_status(error: ShardError) -> Status {
         | ShardError::BadLevel { .. }
         | ShardError::BadStride { .. } => Status::invalid_argument(error.to_string()),
         ShardError::Budget(budget) => Status::resource_exhausted(format!(
-            "{budget} (give the node a larger --memory or add nodes)"
+            "its memory budget of {} is too small: at least {} of quads are live",
+            deeptime_engine::human_bytes(budget.budget),
+            deeptime_engine::human_bytes(budget.in_use)
         )),
     }
 }

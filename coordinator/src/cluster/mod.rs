@@ -35,6 +35,7 @@ use crate::report::{BoxReport, EngineReport, Report};
 use crate::{input, memory};
 use members::{Board, CoordinatorService, Members, Terms};
 use tasks::Dispatcher;
+pub use tasks::NodeOutOfMemory;
 use upper::Upper;
 
 /// Shard levels chosen automatically stay in this range.

@@ -23,6 +23,35 @@ const TASK_TIMEOUT: Duration = Duration::from_secs(600);
 /// work that would go to it for locality goes elsewhere.
 const LOAD_SLACK: u64 = 2;
 
+/// A node's memory budget could not hold its share of the state.
+#[derive(Debug, thiserror::Error)]
+#[error(
+    "node {member} ({address}) ran out of memory: {message}; give the nodes a larger --memory or add nodes"
+)]
+pub struct NodeOutOfMemory {
+    pub member: u64,
+    pub address: String,
+    pub message: String,
+}
+
+/// A member's refusal as an error (running out of memory is its own kind).
+fn node_error(member: &Member, status: tonic::Status) -> anyhow::Error {
+    if status.code() == tonic::Code::ResourceExhausted {
+        return NodeOutOfMemory {
+            member: member.id,
+            address: member.address.clone(),
+            message: status.message().to_string(),
+        }
+        .into();
+    }
+    anyhow!(
+        "node {} ({}) refused: {}",
+        member.id,
+        member.address,
+        status.message()
+    )
+}
+
 /// Where a piece lives and what it holds.
 struct Holding {
     holders: Vec<u64>,
@@ -238,14 +267,7 @@ impl Dispatcher {
                         status.message()
                     );
                 }
-                Err(status) => {
-                    return Err(anyhow!(
-                        "node {} ({}) refused a task: {}",
-                        member.id,
-                        member.address,
-                        status.message()
-                    ));
-                }
+                Err(status) => return Err(node_error(&member, status)),
             }
         }
         Err(last)
@@ -272,7 +294,7 @@ impl Dispatcher {
                 }),
             })
             .await
-            .map_err(|status| anyhow!("node {}: {}", member.address, status.message()))?
+            .map_err(|status| node_error(&member, status))?
             .into_inner();
         Ok((wire::id_from(&reply.canonical)?, reply.canonical_level))
     }
@@ -305,7 +327,7 @@ impl Dispatcher {
                     hold,
                 })
                 .await
-                .map_err(|status| anyhow!("node {}: {}", member.address, status.message()))?;
+                .map_err(|status| node_error(member, status))?;
         }
         if last == 0 && !pieces.is_empty() {
             client
@@ -315,7 +337,7 @@ impl Dispatcher {
                     hold: pieces.iter().map(|(id, _)| id.0.to_vec()).collect(),
                 })
                 .await
-                .map_err(|status| anyhow!("node {}: {}", member.address, status.message()))?;
+                .map_err(|status| node_error(member, status))?;
         }
         for (id, figures) in pieces {
             self.record_holding(*id, member.id, *figures);
@@ -349,7 +371,7 @@ impl Dispatcher {
                 if wire::is_unreachable(&status) {
                     self.members.lose(&member, status.message());
                 } else {
-                    return Err(anyhow!("node {}: {}", member.address, status.message()));
+                    return Err(node_error(&member, status));
                 }
             }
         }
