@@ -297,8 +297,19 @@ async fn drive(
 
     board.status.lock().expect("board").state = "running".to_string();
     let mut generation = universe.generation().clone();
+    let mut pacer = job.wall_clock.map(crate::run::Pacer::new);
     while generation < job.target {
-        let step: BigUint = (&job.target - &generation).min(job.every.clone());
+        // As in an embedded run: stop on every multiple of `every` and at
+        // the target, in steps the wall-clock pacer allows.
+        let stop = match &job.every {
+            Some(every) => ((&generation / every + 1u32) * every).min(job.target.clone()),
+            None => job.target.clone(),
+        };
+        let mut step: BigUint = &stop - &generation;
+        if let Some(pacer) = &pacer {
+            step = step.min(pacer.step.clone());
+        }
+        let stepping = Instant::now();
         {
             let mut upper = upper.lock().expect("upper");
             let bits = step.bits();
@@ -322,6 +333,9 @@ async fn drive(
         })?;
         level -= 1;
         generation += &step;
+        if let Some(pacer) = pacer.as_mut() {
+            pacer.record(&step, stepping.elapsed());
+        }
         let pieces = {
             let mut upper = upper.lock().expect("upper");
             while level > shard_level + 1 && upper.fits_centre_half(&root, level) {
@@ -419,5 +433,7 @@ async fn report(
             root_level: level,
             seconds: started.elapsed().as_secs_f64(),
         },
+        bytes_read: None,
+        pack_bytes: None,
     })
 }
