@@ -31,75 +31,189 @@ fn free_port() -> u16 {
         .port()
 }
 
-fn start_node(coordinator: u16, token: &Path, memory: &str) -> Child {
-    Command::new(deeptime_bin())
-        .args(["node", "--join", &format!("http://127.0.0.1:{coordinator}")])
-        .args(["--listen", "127.0.0.1:0", "--memory", memory])
-        .arg("--token-file")
-        .arg(token)
-        .stdout(Stdio::null())
-        .stderr(Stdio::piped())
-        .spawn()
-        .unwrap()
-}
-
-/// How a cluster run ended.
+/// How a coordinator ended.
 struct Outcome {
     code: Option<i32>,
     stdout: String,
     stderr: String,
 }
 
+/// A coordinator and its nodes on loopback, in a job's folder.
+struct Cluster {
+    job: PathBuf,
+    token: PathBuf,
+    port: u16,
+    extra: Vec<String>,
+    coordinator: Option<Child>,
+    nodes: Processes,
+}
+
+impl Cluster {
+    /// Starts a coordinator for `job` (waiting for `min_nodes`).
+    fn start(job: &Path, min_nodes: usize, extra: &[&str]) -> Cluster {
+        let mut cluster = Cluster {
+            job: job.to_path_buf(),
+            token: job.parent().unwrap().join("cluster.token"),
+            port: free_port(),
+            extra: extra.iter().map(|s| s.to_string()).collect(),
+            coordinator: None,
+            nodes: Processes(Vec::new()),
+        };
+        cluster.start_coordinator(min_nodes);
+        cluster
+    }
+
+    fn start_coordinator(&mut self, min_nodes: usize) {
+        let child = Command::new(deeptime_bin())
+            .arg("coordinator")
+            .arg(&self.job)
+            .args(["--listen", &format!("127.0.0.1:{}", self.port)])
+            .args(["--min-nodes", &min_nodes.to_string(), "--json"])
+            .arg("--token-file")
+            .arg(&self.token)
+            .args(&self.extra)
+            .stdout(Stdio::piped())
+            .stderr(Stdio::piped())
+            .spawn()
+            .unwrap();
+        self.coordinator = Some(child);
+        // The coordinator writes the token file before it listens.
+        let deadline = Instant::now() + Duration::from_secs(20);
+        while !self.token.exists() {
+            assert!(Instant::now() < deadline, "the coordinator wrote no token");
+            std::thread::sleep(Duration::from_millis(20));
+        }
+    }
+
+    fn add_nodes(&mut self, count: usize, memory: &str, extra: &[&str]) {
+        for _ in 0..count {
+            let node = Command::new(deeptime_bin())
+                .args([
+                    "node",
+                    "--join",
+                    &format!("{}://127.0.0.1:{}", self.scheme(), self.port),
+                ])
+                .args(["--listen", "127.0.0.1:0", "--memory", memory])
+                .arg("--token-file")
+                .arg(&self.token)
+                .args(extra)
+                .stdout(Stdio::null())
+                .stderr(Stdio::null())
+                .spawn()
+                .unwrap();
+            self.nodes.0.push(node);
+        }
+    }
+
+    fn scheme(&self) -> &str {
+        if self.extra.iter().any(|arg| arg == "--tls-cert") {
+            "https"
+        } else {
+            "http"
+        }
+    }
+
+    /// Waits until the run's folder holds `count` checkpoints.
+    fn wait_for_checkpoints(&self, count: usize) {
+        let manifests = self.job.parent().unwrap().join("runs/manifests");
+        let deadline = Instant::now() + Duration::from_secs(120);
+        loop {
+            let stored = std::fs::read_dir(&manifests)
+                .map(|dir| {
+                    dir.filter(|entry| {
+                        let name = entry.as_ref().unwrap().file_name();
+                        !name.to_string_lossy().starts_with('.')
+                    })
+                    .count()
+                })
+                .unwrap_or(0);
+            if stored >= count {
+                return;
+            }
+            assert!(
+                Instant::now() < deadline,
+                "only {stored} checkpoints after two minutes"
+            );
+            std::thread::sleep(Duration::from_millis(10));
+        }
+    }
+
+    /// SIGKILL, as a crash would.
+    fn kill_coordinator(&mut self) {
+        let mut child = self.coordinator.take().unwrap();
+        child.kill().unwrap();
+        child.wait().unwrap();
+    }
+
+    fn kill_node(&mut self, index: usize) {
+        self.nodes.0[index].kill().unwrap();
+        self.nodes.0[index].wait().unwrap();
+    }
+
+    /// Waits for the coordinator to end.
+    fn finish(&mut self) -> Outcome {
+        let mut child = self.coordinator.take().unwrap();
+        let stdout = child.stdout.take().unwrap();
+        let stderr = child.stderr.take().unwrap();
+        let errors = std::thread::spawn(move || std::io::read_to_string(stderr).unwrap());
+        let stdout = std::io::read_to_string(stdout).unwrap();
+        let status = child.wait().unwrap();
+        Outcome {
+            code: status.code(),
+            stdout,
+            stderr: errors.join().unwrap(),
+        }
+    }
+
+    /// Waits for the coordinator to end well; its report.
+    fn report(&mut self) -> (serde_json::Value, String) {
+        let outcome = self.finish();
+        assert_eq!(
+            outcome.code,
+            Some(0),
+            "the coordinator failed: {}",
+            outcome.stderr
+        );
+        let report = serde_json::from_str(&outcome.stdout)
+            .unwrap_or_else(|error| panic!("{error}: {:?}", outcome.stdout));
+        (report, outcome.stderr)
+    }
+}
+
+impl Drop for Cluster {
+    fn drop(&mut self) {
+        if let Some(mut child) = self.coordinator.take() {
+            let _ = child.kill();
+            let _ = child.wait();
+        }
+    }
+}
+
 /// Runs `job` on a coordinator and `nodes` nodes with `memory` each.
 fn run_cluster_with(job: &Path, nodes: usize, memory: &str, extra: &[&str]) -> Outcome {
-    let dir = job.parent().unwrap();
-    let token = dir.join("cluster.token");
-    let port = free_port();
-    let mut coordinator = Command::new(deeptime_bin())
-        .arg("coordinator")
-        .arg(job)
-        .args(["--listen", &format!("127.0.0.1:{port}")])
-        .args(["--min-nodes", &nodes.to_string(), "--json"])
-        .arg("--token-file")
-        .arg(&token)
-        .args(extra)
-        .stdout(Stdio::piped())
-        .stderr(Stdio::piped())
-        .spawn()
-        .unwrap();
-    let stdout = coordinator.stdout.take().unwrap();
-    let stderr = coordinator.stderr.take().unwrap();
-    let mut processes = Processes(vec![coordinator]);
-    // The coordinator writes the token file before it listens.
-    let deadline = Instant::now() + Duration::from_secs(20);
-    while !token.exists() {
-        assert!(Instant::now() < deadline, "the coordinator wrote no token");
-        std::thread::sleep(Duration::from_millis(20));
-    }
-    for _ in 0..nodes {
-        processes.0.push(start_node(port, &token, memory));
-    }
-    let errors = std::thread::spawn(move || std::io::read_to_string(stderr).unwrap());
-    let stdout = std::io::read_to_string(stdout).unwrap();
-    let status = processes.0[0].wait().unwrap();
-    Outcome {
-        code: status.code(),
-        stdout,
-        stderr: errors.join().unwrap(),
-    }
+    let mut cluster = Cluster::start(job, nodes, extra);
+    cluster.add_nodes(nodes, memory, &[]);
+    cluster.finish()
 }
 
 /// Runs `job` on a coordinator and `nodes` nodes; returns its JSON report.
 fn run_cluster(job: &Path, nodes: usize, extra: &[&str]) -> serde_json::Value {
-    let outcome = run_cluster_with(job, nodes, "256MiB", extra);
-    assert_eq!(
-        outcome.code,
-        Some(0),
-        "the coordinator failed: {}",
-        outcome.stderr
-    );
-    serde_json::from_str(&outcome.stdout)
-        .unwrap_or_else(|error| panic!("{error}: {:?}", outcome.stdout))
+    let mut cluster = Cluster::start(job, nodes, extra);
+    cluster.add_nodes(nodes, "256MiB", &[]);
+    cluster.report().0
+}
+
+/// The stored run's checkpoints all read back whole, and the newest holds
+/// the report's state.
+fn assert_checkpoints_hold(dir: &Path, report: &serde_json::Value) {
+    let runs = dir.join("runs");
+    run_deeptime(["verify".as_ref(), runs.as_os_str()]).assert_success();
+    let listed = run_deeptime(["checkpoints".as_ref(), runs.as_os_str(), "--json".as_ref()]);
+    listed.assert_success();
+    let listed: serde_json::Value = serde_json::from_str(&listed.stdout).unwrap();
+    let newest = listed.as_array().unwrap().last().unwrap().clone();
+    assert_eq!(newest["generation"], report["generation"], "{newest}");
+    assert_eq!(newest["digest"], report["digest"], "{newest}");
 }
 
 fn evolve(pattern: &Path, gens: &str, rule: &str) -> serde_json::Value {
@@ -177,6 +291,8 @@ fn three_nodes_give_the_single_process_figures_on_a_soup_that_spans_many_pieces(
     let cluster = run_cluster(&job, 3, &["--shard-level", "6"]);
     let single = evolve(&dir.path().join("soup.rle"), "200", "B36/S23");
     assert_same_figures(&cluster, &single);
+    // Checkpoints at 64, 128, 192 and 200 (and 0), readable as any run's.
+    assert_checkpoints_hold(dir.path(), &cluster);
     assert!(
         cluster["cluster"]["bytes_fetched"].as_u64().unwrap() > 0,
         "no quads moved between nodes: {cluster}"
@@ -188,27 +304,22 @@ fn a_node_with_a_wrong_token_is_refused_and_exits_non_zero() {
     let dir = temp_dir();
     std::fs::write(dir.path().join("soup.rle"), soup(16)).unwrap();
     let job = write_job(dir.path(), "soup.rle", "B3/S23", "100", "100");
-    let token = dir.path().join("cluster.token");
-    let port = free_port();
-    let coordinator = Command::new(deeptime_bin())
-        .arg("coordinator")
-        .arg(&job)
-        .args(["--listen", &format!("127.0.0.1:{port}")])
-        .arg("--token-file")
-        .arg(&token)
-        .stdout(Stdio::null())
-        .stderr(Stdio::null())
-        .spawn()
-        .unwrap();
-    let _processes = Processes(vec![coordinator]);
-    let deadline = Instant::now() + Duration::from_secs(20);
-    while !token.exists() {
-        assert!(Instant::now() < deadline, "the coordinator wrote no token");
-        std::thread::sleep(Duration::from_millis(20));
-    }
+    let cluster = Cluster::start(&job, 1, &[]);
     let wrong = dir.path().join("wrong.token");
     std::fs::write(&wrong, "not-the-cluster-token-0000\n").unwrap();
-    let node = start_node(port, &wrong, "64MiB");
+    let node = Command::new(deeptime_bin())
+        .args([
+            "node",
+            "--join",
+            &format!("http://127.0.0.1:{}", cluster.port),
+        ])
+        .args(["--listen", "127.0.0.1:0", "--memory", "64MiB"])
+        .arg("--token-file")
+        .arg(&wrong)
+        .stdout(Stdio::null())
+        .stderr(Stdio::piped())
+        .spawn()
+        .unwrap();
     let output = node.wait_with_output().unwrap();
     let stderr = String::from_utf8_lossy(&output.stderr);
     assert_eq!(output.status.code(), Some(1), "{stderr}");
@@ -239,4 +350,44 @@ fn a_state_too_big_for_one_node_runs_on_four_nodes_of_the_same_size() {
     let cluster: serde_json::Value = serde_json::from_str(&four.stdout).unwrap();
     let single = evolve(&dir.path().join("soup.rle"), "32", "B3/S23");
     assert_same_figures(&cluster, &single);
+}
+
+/// A job long enough to kill things in: a 256² soup to generation 3000,
+/// a checkpoint every 250, shard level 6 (about 4 s on three nodes).
+fn long_job(dir: &Path) -> PathBuf {
+    std::fs::write(dir.join("soup.rle"), soup(256)).unwrap();
+    write_job(dir, "soup.rle", "B3/S23", "3000", "250")
+}
+
+#[test]
+fn a_node_killed_mid_run_costs_a_rollback_and_the_figures_stay_the_same() {
+    let dir = temp_dir();
+    let job = long_job(dir.path());
+    let mut cluster = Cluster::start(&job, 3, &["--shard-level", "6"]);
+    cluster.add_nodes(3, "256MiB", &[]);
+    cluster.wait_for_checkpoints(4);
+    cluster.kill_node(1);
+    let (report, stderr) = cluster.report();
+    assert!(stderr.contains("lost"), "{stderr}");
+    assert!(stderr.contains("rolling back"), "{stderr}");
+    let single = evolve(&dir.path().join("soup.rle"), "3000", "B3/S23");
+    assert_same_figures(&report, &single);
+    assert_checkpoints_hold(dir.path(), &report);
+}
+
+#[test]
+fn a_coordinator_killed_and_started_again_resumes_and_the_figures_stay_the_same() {
+    let dir = temp_dir();
+    let job = long_job(dir.path());
+    let mut cluster = Cluster::start(&job, 2, &["--shard-level", "6"]);
+    cluster.add_nodes(2, "256MiB", &[]);
+    cluster.wait_for_checkpoints(4);
+    cluster.kill_coordinator();
+    // The same command again; the nodes, still running, join it again.
+    cluster.start_coordinator(2);
+    let (report, stderr) = cluster.report();
+    assert!(stderr.contains("resuming"), "{stderr}");
+    let single = evolve(&dir.path().join("soup.rle"), "3000", "B3/S23");
+    assert_same_figures(&report, &single);
+    assert_checkpoints_hold(dir.path(), &report);
 }

@@ -7,11 +7,11 @@
 use std::time::{Duration, Instant};
 
 use anyhow::Context;
-use deeptime_engine::{KnownQuads, Progress, Universe};
+use deeptime_engine::{ContentId, KnownQuads, Progress, Universe};
 use num_bigint::BigUint;
 use num_traits::{One, ToPrimitive, Zero};
 
-use crate::checkpoint::Checkpoints;
+use crate::checkpoint::{Checkpoints, Manifest};
 use crate::cli::RunArgs;
 use crate::failure::BadInput;
 use crate::job::Job;
@@ -31,40 +31,8 @@ pub fn run(args: RunArgs) -> anyhow::Result<()> {
     let checkpoints = Checkpoints::new(crate::storage::open(&job.checkpoint_dir)?);
     // One writer at a time: held until the run ends.
     let _lock = checkpoints.lock()?;
-    let resumed =
-        checkpoints.latest_valid(budget, |warning| eprintln!("deeptime: warning: {warning}"))?;
-    let (mut universe, mut previous, mut known) = match resumed {
-        Some(stored) => {
-            let manifest = stored.manifest;
-            if manifest.rule != rule.to_string() {
-                return Err(BadInput(format!(
-                    "{}: the stored run uses rule {}, the job now says {rule}; use another checkpoint.dir",
-                    job.checkpoint_dir.display(),
-                    manifest.rule
-                ))
-                .into());
-            }
-            if manifest.pattern != pattern_digest.to_string() {
-                return Err(BadInput(format!(
-                    "{}: the stored run is of another pattern (digest {}, the job's is {pattern_digest}); use another checkpoint.dir",
-                    job.checkpoint_dir.display(),
-                    manifest.pattern
-                ))
-                .into());
-            }
-            eprintln!(
-                "deeptime: resuming {} from checkpoint {} at generation {}",
-                job.name, manifest.sequence, manifest.generation
-            );
-            (stored.universe, Some(manifest), stored.known)
-        }
-        None => {
-            let mut known = KnownQuads::default();
-            let manifest =
-                checkpoints.write(&mut fresh, None, &mut known, &job.name, &pattern_digest)?;
-            (fresh, Some(manifest), known)
-        }
-    };
+    let (mut universe, mut previous, mut known) =
+        resume_or_start(&checkpoints, &job, fresh, &pattern_digest, budget)?;
     if universe.generation() > &job.target {
         return Err(BadInput(format!(
             "the stored run is at generation {}, past the job's target {}",
@@ -134,6 +102,53 @@ pub fn run(args: RunArgs) -> anyhow::Result<()> {
     }
     line.finish();
     Report::of(&mut universe, started.elapsed())?.print(args.json)
+}
+
+/// The run's state to go on from: the newest checkpoint that reads back
+/// whole (saying so), or `fresh` stored as the first checkpoint. A stored
+/// run of another pattern or rule is refused.
+pub fn resume_or_start(
+    checkpoints: &Checkpoints,
+    job: &Job,
+    mut fresh: Universe,
+    pattern_digest: &ContentId,
+    budget: u64,
+) -> anyhow::Result<(Universe, Option<Manifest>, KnownQuads)> {
+    let rule = fresh.rule();
+    let resumed =
+        checkpoints.latest_valid(budget, |warning| eprintln!("deeptime: warning: {warning}"))?;
+    Ok(match resumed {
+        Some(stored) => {
+            let manifest = stored.manifest;
+            if manifest.rule != rule.to_string() {
+                return Err(BadInput(format!(
+                    "{}: the stored run uses rule {}, the job now says {rule}; use another checkpoint.dir",
+                    job.checkpoint_dir.display(),
+                    manifest.rule
+                ))
+                .into());
+            }
+            if manifest.pattern != pattern_digest.to_string() {
+                return Err(BadInput(format!(
+                    "{}: the stored run is of another pattern (digest {}, the job's is {pattern_digest}); use another checkpoint.dir",
+                    job.checkpoint_dir.display(),
+                    manifest.pattern
+                ))
+                .into());
+            }
+            eprintln!(
+                "deeptime: resuming {} from checkpoint {} at generation {}",
+                job.name, manifest.sequence, manifest.generation
+            );
+            (stored.universe, Some(manifest), stored.known)
+        }
+        None => {
+            let mut known = KnownQuads::default();
+            let manifest =
+                checkpoints.write(&mut fresh, None, &mut known, &job.name, pattern_digest)?;
+            (fresh, Some(manifest), known)
+        }
+    })
 }
 
 /// Chooses power-of-two step sizes so that one advance takes between about

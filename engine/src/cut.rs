@@ -183,3 +183,77 @@ impl Universe {
         id
     }
 }
+
+/// Why a state could not be put together from its records.
+#[derive(Debug, Clone, PartialEq, Eq, thiserror::Error)]
+pub enum AssembleError {
+    #[error("no record of quad {0} (level {1})")]
+    Missing(ContentId, u32),
+    #[error("quad {0} is of level {1}, expected {2}")]
+    WrongLevel(ContentId, u32, u32),
+    #[error(transparent)]
+    Budget(#[from] BudgetExceeded),
+}
+
+impl Universe {
+    /// The state whose root (centred on the origin, of `level`) is `root`,
+    /// at `generation`, built from records that `lookup` gives by id (the
+    /// top of a cluster's tree and the pieces its nodes hold). Empty quads
+    /// need no record.
+    pub fn assemble(
+        rule: crate::rule::Rule,
+        budget: u64,
+        generation: num_bigint::BigUint,
+        root: ContentId,
+        level: u32,
+        lookup: &mut dyn FnMut(&ContentId) -> Option<Record>,
+    ) -> Result<Universe, AssembleError> {
+        let mut universe = Universe::new(rule, budget)?;
+        let store = &mut universe.store;
+        // Nothing built is garbage, and the map below holds handles the
+        // collector cannot see.
+        store.set_collect_allowed(false);
+        let built = (|| -> Result<Handle, AssembleError> {
+            let mut empties = crate::pack::EmptyIds::new();
+            let mut made: std::collections::HashMap<ContentId, Handle> = Default::default();
+            // Post-order without recursion: (id, level, children pushed?)
+            let mut stack = vec![(root, level, false)];
+            while let Some((id, at, expanded)) = stack.pop() {
+                if made.contains_key(&id) {
+                    continue;
+                }
+                if id == empties.of(at) {
+                    made.insert(id, store.empty(at)?);
+                    continue;
+                }
+                let record = lookup(&id).ok_or(AssembleError::Missing(id, at))?;
+                if record.level() != at {
+                    return Err(AssembleError::WrongLevel(id, record.level(), at));
+                }
+                match record {
+                    Record::Leaf(bits) => {
+                        made.insert(id, store.leaf(bits)?);
+                    }
+                    Record::Inner { kids, .. } if !expanded => {
+                        stack.push((id, at, true));
+                        for kid in kids.into_iter().rev() {
+                            if !made.contains_key(&kid) {
+                                stack.push((kid, at - 1, false));
+                            }
+                        }
+                    }
+                    Record::Inner { kids, .. } => {
+                        let handles = kids.map(|kid| made[&kid]);
+                        made.insert(id, store.join(handles)?);
+                    }
+                }
+            }
+            Ok(made[&root])
+        })();
+        store.set_collect_allowed(true);
+        let quad = built?;
+        universe.set_root(quad, level);
+        universe.generation = generation;
+        Ok(universe)
+    }
+}

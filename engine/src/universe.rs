@@ -111,7 +111,7 @@ pub struct Universe {
     rule: Rule,
     pub(crate) root: Handle,
     pub(crate) level: u32,
-    generation: BigUint,
+    pub(crate) generation: BigUint,
     /// The advance the residual memo was filled for (N's words).
     residual_for: Vec<u64>,
 }
@@ -287,7 +287,7 @@ impl Universe {
         self.level
     }
 
-    fn set_root(&mut self, root: Handle, level: u32) {
+    pub(crate) fn set_root(&mut self, root: Handle, level: u32) {
         self.store.pin(root);
         self.store.unpin(self.root);
         self.root = root;

@@ -118,7 +118,9 @@ async fn fetch_batch(
     let request = v1::FetchRequest {
         ids: batch.iter().map(|(id, _)| id.0.to_vec()).collect(),
     };
-    let mut last = Status::unavailable("no peer holds the quads this task needs");
+    // ABORTED, not UNAVAILABLE: the caller is fine, a peer it was sent to
+    // is not (the coordinator retries, and finds the peer lost in time).
+    let mut last = Status::aborted("no peer holds the quads this task needs");
     for address in sources {
         let mut client = peers.client(address)?;
         match client.fetch(request.clone()).await {

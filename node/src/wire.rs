@@ -38,6 +38,7 @@ pub struct TlsFiles {
 impl TlsFiles {
     /// The server's TLS configuration, when a certificate and key are given.
     pub fn server(&self) -> anyhow::Result<Option<ServerTlsConfig>> {
+        choose_tls_crypto();
         match (&self.cert, &self.key) {
             (Some(cert), Some(key)) => {
                 let cert = read(cert)?;
@@ -64,6 +65,13 @@ fn read(path: &PathBuf) -> anyhow::Result<Vec<u8>> {
     std::fs::read(path).map_err(|error| anyhow::anyhow!("{}: {error}", path.display()))
 }
 
+/// Chooses the TLS library's cryptography (ring) once per process: the
+/// object-store client links a second one, and with two the library
+/// refuses to guess.
+pub fn choose_tls_crypto() {
+    let _ = rustls::crypto::ring::default_provider().install_default();
+}
+
 /// An endpoint for an http:// or https:// URL (TLS for https).
 pub fn endpoint(url: &str, tls: &TlsFiles) -> anyhow::Result<Endpoint> {
     if !(url.starts_with("http://") || url.starts_with("https://")) {
@@ -76,6 +84,7 @@ pub fn endpoint(url: &str, tls: &TlsFiles) -> anyhow::Result<Endpoint> {
         .http2_keep_alive_interval(Duration::from_secs(10))
         .keep_alive_timeout(Duration::from_secs(20));
     if url.starts_with("https://") {
+        choose_tls_crypto();
         endpoint = endpoint.tls_config(tls.client()?)?;
     }
     Ok(endpoint)

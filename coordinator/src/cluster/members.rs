@@ -57,7 +57,9 @@ impl Members {
     pub fn new(token: Token, tls: TlsFiles, terms: Terms) -> Members {
         Members {
             list: RwLock::new(Vec::new()),
-            next_id: AtomicU64::new(1),
+            // Ids start at a random point, so a node that joined a previous
+            // coordinator is not taken for another member.
+            next_id: AtomicU64::new((rand::random::<u32>() as u64) << 16 | 1),
             changed: Notify::new(),
             token,
             tls,

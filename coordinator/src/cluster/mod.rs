@@ -5,24 +5,23 @@
 //! generations at a time; at the target it prints the same figures as
 //! `deeptime run`.
 
+mod drive;
 mod members;
 mod recursion;
 pub mod status;
 mod tasks;
 mod upper;
 
-use std::collections::HashSet;
 use std::path::Path;
 use std::sync::{Arc, Mutex};
-use std::time::{Duration, Instant};
+use std::time::Instant;
 
 use anyhow::{Context, anyhow};
+use deeptime_engine::Universe;
 use deeptime_engine::shard::MAX_SHARD_LEVEL;
-use deeptime_engine::{ContentId, Universe};
 use deeptime_node::auth::{CheckToken, Token};
 use deeptime_node::wire::{MAX_MESSAGE_BYTES, TlsFiles};
 use deeptime_proto::v1;
-use num_bigint::{BigInt, BigUint};
 use serde::Serialize;
 use tonic::service::interceptor::InterceptedService;
 use tonic::transport::Server;
@@ -31,7 +30,7 @@ use tonic::transport::server::TcpIncoming;
 use crate::cli::CoordinatorArgs;
 use crate::failure::BadInput;
 use crate::job::Job;
-use crate::report::{BoxReport, EngineReport, Report};
+use crate::report::Report;
 use crate::{input, memory};
 use members::{Board, CoordinatorService, Members, Terms};
 use tasks::Dispatcher;
@@ -141,8 +140,7 @@ async fn coordinate(args: CoordinatorArgs) -> anyhow::Result<()> {
             shard_level,
         },
     ));
-    let mut upper = Upper::new(shard_level);
-    let empty_piece = upper.empty(shard_level - 1);
+    let empty_piece = Upper::new(shard_level).empty(shard_level - 1);
     let tasks = Arc::new(Dispatcher::new(members.clone(), empty_piece));
     let board = Arc::new(Board {
         status: Mutex::new(v1::JobStatus {
@@ -191,18 +189,19 @@ async fn coordinate(args: CoordinatorArgs) -> anyhow::Result<()> {
         job.name, args.min_nodes
     );
 
-    let outcome = drive(
-        &args,
-        &job,
-        &mut universe,
-        &mut upper,
-        &members,
-        &tasks,
-        &board,
-        &job_id,
+    let run = drive::Run {
+        min_nodes: args.min_nodes,
+        job: &job,
+        job_id: &job_id,
         shard_level,
-    )
-    .await;
+        budget,
+        pattern_digest,
+        members: &members,
+        tasks: &tasks,
+        board: &board,
+        peers: deeptime_node::fetch::Peers::new(token.clone(), tls.clone()),
+    };
+    let outcome = run.drive(universe).await;
     let outcome = match outcome {
         Ok(report) => {
             board.status.lock().expect("board").state = "done".to_string();
@@ -250,190 +249,4 @@ async fn coordinate(args: CoordinatorArgs) -> anyhow::Result<()> {
     }
     server.abort();
     outcome
-}
-
-#[allow(clippy::too_many_arguments)]
-async fn drive(
-    args: &CoordinatorArgs,
-    job: &Job,
-    universe: &mut Universe,
-    upper: &mut Upper,
-    members: &Arc<Members>,
-    tasks: &Arc<Dispatcher>,
-    board: &Arc<Board>,
-    job_id: &str,
-    shard_level: u32,
-) -> anyhow::Result<Report> {
-    let started = Instant::now();
-    while members.live().len() < args.min_nodes {
-        tokio::time::sleep(Duration::from_millis(50)).await;
-    }
-    board.status.lock().expect("board").state = "loading".to_string();
-
-    // Cut the pattern and hand its pieces to the nodes, in runs of nearby
-    // pieces so that tasks find most of their input at one node.
-    let cut = universe.cut(shard_level)?;
-    for quad in &cut.upper {
-        upper.insert(*quad);
-    }
-    let live = members.live();
-    let share = cut.pieces.len().div_ceil(live.len().max(1)).max(1);
-    for (member, pieces) in live.iter().zip(cut.pieces.chunks(share)) {
-        let mut sent = HashSet::new();
-        let mut records = Vec::new();
-        for piece in pieces {
-            records.extend(universe.records(piece.handle, shard_level - 1, &mut sent));
-        }
-        let held: Vec<_> = pieces.iter().map(|p| (p.id, p.figures)).collect();
-        tasks.hand_over(job_id, member, records, &held).await?;
-    }
-    let (mut root, mut level) = (cut.root, cut.root_level);
-    let upper = Arc::new(Mutex::new(std::mem::replace(
-        upper,
-        Upper::new(shard_level),
-    )));
-    let loaded = upper.lock().expect("upper").pieces(&root, level);
-    tasks.retain(job_id, &loaded).await?;
-
-    board.status.lock().expect("board").state = "running".to_string();
-    let mut generation = universe.generation().clone();
-    let mut pacer = job.wall_clock.map(crate::run::Pacer::new);
-    while generation < job.target {
-        // As in an embedded run: stop on every multiple of `every` and at
-        // the target, in steps the wall-clock pacer allows.
-        let stop = match &job.every {
-            Some(every) => ((&generation / every + 1u32) * every).min(job.target.clone()),
-            None => job.target.clone(),
-        };
-        let mut step: BigUint = &stop - &generation;
-        if let Some(pacer) = &pacer {
-            step = step.min(pacer.step.clone());
-        }
-        let stepping = Instant::now();
-        {
-            let mut upper = upper.lock().expect("upper");
-            let bits = step.bits();
-            while !(bits <= (level as u64).saturating_sub(2)
-                && upper.fits_centre_half(&root, level))
-            {
-                root = upper.expand(&root, level);
-                level += 1;
-            }
-            root = upper.expand(&root, level);
-            level += 1;
-        }
-        let advance = recursion::Advance::new(
-            job_id.to_string(),
-            upper.clone(),
-            tasks.clone(),
-            step.clone(),
-        );
-        root = advance.run(root, level).await.with_context(|| {
-            format!("advancing {step} generations from generation {generation}")
-        })?;
-        level -= 1;
-        generation += &step;
-        if let Some(pacer) = pacer.as_mut() {
-            pacer.record(&step, stepping.elapsed());
-        }
-        let pieces = {
-            let mut upper = upper.lock().expect("upper");
-            while level > shard_level + 1 && upper.fits_centre_half(&root, level) {
-                root = upper.centre(&root, level);
-                level -= 1;
-            }
-            upper.keep_only(&root, level);
-            upper.pieces(&root, level)
-        };
-        tasks.retain(job_id, &pieces).await?;
-        let figures = tasks.figures(&pieces);
-        let (population, _) = upper.lock().expect("upper").figures(&root, level, &figures);
-        let mut status = board.status.lock().expect("board");
-        status.generation = generation.to_string();
-        status.population = population.to_string();
-        eprintln!(
-            "deeptime: generation {generation}, population {population}, {} tasks",
-            tasks.counters().done
-        );
-    }
-    report(
-        job_id,
-        &upper,
-        tasks,
-        root,
-        level,
-        generation,
-        universe,
-        shard_level,
-        members,
-        started,
-    )
-    .await
-}
-
-#[allow(clippy::too_many_arguments)]
-async fn report(
-    job_id: &str,
-    upper: &Arc<Mutex<Upper>>,
-    tasks: &Arc<Dispatcher>,
-    root: ContentId,
-    level: u32,
-    generation: BigUint,
-    universe: &Universe,
-    shard_level: u32,
-    members: &Arc<Members>,
-    started: Instant,
-) -> anyhow::Result<Report> {
-    let pieces = upper.lock().expect("upper").pieces(&root, level);
-    let figures = tasks.figures(&pieces);
-    let (population, extent) = upper.lock().expect("upper").figures(&root, level, &figures);
-    // The digest: the smallest centred quad holding every live cell; below
-    // the shard level a node finds it.
-    let (mut quad, mut at) = (root, level);
-    {
-        let mut upper = upper.lock().expect("upper");
-        while at > shard_level && upper.fits_centre_half(&quad, at) {
-            quad = upper.centre(&quad, at);
-            at -= 1;
-        }
-    }
-    let digest = if at == shard_level {
-        let kids = upper.lock().expect("upper").kids(&quad, at);
-        tasks.describe(job_id, at, kids).await?.0
-    } else {
-        quad
-    };
-    let half = BigInt::from(BigUint::from(1u32) << (level - 1));
-    let bbox = extent.map(|[left, top, right, bottom]| BoxReport {
-        left: (BigInt::from(left.clone()) - &half).to_string(),
-        top: (BigInt::from(top.clone()) - &half).to_string(),
-        width: (right - left + 1u32).to_string(),
-        height: (bottom - top + 1u32).to_string(),
-    });
-    let live = members.all();
-    Ok(Report {
-        generation: generation.to_string(),
-        population: population.to_string(),
-        bbox,
-        rule: universe.rule().to_string(),
-        digest: digest.to_string(),
-        engine: EngineReport {
-            quads: live
-                .iter()
-                .map(|m| m.quads.load(std::sync::atomic::Ordering::Relaxed))
-                .sum(),
-            leaves: 0,
-            quads_created: tasks.counters().done,
-            bytes: live
-                .iter()
-                .map(|m| m.bytes.load(std::sync::atomic::Ordering::Relaxed))
-                .sum(),
-            budget: live.iter().map(|m| m.memory).sum(),
-            collections: 0,
-            root_level: level,
-            seconds: started.elapsed().as_secs_f64(),
-        },
-        bytes_read: None,
-        pack_bytes: None,
-    })
 }

@@ -13,7 +13,7 @@ use deeptime_engine::recursion::{self, SECOND_PHASE, Stride};
 use futures::future::{BoxFuture, FutureExt, Shared, try_join_all};
 use num_bigint::BigUint;
 
-use crate::cluster::tasks::Dispatcher;
+use crate::cluster::tasks::{Dispatcher, PiecesLost};
 use crate::cluster::upper::Upper;
 
 type Failure = Arc<anyhow::Error>;
@@ -32,9 +32,15 @@ enum Kind {
 /// costs time in proportion to its size at every wake), and sub-advances
 /// run on every thread of the runtime.
 fn spawned(
+    advance: &Advance,
     work: impl std::future::Future<Output = Result<ContentId, Failure>> + Send + 'static,
 ) -> Pending {
     let handle = tokio::spawn(work);
+    advance
+        .spawned
+        .lock()
+        .expect("spawned")
+        .push(handle.abort_handle());
     async move {
         match handle.await {
             Ok(outcome) => outcome,
@@ -55,6 +61,8 @@ pub struct Advance {
     steps: BigUint,
     trailing_zeros: u64,
     memo: Mutex<HashMap<(ContentId, Kind), Pending>>,
+    /// every sub-advance spawned, to stop them all when one fails
+    spawned: Mutex<Vec<tokio::task::AbortHandle>>,
 }
 
 impl Advance {
@@ -74,6 +82,7 @@ impl Advance {
             steps,
             trailing_zeros,
             memo: Mutex::new(HashMap::new()),
+            spawned: Mutex::new(Vec::new()),
         })
     }
 
@@ -82,7 +91,22 @@ impl Advance {
         self.clone()
             .advance(root, level, Stride::Residual)
             .await
-            .map_err(|failure| anyhow::anyhow!("{failure:#}"))
+            .map_err(|failure| {
+                // Shared results carry the error behind an Arc: keep its kind.
+                if failure.chain().any(|cause| cause.is::<PiecesLost>()) {
+                    PiecesLost(format!("{failure:#}")).into()
+                } else {
+                    anyhow::anyhow!("{failure:#}")
+                }
+            })
+    }
+
+    /// Stops every sub-advance still running (after one failed).
+    pub fn abort_all(&self) {
+        for handle in self.spawned.lock().expect("spawned").drain(..) {
+            handle.abort();
+        }
+        self.memo.lock().expect("memo").clear();
     }
 
     fn bit(&self, index: u32) -> bool {
@@ -127,7 +151,7 @@ impl Advance {
                     pending.clone()
                 } else {
                     let this = self.clone();
-                    let work = spawned(async move {
+                    let work = spawned(&self, async move {
                         if level == this.shard_level {
                             let kids = this.upper.lock().expect("upper").kids(&quad, level);
                             let steps = this.task_steps(stride);
@@ -169,7 +193,7 @@ impl Advance {
                 memo.entry(key)
                     .or_insert_with(|| {
                         let this = self.clone();
-                        spawned(async move {
+                        spawned(&self, async move {
                             let kids = this.upper.lock().expect("upper").kids(&quad, level);
                             this.task(kids, 0).await
                         })

@@ -22,6 +22,10 @@ const TASK_TIMEOUT: Duration = Duration::from_secs(600);
 /// A member may run this many more tasks than the least loaded one before
 /// work that would go to it for locality goes elsewhere.
 const LOAD_SLACK: u64 = 2;
+/// How long a task is retried before its input counts as lost, and the
+/// pause between tries after a failed fetch (longer than a lease lapses).
+const RETRY_FOR: Duration = Duration::from_secs(10);
+const RETRY_PAUSE: Duration = Duration::from_millis(200);
 
 /// A node's memory budget could not hold its share of the state.
 #[derive(Debug, thiserror::Error)]
@@ -34,8 +38,23 @@ pub struct NodeOutOfMemory {
     pub message: String,
 }
 
+/// Pieces of the state are no longer on any live node (their node was
+/// lost): the run must go back to its newest checkpoint.
+#[derive(Debug, thiserror::Error)]
+#[error("{0}")]
+pub struct PiecesLost(pub String);
+
 /// A member's refusal as an error (running out of memory is its own kind).
 fn node_error(member: &Member, status: tonic::Status) -> anyhow::Error {
+    if wire::is_unreachable(&status) {
+        return PiecesLost(format!(
+            "node {} ({}) stopped answering: {}",
+            member.id,
+            member.address,
+            status.message()
+        ))
+        .into();
+    }
     if status.code() == tonic::Code::ResourceExhausted {
         return NodeOutOfMemory {
             member: member.id,
@@ -162,7 +181,7 @@ impl Dispatcher {
             }
             let holding = directory
                 .get(kid)
-                .ok_or_else(|| anyhow!("piece {} is held by no node", kid.short()))?;
+                .ok_or_else(|| PiecesLost(format!("piece {} is held by no node", kid.short())))?;
             let mut addresses = Vec::new();
             for holder in &holding.holders {
                 if let Some(member) = self.members.get(*holder).filter(|m| m.is_live()) {
@@ -171,10 +190,11 @@ impl Dispatcher {
                 }
             }
             if addresses.is_empty() {
-                return Err(anyhow!(
+                return Err(PiecesLost(format!(
                     "piece {} was lost with the node that held it",
                     kid.short()
-                ));
+                ))
+                .into());
             }
             sources.push(v1::Sources { addresses });
         }
@@ -189,7 +209,7 @@ impl Dispatcher {
         let least = live
             .iter()
             .min_by_key(|m| (load(m), m.id))
-            .ok_or_else(|| anyhow!("no node is live"))?;
+            .ok_or_else(|| PiecesLost("no node is live".to_string()))?;
         let best = live
             .iter()
             .max_by_key(|m| {
@@ -215,9 +235,11 @@ impl Dispatcher {
         kids: [ContentId; 4],
         stride: u64,
     ) -> anyhow::Result<ContentId> {
-        let attempts = self.members.all().len() + 2;
-        let mut last = anyhow!("no node is live");
-        for _ in 0..attempts {
+        // Tries until a member answers; a peer that failed a member's fetch
+        // is given time to lose its lease (then its pieces count as lost).
+        let give_up = std::time::Instant::now() + RETRY_FOR;
+        let mut last = PiecesLost("no node is live".to_string());
+        while std::time::Instant::now() < give_up {
             let (sources, score) = self.sources(&kids)?;
             let member = self.place(&score)?;
             let _permit = member.permits.acquire().await.expect("never closed");
@@ -260,17 +282,51 @@ impl Dispatcher {
                 }
                 Err(status) if wire::is_unreachable(&status) => {
                     self.members.lose(&member, status.message());
-                    last = anyhow!(
+                    last = PiecesLost(format!(
                         "node {} ({}): {}",
                         member.id,
                         member.address,
                         status.message()
-                    );
+                    ));
+                }
+                Err(status) if status.code() == tonic::Code::Aborted => {
+                    last = PiecesLost(format!(
+                        "node {} ({}) could not fetch its input: {}",
+                        member.id,
+                        member.address,
+                        status.message()
+                    ));
+                    tokio::time::sleep(RETRY_PAUSE).await;
                 }
                 Err(status) => return Err(node_error(&member, status)),
             }
         }
-        Err(last)
+        Err(last.into())
+    }
+
+    /// Forgets where every piece is (before the state is loaded again).
+    pub fn forget_all(&self) {
+        self.directory.lock().expect("directory").clear();
+    }
+
+    /// The addresses of the live members holding a piece.
+    pub fn holders_of(&self, piece: &ContentId) -> anyhow::Result<Vec<String>> {
+        let directory = self.directory.lock().expect("directory");
+        let addresses: Vec<String> = directory
+            .get(piece)
+            .map(|holding| {
+                holding
+                    .holders
+                    .iter()
+                    .filter_map(|id| self.members.get(*id).filter(|m| m.is_live()))
+                    .map(|m| m.address.clone())
+                    .collect()
+            })
+            .unwrap_or_default();
+        if addresses.is_empty() {
+            return Err(PiecesLost(format!("piece {} is on no live node", piece.short())).into());
+        }
+        Ok(addresses)
     }
 
     /// The canonical id and level of the level-K square made of `kids`.

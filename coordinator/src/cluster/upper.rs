@@ -51,6 +51,11 @@ impl Upper {
         self.empties[level as usize]
     }
 
+    /// A quad of level ≥ K the coordinator knows.
+    pub fn get(&self, id: &ContentId) -> Option<UpperQuad> {
+        self.quads.get(id).copied()
+    }
+
     pub fn insert(&mut self, quad: UpperQuad) {
         self.quads.insert(quad.id, quad);
     }

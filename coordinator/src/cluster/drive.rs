@@ -1,0 +1,428 @@
+//! A cluster job from its stored state to its target: load the state onto
+//! the nodes, advance in steps, store checkpoints, and when pieces were lost
+//! with a node, roll back to the newest checkpoint and go on.
+//!
+//! Checkpoints are written in the embedded format by the coordinator: it
+//! gathers the pieces from the nodes (by content id, level by level, only
+//! what it lacks), puts the state together and writes it incrementally.
+//! (Nodes writing their own packs in parallel is the planned next step;
+//! until then a checkpoint passes the whole state through the coordinator.)
+
+use std::sync::{Arc, Mutex};
+use std::time::{Duration, Instant};
+
+use anyhow::Context;
+use deeptime_engine::shard::{Record, Shard};
+use deeptime_engine::{ContentId, KnownQuads, Universe};
+use num_bigint::{BigInt, BigUint};
+
+use crate::checkpoint::{Checkpoints, Manifest};
+use crate::cluster::members::{Board, Members};
+use crate::cluster::recursion;
+use crate::cluster::tasks::{Dispatcher, PiecesLost};
+use crate::cluster::upper::Upper;
+use crate::job::Job;
+use crate::report::{BoxReport, EngineReport, Report};
+use deeptime_node::fetch::{Peers, fetch_missing};
+
+/// Everything a cluster run works with.
+pub struct Run<'a> {
+    pub min_nodes: usize,
+    pub job: &'a Job,
+    pub job_id: &'a str,
+    pub shard_level: u32,
+    pub budget: u64,
+    pub pattern_digest: ContentId,
+    pub members: &'a Arc<Members>,
+    pub tasks: &'a Arc<Dispatcher>,
+    pub board: &'a Arc<Board>,
+    pub peers: Peers,
+}
+
+/// The state on the nodes: the top of the tree and its root.
+struct OnNodes {
+    upper: Arc<Mutex<Upper>>,
+    root: ContentId,
+    level: u32,
+    generation: BigUint,
+}
+
+/// How an epoch (a run from one stored state) ended.
+enum Ended {
+    Target(OnNodes),
+    Lost(anyhow::Error),
+}
+
+impl Run<'_> {
+    fn say(&self, state: &str) {
+        self.board.status.lock().expect("board").state = state.to_string();
+    }
+
+    pub async fn drive(&self, fresh: Universe) -> anyhow::Result<Report> {
+        let started = Instant::now();
+        let checkpoints = Checkpoints::new(crate::storage::open(&self.job.checkpoint_dir)?);
+        // One writer at a time: held until the run ends.
+        let _lock = checkpoints.lock()?;
+        let (mut universe, mut previous, mut known) = tokio::task::block_in_place(|| {
+            crate::run::resume_or_start(
+                &checkpoints,
+                self.job,
+                fresh,
+                &self.pattern_digest,
+                self.budget,
+            )
+        })?;
+        // The first load waits for --min-nodes; after a loss the run goes on
+        // with the nodes that are left (or waits for one, if none is).
+        let mut needed = self.min_nodes;
+        loop {
+            self.wait_for_nodes(needed).await;
+            needed = 1;
+            let on_nodes = match self.load(&mut universe).await {
+                Ok(on_nodes) => on_nodes,
+                Err(error) if error.chain().any(|cause| cause.is::<PiecesLost>()) => {
+                    eprintln!("deeptime: {error:#}; loading again");
+                    self.tasks.forget_all();
+                    continue;
+                }
+                Err(error) => return Err(error),
+            };
+            drop(universe);
+            match self
+                .epoch(on_nodes, &checkpoints, &mut previous, &mut known)
+                .await?
+            {
+                Ended::Target(state) => return self.report(&state, started).await,
+                Ended::Lost(why) => {
+                    eprintln!("deeptime: {why:#}; rolling back to the newest checkpoint");
+                    self.say("rolling back");
+                    self.tasks.forget_all();
+                    let stored = tokio::task::block_in_place(|| {
+                        checkpoints.latest_valid(self.budget, |warning| {
+                            eprintln!("deeptime: warning: {warning}")
+                        })
+                    })?
+                    .context("no checkpoint to roll back to")?;
+                    eprintln!(
+                        "deeptime: resuming from checkpoint {} at generation {}",
+                        stored.manifest.sequence, stored.manifest.generation
+                    );
+                    universe = stored.universe;
+                    previous = Some(stored.manifest);
+                    known = stored.known;
+                }
+            }
+        }
+    }
+
+    async fn wait_for_nodes(&self, needed: usize) {
+        let mut said = false;
+        loop {
+            let live = self.members.live().len();
+            if live >= needed {
+                return;
+            }
+            if !said {
+                self.say("waiting");
+                said = true;
+            }
+            tokio::time::sleep(Duration::from_millis(50)).await;
+        }
+    }
+
+    /// Cuts the state at the shard level and hands its pieces to the live
+    /// nodes, in runs of nearby pieces so that tasks find most of their
+    /// input at one node.
+    async fn load(&self, universe: &mut Universe) -> anyhow::Result<OnNodes> {
+        self.say("loading");
+        let shard_level = self.shard_level;
+        let cut = tokio::task::block_in_place(|| universe.cut(shard_level))?;
+        let mut upper = Upper::new(shard_level);
+        for quad in &cut.upper {
+            upper.insert(*quad);
+        }
+        let live = self.members.live();
+        let share = cut.pieces.len().div_ceil(live.len().max(1)).max(1);
+        for (member, pieces) in live.iter().zip(cut.pieces.chunks(share)) {
+            let mut sent = std::collections::HashSet::new();
+            let mut records = Vec::new();
+            for piece in pieces {
+                records.extend(universe.records(piece.handle, shard_level - 1, &mut sent));
+            }
+            let held: Vec<_> = pieces.iter().map(|p| (p.id, p.figures)).collect();
+            self.tasks
+                .hand_over(self.job_id, member, records, &held)
+                .await?;
+        }
+        let (root, level) = (cut.root, cut.root_level);
+        let pieces = upper.pieces(&root, level);
+        self.tasks.retain(self.job_id, &pieces).await?;
+        let population = universe.population();
+        let generation = universe.generation().clone();
+        {
+            let mut status = self.board.status.lock().expect("board");
+            status.generation = generation.to_string();
+            status.population = population.to_string();
+        }
+        Ok(OnNodes {
+            upper: Arc::new(Mutex::new(upper)),
+            root,
+            level,
+            generation,
+        })
+    }
+
+    /// Advances to the target, storing checkpoints on the way.
+    async fn epoch(
+        &self,
+        mut state: OnNodes,
+        checkpoints: &Checkpoints,
+        previous: &mut Option<Manifest>,
+        known: &mut KnownQuads,
+    ) -> anyhow::Result<Ended> {
+        self.say("running");
+        let job = self.job;
+        let shard_level = self.shard_level;
+        let mut pacer = job.wall_clock.map(crate::run::Pacer::new);
+        let mut last_checkpoint = Instant::now();
+        while state.generation < job.target {
+            // As in an embedded run: stop on every multiple of `every` and
+            // at the target, in steps the wall-clock pacer allows.
+            let stop = match &job.every {
+                Some(every) => ((&state.generation / every + 1u32) * every).min(job.target.clone()),
+                None => job.target.clone(),
+            };
+            let mut step: BigUint = &stop - &state.generation;
+            if let Some(pacer) = &pacer {
+                step = step.min(pacer.step.clone());
+            }
+            let stepping = Instant::now();
+            let (mut root, mut level) = (state.root, state.level);
+            {
+                let mut upper = state.upper.lock().expect("upper");
+                let bits = step.bits();
+                while !(bits <= (level as u64).saturating_sub(2)
+                    && upper.fits_centre_half(&root, level))
+                {
+                    root = upper.expand(&root, level);
+                    level += 1;
+                }
+                root = upper.expand(&root, level);
+                level += 1;
+            }
+            let advance = recursion::Advance::new(
+                self.job_id.to_string(),
+                state.upper.clone(),
+                self.tasks.clone(),
+                step.clone(),
+            );
+            let outcome = advance.run(root, level).await;
+            let root = match outcome {
+                Ok(root) => root,
+                Err(error) => {
+                    advance.abort_all();
+                    if error.chain().any(|cause| cause.is::<PiecesLost>()) {
+                        return Ok(Ended::Lost(error));
+                    }
+                    return Err(error).with_context(|| {
+                        format!(
+                            "advancing {step} generations from generation {}",
+                            state.generation
+                        )
+                    });
+                }
+            };
+            level -= 1;
+            state.generation += &step;
+            let took = stepping.elapsed();
+            let pieces = {
+                let mut upper = state.upper.lock().expect("upper");
+                let mut root = root;
+                while level > shard_level + 1 && upper.fits_centre_half(&root, level) {
+                    root = upper.centre(&root, level);
+                    level -= 1;
+                }
+                upper.keep_only(&root, level);
+                state.root = root;
+                state.level = level;
+                upper.pieces(&root, level)
+            };
+            self.tasks.retain(self.job_id, &pieces).await?;
+            let figures = self.tasks.figures(&pieces);
+            let (population, _) =
+                state
+                    .upper
+                    .lock()
+                    .expect("upper")
+                    .figures(&state.root, state.level, &figures);
+            {
+                let mut status = self.board.status.lock().expect("board");
+                status.generation = state.generation.to_string();
+                status.population = population.to_string();
+            }
+            eprintln!(
+                "deeptime: generation {}, population {population}, {} tasks",
+                state.generation,
+                self.tasks.counters().done
+            );
+            let due = match pacer.as_mut() {
+                Some(pacer) => {
+                    pacer.record(&step, took);
+                    pacer.due(last_checkpoint.elapsed())
+                }
+                None => false,
+            };
+            if state.generation != stop && !due {
+                continue;
+            }
+            match self.checkpoint(&state, checkpoints, previous, known).await {
+                Ok(()) => last_checkpoint = Instant::now(),
+                Err(error) if error.chain().any(|cause| cause.is::<PiecesLost>()) => {
+                    return Ok(Ended::Lost(error));
+                }
+                Err(error) => return Err(error),
+            }
+        }
+        Ok(Ended::Target(state))
+    }
+
+    /// Gathers the state from the nodes and stores it as a checkpoint.
+    async fn checkpoint(
+        &self,
+        state: &OnNodes,
+        checkpoints: &Checkpoints,
+        previous: &mut Option<Manifest>,
+        known: &mut KnownQuads,
+    ) -> anyhow::Result<()> {
+        self.say("checkpointing");
+        let mut universe = self.gather(state).await?;
+        let manifest = tokio::task::block_in_place(|| {
+            checkpoints.write(
+                &mut universe,
+                previous.as_ref(),
+                known,
+                &self.job.name,
+                &self.pattern_digest,
+            )
+        })?;
+        *previous = Some(manifest);
+        if let Some(keep) = self.job.keep
+            && let Err(error) = tokio::task::block_in_place(|| checkpoints.prune(keep))
+        {
+            eprintln!("deeptime: warning: retention: {error:#}");
+        }
+        self.say("running");
+        Ok(())
+    }
+
+    /// The whole state, put together from the top of the tree and the
+    /// pieces fetched from the nodes.
+    async fn gather(&self, state: &OnNodes) -> anyhow::Result<Universe> {
+        let pieces = state
+            .upper
+            .lock()
+            .expect("upper")
+            .pieces(&state.root, state.level);
+        let rule: deeptime_engine::rule::Rule = self
+            .members
+            .terms
+            .rule
+            .parse()
+            .map_err(|e| anyhow::anyhow!("{e}"))?;
+        let shard = Arc::new(Mutex::new(Some(Shard::new(rule, self.budget)?)));
+        let mut wanted = Vec::new();
+        for piece in &pieces {
+            wanted.push((*piece, self.shard_level - 1, self.tasks.holders_of(piece)?));
+        }
+        let fetched = fetch_missing(&shard, &self.peers, wanted)
+            .await
+            .map_err(|status| {
+                PiecesLost(format!("gathering a checkpoint: {}", status.message()))
+            })?;
+        let upper = state.upper.clone();
+        let (root, level, generation) = (state.root, state.level, state.generation.clone());
+        let budget = self.budget;
+        tokio::task::block_in_place(move || {
+            let mut guard = shard.lock().expect("shard");
+            let shard = guard.as_mut().expect("made above");
+            shard.put(&fetched.records, &[])?;
+            let upper = upper.lock().expect("upper");
+            let mut lookup = |id: &ContentId| -> Option<Record> {
+                match upper.get(id) {
+                    Some(quad) => Some(Record::Inner {
+                        level: quad.level,
+                        kids: quad.kids,
+                    }),
+                    None => shard.record(id),
+                }
+            };
+            Ok(Universe::assemble(
+                rule,
+                budget,
+                generation,
+                root,
+                level,
+                &mut lookup,
+            )?)
+        })
+    }
+
+    async fn report(&self, state: &OnNodes, started: Instant) -> anyhow::Result<Report> {
+        let shard_level = self.shard_level;
+        let (root, level) = (state.root, state.level);
+        let pieces = state.upper.lock().expect("upper").pieces(&root, level);
+        let figures = self.tasks.figures(&pieces);
+        let (population, extent) = state
+            .upper
+            .lock()
+            .expect("upper")
+            .figures(&root, level, &figures);
+        // The digest: the smallest centred quad holding every live cell;
+        // below the shard level a node finds it.
+        let (mut quad, mut at) = (root, level);
+        {
+            let mut upper = state.upper.lock().expect("upper");
+            while at > shard_level && upper.fits_centre_half(&quad, at) {
+                quad = upper.centre(&quad, at);
+                at -= 1;
+            }
+        }
+        let digest = if at == shard_level {
+            let kids = state.upper.lock().expect("upper").kids(&quad, at);
+            self.tasks.describe(self.job_id, at, kids).await?.0
+        } else {
+            quad
+        };
+        let half = BigInt::from(BigUint::from(1u32) << (level - 1));
+        let bbox = extent.map(|[left, top, right, bottom]| BoxReport {
+            left: (BigInt::from(left.clone()) - &half).to_string(),
+            top: (BigInt::from(top.clone()) - &half).to_string(),
+            width: (right - left + 1u32).to_string(),
+            height: (bottom - top + 1u32).to_string(),
+        });
+        let members = self.members.all();
+        let sum = |f: &dyn Fn(&crate::cluster::members::Member) -> u64| {
+            members.iter().map(|m| f(m)).sum::<u64>()
+        };
+        use std::sync::atomic::Ordering::Relaxed;
+        Ok(Report {
+            generation: state.generation.to_string(),
+            population: population.to_string(),
+            bbox,
+            rule: self.members.terms.rule.clone(),
+            digest: digest.to_string(),
+            engine: EngineReport {
+                quads: sum(&|m| m.quads.load(Relaxed)),
+                leaves: 0,
+                quads_created: self.tasks.counters().done,
+                bytes: sum(&|m| m.bytes.load(Relaxed)),
+                budget: sum(&|m| m.memory),
+                collections: 0,
+                root_level: level,
+                seconds: started.elapsed().as_secs_f64(),
+            },
+            bytes_read: None,
+            pack_bytes: None,
+        })
+    }
+}
