@@ -391,3 +391,72 @@ fn a_coordinator_killed_and_started_again_resumes_and_the_figures_stay_the_same(
     assert_same_figures(&report, &single);
     assert_checkpoints_hold(dir.path(), &report);
 }
+
+/// A test authority and a certificate for 127.0.0.1 signed by it, as PEM
+/// files in `dir`: (authority, certificate, key).
+fn test_certificates(dir: &Path) -> (PathBuf, PathBuf, PathBuf) {
+    let authority_key = rcgen::KeyPair::generate().unwrap();
+    let mut authority = rcgen::CertificateParams::new(Vec::<String>::new()).unwrap();
+    authority.is_ca = rcgen::IsCa::Ca(rcgen::BasicConstraints::Unconstrained);
+    let authority_pem = authority.self_signed(&authority_key).unwrap().pem();
+    let issuer = rcgen::Issuer::from_params(&authority, &authority_key);
+    let key = rcgen::KeyPair::generate().unwrap();
+    let leaf =
+        rcgen::CertificateParams::new(vec!["127.0.0.1".to_string(), "localhost".to_string()])
+            .unwrap()
+            .signed_by(&key, &issuer)
+            .unwrap();
+    let paths = (
+        dir.join("ca.pem"),
+        dir.join("cert.pem"),
+        dir.join("key.pem"),
+    );
+    std::fs::write(&paths.0, authority_pem).unwrap();
+    std::fs::write(&paths.1, leaf.pem()).unwrap();
+    std::fs::write(&paths.2, key.serialize_pem()).unwrap();
+    paths
+}
+
+#[test]
+fn a_cluster_over_tls_gives_the_single_process_figures() {
+    let dir = temp_dir();
+    std::fs::write(dir.path().join("soup.rle"), soup(64)).unwrap();
+    let job = write_job(dir.path(), "soup.rle", "B3/S23", "200", "100");
+    let (ca, cert, key) = test_certificates(dir.path());
+    let tls: Vec<String> = vec![
+        "--tls-cert".into(),
+        cert.display().to_string(),
+        "--tls-key".into(),
+        key.display().to_string(),
+        "--tls-ca".into(),
+        ca.display().to_string(),
+    ];
+    let tls: Vec<&str> = tls.iter().map(String::as_str).collect();
+    let mut with_level = tls.clone();
+    with_level.extend(["--shard-level", "6"]);
+    let mut cluster = Cluster::start(&job, 2, &with_level);
+    cluster.add_nodes(2, "64MiB", &tls);
+    let (report, _) = cluster.report();
+    let single = evolve(&dir.path().join("soup.rle"), "200", "B3/S23");
+    assert_same_figures(&report, &single);
+}
+
+#[test]
+fn a_node_that_stops_answering_loses_its_lease_and_the_run_goes_on() {
+    let dir = temp_dir();
+    let job = long_job(dir.path());
+    let mut cluster = Cluster::start(&job, 3, &["--shard-level", "6"]);
+    cluster.add_nodes(3, "256MiB", &[]);
+    cluster.wait_for_checkpoints(4);
+    // SIGSTOP: the process stays, its connections stay open, nothing answers.
+    let stopped = cluster.nodes.0[2].id() as i32;
+    // SAFETY: sending a signal to a child process this test started.
+    unsafe { libc::kill(stopped, libc::SIGSTOP) };
+    let (report, stderr) = cluster.report();
+    // SAFETY: as above; let it go so that it can be killed and reaped.
+    unsafe { libc::kill(stopped, libc::SIGCONT) };
+    assert!(stderr.contains("lost"), "{stderr}");
+    let single = evolve(&dir.path().join("soup.rle"), "3000", "B3/S23");
+    assert_same_figures(&report, &single);
+    assert_checkpoints_hold(dir.path(), &report);
+}

@@ -27,12 +27,28 @@ pub struct Member {
     pub lease_until: Mutex<Instant>,
     pub quads: AtomicU64,
     pub bytes: AtomicU64,
+    /// the most bytes its store reported (renewals and retain replies)
+    pub peak_bytes: AtomicU64,
     pub memory: u64,
+    /// becomes true when the member is lost, so calls to it stop waiting
+    lost: tokio::sync::watch::Sender<bool>,
 }
 
 impl Member {
     pub fn is_live(&self) -> bool {
         self.live.load(Ordering::Relaxed)
+    }
+
+    /// Takes the bytes its store reports now (keeping the peak).
+    pub fn report_bytes(&self, bytes: u64) {
+        self.bytes.store(bytes, Ordering::Relaxed);
+        self.peak_bytes.fetch_max(bytes, Ordering::Relaxed);
+    }
+
+    /// Resolves once the member is lost (at once if it is already).
+    pub async fn lost(&self) {
+        let mut lost = self.lost.subscribe();
+        let _ = lost.wait_for(|lost| *lost).await;
     }
 }
 
@@ -83,6 +99,7 @@ impl Members {
     /// Marks a member lost (its lease lapsed or it stopped answering).
     pub fn lose(&self, member: &Member, why: &str) {
         if member.live.swap(false, Ordering::Relaxed) {
+            member.lost.send_replace(true);
             eprintln!(
                 "deeptime: node {} ({}) lost: {why}",
                 member.id, member.address
@@ -100,6 +117,7 @@ impl Members {
         for old in list.iter() {
             if old.address == request.address {
                 old.live.store(false, Ordering::Relaxed);
+                old.lost.send_replace(true);
             }
         }
         let id = self.next_id.fetch_add(1, Ordering::Relaxed);
@@ -114,7 +132,9 @@ impl Members {
             lease_until: Mutex::new(Instant::now() + 3 * RENEW_EVERY),
             quads: AtomicU64::new(0),
             bytes: AtomicU64::new(0),
+            peak_bytes: AtomicU64::new(0),
             memory: request.memory,
+            lost: tokio::sync::watch::channel(false).0,
         }));
         drop(list);
         eprintln!("deeptime: node {id} joined from {}", request.address);
@@ -134,7 +154,7 @@ impl Members {
         };
         *member.lease_until.lock().expect("lease") = Instant::now() + 3 * RENEW_EVERY;
         member.quads.store(request.quads, Ordering::Relaxed);
-        member.bytes.store(request.bytes, Ordering::Relaxed);
+        member.report_bytes(request.bytes);
         v1::RenewReply { member: true }
     }
 

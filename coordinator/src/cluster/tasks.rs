@@ -71,6 +71,18 @@ fn node_error(member: &Member, status: tonic::Status) -> anyhow::Error {
     )
 }
 
+/// A call to a member that fails as soon as the member is lost (its lease
+/// lapsed), rather than when its connection finally times out.
+async fn until_lost<T>(
+    member: &Member,
+    call: impl std::future::Future<Output = Result<T, tonic::Status>>,
+) -> Result<T, tonic::Status> {
+    tokio::select! {
+        outcome = call => outcome,
+        () = member.lost() => Err(tonic::Status::unavailable("its lease lapsed")),
+    }
+}
+
 /// Where a piece lives and what it holds.
 struct Holding {
     holders: Vec<u64>,
@@ -84,6 +96,9 @@ pub struct Counters {
     pub memoised: u64,
     pub bytes_fetched: u64,
     pub records_fetched: u64,
+    /// of bytes_fetched, the records' encoded size that receivers lacked
+    pub bytes_lacked: u64,
+    pub fetch_calls: u64,
     pub compute_us: u64,
     pub round_trip_us: u64,
 }
@@ -98,6 +113,8 @@ pub struct Dispatcher {
     pub memoised: AtomicU64,
     bytes_fetched: AtomicU64,
     records_fetched: AtomicU64,
+    bytes_lacked: AtomicU64,
+    fetch_calls: AtomicU64,
     /// microseconds nodes spent computing, and tasks took end to end
     compute_us: AtomicU64,
     round_trip_us: AtomicU64,
@@ -114,6 +131,8 @@ impl Dispatcher {
             memoised: AtomicU64::new(0),
             bytes_fetched: AtomicU64::new(0),
             records_fetched: AtomicU64::new(0),
+            bytes_lacked: AtomicU64::new(0),
+            fetch_calls: AtomicU64::new(0),
             compute_us: AtomicU64::new(0),
             round_trip_us: AtomicU64::new(0),
         }
@@ -126,6 +145,8 @@ impl Dispatcher {
             memoised: self.memoised.load(Ordering::Relaxed),
             bytes_fetched: self.bytes_fetched.load(Ordering::Relaxed),
             records_fetched: self.records_fetched.load(Ordering::Relaxed),
+            bytes_lacked: self.bytes_lacked.load(Ordering::Relaxed),
+            fetch_calls: self.fetch_calls.load(Ordering::Relaxed),
             compute_us: self.compute_us.load(Ordering::Relaxed),
             round_trip_us: self.round_trip_us.load(Ordering::Relaxed),
         }
@@ -259,7 +280,9 @@ impl Dispatcher {
             });
             request.set_timeout(TASK_TIMEOUT);
             let sent = std::time::Instant::now();
-            let outcome = member.client.clone().advance(request).await;
+            // A member lost meanwhile (its lease lapsed) fails the call now.
+            let mut client = member.client.clone();
+            let outcome = until_lost(&member, client.advance(request)).await;
             self.round_trip_us
                 .fetch_add(sent.elapsed().as_micros() as u64, Ordering::Relaxed);
             member.running.fetch_sub(1, Ordering::Relaxed);
@@ -274,6 +297,10 @@ impl Dispatcher {
                         .fetch_add(reply.fetched_bytes, Ordering::Relaxed);
                     self.records_fetched
                         .fetch_add(reply.fetched_records, Ordering::Relaxed);
+                    self.bytes_lacked
+                        .fetch_add(reply.fetched_lacked_bytes, Ordering::Relaxed);
+                    self.fetch_calls
+                        .fetch_add(reply.fetch_calls, Ordering::Relaxed);
                     self.compute_us
                         .fetch_add(reply.compute_us, Ordering::Relaxed);
                     let figures = wire::figures_from_wire(reply.population, reply.extent);
@@ -338,17 +365,16 @@ impl Dispatcher {
     ) -> anyhow::Result<(ContentId, u32)> {
         let (sources, score) = self.sources(&kids)?;
         let member = self.place(&score)?;
-        let reply = member
-            .client
-            .clone()
-            .describe(v1::DescribeRequest {
-                job: job.to_string(),
-                level,
-                square: Some(v1::Square {
-                    kids: wire::ids4_bytes(&kids),
-                    sources,
-                }),
-            })
+        let mut client = member.client.clone();
+        let reply = client.describe(v1::DescribeRequest {
+            job: job.to_string(),
+            level,
+            square: Some(v1::Square {
+                kids: wire::ids4_bytes(&kids),
+                sources,
+            }),
+        });
+        let reply = until_lost(&member, reply)
             .await
             .map_err(|status| node_error(&member, status))?
             .into_inner();
@@ -373,25 +399,25 @@ impl Dispatcher {
             } else {
                 Vec::new()
             };
-            client
-                .put(v1::PutRequest {
-                    job: job.to_string(),
-                    records: batch
-                        .iter()
-                        .map(|(id, r)| wire::record_to_wire(id, r))
-                        .collect(),
-                    hold,
-                })
+            let put = client.put(v1::PutRequest {
+                job: job.to_string(),
+                records: batch
+                    .iter()
+                    .map(|(id, r)| wire::record_to_wire(id, r))
+                    .collect(),
+                hold,
+            });
+            until_lost(member, put)
                 .await
                 .map_err(|status| node_error(member, status))?;
         }
         if last == 0 && !pieces.is_empty() {
-            client
-                .put(v1::PutRequest {
-                    job: job.to_string(),
-                    records: Vec::new(),
-                    hold: pieces.iter().map(|(id, _)| id.0.to_vec()).collect(),
-                })
+            let put = client.put(v1::PutRequest {
+                job: job.to_string(),
+                records: Vec::new(),
+                hold: pieces.iter().map(|(id, _)| id.0.to_vec()).collect(),
+            });
+            until_lost(member, put)
                 .await
                 .map_err(|status| node_error(member, status))?;
         }
@@ -415,14 +441,15 @@ impl Dispatcher {
         }
         for member in self.members.live() {
             let ids = keep.remove(&member.id).unwrap_or_default();
-            let outcome = member
-                .client
-                .clone()
-                .retain(v1::RetainRequest {
-                    job: job.to_string(),
-                    keep: ids,
-                })
-                .await;
+            let mut client = member.client.clone();
+            let retain = client.retain(v1::RetainRequest {
+                job: job.to_string(),
+                keep: ids,
+            });
+            let outcome = until_lost(&member, retain).await;
+            if let Ok(reply) = &outcome {
+                member.report_bytes(reply.get_ref().bytes);
+            }
             if let Err(status) = outcome {
                 if wire::is_unreachable(&status) {
                     self.members.lose(&member, status.message());
