@@ -48,7 +48,10 @@ impl Peers {
 /// What a fetch brought: records in an order that puts children first.
 pub struct Fetched {
     pub records: Vec<(ContentId, Record)>,
+    /// bytes of the replies, as encoded on the wire
     pub bytes: u64,
+    /// fetch calls made, one after another
+    pub calls: u64,
 }
 
 /// Fetches the subtrees of `wanted` (id, level, sources) that `shard` lacks.
@@ -59,6 +62,7 @@ pub async fn fetch_missing(
 ) -> Result<Fetched, Status> {
     let mut got: HashMap<ContentId, Record> = HashMap::new();
     let mut bytes = 0u64;
+    let mut calls = 0u64;
     let lacks = |ids: Vec<(ContentId, u32, Vec<String>)>| -> Result<Vec<_>, Status> {
         let guard = shard.lock().expect("shard");
         let shard = guard
@@ -85,6 +89,7 @@ pub async fn fetch_missing(
             for batch in ids.chunks(MAX_BATCH) {
                 let (records, size) = fetch_batch(peers, &sources, batch).await?;
                 bytes += size;
+                calls += 1;
                 for ((id, level), record) in batch.iter().zip(records) {
                     if record.level() != *level {
                         return Err(Status::data_loss(format!(
@@ -106,7 +111,11 @@ pub async fn fetch_missing(
     // Children first: lower levels first.
     let mut records: Vec<(ContentId, Record)> = got.into_iter().collect();
     records.sort_by_key(|(_, record)| record.level());
-    Ok(Fetched { records, bytes })
+    Ok(Fetched {
+        records,
+        bytes,
+        calls,
+    })
 }
 
 /// One batch from the first source that answers with every record.

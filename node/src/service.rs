@@ -114,21 +114,36 @@ impl v1::node_server::Node for NodeService {
             .ok_or_else(|| Status::invalid_argument("a task needs its square"))?;
         let mut fetched_records = 0;
         let mut fetched_bytes = 0;
+        let mut fetched_lacked_bytes = 0;
+        let mut fetch_calls = 0;
         for attempt in 1..=ATTEMPTS {
             let (kids, fetched) = self.state.gather(&square, task.level).await?;
             fetched_records += fetched.records.len() as u64;
             fetched_bytes += fetched.bytes;
+            fetch_calls += fetched.calls;
             let (level, stride) = (task.level, task.stride);
             let started = Instant::now();
             let outcome = self
                 .state
                 .with_shard(move |shard| {
+                    // What the fetch brought that is still lacking here (another
+                    // task on this node may have brought some of it meanwhile).
+                    let lacked: u64 = fetched
+                        .records
+                        .iter()
+                        .filter(|(id, _)| !shard.has(id))
+                        .map(|(id, record)| {
+                            prost::Message::encoded_len(&wire::record_to_wire(id, record)) as u64
+                        })
+                        .sum();
                     shard.put(&fetched.records, &[])?;
-                    shard.advance(&kids, level, stride)
+                    let (id, figures) = shard.advance(&kids, level, stride)?;
+                    Ok((id, figures, lacked))
                 })
                 .await;
             match outcome {
-                Ok((id, figures)) => {
+                Ok((id, figures, lacked)) => {
+                    fetched_lacked_bytes += lacked;
                     self.state.tasks_done.fetch_add(1, Ordering::Relaxed);
                     return Ok(Response::new(v1::AdvanceOutcome {
                         id: id.0.to_vec(),
@@ -137,6 +152,8 @@ impl v1::node_server::Node for NodeService {
                         fetched_records,
                         fetched_bytes,
                         compute_us: started.elapsed().as_micros() as u64,
+                        fetched_lacked_bytes,
+                        fetch_calls,
                     }));
                 }
                 Err(status)
@@ -223,14 +240,15 @@ impl v1::node_server::Node for NodeService {
             .iter()
             .map(|id| wire::id_from(id))
             .collect::<Result<HashSet<_>, _>>()?;
-        let (held, quads) = self
+        let (held, quads, bytes) = self
             .state
             .with_shard(move |shard| {
                 let held = shard.retain(&keep) as u64;
-                Ok((held, shard.stats().quads))
+                let stats = shard.stats();
+                Ok((held, stats.quads, stats.bytes))
             })
             .await?;
-        Ok(Response::new(v1::RetainReply { held, quads }))
+        Ok(Response::new(v1::RetainReply { held, quads, bytes }))
     }
 
     async fn describe(

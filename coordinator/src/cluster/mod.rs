@@ -94,7 +94,16 @@ struct ClusterFigures {
     tasks: u64,
     tasks_memoised: u64,
     records_fetched: u64,
+    /// bytes of the fetch replies nodes received from peers for tasks, and
+    /// of those the encoded size of the records the receiver still lacked
     bytes_fetched: u64,
+    bytes_fetched_lacked: u64,
+    /// fetch calls tasks made to peers (each a round trip)
+    fetch_calls: u64,
+    /// per node in join order, the most bytes its store reported, and the
+    /// tasks it ran
+    peak_bytes: Vec<u64>,
+    node_tasks: Vec<u64>,
     /// seconds nodes spent computing tasks, and tasks took end to end
     compute_seconds: f64,
     task_seconds: f64,
@@ -212,6 +221,18 @@ async fn coordinate(args: CoordinatorArgs) -> anyhow::Result<()> {
                 tasks_memoised: tasks.counters().memoised,
                 records_fetched: tasks.counters().records_fetched,
                 bytes_fetched: tasks.counters().bytes_fetched,
+                bytes_fetched_lacked: tasks.counters().bytes_lacked,
+                fetch_calls: tasks.counters().fetch_calls,
+                peak_bytes: members
+                    .all()
+                    .iter()
+                    .map(|m| m.peak_bytes.load(std::sync::atomic::Ordering::Relaxed))
+                    .collect(),
+                node_tasks: members
+                    .all()
+                    .iter()
+                    .map(|m| m.done.load(std::sync::atomic::Ordering::Relaxed))
+                    .collect(),
                 compute_seconds: tasks.counters().compute_us as f64 / 1e6,
                 task_seconds: tasks.counters().round_trip_us as f64 / 1e6,
             };
