@@ -35,6 +35,7 @@ fn the_quick_suite_runs_and_reports_every_figure() {
         "pressure",
         "numpy",
         "checkpoint",
+        "cluster",
     ] {
         assert!(groups.contains(&group), "no {group} figure in {groups:?}");
     }

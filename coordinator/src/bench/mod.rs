@@ -2,9 +2,11 @@
 //! comparison measured side by side in one run, printed as a table and
 //! written as JSON with a description of the machine.
 //!
-//! The figures themselves live in `suite.rs`; this file runs them, decides
+//! The figures themselves live in `suite.rs` (the cluster's in
+//! `cluster.rs`, with real processes on loopback); this file runs them, decides
 //! whether each goal is met, and reports.
 
+mod cluster;
 mod suite;
 
 use std::path::PathBuf;

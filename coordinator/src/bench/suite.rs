@@ -41,6 +41,10 @@ pub const PARTS: &[Part] = &[
         name: "checkpoints",
         run: checkpoints,
     },
+    Part {
+        name: "cluster",
+        run: super::cluster::cluster,
+    },
 ];
 
 /// The Gosper glider gun (the usual RLE, from memory).
