@@ -282,6 +282,46 @@ fn three_nodes_give_the_single_process_figures_on_the_demo_pattern() {
 }
 
 #[test]
+fn three_nodes_give_the_embedded_run_figures_on_the_tide_pool_demo_job() {
+    // The demo job as shipped (demo-jobs/tidepool.toml), run embedded and
+    // on a cluster, each into its own folder.
+    let demo = Path::new(env!("CARGO_MANIFEST_DIR")).join("../demo-jobs");
+    let embedded = temp_dir();
+    let clustered = temp_dir();
+    for dir in [embedded.path(), clustered.path()] {
+        for file in ["tidepool.rle", "tidepool.toml"] {
+            std::fs::copy(demo.join(file), dir.join(file)).unwrap();
+        }
+    }
+    let run = run_deeptime([
+        "run".as_ref(),
+        embedded.path().join("tidepool.toml").as_os_str(),
+        "--json".as_ref(),
+    ]);
+    run.assert_success();
+    let single: serde_json::Value = serde_json::from_str(&run.stdout).unwrap();
+    let cluster = run_cluster(&clustered.path().join("tidepool.toml"), 3, &[]);
+    assert_same_figures(&cluster, &single);
+    // The same stored generations, with the same digests.
+    let list = |dir: &Path| {
+        let listed = run_deeptime([
+            "checkpoints".as_ref(),
+            dir.join("runs/tidepool").as_os_str(),
+            "--json".as_ref(),
+        ]);
+        listed.assert_success();
+        let listed: serde_json::Value = serde_json::from_str(&listed.stdout).unwrap();
+        listed
+            .as_array()
+            .unwrap()
+            .iter()
+            .map(|c| (c["generation"].clone(), c["digest"].clone()))
+            .collect::<Vec<_>>()
+    };
+    assert_eq!(list(clustered.path()), list(embedded.path()));
+}
+
+#[test]
 fn three_nodes_give_the_single_process_figures_on_a_soup_that_spans_many_pieces() {
     // Shard level 6: pieces of 32×32 cells, so a 96×96 soup spans many and
     // tasks must fetch quads from other nodes.
