@@ -137,7 +137,10 @@ impl Members {
             lost: tokio::sync::watch::channel(false).0,
         }));
         drop(list);
-        eprintln!("deeptime: node {id} joined from {}", request.address);
+        eprintln!(
+            "deeptime: node {id} joined from {} (version {})",
+            request.address, request.version
+        );
         self.changed.notify_waiters();
         Ok(v1::JoinReply {
             member: id,
