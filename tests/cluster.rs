@@ -427,6 +427,12 @@ fn a_coordinator_killed_and_started_again_resumes_and_the_figures_stay_the_same(
     cluster.start_coordinator(2);
     let (report, stderr) = cluster.report();
     assert!(stderr.contains("resuming"), "{stderr}");
+    // The nodes kept their quads: pieces of the stored state still on them
+    // are held where they are, not sent again.
+    assert!(
+        stderr.contains("pieces are on the nodes already"),
+        "{stderr}"
+    );
     let single = evolve(&dir.path().join("soup.rle"), "3000", "B3/S23");
     assert_same_figures(&report, &single);
     assert_checkpoints_hold(dir.path(), &report);

@@ -156,9 +156,7 @@ impl v1::node_server::Node for NodeService {
                         fetch_calls,
                     }));
                 }
-                Err(status)
-                    if status.code() == tonic::Code::FailedPrecondition && attempt < ATTEMPTS =>
-                {
+                Err(status) if status.code() == tonic::Code::NotFound && attempt < ATTEMPTS => {
                     tracing::debug!(attempt, "inputs were collected before use, fetching again");
                 }
                 Err(status) => return Err(status),

@@ -192,7 +192,7 @@ pub fn figures_from_wire(population: u64, extent: Option<v1::Extent>) -> Figures
 /// Engine refusals as gRPC statuses (the one place they are mapped).
 pub fn shard_status(error: ShardError) -> Status {
     match error {
-        ShardError::Missing(_) => Status::failed_precondition(error.to_string()),
+        ShardError::Missing(_) => Status::not_found(error.to_string()),
         ShardError::WrongId { .. } => Status::data_loss(error.to_string()),
         ShardError::WrongLevel { .. }
         | ShardError::BadLevel { .. }

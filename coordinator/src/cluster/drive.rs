@@ -141,15 +141,48 @@ impl Run<'_> {
         for quad in &cut.upper {
             upper.insert(*quad);
         }
+        // Pieces a node still has (a coordinator started again, a roll back
+        // to a state the nodes still hold) stay where they are; the rest go
+        // out in runs of neighbouring pieces.
         let live = self.members.live();
-        let share = cut.pieces.len().div_ceil(live.len().max(1)).max(1);
-        for (member, pieces) in live.iter().zip(cut.pieces.chunks(share)) {
+        let ids: Vec<ContentId> = cut.pieces.iter().map(|p| p.id).collect();
+        let mut warm: std::collections::HashMap<ContentId, usize> = Default::default();
+        for (at, member) in live.iter().enumerate() {
+            for id in self.tasks.pieces_at(self.job_id, member, &ids).await {
+                warm.entry(id).or_insert(at);
+            }
+        }
+        let cold: Vec<_> = cut
+            .pieces
+            .iter()
+            .filter(|p| !warm.contains_key(&p.id))
+            .collect();
+        if !warm.is_empty() {
+            eprintln!(
+                "deeptime: {} of {} pieces are on the nodes already",
+                warm.len(),
+                cut.pieces.len()
+            );
+        }
+        let share = cold.len().div_ceil(live.len().max(1)).max(1);
+        let mut chunks = cold.chunks(share);
+        for (at, member) in live.iter().enumerate() {
+            let pieces = chunks.next().unwrap_or(&[]);
             let mut sent = std::collections::HashSet::new();
             let mut records = Vec::new();
             for piece in pieces {
                 records.extend(universe.records(piece.handle, shard_level - 1, &mut sent));
             }
-            let held: Vec<_> = pieces.iter().map(|p| (p.id, p.figures)).collect();
+            let mut held: Vec<_> = pieces.iter().map(|p| (p.id, p.figures)).collect();
+            held.extend(
+                cut.pieces
+                    .iter()
+                    .filter(|p| warm.get(&p.id) == Some(&at))
+                    .map(|p| (p.id, p.figures)),
+            );
+            if held.is_empty() {
+                continue;
+            }
             self.tasks
                 .hand_over(self.job_id, member, records, &held)
                 .await?;

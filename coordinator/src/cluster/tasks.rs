@@ -46,7 +46,9 @@ pub struct PiecesLost(pub String);
 
 /// A member's refusal as an error (running out of memory is its own kind).
 fn node_error(member: &Member, status: tonic::Status) -> anyhow::Error {
-    if wire::is_unreachable(&status) {
+    // NOT_FOUND: a quad the coordinator counted on is no longer at the node
+    // (collected between a check and its use): load again.
+    if wire::is_unreachable(&status) || status.code() == tonic::Code::NotFound {
         return PiecesLost(format!(
             "node {} ({}) stopped answering: {}",
             member.id,
@@ -425,6 +427,34 @@ impl Dispatcher {
             self.record_holding(*id, member.id, *figures);
         }
         Ok(())
+    }
+
+    /// Which of `pieces` a member has now (any failure: none). A node has a
+    /// quad only with everything under it, so a piece it has needs no
+    /// records, only to be held.
+    pub async fn pieces_at(
+        &self,
+        job: &str,
+        member: &Member,
+        pieces: &[ContentId],
+    ) -> Vec<ContentId> {
+        let _ = job;
+        let mut have = Vec::new();
+        for batch in pieces.chunks(MAX_BATCH) {
+            let mut client = member.client.clone();
+            let call = client.fetch(v1::FetchRequest {
+                ids: batch.iter().map(|id| id.0.to_vec()).collect(),
+            });
+            let Ok(reply) = until_lost(member, call).await else {
+                return Vec::new();
+            };
+            for record in &reply.get_ref().records {
+                if let Ok((id, _)) = wire::record_from_wire(record) {
+                    have.push(id);
+                }
+            }
+        }
+        have
     }
 
     /// Keeps only the `live` pieces in the directory and on the members.
