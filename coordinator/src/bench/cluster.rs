@@ -222,6 +222,20 @@ fn said(lines: &Mutex<Vec<(Instant, String)>>) -> String {
         .join("; ")
 }
 
+/// A copy of this executable in `dir`, so every process of the part runs
+/// this very build even if a build replaces the file meanwhile (on Linux
+/// the running image stays readable through /proc/self/exe).
+fn this_executable(dir: &Path) -> anyhow::Result<PathBuf> {
+    let mut source = std::env::current_exe().context("cannot find this executable")?;
+    if !source.exists() {
+        source = PathBuf::from("/proc/self/exe");
+    }
+    let copy = dir.join("deeptime");
+    std::fs::copy(&source, &copy)
+        .with_context(|| format!("cannot copy {} to {}", source.display(), copy.display()))?;
+    Ok(copy)
+}
+
 /// The cluster's figures, on a soup that takes a few seconds embedded.
 pub fn cluster(settings: &Settings) -> anyhow::Result<Vec<Figure>> {
     let (side, target, every) = if settings.quick {
@@ -229,9 +243,9 @@ pub fn cluster(settings: &Settings) -> anyhow::Result<Vec<Figure>> {
     } else {
         (1024, "2^10", "2^6")
     };
-    let exe = std::env::current_exe().context("cannot find this executable")?;
     let directory = tempfile::tempdir()?;
     let dir = directory.path();
+    let exe = this_executable(dir)?;
     let mut universe = Universe::from_pattern(&soup(side, 4), Rule::LIFE, 1 << 30)?;
     let mut text = Vec::new();
     universe.write_rle(&mut text)?;
@@ -396,7 +410,7 @@ pub fn cluster(settings: &Settings) -> anyhow::Result<Vec<Figure>> {
             .detail(format!(
                 "store peaks {list} against {} on one node (shard level {}); tasks per \
                  node {node_tasks}; all nodes together {:.2}× the single node's; resident \
-                 peaks {resident} against {}",
+                 peaks (in start order) {resident} against {}",
                 human_bytes(single_peak),
                 run.cluster("shard_level"),
                 total as f64 / single_peak as f64,
