@@ -65,7 +65,7 @@ impl Cut {
 impl Universe {
     /// Cuts the state at shard level `shard_level` (5 to 48), growing the
     /// root (with empty space) to at least one level above it.
-    pub fn cut(&mut self, shard_level: u32) -> Result<Cut, BudgetExceeded> {
+    pub fn cut(&mut self, shard_level: u32) -> Result<Cut, crate::AdvanceError> {
         assert!(
             (LEAF_LEVEL + 2..=MAX_SHARD_LEVEL).contains(&shard_level),
             "shard level {shard_level} out of range"
@@ -78,15 +78,19 @@ impl Universe {
         let mut pieces = Vec::new();
         let mut seen: std::collections::HashMap<Handle, ContentId> = Default::default();
         // Ids of the quads at or above K, computed children first.
-        let root_id = self.upper_ids(
-            self.root,
-            self.level,
-            shard_level,
-            &mut seen,
-            &mut upper,
-            &mut pieces,
-            empty_piece,
-        );
+        // One frame per level: a state far along needs a deep stack.
+        let (root, level) = (self.root, self.level);
+        let root_id = crate::stack::deep(level, || {
+            self.upper_ids(
+                root,
+                level,
+                shard_level,
+                &mut seen,
+                &mut upper,
+                &mut pieces,
+                empty_piece,
+            )
+        })?;
         upper.reverse();
         Ok(Cut {
             shard_level,

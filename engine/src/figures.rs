@@ -84,16 +84,54 @@ pub(crate) fn population(store: &Store, quad: Handle, level: u32) -> BigUint {
 #[derive(Default)]
 pub(crate) struct Counter {
     memo: Map<Handle, u64>,
+    /// populations above level 31, for callers that ask about many quads
+    /// of one state (a pack's writer): each distinct quad summed once
+    big: Map<Handle, BigUint>,
 }
 
 impl Counter {
     /// The population of `quad` (of `level`), memoised up to level 31.
     pub(crate) fn population(&mut self, store: &Store, quad: Handle, level: u32) -> BigUint {
         if level <= 31 {
-            BigUint::from(self.count(store, quad, level))
-        } else {
-            population(store, quad, level)
+            return BigUint::from(self.count(store, quad, level));
         }
+        if let Some(known) = self.big.get(&quad) {
+            return known.clone();
+        }
+        // Post-order over the quads above level 31 not summed yet, without
+        // recursion (levels can be hundreds of thousands deep).
+        let mut stack = vec![(quad, level, false)];
+        while let Some((at, level, expanded)) = stack.pop() {
+            if self.big.contains_key(&at) {
+                continue;
+            }
+            if at == store.known_empty(level) {
+                self.big.insert(at, BigUint::default());
+                continue;
+            }
+            let kids = store.kids(at);
+            if !expanded {
+                stack.push((at, level, true));
+                if level - 1 > 31 {
+                    for kid in kids {
+                        if !self.big.contains_key(&kid) {
+                            stack.push((kid, level - 1, false));
+                        }
+                    }
+                }
+                continue;
+            }
+            let mut total = BigUint::default();
+            for kid in kids {
+                if level - 1 <= 31 {
+                    total += self.count(store, kid, level - 1);
+                } else {
+                    total += &self.big[&kid];
+                }
+            }
+            self.big.insert(at, total);
+        }
+        self.big[&quad].clone()
     }
 
     fn count(&mut self, store: &Store, quad: Handle, level: u32) -> u64 {

@@ -35,12 +35,22 @@ fn spawned(
     advance: &Advance,
     work: impl std::future::Future<Output = Result<ContentId, Failure>> + Send + 'static,
 ) -> Pending {
-    let handle = tokio::spawn(work);
-    advance
-        .spawned
-        .lock()
-        .expect("spawned")
-        .push(handle.abort_handle());
+    let running = advance.running.clone();
+    let handle = tokio::spawn({
+        let running = running.clone();
+        async move {
+            let outcome = work.await;
+            running.lock().expect("running").remove(&tokio::task::id());
+            outcome
+        }
+    });
+    {
+        let mut running = running.lock().expect("running");
+        running.insert(handle.id(), handle.abort_handle());
+        if handle.is_finished() {
+            running.remove(&handle.id());
+        }
+    }
     async move {
         match handle.await {
             Ok(outcome) => outcome,
@@ -61,8 +71,12 @@ pub struct Advance {
     steps: BigUint,
     trailing_zeros: u64,
     memo: Mutex<HashMap<(ContentId, Kind), Pending>>,
-    /// every sub-advance spawned, to stop them all when one fails
-    spawned: Mutex<Vec<tokio::task::AbortHandle>>,
+    /// set when one sub-advance failed: the others stop at their next step
+    cancelled: std::sync::atomic::AtomicBool,
+    /// the sub-advances running now, to stop them at once when one fails
+    /// (only running ones: a handle kept per finished task would keep its
+    /// memory until the advance ends)
+    running: Arc<Mutex<HashMap<tokio::task::Id, tokio::task::AbortHandle>>>,
 }
 
 impl Advance {
@@ -82,7 +96,8 @@ impl Advance {
             steps,
             trailing_zeros,
             memo: Mutex::new(HashMap::new()),
-            spawned: Mutex::new(Vec::new()),
+            cancelled: std::sync::atomic::AtomicBool::new(false),
+            running: Arc::new(Mutex::new(HashMap::new())),
         })
     }
 
@@ -101,12 +116,19 @@ impl Advance {
             })
     }
 
-    /// Stops every sub-advance still running (after one failed).
+    /// Stops every sub-advance still running (after one failed): each
+    /// fails at its next step, and no new task is sent.
     pub fn abort_all(&self) {
-        for handle in self.spawned.lock().expect("spawned").drain(..) {
-            handle.abort();
-        }
+        self.cancelled
+            .store(true, std::sync::atomic::Ordering::Relaxed);
         self.memo.lock().expect("memo").clear();
+    }
+
+    fn check_cancelled(&self) -> Result<(), Failure> {
+        if self.cancelled.load(std::sync::atomic::Ordering::Relaxed) {
+            return Err(Arc::new(anyhow::anyhow!("the advance was stopped")));
+        }
+        Ok(())
     }
 
     fn bit(&self, index: u32) -> bool {
@@ -170,6 +192,7 @@ impl Advance {
     }
 
     async fn task(&self, kids: [ContentId; 4], steps: u64) -> Result<ContentId, Failure> {
+        self.check_cancelled()?;
         self.tasks
             .advance(&self.job, self.shard_level, kids, steps)
             .await

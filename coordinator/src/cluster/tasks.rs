@@ -284,7 +284,23 @@ impl Dispatcher {
             let sent = std::time::Instant::now();
             // A member lost meanwhile (its lease lapsed) fails the call now.
             let mut client = member.client.clone();
-            let outcome = until_lost(&member, client.advance(request)).await;
+            // The call also ends when a node it fetches from is lost: the
+            // task is then tried again with the sources that are left.
+            let holders: Vec<Arc<Member>> = score
+                .keys()
+                .filter(|id| **id != member.id)
+                .filter_map(|id| self.members.get(*id))
+                .collect();
+            let source_lost = async {
+                if holders.is_empty() {
+                    return std::future::pending::<()>().await;
+                }
+                futures::future::select_all(holders.iter().map(|m| Box::pin(m.lost()))).await;
+            };
+            let outcome = tokio::select! {
+                outcome = until_lost(&member, client.advance(request)) => outcome,
+                () = source_lost => Err(tonic::Status::aborted("a node holding its input was lost")),
+            };
             self.round_trip_us
                 .fetch_add(sent.elapsed().as_micros() as u64, Ordering::Relaxed);
             member.running.fetch_sub(1, Ordering::Relaxed);
