@@ -506,3 +506,26 @@ fn a_node_that_stops_answering_loses_its_lease_and_the_run_goes_on() {
     assert_same_figures(&report, &single);
     assert_checkpoints_hold(dir.path(), &report);
 }
+
+#[test]
+fn nodes_that_join_mid_run_are_used_at_once() {
+    // One node starts the run; two more join after a few checkpoints and
+    // must get tasks before the end (common practice for elastic workers).
+    let dir = temp_dir();
+    let job = long_job(dir.path());
+    let mut cluster = Cluster::start(&job, 1, &["--shard-level", "6"]);
+    cluster.add_nodes(1, "256MiB", &[]);
+    cluster.wait_for_checkpoints(3);
+    cluster.add_nodes(2, "256MiB", &[]);
+    let (report, _) = cluster.report();
+    let tasks: Vec<u64> = report["cluster"]["node_tasks"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|n| n.as_u64().unwrap())
+        .collect();
+    assert_eq!(tasks.len(), 3, "{report}");
+    assert!(tasks.iter().all(|&n| n > 0), "tasks per node {tasks:?}");
+    let single = evolve(&dir.path().join("soup.rle"), "3000", "B3/S23");
+    assert_same_figures(&report, &single);
+}
