@@ -6,35 +6,17 @@
 //! must get UNAUTHENTICATED and change nothing.
 
 use std::io::{BufRead, BufReader, Read};
-use std::net::TcpListener;
 use std::path::{Path, PathBuf};
 use std::process::{Child, Command, Stdio};
 use std::sync::mpsc;
 use std::sync::{Arc, Mutex};
 use std::time::{Duration, Instant};
 
-use deeptime_tests::{Run, deeptime_bin, python, run_deeptime, run_program, temp_dir};
+use deeptime_tests::{
+    Processes, Run, deeptime_bin, evolve_report, free_port, python, run_deeptime, run_program,
+    soup, temp_dir, write_job,
+};
 use serde_json::Value;
-
-/// Child processes, killed when the test ends however it ends.
-struct Processes(Vec<Child>);
-
-impl Drop for Processes {
-    fn drop(&mut self) {
-        for child in &mut self.0 {
-            let _ = child.kill();
-            let _ = child.wait();
-        }
-    }
-}
-
-fn free_port() -> u16 {
-    TcpListener::bind("127.0.0.1:0")
-        .unwrap()
-        .local_addr()
-        .unwrap()
-        .port()
-}
 
 fn start_node(coordinator: u16, token: &Path, memory: &str) -> Child {
     Command::new(deeptime_bin())
@@ -46,50 +28,6 @@ fn start_node(coordinator: u16, token: &Path, memory: &str) -> Child {
         .stderr(Stdio::null())
         .spawn()
         .unwrap()
-}
-
-fn write_job(dir: &Path, pattern: &str, rule: &str, target: &str, every: &str) -> PathBuf {
-    let path = dir.join("job.toml");
-    std::fs::write(
-        &path,
-        format!(
-            "version = 1\nname = \"api\"\npattern = \"{pattern}\"\nrule = \"{rule}\"\n\
-             target = \"{target}\"\n[checkpoint]\ndir = \"runs\"\nevery = \"{every}\"\n"
-        ),
-    )
-    .unwrap();
-    path
-}
-
-/// A seeded soup, as in the other whole-system tests.
-fn soup(side: usize) -> String {
-    let mut state = 0x2545_f491_4f6c_dd1du64;
-    let mut rows = Vec::new();
-    for _ in 0..side {
-        let mut row = String::new();
-        for _ in 0..side {
-            state ^= state << 13;
-            state ^= state >> 7;
-            state ^= state << 17;
-            row.push(if state % 8 < 3 { 'o' } else { 'b' });
-        }
-        rows.push(row);
-    }
-    format!("x = {side}, y = {side}\n{}!", rows.join("$"))
-}
-
-fn evolve(pattern: &Path, gens: &str, rule: &str) -> Value {
-    let run = run_deeptime([
-        "evolve".as_ref(),
-        pattern.as_os_str(),
-        "--gens".as_ref(),
-        gens.as_ref(),
-        "--rule".as_ref(),
-        rule.as_ref(),
-        "--json".as_ref(),
-    ]);
-    run.assert_success();
-    serde_json::from_str(&run.stdout).unwrap()
 }
 
 fn client_script() -> PathBuf {
@@ -249,9 +187,17 @@ fn a_python_client_reads_the_same_status_as_deeptime_and_wrong_tokens_change_not
     let dir = temp_dir();
     // Shard level 6 (pieces of 32×32 cells): a 64×64 soup spans several
     // pieces, so both nodes run tasks.
-    std::fs::write(dir.path().join("soup.rle"), soup(64)).unwrap();
+    std::fs::write(dir.path().join("soup.rle"), soup(64, 0x2545_f491_4f6c_dd1d)).unwrap();
     let (target, rule, nodes) = ("200", "B36/S23", 2);
-    let job = write_job(dir.path(), "soup.rle", rule, target, "100");
+    let job = write_job(
+        dir.path(),
+        "job.toml",
+        "api",
+        "soup.rle",
+        rule,
+        target,
+        "100",
+    );
     // Our own token (the coordinator uses a token file that exists), ending
     // in 0 so that the decoy below is one character away from it.
     let token = dir.path().join("cluster.token");
@@ -287,7 +233,7 @@ fn a_python_client_reads_the_same_status_as_deeptime_and_wrong_tokens_change_not
     let report = coordinator.report(Duration::from_secs(300));
     // The cluster's figures are a single process's (common practice: a
     // distributed run is checked against the sequential one).
-    let single = evolve(&dir.path().join("soup.rle"), target, rule);
+    let single = evolve_report(&dir.path().join("soup.rle"), target, rule);
     for field in ["generation", "population", "digest", "rule"] {
         assert_eq!(
             report[field], single[field],

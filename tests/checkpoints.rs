@@ -8,37 +8,20 @@ use std::path::{Path, PathBuf};
 use std::process::{Command, Stdio};
 use std::time::Duration;
 
-use deeptime_tests::{Run, deeptime_bin, run_deeptime, temp_dir};
+use deeptime_tests::{Run, deeptime_bin, run_deeptime, soup, temp_dir, write_job};
 
 /// A seeded `side`×`side` soup and a job over it in `dir`.
 fn job_of(dir: &Path, side: usize, target: u32, every: u32, rule: &str) -> PathBuf {
-    let mut state = 0x9e37_79b9_7f4a_7c15u64;
-    let mut rows = Vec::new();
-    for _ in 0..side {
-        let mut row = String::new();
-        for _ in 0..side {
-            state ^= state << 13;
-            state ^= state >> 7;
-            state ^= state << 17;
-            row.push(if state % 8 < 3 { 'o' } else { 'b' });
-        }
-        rows.push(row);
-    }
-    std::fs::write(
-        dir.join("soup.rle"),
-        format!("x = {side}, y = {side}\n{}!", rows.join("$")),
+    std::fs::write(dir.join("soup.rle"), soup(side, 0x9e37_79b9_7f4a_7c15)).unwrap();
+    write_job(
+        dir,
+        "soup.toml",
+        "soup",
+        "soup.rle",
+        rule,
+        &target.to_string(),
+        &every.to_string(),
     )
-    .unwrap();
-    let path = dir.join("soup.toml");
-    std::fs::write(
-        &path,
-        format!(
-            "version = 1\nname = \"soup\"\npattern = \"soup.rle\"\nrule = \"{rule}\"\n\
-             target = \"{target}\"\n[checkpoint]\ndir = \"runs\"\nevery = \"{every}\"\n"
-        ),
-    )
-    .unwrap();
-    path
 }
 
 /// Points the job at another checkpoint folder (or URL).

@@ -4,32 +4,11 @@
 //! box (common practice: a distributed run is checked against the
 //! sequential one).
 
-use std::net::TcpListener;
 use std::path::{Path, PathBuf};
 use std::process::{Child, Command, Stdio};
 use std::time::{Duration, Instant};
 
-use deeptime_tests::{deeptime_bin, run_deeptime, temp_dir};
-
-/// Child processes, killed when the test ends however it ends.
-struct Processes(Vec<Child>);
-
-impl Drop for Processes {
-    fn drop(&mut self) {
-        for child in &mut self.0 {
-            let _ = child.kill();
-            let _ = child.wait();
-        }
-    }
-}
-
-fn free_port() -> u16 {
-    TcpListener::bind("127.0.0.1:0")
-        .unwrap()
-        .local_addr()
-        .unwrap()
-        .port()
-}
+use deeptime_tests::{Processes, deeptime_bin, evolve_report, free_port, run_deeptime, temp_dir};
 
 /// How a coordinator ended.
 struct Outcome {
@@ -216,48 +195,15 @@ fn assert_checkpoints_hold(dir: &Path, report: &serde_json::Value) {
     assert_eq!(newest["digest"], report["digest"], "{newest}");
 }
 
-fn evolve(pattern: &Path, gens: &str, rule: &str) -> serde_json::Value {
-    let run = run_deeptime([
-        "evolve".as_ref(),
-        pattern.as_os_str(),
-        "--gens".as_ref(),
-        gens.as_ref(),
-        "--rule".as_ref(),
-        rule.as_ref(),
-        "--json".as_ref(),
-    ]);
-    run.assert_success();
-    serde_json::from_str(&run.stdout).unwrap()
+/// This file's soups.
+const SEED: u64 = 0x2545_f491_4f6c_dd1d;
+
+fn soup(side: usize) -> String {
+    deeptime_tests::soup(side, SEED)
 }
 
 fn write_job(dir: &Path, pattern: &str, rule: &str, target: &str, every: &str) -> PathBuf {
-    let path = dir.join("job.toml");
-    std::fs::write(
-        &path,
-        format!(
-            "version = 1\nname = \"loopback\"\npattern = \"{pattern}\"\nrule = \"{rule}\"\n\
-             target = \"{target}\"\n[checkpoint]\ndir = \"runs\"\nevery = \"{every}\"\n"
-        ),
-    )
-    .unwrap();
-    path
-}
-
-/// A seeded soup, as in the other whole-system tests.
-fn soup(side: usize) -> String {
-    let mut state = 0x2545_f491_4f6c_dd1du64;
-    let mut rows = Vec::new();
-    for _ in 0..side {
-        let mut row = String::new();
-        for _ in 0..side {
-            state ^= state << 13;
-            state ^= state >> 7;
-            state ^= state << 17;
-            row.push(if state % 8 < 3 { 'o' } else { 'b' });
-        }
-        rows.push(row);
-    }
-    format!("x = {side}, y = {side}\n{}!", rows.join("$"))
+    deeptime_tests::write_job(dir, "job.toml", "loopback", pattern, rule, target, every)
 }
 
 fn assert_same_figures(cluster: &serde_json::Value, single: &serde_json::Value) {
@@ -276,7 +222,7 @@ fn three_nodes_give_the_single_process_figures_on_the_demo_pattern() {
     std::fs::copy(&demo, dir.path().join("lighthouse.rle")).unwrap();
     let job = write_job(dir.path(), "lighthouse.rle", "B3/S23", "30000", "10000");
     let cluster = run_cluster(&job, 3, &[]);
-    let single = evolve(&dir.path().join("lighthouse.rle"), "30000", "B3/S23");
+    let single = evolve_report(&dir.path().join("lighthouse.rle"), "30000", "B3/S23");
     assert_same_figures(&cluster, &single);
     assert_eq!(cluster["cluster"]["nodes"], 3);
 }
@@ -329,7 +275,7 @@ fn three_nodes_give_the_single_process_figures_on_a_soup_that_spans_many_pieces(
     std::fs::write(dir.path().join("soup.rle"), soup(96)).unwrap();
     let job = write_job(dir.path(), "soup.rle", "B36/S23", "200", "64");
     let cluster = run_cluster(&job, 3, &["--shard-level", "6"]);
-    let single = evolve(&dir.path().join("soup.rle"), "200", "B36/S23");
+    let single = evolve_report(&dir.path().join("soup.rle"), "200", "B36/S23");
     assert_same_figures(&cluster, &single);
     // Checkpoints at 64, 128, 192 and 200 (and 0), readable as any run's.
     assert_checkpoints_hold(dir.path(), &cluster);
@@ -388,7 +334,7 @@ fn a_state_too_big_for_one_node_runs_on_four_nodes_of_the_same_size() {
     let four = run_cluster_with(&job, 4, "4MiB", &["--shard-level", "8"]);
     assert_eq!(four.code, Some(0), "{}", four.stderr);
     let cluster: serde_json::Value = serde_json::from_str(&four.stdout).unwrap();
-    let single = evolve(&dir.path().join("soup.rle"), "32", "B3/S23");
+    let single = evolve_report(&dir.path().join("soup.rle"), "32", "B3/S23");
     assert_same_figures(&cluster, &single);
 }
 
@@ -410,7 +356,7 @@ fn a_node_killed_mid_run_costs_a_rollback_and_the_figures_stay_the_same() {
     let (report, stderr) = cluster.report();
     assert!(stderr.contains("lost"), "{stderr}");
     assert!(stderr.contains("rolling back"), "{stderr}");
-    let single = evolve(&dir.path().join("soup.rle"), "3000", "B3/S23");
+    let single = evolve_report(&dir.path().join("soup.rle"), "3000", "B3/S23");
     assert_same_figures(&report, &single);
     assert_checkpoints_hold(dir.path(), &report);
 }
@@ -433,7 +379,7 @@ fn a_coordinator_killed_and_started_again_resumes_and_the_figures_stay_the_same(
         stderr.contains("pieces are on the nodes already"),
         "{stderr}"
     );
-    let single = evolve(&dir.path().join("soup.rle"), "3000", "B3/S23");
+    let single = evolve_report(&dir.path().join("soup.rle"), "3000", "B3/S23");
     assert_same_figures(&report, &single);
     assert_checkpoints_hold(dir.path(), &report);
 }
@@ -483,7 +429,7 @@ fn a_cluster_over_tls_gives_the_single_process_figures() {
     let mut cluster = Cluster::start(&job, 2, &with_level);
     cluster.add_nodes(2, "64MiB", &tls);
     let (report, _) = cluster.report();
-    let single = evolve(&dir.path().join("soup.rle"), "200", "B3/S23");
+    let single = evolve_report(&dir.path().join("soup.rle"), "200", "B3/S23");
     assert_same_figures(&report, &single);
 }
 
@@ -502,7 +448,7 @@ fn a_node_that_stops_answering_loses_its_lease_and_the_run_goes_on() {
     // SAFETY: as above; let it go so that it can be killed and reaped.
     unsafe { libc::kill(stopped, libc::SIGCONT) };
     assert!(stderr.contains("lost"), "{stderr}");
-    let single = evolve(&dir.path().join("soup.rle"), "3000", "B3/S23");
+    let single = evolve_report(&dir.path().join("soup.rle"), "3000", "B3/S23");
     assert_same_figures(&report, &single);
     assert_checkpoints_hold(dir.path(), &report);
 }
@@ -526,6 +472,6 @@ fn nodes_that_join_mid_run_are_used_at_once() {
         .collect();
     assert_eq!(tasks.len(), 3, "{report}");
     assert!(tasks.iter().all(|&n| n > 0), "tasks per node {tasks:?}");
-    let single = evolve(&dir.path().join("soup.rle"), "3000", "B3/S23");
+    let single = evolve_report(&dir.path().join("soup.rle"), "3000", "B3/S23");
     assert_same_figures(&report, &single);
 }

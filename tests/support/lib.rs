@@ -154,3 +154,82 @@ pub fn temp_dir() -> tempfile::TempDir {
         .tempdir()
         .expect("a temporary folder")
 }
+
+/// Child processes, killed and reaped when the value is dropped (however
+/// the test ends).
+pub struct Processes(pub Vec<std::process::Child>);
+
+impl Drop for Processes {
+    fn drop(&mut self) {
+        for child in &mut self.0 {
+            let _ = child.kill();
+            let _ = child.wait();
+        }
+    }
+}
+
+/// A loopback port nobody listens on now.
+pub fn free_port() -> u16 {
+    std::net::TcpListener::bind("127.0.0.1:0")
+        .expect("a loopback port")
+        .local_addr()
+        .expect("its address")
+        .port()
+}
+
+/// A `side`×`side` soup as RLE: 3/8 of the cells alive, from a xorshift
+/// generator started at `seed` (each test file keeps its own seed).
+pub fn soup(side: usize, seed: u64) -> String {
+    let mut state = seed;
+    let mut rows = Vec::new();
+    for _ in 0..side {
+        let mut row = String::new();
+        for _ in 0..side {
+            state ^= state << 13;
+            state ^= state >> 7;
+            state ^= state << 17;
+            row.push(if state % 8 < 3 { 'o' } else { 'b' });
+        }
+        rows.push(row);
+    }
+    format!("x = {side}, y = {side}\n{}!", rows.join("$"))
+}
+
+/// Writes the job file `file` in `dir`: job `name`, checkpoints in
+/// `dir/runs`. Returns its path.
+pub fn write_job(
+    dir: &Path,
+    file: &str,
+    name: &str,
+    pattern: &str,
+    rule: &str,
+    target: &str,
+    every: &str,
+) -> PathBuf {
+    let path = dir.join(file);
+    std::fs::write(
+        &path,
+        format!(
+            "version = 1\nname = \"{name}\"\npattern = \"{pattern}\"\nrule = \"{rule}\"\n\
+             target = \"{target}\"\n[checkpoint]\ndir = \"runs\"\nevery = \"{every}\"\n"
+        ),
+    )
+    .expect("the job file");
+    path
+}
+
+/// `deeptime evolve PATTERN --gens GENS --rule RULE --json`, succeeded: its
+/// report.
+pub fn evolve_report(pattern: &Path, gens: &str, rule: &str) -> serde_json::Value {
+    let run = run_deeptime([
+        "evolve".as_ref(),
+        pattern.as_os_str(),
+        "--gens".as_ref(),
+        gens.as_ref(),
+        "--rule".as_ref(),
+        rule.as_ref(),
+        "--json".as_ref(),
+    ]);
+    run.assert_success();
+    serde_json::from_str(&run.stdout).expect("evolve --json prints one object")
+}
