@@ -71,17 +71,8 @@ pub struct CoordinatorArgs {
     #[arg(long)]
     pub stay: bool,
 
-    /// Serve TLS with this certificate (PEM), with --tls-key
-    #[arg(long)]
-    pub tls_cert: Option<PathBuf>,
-
-    /// The private key (PEM) of --tls-cert
-    #[arg(long)]
-    pub tls_key: Option<PathBuf>,
-
-    /// The authority (PEM) that signs the nodes' certificates, for https:// nodes
-    #[arg(long)]
-    pub tls_ca: Option<PathBuf>,
+    #[command(flatten)]
+    pub tls: TlsArgs,
 }
 
 #[derive(Args, Debug)]
@@ -106,17 +97,8 @@ pub struct NodeArgs {
     #[arg(long)]
     pub token_file: PathBuf,
 
-    /// Serve TLS with this certificate (PEM), with --tls-key
-    #[arg(long)]
-    pub tls_cert: Option<PathBuf>,
-
-    /// The private key (PEM) of --tls-cert
-    #[arg(long)]
-    pub tls_key: Option<PathBuf>,
-
-    /// The authority (PEM) that signs the coordinator's and peers' certificates
-    #[arg(long)]
-    pub tls_ca: Option<PathBuf>,
+    #[command(flatten)]
+    pub tls: TlsArgs,
 }
 
 #[derive(Args, Debug)]
@@ -241,4 +223,32 @@ pub struct PruneArgs {
     /// How many of the newest checkpoints to keep (at least 1)
     #[arg(long, value_name = "N")]
     pub keep: usize,
+}
+
+/// TLS for the cluster roles: their own certificate and key (to serve TLS)
+/// and the authority that signs the other processes' certificates.
+#[derive(Args, Debug)]
+pub struct TlsArgs {
+    /// Serve TLS with this certificate (PEM), with --tls-key
+    #[arg(long)]
+    pub tls_cert: Option<PathBuf>,
+
+    /// The private key (PEM) of --tls-cert
+    #[arg(long)]
+    pub tls_key: Option<PathBuf>,
+
+    /// The authority (PEM) that signs the other processes' certificates,
+    /// for https:// URLs
+    #[arg(long)]
+    pub tls_ca: Option<PathBuf>,
+}
+
+impl TlsArgs {
+    pub fn files(&self) -> deeptime_node::wire::TlsFiles {
+        deeptime_node::wire::TlsFiles {
+            cert: self.tls_cert.clone(),
+            key: self.tls_key.clone(),
+            ca: self.tls_ca.clone(),
+        }
+    }
 }

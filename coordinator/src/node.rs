@@ -1,6 +1,5 @@
 //! `deeptime node`: the node role, from the command line to the node crate.
 
-use deeptime_node::wire::TlsFiles;
 use deeptime_node::{NodeConfig, run_node};
 
 use crate::cli::NodeArgs;
@@ -21,11 +20,7 @@ pub fn run(args: NodeArgs) -> anyhow::Result<()> {
         advertise: args.advertise,
         budget: memory::budget(args.memory.as_deref())?,
         token_file: args.token_file,
-        tls: TlsFiles {
-            cert: args.tls_cert,
-            key: args.tls_key,
-            ca: args.tls_ca,
-        },
+        tls: args.tls.files(),
     };
     let runtime = tokio::runtime::Builder::new_multi_thread()
         .enable_all()

@@ -68,6 +68,11 @@ pub fn corner_child(i: usize, j: usize) -> Option<usize> {
     }
 }
 
+/// Of each child (nw, ne, sw, se), the three grandchildren away from the
+/// quad's centre: a quad's live cells lie in its centre half iff these are
+/// all empty.
+pub const AWAY_FROM_CENTRE: [[usize; 3]; 4] = [[0, 1, 2], [0, 1, 3], [0, 2, 3], [1, 2, 3]];
+
 /// The four second-phase squares, in the order of the result's quarters.
 pub const SECOND_PHASE: [(usize, usize); 4] = [(0, 0), (0, 1), (1, 0), (1, 1)];
 

@@ -768,10 +768,10 @@ pub(crate) fn fits_centre_half(store: &Store, quad: Handle, level: u32) -> bool 
             .all(|(&leaf, inner)| store.leaf_bits(leaf) & !inner == 0);
     }
     let empty = store.known_empty(level - 2);
-    // Of each child, the three grandchildren away from the centre.
-    let outer = [[0, 1, 2], [0, 1, 3], [0, 2, 3], [1, 2, 3]];
-    kids.iter().zip(outer).all(|(&kid, away)| {
-        let grand = store.kids(kid);
-        away.iter().all(|&at| grand[at] == empty)
-    })
+    kids.iter()
+        .zip(crate::recursion::AWAY_FROM_CENTRE)
+        .all(|(&kid, away)| {
+            let grand = store.kids(kid);
+            away.iter().all(|&at| grand[at] == empty)
+        })
 }

@@ -148,7 +148,7 @@ impl Run<'_> {
         let ids: Vec<ContentId> = cut.pieces.iter().map(|p| p.id).collect();
         let mut warm: std::collections::HashMap<ContentId, usize> = Default::default();
         for (at, member) in live.iter().enumerate() {
-            for id in self.tasks.pieces_at(self.job_id, member, &ids).await {
+            for id in self.tasks.pieces_at(member, &ids).await {
                 warm.entry(id).or_insert(at);
             }
         }

@@ -20,7 +20,7 @@ use anyhow::{Context, anyhow};
 use deeptime_engine::Universe;
 use deeptime_engine::shard::MAX_SHARD_LEVEL;
 use deeptime_node::auth::{CheckToken, Token};
-use deeptime_node::wire::{MAX_MESSAGE_BYTES, TlsFiles};
+use deeptime_node::wire::MAX_MESSAGE_BYTES;
 use deeptime_proto::v1;
 use serde::Serialize;
 use tonic::service::interceptor::InterceptedService;
@@ -134,11 +134,7 @@ async fn coordinate(args: CoordinatorArgs) -> anyhow::Result<()> {
         None => choose_shard_level(side, args.min_nodes),
     };
     let token = token_for_coordinator(&args.token_file)?;
-    let tls = TlsFiles {
-        cert: args.tls_cert.clone(),
-        key: args.tls_key.clone(),
-        ca: args.tls_ca.clone(),
-    };
+    let tls = args.tls.files();
     let job_id = format!("{pattern_digest}-{rule}");
     let members = Arc::new(Members::new(
         token.clone(),
@@ -214,15 +210,16 @@ async fn coordinate(args: CoordinatorArgs) -> anyhow::Result<()> {
     let outcome = match outcome {
         Ok(report) => {
             board.status.lock().expect("board").state = "done".to_string();
+            let counters = tasks.counters();
             let figures = ClusterFigures {
                 nodes: members.all().len(),
                 shard_level,
-                tasks: tasks.counters().done,
-                tasks_memoised: tasks.counters().memoised,
-                records_fetched: tasks.counters().records_fetched,
-                bytes_fetched: tasks.counters().bytes_fetched,
-                bytes_fetched_lacked: tasks.counters().bytes_lacked,
-                fetch_calls: tasks.counters().fetch_calls,
+                tasks: counters.done,
+                tasks_memoised: counters.memoised,
+                records_fetched: counters.records_fetched,
+                bytes_fetched: counters.bytes_fetched,
+                bytes_fetched_lacked: counters.bytes_lacked,
+                fetch_calls: counters.fetch_calls,
                 peak_bytes: members
                     .all()
                     .iter()
@@ -233,8 +230,8 @@ async fn coordinate(args: CoordinatorArgs) -> anyhow::Result<()> {
                     .iter()
                     .map(|m| m.done.load(std::sync::atomic::Ordering::Relaxed))
                     .collect(),
-                compute_seconds: tasks.counters().compute_us as f64 / 1e6,
-                task_seconds: tasks.counters().round_trip_us as f64 / 1e6,
+                compute_seconds: counters.compute_us as f64 / 1e6,
+                task_seconds: counters.round_trip_us as f64 / 1e6,
             };
             if args.json {
                 println!(

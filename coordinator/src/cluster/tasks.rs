@@ -448,13 +448,7 @@ impl Dispatcher {
     /// Which of `pieces` a member has now (any failure: none). A node has a
     /// quad only with everything under it, so a piece it has needs no
     /// records, only to be held.
-    pub async fn pieces_at(
-        &self,
-        job: &str,
-        member: &Member,
-        pieces: &[ContentId],
-    ) -> Vec<ContentId> {
-        let _ = job;
+    pub async fn pieces_at(&self, member: &Member, pieces: &[ContentId]) -> Vec<ContentId> {
         let mut have = Vec::new();
         for batch in pieces.chunks(MAX_BATCH) {
             let mut client = member.client.clone();

@@ -93,11 +93,12 @@ impl Upper {
     pub fn fits_centre_half(&mut self, id: &ContentId, level: u32) -> bool {
         let empty = self.empty(level - 2);
         let kids = self.kids(id, level);
-        let outer = [[0, 1, 2], [0, 1, 3], [0, 2, 3], [1, 2, 3]];
-        kids.iter().zip(outer).all(|(kid, away)| {
-            let grand = self.kids(kid, level - 1);
-            away.iter().all(|&at| grand[at] == empty)
-        })
+        kids.iter()
+            .zip(recursion::AWAY_FROM_CENTRE)
+            .all(|(kid, away)| {
+                let grand = self.kids(kid, level - 1);
+                away.iter().all(|&at| grand[at] == empty)
+            })
     }
 
     /// Doubles a root of `level` around the origin; returns the new root.
