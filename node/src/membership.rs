@@ -4,7 +4,6 @@
 //! the token ends the node with a clear error.
 
 use std::sync::Arc;
-use std::sync::atomic::Ordering;
 use std::time::Duration;
 
 use deeptime_engine::shard::Shard;
@@ -111,8 +110,14 @@ async fn renew_until_lapsed(
 ) -> Result<(), Refused> {
     let every = Duration::from_millis(reply.renew_every_ms.clamp(50, 60_000));
     let mut missed = 0;
+    // The first renewal goes at once: it tells the coordinator that this
+    // node has taken the job's terms and can take tasks.
+    let mut first = true;
     loop {
-        tokio::time::sleep(every).await;
+        if !first {
+            tokio::time::sleep(every).await;
+        }
+        first = false;
         let (quads, bytes) = {
             let guard = state.shard.lock().expect("shard");
             guard
@@ -141,7 +146,6 @@ async fn renew_until_lapsed(
                 }
             }
         }
-        let _ = state.tasks_done.load(Ordering::Relaxed);
     }
 }
 

@@ -20,7 +20,11 @@ pub struct Member {
     pub id: u64,
     pub address: String,
     pub client: NodeClient,
+    /// false once the member is lost
     pub live: AtomicBool,
+    /// true from its first renewal: the node has taken the job's terms and
+    /// can take tasks (before, a task could reach it ahead of its join reply)
+    pub ready: AtomicBool,
     pub running: AtomicU64,
     pub done: AtomicU64,
     pub permits: Semaphore,
@@ -35,7 +39,12 @@ pub struct Member {
 }
 
 impl Member {
+    /// Holds a lease and has taken the job's terms: tasks may go to it.
     pub fn is_live(&self) -> bool {
+        self.live.load(Ordering::Relaxed) && self.ready.load(Ordering::Relaxed)
+    }
+
+    fn holds_lease(&self) -> bool {
         self.live.load(Ordering::Relaxed)
     }
 
@@ -99,6 +108,7 @@ impl Members {
     /// Marks a member lost (its lease lapsed or it stopped answering).
     pub fn lose(&self, member: &Member, why: &str) {
         if member.live.swap(false, Ordering::Relaxed) {
+            member.ready.store(false, Ordering::Relaxed);
             member.lost.send_replace(true);
             eprintln!(
                 "deeptime: node {} ({}) lost: {why}",
@@ -126,6 +136,7 @@ impl Members {
             address: request.address.clone(),
             client,
             live: AtomicBool::new(true),
+            ready: AtomicBool::new(false),
             running: AtomicU64::new(0),
             done: AtomicU64::new(0),
             permits: Semaphore::new(TASKS_PER_MEMBER),
@@ -152,12 +163,15 @@ impl Members {
     }
 
     fn renew(&self, request: v1::RenewRequest) -> v1::RenewReply {
-        let Some(member) = self.get(request.member).filter(|m| m.is_live()) else {
+        let Some(member) = self.get(request.member).filter(|m| m.holds_lease()) else {
             return v1::RenewReply { member: false };
         };
         *member.lease_until.lock().expect("lease") = Instant::now() + 3 * RENEW_EVERY;
         member.quads.store(request.quads, Ordering::Relaxed);
         member.report_bytes(request.bytes);
+        if !member.ready.swap(true, Ordering::Relaxed) {
+            self.changed.notify_waiters();
+        }
         v1::RenewReply { member: true }
     }
 
@@ -166,7 +180,7 @@ impl Members {
         loop {
             tokio::time::sleep(RENEW_EVERY).await;
             let now = Instant::now();
-            for member in self.live() {
+            for member in self.all().into_iter().filter(|m| m.holds_lease()) {
                 if *member.lease_until.lock().expect("lease") < now {
                     self.lose(&member, "its lease lapsed");
                 }
@@ -226,7 +240,14 @@ impl v1::coordinator_server::Coordinator for CoordinatorService {
             .map(|m| v1::MemberStatus {
                 member: m.id,
                 address: m.address.clone(),
-                state: if m.is_live() { "live" } else { "lost" }.to_string(),
+                state: if m.is_live() {
+                    "live"
+                } else if m.holds_lease() {
+                    "joining"
+                } else {
+                    "lost"
+                }
+                .to_string(),
                 holds: holds.get(&m.id).copied().unwrap_or(0),
                 tasks_done: m.done.load(Ordering::Relaxed),
                 tasks_running: m.running.load(Ordering::Relaxed),

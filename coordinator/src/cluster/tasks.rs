@@ -325,7 +325,13 @@ impl Dispatcher {
                     self.record_holding(id, member.id, figures);
                     return Ok(id);
                 }
-                Err(status) if wire::is_unreachable(&status) => {
+                // A node that answers it has no terms (or another job's)
+                // started again behind this member's address: what the
+                // member held is gone with it.
+                Err(status)
+                    if wire::is_unreachable(&status)
+                        || status.code() == tonic::Code::FailedPrecondition =>
+                {
                     self.members.lose(&member, status.message());
                     last = PiecesLost(format!(
                         "node {} ({}): {}",
