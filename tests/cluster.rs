@@ -25,6 +25,21 @@ struct Cluster {
     extra: Vec<String>,
     coordinator: Option<Child>,
     nodes: Processes,
+    /// the job's checkpoint folder, given to nodes as --checkpoint-dir so
+    /// that they write their own packs (None: the coordinator gathers)
+    node_checkpoints: Option<PathBuf>,
+}
+
+/// The checkpoint folder a job file of these tests names (`dir = "..."`),
+/// relative to the job file.
+fn checkpoint_dir_of(job: &Path) -> PathBuf {
+    let text = std::fs::read_to_string(job).unwrap();
+    let line = text
+        .lines()
+        .find(|line| line.trim_start().starts_with("dir"))
+        .expect("a checkpoint dir in the job");
+    let value = line.split('=').nth(1).unwrap().trim().trim_matches('"');
+    job.parent().unwrap().join(value)
 }
 
 impl Cluster {
@@ -37,6 +52,7 @@ impl Cluster {
             extra: extra.iter().map(|s| s.to_string()).collect(),
             coordinator: None,
             nodes: Processes(Vec::new()),
+            node_checkpoints: Some(checkpoint_dir_of(job)),
         };
         cluster.start_coordinator(min_nodes);
         cluster
@@ -75,6 +91,11 @@ impl Cluster {
                 .args(["--listen", "127.0.0.1:0", "--memory", memory])
                 .arg("--token-file")
                 .arg(&self.token)
+                .args(
+                    self.node_checkpoints
+                        .iter()
+                        .flat_map(|dir| ["--checkpoint-dir".as_ref(), dir.as_os_str()]),
+                )
                 .args(extra)
                 .stdout(Stdio::null())
                 .stderr(Stdio::null())
@@ -221,10 +242,19 @@ fn three_nodes_give_the_single_process_figures_on_the_demo_pattern() {
     let demo = Path::new(env!("CARGO_MANIFEST_DIR")).join("../demo-jobs/lighthouse.rle");
     std::fs::copy(&demo, dir.path().join("lighthouse.rle")).unwrap();
     let job = write_job(dir.path(), "lighthouse.rle", "B3/S23", "30000", "10000");
-    let cluster = run_cluster(&job, 3, &[]);
+    // Nodes without --checkpoint-dir: the coordinator gathers the state for
+    // each checkpoint and writes it whole.
+    let mut cluster = Cluster::start(&job, 3, &[]);
+    cluster.node_checkpoints = None;
+    cluster.add_nodes(3, "256MiB", &[]);
+    let (cluster, stderr) = cluster.report();
     let single = evolve_report(&dir.path().join("lighthouse.rle"), "30000", "B3/S23");
     assert_same_figures(&cluster, &single);
     assert_eq!(cluster["cluster"]["nodes"], 3);
+    assert_eq!(cluster["cluster"]["checkpoints_by_nodes"], 0, "{cluster}");
+    assert_eq!(cluster["cluster"]["checkpoints_gathered"], 3, "{cluster}");
+    assert!(stderr.contains("has no --checkpoint-dir"), "{stderr}");
+    assert_checkpoints_hold(dir.path(), &cluster);
 }
 
 #[test]
@@ -265,6 +295,16 @@ fn three_nodes_give_the_embedded_run_figures_on_the_tide_pool_demo_job() {
             .collect::<Vec<_>>()
     };
     assert_eq!(list(clustered.path()), list(embedded.path()));
+    // The nodes wrote the packs of every checkpoint but the first (the
+    // pattern, stored before any node joined), and they read back whole.
+    assert_eq!(cluster["cluster"]["checkpoints_gathered"], 0, "{cluster}");
+    assert_eq!(cluster["cluster"]["checkpoints_by_nodes"], 10, "{cluster}");
+    assert!(cluster["cluster"]["node_pack_bytes"].as_u64().unwrap() > 0);
+    run_deeptime([
+        "verify".as_ref(),
+        clustered.path().join("runs/tidepool").as_os_str(),
+    ])
+    .assert_success();
 }
 
 #[test]
@@ -277,8 +317,23 @@ fn three_nodes_give_the_single_process_figures_on_a_soup_that_spans_many_pieces(
     let cluster = run_cluster(&job, 3, &["--shard-level", "6"]);
     let single = evolve_report(&dir.path().join("soup.rle"), "200", "B36/S23");
     assert_same_figures(&cluster, &single);
-    // Checkpoints at 64, 128, 192 and 200 (and 0), readable as any run's.
+    // Checkpoints at 64, 128, 192 and 200 (and 0), readable as any run's;
+    // the nodes wrote all but the first, each its own pack.
     assert_checkpoints_hold(dir.path(), &cluster);
+    assert_eq!(cluster["cluster"]["checkpoints_by_nodes"], 4, "{cluster}");
+    // A snapshot of a stored generation reads the nodes' packs on demand
+    // and gives evolve's figures (the same stats as evolve, README).
+    let snapshot = run_deeptime([
+        "snapshot".as_ref(),
+        dir.path().join("runs").as_os_str(),
+        "--gen".as_ref(),
+        "128".as_ref(),
+        "--json".as_ref(),
+    ]);
+    snapshot.assert_success();
+    let snapshot: serde_json::Value = serde_json::from_str(&snapshot.stdout).unwrap();
+    let at_128 = evolve_report(&dir.path().join("soup.rle"), "128", "B36/S23");
+    assert_same_figures(&snapshot, &at_128);
     assert!(
         cluster["cluster"]["bytes_fetched"].as_u64().unwrap() > 0,
         "no quads moved between nodes: {cluster}"

@@ -15,7 +15,7 @@ use num_bigint::{BigInt, BigUint};
 use serde::{Deserialize, Serialize};
 
 use crate::failure::BadInput;
-use crate::storage::Storage;
+use deeptime_node::storage::{self, Storage, pack_key};
 
 /// The manifest format's name and version.
 pub const FORMAT: &str = "deeptime-checkpoint";
@@ -172,10 +172,6 @@ impl Fetch for StorageFetch<'_> {
             Err(error) => Err(format!("cannot read: {error}")),
         }
     }
-}
-
-fn pack_key(name: &str) -> String {
-    format!("packs/{name}.pack")
 }
 
 /// A state loaded from a checkpoint, with the content ids its packs hold.
@@ -500,30 +496,7 @@ impl Checkpoints {
                 ids,
                 table,
             }) => {
-                let name = pack_name(&bytes).to_string();
-                let key = pack_key(&name);
-                let place = self.storage.locate(&key);
-                let wrote = self
-                    .storage
-                    .put_new(&key, &bytes)
-                    .with_context(|| format!("cannot write {place}"))?;
-                // The same pack may be there from an earlier attempt: use it
-                // only if it is whole, else put the good bytes in its place.
-                if !wrote {
-                    let stored = match self.storage.get(&key, bytes.len() as u64) {
-                        Ok(stored) => stored,
-                        // Longer than it should be: damaged.
-                        Err(error) if error.kind() == std::io::ErrorKind::InvalidData => None,
-                        Err(error) => {
-                            return Err(error).with_context(|| format!("cannot read {place}"));
-                        }
-                    };
-                    if stored.as_deref() != Some(bytes.as_slice()) {
-                        self.storage
-                            .replace(&key, &bytes)
-                            .with_context(|| format!("cannot repair {place}"))?;
-                    }
-                }
+                let name = storage::put_pack(self.storage.as_ref(), &bytes)?;
                 let index = packs.len() as u32;
                 packs.push(PackEntry {
                     name,
@@ -548,7 +521,42 @@ impl Checkpoints {
                 .get(&digest)
                 .context("the state's root is in no pack of the run")?,
         };
-        let sequence = match self.manifest_keys()?.last() {
+        self.commit(
+            previous,
+            Manifest {
+                format: FORMAT.to_string(),
+                version: VERSION,
+                sequence: 0,
+                name: name.to_string(),
+                rule: universe.rule().to_string(),
+                pattern: pattern.to_string(),
+                generation: universe.generation().to_string(),
+                root: digest.to_string(),
+                root_pack: root_at.pack,
+                root_record: root_at.record,
+                population: universe.population().to_string(),
+                bbox: universe.bounding_box().as_ref().map(BoxText::of),
+                packs,
+                written: 0,
+            },
+        )
+    }
+
+    /// Stores a pack (named by its content) for a checkpoint about to be
+    /// committed; returns its name in hex.
+    pub fn put_pack(&self, bytes: &[u8]) -> anyhow::Result<String> {
+        storage::put_pack(self.storage.as_ref(), bytes)
+    }
+
+    /// Makes a checkpoint exist: gives `manifest` the next sequence number
+    /// and the time, and writes it, last and atomically. Every pack it
+    /// lists must be stored already.
+    pub fn commit(
+        &self,
+        previous: Option<&Manifest>,
+        mut manifest: Manifest,
+    ) -> anyhow::Result<Manifest> {
+        manifest.sequence = match self.manifest_keys()?.last() {
             Some(last) => {
                 last.trim_start_matches("manifests/")
                     .trim_end_matches(".json")
@@ -559,25 +567,10 @@ impl Checkpoints {
             }
             None => 1,
         };
-        let manifest = Manifest {
-            format: FORMAT.to_string(),
-            version: VERSION,
-            sequence,
-            name: name.to_string(),
-            rule: universe.rule().to_string(),
-            pattern: pattern.to_string(),
-            generation: universe.generation().to_string(),
-            root: digest.to_string(),
-            root_pack: root_at.pack,
-            root_record: root_at.record,
-            population: universe.population().to_string(),
-            bbox: universe.bounding_box().as_ref().map(BoxText::of),
-            packs,
-            written: std::time::SystemTime::now()
-                .duration_since(std::time::UNIX_EPOCH)
-                .map_or(0, |elapsed| elapsed.as_secs()),
-        };
-        let key = Manifest::key(sequence);
+        manifest.written = std::time::SystemTime::now()
+            .duration_since(std::time::UNIX_EPOCH)
+            .map_or(0, |elapsed| elapsed.as_secs());
+        let key = Manifest::key(manifest.sequence);
         let text = serde_json::to_vec_pretty(&manifest)?;
         let wrote = self
             .storage

@@ -97,6 +97,12 @@ pub struct NodeArgs {
     #[arg(long)]
     pub token_file: PathBuf,
 
+    /// The jobs' checkpoint folder (a path or s3:// URL, the same storage
+    /// the coordinator's job names): the node writes its pieces' packs there
+    /// itself [default: the coordinator writes them]
+    #[arg(long)]
+    pub checkpoint_dir: Option<PathBuf>,
+
     #[command(flatten)]
     pub tls: TlsArgs,
 }

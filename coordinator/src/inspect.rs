@@ -17,7 +17,7 @@ struct Row {
 }
 
 pub fn list(args: DirArgs) -> anyhow::Result<()> {
-    let checkpoints = Checkpoints::new(crate::storage::open(&args.dir)?);
+    let checkpoints = Checkpoints::new(deeptime_node::storage::open(&args.dir)?);
     let mut rows = Vec::new();
     for key in checkpoints.manifest_keys()? {
         let manifest = match checkpoints.manifest(&key) {
@@ -69,7 +69,7 @@ pub fn list(args: DirArgs) -> anyhow::Result<()> {
 }
 
 pub fn verify(args: DirArgs) -> anyhow::Result<()> {
-    let checkpoints = Checkpoints::new(crate::storage::open(&args.dir)?);
+    let checkpoints = Checkpoints::new(deeptime_node::storage::open(&args.dir)?);
     let keys = checkpoints.manifest_keys()?;
     if keys.is_empty() {
         bail!("{}: no checkpoints to verify", args.dir.display());
@@ -111,7 +111,7 @@ fn short(decimal: &str) -> String {
 }
 
 pub fn prune(args: crate::cli::PruneArgs) -> anyhow::Result<()> {
-    let checkpoints = Checkpoints::new(crate::storage::open(&args.dir)?);
+    let checkpoints = Checkpoints::new(deeptime_node::storage::open(&args.dir)?);
     let _lock = checkpoints.lock()?;
     let (manifests, packs) = checkpoints.prune(args.keep)?;
     println!(

@@ -19,7 +19,6 @@ mod progress;
 mod report;
 mod run;
 mod snapshot;
-mod storage;
 
 use std::process::ExitCode;
 

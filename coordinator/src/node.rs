@@ -21,6 +21,7 @@ pub fn run(args: NodeArgs) -> anyhow::Result<()> {
         budget: memory::budget(args.memory.as_deref())?,
         token_file: args.token_file,
         tls: args.tls.files(),
+        checkpoint_dir: args.checkpoint_dir,
     };
     let runtime = tokio::runtime::Builder::new_multi_thread()
         .enable_all()

@@ -28,7 +28,7 @@ pub fn run(args: RunArgs) -> anyhow::Result<()> {
         .with_context(|| format!("{}: building the pattern", loaded.name))?;
     let pattern_digest = fresh.digest()?;
 
-    let checkpoints = Checkpoints::new(crate::storage::open(&job.checkpoint_dir)?);
+    let checkpoints = Checkpoints::new(deeptime_node::storage::open(&job.checkpoint_dir)?);
     // One writer at a time: held until the run ends.
     let _lock = checkpoints.lock()?;
     let (mut universe, mut previous, mut known) =

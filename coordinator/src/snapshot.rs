@@ -24,7 +24,7 @@ use crate::checkpoint::{Checkpoints, Manifest};
 use crate::cli::SnapshotArgs;
 use crate::failure::BadInput;
 use crate::report::{BoxReport, EngineReport, Report};
-use crate::storage::Counting;
+use deeptime_node::storage::Counting;
 use crate::{memory, output, progress};
 
 /// Pictures are at most this many pixels on their longer side by default.
@@ -37,7 +37,7 @@ pub fn run(args: SnapshotArgs) -> anyhow::Result<()> {
     let budget = memory::budget(args.memory.as_deref())?;
     let started = Instant::now();
     // Every byte read from the run's storage is counted, for the report.
-    let counted = Arc::new(Counting::new(crate::storage::open(&args.dir)?));
+    let counted = Arc::new(Counting::new(deeptime_node::storage::open(&args.dir)?));
     let checkpoints = Checkpoints::new(Box::new(counted.clone()));
     let keys = checkpoints.manifest_keys()?;
     if keys.is_empty() {

@@ -212,18 +212,22 @@ struct NewQuad {
     id: ContentId,
 }
 
-/// Writes the quads under `root` (of `level`) that `known` does not locate
-/// (and that are not empty) into a pack; `packs` names the packs `known`
-/// points into, by index. Returns None when every quad is known already.
-/// The content ids are computed here (memoised in the store). The root,
-/// when new, is the pack's last record.
+/// Writes the quads under `roots` (each with its level) that `known` does
+/// not locate (and that are not empty) into a pack; `packs` names the packs
+/// `known` points into, by index. Returns None when every quad is known
+/// already. The content ids are computed here (memoised in the store). A
+/// lone root, when new, is the pack's last record; a lone empty root (the
+/// empty state's leaf) is stored, so that a checkpoint can name it.
 pub(crate) fn write_pack(
     store: &mut Store,
-    root: Handle,
-    level: u32,
+    roots: &[(Handle, u32)],
     known: &dyn Fn(&ContentId) -> Option<QuadAt>,
     packs: &[Checksum],
 ) -> Option<WrittenPack> {
+    let lone_root = match roots {
+        [(root, _)] => Some(*root),
+        _ => None,
+    };
     let mut empties = EmptyIds::new();
     let mut new: Vec<NewQuad> = Vec::new();
     // Populations of the known quads met, by the figures' counter.
@@ -231,14 +235,18 @@ pub(crate) fn write_pack(
     // handle → how a parent refers to it
     let mut written: HashMap<Handle, Ref, ahash::RandomState> = HashMap::default();
     // Post-order without recursion: (quad, level, children pushed?)
-    let mut stack = vec![(root, level, false)];
+    let mut stack: Vec<(Handle, u32, bool)> = roots
+        .iter()
+        .rev()
+        .map(|&(root, level)| (root, level, false))
+        .collect();
     while let Some((quad, at, expanded)) = stack.pop() {
         if written.contains_key(&quad) {
             continue;
         }
         // Empty quads are referred to by level, except an empty root (the
         // empty state's leaf), which a checkpoint must be able to find.
-        if quad == store.known_empty(at) && quad != root {
+        if quad == store.known_empty(at) && Some(quad) != lone_root {
             written.insert(quad, Ref::Empty);
             continue;
         }
@@ -291,6 +299,69 @@ pub(crate) fn write_pack(
             id,
         });
     }
+    encode(new, packs)
+}
+
+/// A quad of level 4 or more known by the content ids of its children (the
+/// coordinator's top of the tree), for `write_id_pack`.
+#[derive(Clone, Debug)]
+pub struct IdQuad {
+    pub id: ContentId,
+    pub level: u32,
+    pub kids: [ContentId; 4],
+    pub population: BigUint,
+}
+
+/// Writes quads known by id (children before parents) into a pack. A child
+/// is one of the quads before it, a quad `known` locates (in `packs`, by
+/// index) or the empty quad of its level; anything else is an error naming
+/// it. Returns None when `quads` is empty. The last quad, when it is the
+/// only one of the highest level, is the pack's last record.
+pub fn write_id_pack(
+    quads: &[IdQuad],
+    known: &dyn Fn(&ContentId) -> Option<QuadAt>,
+    packs: &[Checksum],
+) -> Result<Option<WrittenPack>, String> {
+    let mut empties = EmptyIds::new();
+    let mut new: Vec<NewQuad> = Vec::with_capacity(quads.len());
+    let mut local: HashMap<ContentId, usize, ahash::RandomState> = HashMap::default();
+    for quad in quads {
+        if quad.level <= LEAF_LEVEL || quad.level > MAX_LEVEL {
+            return Err(format!("quad {} has level {}", quad.id, quad.level));
+        }
+        if local.contains_key(&quad.id) {
+            continue;
+        }
+        let mut refs = Vec::with_capacity(4);
+        for kid in quad.kids {
+            let reference = if let Some(&index) = local.get(&kid) {
+                Ref::Local(index, kid)
+            } else if kid == empties.of(quad.level - 1) {
+                Ref::Empty
+            } else if let Some(place) = known(&kid) {
+                Ref::External(place, kid)
+            } else {
+                return Err(format!(
+                    "quad {} (level {}) has a child {kid} that no pack holds",
+                    quad.id, quad.level
+                ));
+            };
+            refs.push(reference);
+        }
+        local.insert(quad.id, new.len());
+        new.push(NewQuad {
+            level: quad.level,
+            bits: 0,
+            kids: Some(refs.try_into().map_err(|_| "four children")?),
+            population: Pop::from_big(quad.population.clone()),
+            id: quad.id,
+        });
+    }
+    Ok(encode(new, packs))
+}
+
+/// Encodes new quads (children before parents) as a pack.
+fn encode(new: Vec<NewQuad>, packs: &[Checksum]) -> Option<WrittenPack> {
     if new.is_empty() {
         return None;
     }
@@ -885,7 +956,8 @@ impl Reader {
     /// Reads one whole pack (named `name`, whose table has checksum
     /// `table_sum`) into the store. Every reference must resolve to an
     /// earlier record or a record of a pack read before; levels, content
-    /// ids and populations must agree; no quad may be stored twice.
+    /// ids and populations must agree; no quad may be stored twice in one
+    /// pack.
     pub(crate) fn read(
         &mut self,
         store: &mut Store,
@@ -1032,8 +1104,18 @@ impl Reader {
                     pack: pack as u32,
                     record: number as u32,
                 };
-                if self.known.insert(id, place).is_some() {
-                    return Err(bad(format!("quad {id} is stored twice")));
+                // Packs that cluster nodes write side by side may hold the
+                // same quad; within one pack a quad is stored once. The
+                // first place found is the one references resolve to.
+                match self.known.entry(id) {
+                    std::collections::hash_map::Entry::Occupied(first) => {
+                        if first.get().pack == pack as u32 {
+                            return Err(bad(format!("quad {id} is stored twice")));
+                        }
+                    }
+                    std::collections::hash_map::Entry::Vacant(slot) => {
+                        slot.insert(place);
+                    }
                 }
                 match population {
                     Pop::Small(small) if small != BIG_POP => pops.push(small),

@@ -343,6 +343,29 @@ impl Shard {
         Ok(id)
     }
 
+    /// Writes the quads under `pieces` (quads here, held or not) that
+    /// `known` does not locate into a pack, as a cluster node's part of a
+    /// checkpoint; `packs` names the packs `known` points into, by index.
+    /// None when every quad is known already.
+    pub fn write_pack(
+        &mut self,
+        pieces: &[ContentId],
+        known: &dyn Fn(&ContentId) -> Option<crate::pack::QuadAt>,
+        packs: &[crate::pack::Checksum],
+    ) -> Result<Option<crate::pack::WrittenPack>, ShardError> {
+        let mut roots = Vec::with_capacity(pieces.len());
+        for id in pieces {
+            let &(handle, level) = self.store.by_id.get(id).ok_or(ShardError::Missing(*id))?;
+            roots.push((handle, level));
+        }
+        Ok(crate::pack::write_pack(
+            &mut self.store,
+            &roots,
+            known,
+            packs,
+        ))
+    }
+
     /// Figures of the level-`level` square made of `kids` (level - 1 each,
     /// here): its population, extent, and the id and level of its smallest
     /// centred quad (level 3 or more) holding all its live cells.

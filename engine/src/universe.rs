@@ -204,7 +204,7 @@ impl Universe {
         let (quad, level) = self.canonical_root()?;
         let base = self.store.scratch.len();
         self.store.scratch.push(quad);
-        let written = pack::write_pack(&mut self.store, quad, level, known, packs);
+        let written = pack::write_pack(&mut self.store, &[(quad, level)], known, packs);
         self.store.scratch.truncate(base);
         Ok((digest, written))
     }

@@ -3,13 +3,17 @@
 //! A node joins a coordinator, holds a lease, and keeps a shard of quads
 //! (`deeptime_engine::shard`): it computes the coordinator's base-case
 //! tasks with its own engine, keeps what it computed, serves records to
-//! peers by content id and fetches from them only what it lacks.
+//! peers by content id and fetches from them only what it lacks. At a
+//! checkpoint it writes the packs of its pieces to the run's storage
+//! itself (`storage`, which the coordinator uses too).
 
 pub mod auth;
 pub mod fetch;
 pub mod membership;
+pub mod packs;
 pub mod serve;
 pub mod service;
+pub mod storage;
 pub mod wire;
 
 pub use serve::{NodeConfig, run_node};

@@ -46,6 +46,11 @@ pub async fn keep_membership(
             address: advertise.clone(),
             memory: state.budget,
             version: env!("CARGO_PKG_VERSION").to_string(),
+            checkpoint_dir: state
+                .checkpoints
+                .as_ref()
+                .map(|c| c.location.clone())
+                .unwrap_or_default(),
         };
         let reply = match client.clone().join(join).await {
             Ok(reply) => reply.into_inner(),
@@ -99,6 +104,7 @@ fn take_terms(state: &NodeState, reply: &v1::JoinReply) -> Result<(), String> {
         .map_err(|error| format!("rule {:?}: {error}", reply.rule))?;
     let shard = Shard::new(rule, state.budget).map_err(|error| error.to_string())?;
     *state.shard.lock().expect("shard") = Some(shard);
+    *state.written.lock().expect("written") = Default::default();
     *current = Some(terms);
     Ok(())
 }

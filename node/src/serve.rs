@@ -14,6 +14,7 @@ use tonic::transport::server::TcpIncoming;
 use crate::auth::{CheckToken, Token};
 use crate::fetch::Peers;
 use crate::membership::keep_membership;
+use crate::packs::{Checkpoints, Written};
 use crate::service::{NodeService, NodeState};
 use crate::wire::{MAX_MESSAGE_BYTES, TlsFiles};
 
@@ -30,11 +31,17 @@ pub struct NodeConfig {
     pub budget: u64,
     pub token_file: PathBuf,
     pub tls: TlsFiles,
+    /// where this node writes checkpoint packs (the jobs' checkpoint folder)
+    pub checkpoint_dir: Option<PathBuf>,
 }
 
 /// Runs a node until it is refused (an error) or interrupted (Ok).
 pub async fn run_node(config: NodeConfig) -> anyhow::Result<()> {
     let token = Token::read(&config.token_file)?;
+    let checkpoints = match &config.checkpoint_dir {
+        Some(dir) => Some(Checkpoints::open(dir)?),
+        None => None,
+    };
     let listener = tokio::net::TcpListener::bind(config.listen)
         .await
         .map_err(|error| anyhow::anyhow!("cannot listen on {}: {error}", config.listen))?;
@@ -55,6 +62,8 @@ pub async fn run_node(config: NodeConfig) -> anyhow::Result<()> {
         peers: Peers::new(token.clone(), config.tls.clone()),
         budget: config.budget,
         tasks_done: AtomicU64::new(0),
+        checkpoints,
+        written: Mutex::new(Written::default()),
     });
     let (reporter, health) = tonic_health::server::health_reporter();
     reporter

@@ -30,10 +30,14 @@ pub struct NodeState {
     pub peers: Peers,
     pub budget: u64,
     pub tasks_done: AtomicU64,
+    /// where this node writes checkpoint packs, if it does
+    pub checkpoints: Option<crate::packs::Checkpoints>,
+    /// the quads of the packs this node wrote, for incremental packs
+    pub written: Mutex<crate::packs::Written>,
 }
 
 impl NodeState {
-    fn terms(&self, job: &str) -> Result<JobTerms, Status> {
+    pub(crate) fn terms(&self, job: &str) -> Result<JobTerms, Status> {
         let terms = self.terms.lock().expect("terms").clone();
         match terms {
             Some(terms) if terms.job == job => Ok(terms),
@@ -247,6 +251,17 @@ impl v1::node_server::Node for NodeService {
             })
             .await?;
         Ok(Response::new(v1::RetainReply { held, quads, bytes }))
+    }
+
+    async fn write_pack(
+        &self,
+        request: Request<v1::WritePackRequest>,
+    ) -> Result<Response<v1::WritePackReply>, Status> {
+        let request = request.into_inner();
+        self.state.terms(&request.job)?;
+        Ok(Response::new(
+            crate::packs::write_pieces(&self.state, request).await?,
+        ))
     }
 
     async fn describe(

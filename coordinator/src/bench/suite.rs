@@ -394,7 +394,7 @@ fn run_python(
 /// resume speed, and an incremental checkpoint against a full one.
 fn checkpoints(settings: &Settings) -> anyhow::Result<Vec<Figure>> {
     use crate::checkpoint::Checkpoints;
-    use crate::storage::LocalDir;
+    use deeptime_node::storage::LocalDir;
 
     let side = if settings.quick { 512 } else { 23_200 };
     let pattern = soup(side, 3);
@@ -403,7 +403,7 @@ fn checkpoints(settings: &Settings) -> anyhow::Result<Vec<Figure>> {
     let (inner, leaves) = universe.live_quads();
     let quads = inner + leaves;
     let directory = tempfile::tempdir()?;
-    let counted = std::sync::Arc::new(crate::storage::Counting::new(Box::new(LocalDir::new(
+    let counted = std::sync::Arc::new(deeptime_node::storage::Counting::new(Box::new(LocalDir::new(
         directory.path().to_path_buf(),
     ))));
     let checkpoints = Checkpoints::new(Box::new(counted.clone()));

@@ -2,17 +2,13 @@
 //! the nodes, advance in steps, store checkpoints, and when pieces were lost
 //! with a node, roll back to the newest checkpoint and go on.
 //!
-//! Checkpoints are written in the embedded format by the coordinator: it
-//! gathers the pieces from the nodes (by content id, level by level, only
-//! what it lacks), puts the state together and writes it incrementally.
-//! (Nodes writing their own packs in parallel is the planned next step;
-//! until then a checkpoint passes the whole state through the coordinator.)
+//! Checkpoints (`checkpoint.rs`) are written in the embedded run's format,
+//! by the nodes in parallel where they can.
 
 use std::sync::{Arc, Mutex};
 use std::time::{Duration, Instant};
 
 use anyhow::Context;
-use deeptime_engine::shard::{Record, Shard};
 use deeptime_engine::{ContentId, KnownQuads, Universe};
 use num_bigint::{BigInt, BigUint};
 
@@ -20,10 +16,11 @@ use crate::checkpoint::{Checkpoints, Manifest};
 use crate::cluster::members::{Board, Members};
 use crate::cluster::recursion;
 use crate::cluster::tasks::{Dispatcher, PiecesLost};
+use crate::cluster::checkpoint::Written;
 use crate::cluster::upper::Upper;
 use crate::job::Job;
 use crate::report::{BoxReport, EngineReport, Report};
-use deeptime_node::fetch::{Peers, fetch_missing};
+use deeptime_node::fetch::Peers;
 
 /// Everything a cluster run works with.
 pub struct Run<'a> {
@@ -37,14 +34,19 @@ pub struct Run<'a> {
     pub tasks: &'a Arc<Dispatcher>,
     pub board: &'a Arc<Board>,
     pub peers: Peers,
+    /// the job's checkpoint folder as nodes name theirs (`storage::location`)
+    pub checkpoint_location: String,
+    /// how checkpoints were written, for the report
+    pub written: Mutex<Written>,
+    pub said_gathering: std::sync::atomic::AtomicBool,
 }
 
 /// The state on the nodes: the top of the tree and its root.
-struct OnNodes {
-    upper: Arc<Mutex<Upper>>,
-    root: ContentId,
-    level: u32,
-    generation: BigUint,
+pub(super) struct OnNodes {
+    pub upper: Arc<Mutex<Upper>>,
+    pub root: ContentId,
+    pub level: u32,
+    pub generation: BigUint,
 }
 
 /// How an epoch (a run from one stored state) ended.
@@ -54,13 +56,13 @@ enum Ended {
 }
 
 impl Run<'_> {
-    fn say(&self, state: &str) {
+    pub(super) fn say(&self, state: &str) {
         self.board.status.lock().expect("board").state = state.to_string();
     }
 
     pub async fn drive(&self, fresh: Universe) -> anyhow::Result<Report> {
         let started = Instant::now();
-        let checkpoints = Checkpoints::new(crate::storage::open(&self.job.checkpoint_dir)?);
+        let checkpoints = Checkpoints::new(deeptime_node::storage::open(&self.job.checkpoint_dir)?);
         // One writer at a time: held until the run ends.
         let _lock = checkpoints.lock()?;
         let (mut universe, mut previous, mut known) = tokio::task::block_in_place(|| {
@@ -319,100 +321,12 @@ impl Run<'_> {
         Ok(Ended::Target(state))
     }
 
-    /// Gathers the state from the nodes and stores it as a checkpoint.
-    async fn checkpoint(
-        &self,
-        state: &OnNodes,
-        checkpoints: &Checkpoints,
-        previous: &mut Option<Manifest>,
-        known: &mut KnownQuads,
-    ) -> anyhow::Result<()> {
-        self.say("checkpointing");
-        let mut universe = self.gather(state).await?;
-        let manifest = tokio::task::block_in_place(|| {
-            checkpoints.write(
-                &mut universe,
-                previous.as_ref(),
-                known,
-                &self.job.name,
-                &self.pattern_digest,
-            )
-        })?;
-        *previous = Some(manifest);
-        if let Some(keep) = self.job.keep
-            && let Err(error) = tokio::task::block_in_place(|| checkpoints.prune(keep))
-        {
-            eprintln!("deeptime: warning: retention: {error:#}");
-        }
-        self.say("running");
-        Ok(())
-    }
-
-    /// The whole state, put together from the top of the tree and the
-    /// pieces fetched from the nodes.
-    async fn gather(&self, state: &OnNodes) -> anyhow::Result<Universe> {
-        let pieces = state
-            .upper
-            .lock()
-            .expect("upper")
-            .pieces(&state.root, state.level);
-        let rule: deeptime_engine::rule::Rule = self
-            .members
-            .terms
-            .rule
-            .parse()
-            .map_err(|e| anyhow::anyhow!("{e}"))?;
-        let shard = Arc::new(Mutex::new(Some(Shard::new(rule, self.budget)?)));
-        let mut wanted = Vec::new();
-        for piece in &pieces {
-            wanted.push((*piece, self.shard_level - 1, self.tasks.holders_of(piece)?));
-        }
-        let fetched = fetch_missing(&shard, &self.peers, wanted)
-            .await
-            .map_err(|status| {
-                PiecesLost(format!("gathering a checkpoint: {}", status.message()))
-            })?;
-        let upper = state.upper.clone();
-        let (root, level, generation) = (state.root, state.level, state.generation.clone());
-        let budget = self.budget;
-        tokio::task::block_in_place(move || {
-            let mut guard = shard.lock().expect("shard");
-            let shard = guard.as_mut().expect("made above");
-            shard.put(&fetched.records, &[])?;
-            let upper = upper.lock().expect("upper");
-            let mut lookup = |id: &ContentId| -> Option<Record> {
-                match upper.get(id) {
-                    Some(quad) => Some(Record::Inner {
-                        level: quad.level,
-                        kids: quad.kids,
-                    }),
-                    None => shard.record(id),
-                }
-            };
-            Ok(Universe::assemble(
-                rule,
-                budget,
-                generation,
-                root,
-                level,
-                &mut lookup,
-            )?)
-        })
-    }
-
-    async fn report(&self, state: &OnNodes, started: Instant) -> anyhow::Result<Report> {
+    /// The canonical root of the state (the smallest centred quad holding
+    /// every live cell: its id is the digest) and its level; below the
+    /// shard level a node finds it.
+    pub(super) async fn canonical(&self, state: &OnNodes) -> anyhow::Result<(ContentId, u32)> {
         let shard_level = self.shard_level;
-        let (root, level) = (state.root, state.level);
-        let pieces = state.upper.lock().expect("upper").pieces(&root, level);
-        let figures = self.tasks.figures(&pieces);
-        let (population, extent) = state
-            .upper
-            .lock()
-            .expect("upper")
-            .figures(&root, level, &figures);
-        // The digest: the smallest centred quad holding every live cell;
-        // below the shard level a node finds it.
-        let (mut quad, mut at) = (root, level);
+        let (mut quad, mut at) = (state.root, state.level);
         {
             let mut upper = state.upper.lock().expect("upper");
             while at > shard_level && upper.fits_centre_half(&quad, at) {
@@ -420,12 +334,20 @@ impl Run<'_> {
                 at -= 1;
             }
         }
-        let digest = if at == shard_level {
+        if at == shard_level {
             let kids = state.upper.lock().expect("upper").kids(&quad, at);
-            self.tasks.describe(self.job_id, at, kids).await?.0
-        } else {
-            quad
-        };
+            return self.tasks.describe(self.job_id, at, kids).await;
+        }
+        Ok((quad, at))
+    }
+
+    /// The state's population and bounding box, from the pieces' figures.
+    pub(super) fn figures(&self, state: &OnNodes) -> (BigUint, Option<BoxReport>) {
+        let (root, level) = (state.root, state.level);
+        let mut upper = state.upper.lock().expect("upper");
+        let pieces = upper.pieces(&root, level);
+        let figures = self.tasks.figures(&pieces);
+        let (population, extent) = upper.figures(&root, level, &figures);
         let half = BigInt::from(BigUint::from(1u32) << (level - 1));
         let bbox = extent.map(|[left, top, right, bottom]| BoxReport {
             left: (BigInt::from(left.clone()) - &half).to_string(),
@@ -433,6 +355,13 @@ impl Run<'_> {
             width: (right - left + 1u32).to_string(),
             height: (bottom - top + 1u32).to_string(),
         });
+        (population, bbox)
+    }
+
+    async fn report(&self, state: &OnNodes, started: Instant) -> anyhow::Result<Report> {
+        let (population, bbox) = self.figures(state);
+        let (digest, _) = self.canonical(state).await?;
+        let level = state.level;
         let members = self.members.all();
         let sum = |f: &dyn Fn(&crate::cluster::members::Member) -> u64| {
             members.iter().map(|m| f(m)).sum::<u64>()

@@ -34,6 +34,8 @@ pub struct Member {
     /// the most bytes its store reported (renewals and retain replies)
     pub peak_bytes: AtomicU64,
     pub memory: u64,
+    /// where the node writes checkpoint packs (`storage::location`), or ""
+    pub checkpoint_dir: String,
     /// becomes true when the member is lost, so calls to it stop waiting
     lost: tokio::sync::watch::Sender<bool>,
 }
@@ -145,6 +147,7 @@ impl Members {
             bytes: AtomicU64::new(0),
             peak_bytes: AtomicU64::new(0),
             memory: request.memory,
+            checkpoint_dir: request.checkpoint_dir.clone(),
             lost: tokio::sync::watch::channel(false).0,
         }));
         drop(list);

@@ -5,6 +5,7 @@
 //! generations at a time; at the target it prints the same figures as
 //! `deeptime run`.
 
+mod checkpoint;
 mod drive;
 mod members;
 mod recursion;
@@ -107,6 +108,13 @@ struct ClusterFigures {
     /// seconds nodes spent computing tasks, and tasks took end to end
     compute_seconds: f64,
     task_seconds: f64,
+    /// checkpoints whose pieces the nodes wrote themselves, and those the
+    /// coordinator gathered; bytes of the packs nodes wrote and of the
+    /// coordinator's
+    checkpoints_by_nodes: u64,
+    checkpoints_gathered: u64,
+    node_pack_bytes: u64,
+    coordinator_pack_bytes: u64,
 }
 
 async fn coordinate(args: CoordinatorArgs) -> anyhow::Result<()> {
@@ -205,8 +213,13 @@ async fn coordinate(args: CoordinatorArgs) -> anyhow::Result<()> {
         tasks: &tasks,
         board: &board,
         peers: deeptime_node::fetch::Peers::new(token.clone(), tls.clone()),
+        checkpoint_location: deeptime_node::storage::location(&job.checkpoint_dir)
+            .with_context(|| format!("checkpoint folder {}", job.checkpoint_dir.display()))?,
+        written: Mutex::new(Default::default()),
+        said_gathering: Default::default(),
     };
     let outcome = run.drive(universe).await;
+    let written = *run.written.lock().expect("written");
     let outcome = match outcome {
         Ok(report) => {
             board.status.lock().expect("board").state = "done".to_string();
@@ -232,6 +245,10 @@ async fn coordinate(args: CoordinatorArgs) -> anyhow::Result<()> {
                     .collect(),
                 compute_seconds: counters.compute_us as f64 / 1e6,
                 task_seconds: counters.round_trip_us as f64 / 1e6,
+                checkpoints_by_nodes: written.by_nodes,
+                checkpoints_gathered: written.gathered,
+                node_pack_bytes: written.node_pack_bytes,
+                coordinator_pack_bytes: written.coordinator_pack_bytes,
             };
             if args.json {
                 println!(

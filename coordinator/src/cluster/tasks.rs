@@ -506,4 +506,69 @@ impl Dispatcher {
         }
         Ok(())
     }
+
+    /// Has the holders of `pieces` write them into packs, in parallel: each
+    /// piece goes to one live member that holds it (the one with the fewest
+    /// pieces to write so far). Returns each writer's reply with the pieces
+    /// it was given, in the order of its reply's places.
+    pub async fn write_packs(
+        &self,
+        job: &str,
+        checkpoint_dir: &str,
+        base: &[Vec<u8>],
+        pieces: &[ContentId],
+    ) -> anyhow::Result<Vec<(Arc<Member>, v1::WritePackReply, Vec<ContentId>)>> {
+        let mut shares: HashMap<u64, (Arc<Member>, Vec<ContentId>)> = HashMap::new();
+        {
+            let directory = self.directory.lock().expect("directory");
+            for piece in pieces {
+                let holders: Vec<Arc<Member>> = directory
+                    .get(piece)
+                    .map(|holding| {
+                        holding
+                            .holders
+                            .iter()
+                            .filter_map(|id| self.members.get(*id).filter(|m| m.is_live()))
+                            .collect()
+                    })
+                    .unwrap_or_default();
+                let writer = holders
+                    .into_iter()
+                    .min_by_key(|m| (shares.get(&m.id).map_or(0, |(_, s)| s.len()), m.id))
+                    .ok_or_else(|| {
+                        PiecesLost(format!("piece {} is on no live node", piece.short()))
+                    })?;
+                shares
+                    .entry(writer.id)
+                    .or_insert_with(|| (writer.clone(), Vec::new()))
+                    .1
+                    .push(*piece);
+            }
+        }
+        let calls = shares.into_values().map(|(member, share)| async move {
+            let mut client = member.client.clone();
+            let mut request = tonic::Request::new(v1::WritePackRequest {
+                job: job.to_string(),
+                checkpoint_dir: checkpoint_dir.to_string(),
+                base: base.to_vec(),
+                pieces: share.iter().map(|id| id.0.to_vec()).collect(),
+            });
+            request.set_timeout(TASK_TIMEOUT);
+            let reply = until_lost(&member, client.write_pack(request))
+                .await
+                .map_err(|status| node_error(&member, status))?
+                .into_inner();
+            if reply.places.len() != share.len() {
+                return Err(anyhow!(
+                    "node {} ({}) placed {} pieces of {}",
+                    member.id,
+                    member.address,
+                    reply.places.len(),
+                    share.len()
+                ));
+            }
+            Ok((member, reply, share))
+        });
+        futures::future::try_join_all(calls).await
+    }
 }

@@ -138,6 +138,57 @@ impl Upper {
         pieces
     }
 
+    /// The distinct non-empty quads of level ≥ K under `root`, children
+    /// before parents, each with its population (from the pieces'): the
+    /// order a pack stores them in.
+    pub fn with_populations(
+        &mut self,
+        root: &ContentId,
+        level: u32,
+        pieces: &HashMap<ContentId, Figures>,
+    ) -> Vec<(UpperQuad, BigUint)> {
+        let piece_level = self.shard_level - 1;
+        let mut population: HashMap<ContentId, BigUint> = HashMap::new();
+        let mut out = Vec::new();
+        // (quad, level, children done?)
+        let mut stack = vec![(*root, level, false)];
+        while let Some((id, at, expanded)) = stack.pop() {
+            if population.contains_key(&id) || id == self.empty(at) {
+                continue;
+            }
+            let kids = self.kids(&id, at);
+            if !expanded {
+                stack.push((id, at, true));
+                if at - 1 > piece_level {
+                    for kid in kids.iter().rev() {
+                        stack.push((*kid, at - 1, false));
+                    }
+                }
+                continue;
+            }
+            let mut sum = BigUint::zero();
+            for kid in &kids {
+                sum += if at - 1 == piece_level {
+                    pieces
+                        .get(kid)
+                        .map_or_else(BigUint::zero, |f| BigUint::from(f.population))
+                } else {
+                    population.get(kid).cloned().unwrap_or_default()
+                };
+            }
+            population.insert(id, sum.clone());
+            out.push((
+                UpperQuad {
+                    id,
+                    level: at,
+                    kids,
+                },
+                sum,
+            ));
+        }
+        out
+    }
+
     /// Forgets every quad not under `root` (the memo of the last advance).
     pub fn keep_only(&mut self, root: &ContentId, level: u32) {
         let mut keep = HashSet::new();

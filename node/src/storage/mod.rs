@@ -25,6 +25,19 @@ pub fn open(place: &Path) -> io::Result<Box<dyn Storage>> {
     }
 }
 
+/// The identity of a checkpoint folder, for telling whether two processes
+/// write to the same one: the `s3://` URL without a trailing slash, or the
+/// folder's canonical absolute path (made if missing, so that both sides
+/// resolve links alike).
+pub fn location(place: &Path) -> io::Result<String> {
+    let text = place.to_string_lossy();
+    if let Some(at) = text.find("s3://") {
+        return Ok(text[at..].trim_end_matches('/').to_string());
+    }
+    std::fs::create_dir_all(place)?;
+    Ok(std::fs::canonicalize(place)?.to_string_lossy().into_owned())
+}
+
 /// A store of write-once objects.
 pub trait Storage: Send + Sync {
     /// Stores `bytes` under `key` unless an object is there already.
@@ -102,6 +115,39 @@ impl<T: Storage + ?Sized> Storage for std::sync::Arc<T> {
     fn locate(&self, key: &str) -> String {
         (**self).locate(key)
     }
+}
+
+/// The key of the pack named `name` (its checksum in hex).
+pub fn pack_key(name: &str) -> String {
+    format!("packs/{name}.pack")
+}
+
+/// Stores a pack under its name (the checksum of `bytes`); returns the
+/// name in hex. The same pack may be there from an earlier attempt (or a
+/// node that wrote the same quads): it is used only if it is whole, else
+/// the good bytes take its place. Errors name the object.
+pub fn put_pack(storage: &dyn Storage, bytes: &[u8]) -> anyhow::Result<String> {
+    use anyhow::Context;
+    let name = deeptime_engine::pack::pack_name(bytes).to_string();
+    let key = pack_key(&name);
+    let place = storage.locate(&key);
+    let wrote = storage
+        .put_new(&key, bytes)
+        .with_context(|| format!("cannot write {place}"))?;
+    if !wrote {
+        let stored = match storage.get(&key, bytes.len() as u64) {
+            Ok(stored) => stored,
+            // Longer than it should be: damaged.
+            Err(error) if error.kind() == io::ErrorKind::InvalidData => None,
+            Err(error) => return Err(error).with_context(|| format!("cannot read {place}")),
+        };
+        if stored.as_deref() != Some(bytes) {
+            storage
+                .replace(&key, bytes)
+                .with_context(|| format!("cannot repair {place}"))?;
+        }
+    }
+    Ok(name)
 }
 
 /// Keys are made by deeptime from hex ids and numbers; anything else (a
