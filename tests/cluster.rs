@@ -98,11 +98,28 @@ impl Cluster {
                 )
                 .args(extra)
                 .stdout(Stdio::null())
-                .stderr(Stdio::null())
+                .stderr(self.node_log(self.nodes.0.len()))
                 .spawn()
                 .unwrap();
             self.nodes.0.push(node);
         }
+    }
+
+    /// Where node `index` writes its messages (shown when a run fails).
+    fn node_log(&self, index: usize) -> std::fs::File {
+        let path = self.job.parent().unwrap().join(format!("node-{index}.log"));
+        std::fs::File::create(path).unwrap()
+    }
+
+    /// Every node's messages so far.
+    fn node_logs(&self) -> String {
+        (0..self.nodes.0.len())
+            .map(|index| {
+                let path = self.job.parent().unwrap().join(format!("node-{index}.log"));
+                let text = std::fs::read_to_string(path).unwrap_or_default();
+                format!("--- node {index}:\n{text}")
+            })
+            .collect()
     }
 
     fn scheme(&self) -> &str {
@@ -156,8 +173,25 @@ impl Cluster {
         let stdout = child.stdout.take().unwrap();
         let stderr = child.stderr.take().unwrap();
         let errors = std::thread::spawn(move || std::io::read_to_string(stderr).unwrap());
-        let stdout = std::io::read_to_string(stdout).unwrap();
-        let status = child.wait().unwrap();
+        let output = std::thread::spawn(move || std::io::read_to_string(stdout).unwrap());
+        // No run here takes a minute; one that hangs fails with what it said.
+        let deadline = Instant::now() + Duration::from_secs(180);
+        let status = loop {
+            if let Some(status) = child.try_wait().unwrap() {
+                break status;
+            }
+            if Instant::now() > deadline {
+                child.kill().unwrap();
+                child.wait().unwrap();
+                panic!(
+                    "the coordinator did not finish in 3 minutes: {}\n{}",
+                    errors.join().unwrap(),
+                    self.node_logs()
+                );
+            }
+            std::thread::sleep(Duration::from_millis(20));
+        };
+        let stdout = output.join().unwrap();
         Outcome {
             code: status.code(),
             stdout,
@@ -171,8 +205,9 @@ impl Cluster {
         assert_eq!(
             outcome.code,
             Some(0),
-            "the coordinator failed: {}",
-            outcome.stderr
+            "the coordinator failed: {}\n{}",
+            outcome.stderr,
+            self.node_logs()
         );
         let report = serde_json::from_str(&outcome.stdout)
             .unwrap_or_else(|error| panic!("{error}: {:?}", outcome.stdout));

@@ -9,23 +9,25 @@ use std::collections::HashSet;
 use anyhow::{Context, bail};
 use deeptime_engine::pack::{Checksum, QuadAt, WrittenPack, pack_name};
 use deeptime_engine::rule::Rule;
-use deeptime_engine::stored::{Fetch, StoredPack, StoredState};
+use deeptime_engine::stored::{StoredPack, StoredState};
 use deeptime_engine::{BoundingBox, ContentId, KnownQuads, PackInput, Universe};
 use num_bigint::{BigInt, BigUint};
 use serde::{Deserialize, Serialize};
 
 use crate::failure::BadInput;
-use deeptime_node::storage::{self, Storage, pack_key};
+use deeptime_node::storage::{self, PackFetch, Storage, pack_key};
 
 /// The manifest format's name and version.
 pub const FORMAT: &str = "deeptime-checkpoint";
 pub const VERSION: u32 = 2;
 /// Manifests larger than this are not read (a real one is a few KiB).
 const MAX_MANIFEST_BYTES: u64 = 64 << 20;
-/// A manifest lists at most this many packs: the checkpoint after one that
-/// lists this many writes its whole state into one pack, so manifests and
-/// reads stay bounded.
-pub const MAX_PACKS: usize = 64;
+/// A manifest lists at most this many packs (a cluster checkpoint lists one
+/// per node and one for the top), so manifests and reads stay bounded.
+pub const MAX_PACKS: usize = 1024;
+/// A checkpoint whose list would pass this many packs stands alone: it
+/// stores its whole state in packs of its own and lists only those.
+pub const STAND_ALONE_AFTER: usize = 64;
 
 /// One stored generation.
 #[derive(Serialize, Deserialize, Debug, Clone)]
@@ -155,23 +157,6 @@ fn hex(text: &str, what: &str) -> anyhow::Result<Checksum> {
     text.parse()
         .ok()
         .with_context(|| format!("{what} {text:?} is not 32 lowercase hex digits"))
-}
-
-/// Byte ranges of a checkpoint's packs, from its storage.
-struct StorageFetch<'s> {
-    storage: &'s dyn Storage,
-    keys: Vec<String>,
-}
-
-impl Fetch for StorageFetch<'_> {
-    fn fetch(&mut self, pack: usize, offset: u64, len: u64) -> Result<Vec<u8>, String> {
-        let key = &self.keys[pack];
-        match self.storage.get_range(key, offset, len) {
-            Ok(Some(bytes)) => Ok(bytes),
-            Ok(None) => Err("missing".to_string()),
-            Err(error) => Err(format!("cannot read: {error}")),
-        }
-    }
 }
 
 /// A state loaded from a checkpoint, with the content ids its packs hold.
@@ -378,7 +363,7 @@ impl Checkpoints {
                 place: self.storage.locate(&pack_key(&entry.name)),
             });
         }
-        let fetch = StorageFetch {
+        let fetch = PackFetch {
             storage: self.storage.as_ref(),
             keys: manifest
                 .packs
@@ -479,7 +464,7 @@ impl Checkpoints {
         pattern: &ContentId,
     ) -> anyhow::Result<Manifest> {
         let mut packs = previous.map(|m| m.packs.clone()).unwrap_or_default();
-        if packs.len() >= MAX_PACKS {
+        if packs.len() >= STAND_ALONE_AFTER {
             // Consolidate: this checkpoint stands on one pack of its own.
             packs.clear();
             known.clear();
@@ -589,7 +574,7 @@ impl Checkpoints {
 /// What reading a stored state on demand needs: open it with
 /// `StoredParts::state`.
 pub struct StoredParts<'s> {
-    fetch: StorageFetch<'s>,
+    fetch: PackFetch<'s>,
     packs: Vec<StoredPack>,
     root: QuadAt,
     population: BigUint,

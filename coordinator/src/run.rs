@@ -120,22 +120,7 @@ pub fn resume_or_start(
     Ok(match resumed {
         Some(stored) => {
             let manifest = stored.manifest;
-            if manifest.rule != rule.to_string() {
-                return Err(BadInput(format!(
-                    "{}: the stored run uses rule {}, the job now says {rule}; use another checkpoint.dir",
-                    job.checkpoint_dir.display(),
-                    manifest.rule
-                ))
-                .into());
-            }
-            if manifest.pattern != pattern_digest.to_string() {
-                return Err(BadInput(format!(
-                    "{}: the stored run is of another pattern (digest {}, the job's is {pattern_digest}); use another checkpoint.dir",
-                    job.checkpoint_dir.display(),
-                    manifest.pattern
-                ))
-                .into());
-            }
+            check_identity(&manifest, job, &rule.to_string(), pattern_digest)?;
             eprintln!(
                 "deeptime: resuming {} from checkpoint {} at generation {}",
                 job.name, manifest.sequence, manifest.generation
@@ -149,6 +134,33 @@ pub fn resume_or_start(
             (fresh, Some(manifest), known)
         }
     })
+}
+
+/// Refuses a stored run of another rule or pattern than the job's (a
+/// changed target or interval is fine).
+pub fn check_identity(
+    manifest: &Manifest,
+    job: &Job,
+    rule: &str,
+    pattern_digest: &ContentId,
+) -> anyhow::Result<()> {
+    if manifest.rule != rule {
+        return Err(BadInput(format!(
+            "{}: the stored run uses rule {}, the job now says {rule}; use another checkpoint.dir",
+            job.checkpoint_dir.display(),
+            manifest.rule
+        ))
+        .into());
+    }
+    if manifest.pattern != pattern_digest.to_string() {
+        return Err(BadInput(format!(
+            "{}: the stored run is of another pattern (digest {}, the job's is {pattern_digest}); use another checkpoint.dir",
+            job.checkpoint_dir.display(),
+            manifest.pattern
+        ))
+        .into());
+    }
+    Ok(())
 }
 
 /// Chooses power-of-two step sizes so that one advance takes between about

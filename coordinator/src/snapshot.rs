@@ -24,8 +24,8 @@ use crate::checkpoint::{Checkpoints, Manifest};
 use crate::cli::SnapshotArgs;
 use crate::failure::BadInput;
 use crate::report::{BoxReport, EngineReport, Report};
-use deeptime_node::storage::Counting;
 use crate::{memory, output, progress};
+use deeptime_node::storage::Counting;
 
 /// Pictures are at most this many pixels on their longer side by default.
 const DEFAULT_PICTURE: u64 = 1024;

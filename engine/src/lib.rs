@@ -27,7 +27,7 @@ mod view;
 pub use advance::{Observer, Progress};
 pub use content_id::{BadContentId, ContentId};
 pub use error::{AdvanceError, BudgetExceeded, StackRefused, TooLargeForText, human_bytes};
-pub use store::{Handle, StoreStats};
+pub use store::{Handle, LEAF_LEVEL, StoreStats};
 pub use universe::{
     BoundingBox, KnownQuads, MAX_TEXT_CELLS, PackInput, Region, Universe, WriteError,
 };

@@ -315,7 +315,8 @@ pub struct IdQuad {
 /// Writes quads known by id (children before parents) into a pack. A child
 /// is one of the quads before it, a quad `known` locates (in `packs`, by
 /// index) or the empty quad of its level; anything else is an error naming
-/// it. Returns None when `quads` is empty. The last quad, when it is the
+/// it. Empty quads in `quads` are left out. Returns None when nothing is
+/// left to store. The last quad, when it is the
 /// only one of the highest level, is the pack's last record.
 pub fn write_id_pack(
     quads: &[IdQuad],
@@ -329,7 +330,8 @@ pub fn write_id_pack(
         if quad.level <= LEAF_LEVEL || quad.level > MAX_LEVEL {
             return Err(format!("quad {} has level {}", quad.id, quad.level));
         }
-        if local.contains_key(&quad.id) {
+        // Empty quads are referred to by level, never stored.
+        if local.contains_key(&quad.id) || quad.id == empties.of(quad.level) {
             continue;
         }
         let mut refs = Vec::with_capacity(4);

@@ -343,6 +343,12 @@ impl Shard {
         Ok(id)
     }
 
+    /// The population and extent of a quad that is here.
+    pub fn figures(&self, id: &ContentId) -> Option<Figures> {
+        let &(handle, level) = self.store.by_id.get(id)?;
+        Some(figures_of(&self.store, handle, level))
+    }
+
     /// Writes the quads under `pieces` (quads here, held or not) that
     /// `known` does not locate into a pack, as a cluster node's part of a
     /// checkpoint; `packs` names the packs `known` points into, by index.

@@ -148,6 +148,72 @@ impl<'f> StoredState<'f> {
         Ok(state)
     }
 
+    /// The packs of a checkpoint, for reading quads by where they are
+    /// (`children`, `cells`) rather than from a root: a cluster node
+    /// reading the pieces it is given.
+    pub fn over(fetch: &'f mut dyn Fetch, packs: Vec<StoredPack>, rule: Rule) -> StoredState<'f> {
+        let count = packs.len();
+        StoredState {
+            fetch,
+            packs,
+            open: (0..count).map(|_| None).collect(),
+            chunks: HashMap::new(),
+            decompressor: zstd::bulk::Decompressor::new().expect("a zstd decompressor"),
+            root: StoredNode::Empty,
+            level: LEAF_LEVEL,
+            rule,
+            records_decoded: 0,
+            leaves_decoded: 0,
+            chunks_read: 0,
+        }
+    }
+
+    /// The root record and its level.
+    pub fn root_node(&self) -> (StoredNode, u32) {
+        (self.root, self.level)
+    }
+
+    /// The children (nw, ne, sw, se) of the stored quad at `node`, which
+    /// its parent says is of `level` (at least 4); checked as every
+    /// reference followed is.
+    pub fn children(&mut self, node: StoredNode, level: u32) -> Result<[StoredNode; 4], ReadError> {
+        if let StoredNode::At(at) = node
+            && at.pack as usize >= self.packs.len()
+        {
+            return Err(ReadError {
+                place: "the manifest".to_string(),
+                error: PackError::Fetch(format!("pack {} is not listed", at.pack)),
+            });
+        }
+        QuadView::kids(self, node, level)
+    }
+
+    /// The cells of the stored leaf at `node` (bit `8*y + x`).
+    pub fn cells(&mut self, node: StoredNode) -> Result<u64, ReadError> {
+        if let StoredNode::At(at) = node
+            && at.pack as usize >= self.packs.len()
+        {
+            return Err(ReadError {
+                place: "the manifest".to_string(),
+                error: PackError::Fetch(format!("pack {} is not listed", at.pack)),
+            });
+        }
+        QuadView::leaf_bits(self, node)
+    }
+
+    /// How many decoded chunks are kept.
+    pub fn chunks_held(&self) -> usize {
+        self.chunks.len()
+    }
+
+    /// Drops the decoded chunks kept so far (they are read again if needed),
+    /// to bound memory on a long walk; returns how many there were.
+    pub fn forget_chunks(&mut self) -> usize {
+        let held = self.chunks.len();
+        self.chunks.clear();
+        held
+    }
+
     /// The level of the root record (3 for a state within one leaf).
     pub fn root_level(&self) -> u32 {
         self.level

@@ -430,3 +430,97 @@ fn a_partial_read_refuses_a_damaged_chunk_or_a_wrong_population() {
         "{refused}"
     );
 }
+
+#[test]
+fn shard_packs_that_share_quads_and_a_pack_of_the_top_read_back_as_the_state() {
+    // A cluster checkpoint: a state cut at a shard level, its pieces
+    // written by two shards whose pieces overlap (so both packs hold the
+    // shared quads), and the top of the tree written by content id on top.
+    // Read back whole it is the same state (by digest, common practice for
+    // content-addressed storage).
+    use deeptime_engine::pack::{IdQuad, write_id_pack};
+    use deeptime_engine::shard::Shard;
+    use std::collections::{HashMap, HashSet};
+
+    let mut state = soup(160, 11);
+    state.advance(&50u32.into(), None).unwrap();
+    let digest = state.digest().unwrap();
+    let cut = state.cut(6).unwrap();
+    assert!(cut.pieces.len() > 8, "{} pieces", cut.pieces.len());
+    let third = cut.pieces.len() / 3;
+    let shares = [&cut.pieces[..2 * third], &cut.pieces[third..]];
+    let mut packs = Vec::new();
+    let mut known: HashMap<_, QuadAt> = HashMap::new();
+    for (index, share) in shares.iter().enumerate() {
+        let mut shard = Shard::new(Rule::LIFE, BUDGET).unwrap();
+        let mut sent = HashSet::new();
+        let mut records = Vec::new();
+        for piece in share.iter() {
+            records.extend(state.records(piece.handle, 5, &mut sent));
+        }
+        let ids: Vec<_> = share.iter().map(|p| p.id).collect();
+        shard.put(&records, &ids).unwrap();
+        let pack = shard.write_pack(&ids, &|_| None, &[]).unwrap().unwrap();
+        for (record, id) in pack.ids.iter().enumerate() {
+            known.entry(*id).or_insert(QuadAt {
+                pack: index as u32,
+                record: record as u32,
+            });
+        }
+        packs.push(pack);
+    }
+    // The pieces in the middle third are in both packs.
+    let first: HashSet<_> = packs[0].ids.iter().collect();
+    assert!(packs[1].ids.iter().filter(|id| first.contains(id)).count() >= third);
+    // The top: children before parents, each with its population.
+    let mut population: HashMap<_, BigUint> = cut
+        .pieces
+        .iter()
+        .map(|p| (p.id, BigUint::from(p.figures.population)))
+        .collect();
+    let mut top = Vec::new();
+    for quad in cut.upper.iter().rev() {
+        let sum: BigUint = quad
+            .kids
+            .iter()
+            .map(|kid| population.get(kid).cloned().unwrap_or_default())
+            .sum();
+        population.insert(quad.id, sum.clone());
+        top.push(IdQuad {
+            id: quad.id,
+            level: quad.level,
+            kids: quad.kids,
+            population: sum,
+        });
+    }
+    let names = [pack_name(&packs[0].bytes), pack_name(&packs[1].bytes)];
+    let upper = write_id_pack(&top, &|id| known.get(id).copied(), &names)
+        .unwrap()
+        .unwrap();
+    // A child no pack holds is refused, by name.
+    let lonely = IdQuad {
+        kids: [cut.root; 4],
+        level: cut.root_level + 1,
+        ..top[0].clone()
+    };
+    let Err(refused) = write_id_pack(&[lonely], &|_| None, &[]) else {
+        panic!("a pack with a dangling child was written");
+    };
+    assert!(refused.contains("that no pack holds"), "{refused}");
+    let (back, _) = Universe::from_packs(
+        [
+            whole(&packs[0].bytes),
+            whole(&packs[1].bytes),
+            whole(&upper.bytes),
+        ],
+        cut.root,
+        last(2, upper.records),
+        Rule::LIFE,
+        BigUint::from(50u32),
+        BUDGET,
+    )
+    .unwrap();
+    let mut back = back;
+    assert_eq!(back.digest().unwrap(), digest);
+    assert_eq!(back.population(), state.population());
+}

@@ -14,8 +14,10 @@ use std::path::Path;
 use std::sync::Arc;
 use std::time::Instant;
 
-use deeptime_engine::ContentId;
 use deeptime_engine::pack::{Checksum, QuadAt};
+use deeptime_engine::shard::Record;
+use deeptime_engine::stored::{StoredNode, StoredPack, StoredState};
+use deeptime_engine::{ContentId, LEAF_LEVEL};
 use deeptime_proto::v1;
 use tonic::Status;
 
@@ -32,9 +34,8 @@ pub struct Checkpoints {
 
 impl Checkpoints {
     pub fn open(dir: &Path) -> anyhow::Result<Checkpoints> {
-        let location = storage::location(dir).map_err(|error| {
-            anyhow::anyhow!("--checkpoint-dir {}: {error}", dir.display())
-        })?;
+        let location = storage::location(dir)
+            .map_err(|error| anyhow::anyhow!("--checkpoint-dir {}: {error}", dir.display()))?;
         let storage: Arc<dyn Storage> = Arc::from(
             storage::open(dir)
                 .map_err(|error| anyhow::anyhow!("--checkpoint-dir {}: {error}", dir.display()))?,
@@ -48,7 +49,10 @@ impl Checkpoints {
 pub struct Written {
     /// the packs, by the index `quads` uses
     packs: Vec<Checksum>,
+    by_name: HashMap<Checksum, u32>,
     quads: HashMap<ContentId, (u32, u32), ahash::RandomState>,
+    /// the pieces among them, by where they are (to answer `held_only`)
+    pieces: HashMap<(u32, u32), ContentId, ahash::RandomState>,
 }
 
 impl Written {
@@ -66,17 +70,48 @@ impl Written {
         ))
     }
 
+    fn pack_index(&mut self, name: Checksum) -> u32 {
+        *self.by_name.entry(name).or_insert_with(|| {
+            self.packs.push(name);
+            self.packs.len() as u32 - 1
+        })
+    }
+
     fn add(&mut self, name: Checksum, ids: &[ContentId]) {
-        let pack = self.packs.len() as u32;
-        self.packs.push(name);
+        let pack = self.pack_index(name);
         for (record, id) in ids.iter().enumerate() {
             self.quads.entry(*id).or_insert((pack, record as u32));
         }
     }
+
+    fn add_piece(&mut self, name: Checksum, record: u32, id: ContentId) {
+        let pack = self.pack_index(name);
+        self.quads.entry(id).or_insert((pack, record));
+        self.pieces.insert((pack, record), id);
+    }
+
+    fn piece_at(&self, name: &Checksum, record: u32) -> Option<ContentId> {
+        let pack = *self.by_name.get(name)?;
+        self.pieces.get(&(pack, record)).copied()
+    }
 }
 
 /// The packs a manifest may list (as CHECKPOINTS.md bounds them).
-const MAX_BASE: usize = 4096;
+const MAX_BASE: usize = 1024;
+
+/// The node's checkpoint folder, if it is the one the coordinator names.
+fn folder<'s>(state: &'s NodeState, named: &str) -> Result<&'s Checkpoints, Status> {
+    let checkpoints = state.checkpoints.as_ref().ok_or_else(|| {
+        Status::failed_precondition("this node writes no checkpoints (it has no --checkpoint-dir)")
+    })?;
+    if named != checkpoints.location {
+        return Err(Status::failed_precondition(format!(
+            "this node writes checkpoints to {}, the job's are at {named}",
+            checkpoints.location
+        )));
+    }
+    Ok(checkpoints)
+}
 
 /// Writes the pack of a WritePack request and says where each piece is.
 pub async fn write_pieces(
@@ -84,15 +119,7 @@ pub async fn write_pieces(
     request: v1::WritePackRequest,
 ) -> Result<v1::WritePackReply, Status> {
     let started = Instant::now();
-    let checkpoints = state.checkpoints.as_ref().ok_or_else(|| {
-        Status::failed_precondition("this node writes no checkpoints (it has no --checkpoint-dir)")
-    })?;
-    if request.checkpoint_dir != checkpoints.location {
-        return Err(Status::failed_precondition(format!(
-            "this node writes checkpoints to {}, the job's are at {}",
-            checkpoints.location, request.checkpoint_dir
-        )));
-    }
+    let checkpoints = folder(state, &request.checkpoint_dir)?;
     if request.base.len() > MAX_BASE {
         return Err(Status::invalid_argument(format!(
             "a base of {} packs (at most {MAX_BASE})",
@@ -152,7 +179,7 @@ pub async fn write_pieces(
             });
             name = Some(checksum);
         }
-        let known = state.written.lock().expect("written");
+        let mut known = state.written.lock().expect("written");
         let mut places = Vec::with_capacity(pieces.len());
         for piece in &pieces {
             let place = match (new_records.get(piece), name) {
@@ -170,6 +197,8 @@ pub async fn write_pieces(
                     }
                 }
             };
+            let name = Checksum(place.pack.as_slice().try_into().expect("16 bytes"));
+            known.add_piece(name, place.record, *piece);
             places.push(place);
         }
         Ok(v1::WritePackReply {
@@ -180,4 +209,214 @@ pub async fn write_pieces(
     })
     .await
     .map_err(|error| Status::internal(format!("writing a pack failed: {error}")))?
+}
+
+/// Decoded chunks a load keeps before it lets them go (about 64 KiB of
+/// records each).
+const CHUNKS_KEPT: usize = 256;
+
+/// Reads the pieces of a Load request from the storage into the shard (or,
+/// with `held_only`, says which it holds), with each one's id and figures.
+pub async fn load_pieces(
+    state: &Arc<NodeState>,
+    request: v1::LoadRequest,
+    piece_level: u32,
+) -> Result<v1::LoadReply, Status> {
+    let checkpoints = folder(state, &request.checkpoint_dir)?;
+    if request.packs.len() > MAX_BASE {
+        return Err(Status::invalid_argument(format!(
+            "a checkpoint of {} packs (at most {MAX_BASE})",
+            request.packs.len()
+        )));
+    }
+    let mut packs = Vec::with_capacity(request.packs.len());
+    for pack in &request.packs {
+        let name = Checksum(wire::id_from(&pack.name)?.0);
+        packs.push(StoredPack {
+            name,
+            bytes: pack.bytes,
+            records: pack.records,
+            table: Checksum(wire::id_from(&pack.table)?.0),
+            place: checkpoints
+                .storage
+                .locate(&storage::pack_key(&name.to_string())),
+        });
+    }
+    let mut pieces = Vec::with_capacity(request.pieces.len());
+    for piece in &request.pieces {
+        if piece.pack as usize >= packs.len() {
+            return Err(Status::invalid_argument(format!(
+                "a piece in pack {} of {}",
+                piece.pack,
+                packs.len()
+            )));
+        }
+        pieces.push(QuadAt {
+            pack: piece.pack,
+            record: piece.record,
+        });
+    }
+    let state = state.clone();
+    let storage = checkpoints.storage.clone();
+    let held_only = request.held_only;
+    tokio::task::spawn_blocking(move || {
+        if held_only {
+            return held(&state, &packs, &pieces);
+        }
+        let keys = packs
+            .iter()
+            .map(|p| storage::pack_key(&p.name.to_string()))
+            .collect();
+        let mut fetch = storage::PackFetch {
+            storage: storage.as_ref(),
+            keys,
+        };
+        let rule = {
+            let guard = state.shard.lock().expect("shard");
+            guard
+                .as_ref()
+                .ok_or_else(|| Status::failed_precondition("this node has not joined a job"))?
+                .rule()
+        };
+        let names: Vec<Checksum> = packs.iter().map(|p| p.name).collect();
+        let mut stored = StoredState::over(&mut fetch, packs, rule);
+        let mut ids: HashMap<QuadAt, ContentId, ahash::RandomState> = HashMap::default();
+        let mut empties = Vec::new();
+        let mut out = Vec::with_capacity(pieces.len());
+        for piece in &pieces {
+            let records = read_subtree(&mut stored, *piece, piece_level, &mut ids, &mut empties)
+                .map_err(|error| Status::data_loss(error.to_string()))?;
+            let id = ids[piece];
+            {
+                let mut guard = state.shard.lock().expect("shard");
+                let shard = guard
+                    .as_mut()
+                    .ok_or_else(|| Status::failed_precondition("this node has not joined a job"))?;
+                shard.put(&records, &[id]).map_err(wire::shard_status)?;
+                let figures = shard.figures(&id).expect("held just now");
+                out.push(v1::LoadedPiece {
+                    id: id.0.to_vec(),
+                    population: figures.population,
+                    extent: wire::extent_to_wire(&figures.extent),
+                });
+            }
+            if stored.chunks_held() > CHUNKS_KEPT {
+                stored.forget_chunks();
+            }
+        }
+        let mut written = state.written.lock().expect("written");
+        for (at, id) in &ids {
+            let name = names[at.pack as usize];
+            let pack = written.pack_index(name);
+            written.quads.entry(*id).or_insert((pack, at.record));
+        }
+        for piece in &pieces {
+            written.add_piece(names[piece.pack as usize], piece.record, ids[piece]);
+        }
+        Ok(v1::LoadReply {
+            pieces: out,
+            records_read: stored.records_decoded,
+            chunks_read: stored.chunks_read,
+        })
+    })
+    .await
+    .map_err(|error| Status::internal(format!("loading pieces failed: {error}")))?
+}
+
+/// Which of `pieces` the node holds already, from the packs it wrote or read.
+fn held(
+    state: &NodeState,
+    packs: &[StoredPack],
+    pieces: &[QuadAt],
+) -> Result<v1::LoadReply, Status> {
+    let written = state.written.lock().expect("written");
+    let guard = state.shard.lock().expect("shard");
+    let shard = guard
+        .as_ref()
+        .ok_or_else(|| Status::failed_precondition("this node has not joined a job"))?;
+    let mut out = Vec::with_capacity(pieces.len());
+    for piece in pieces {
+        let found = written
+            .piece_at(&packs[piece.pack as usize].name, piece.record)
+            .and_then(|id| shard.figures(&id).map(|figures| (id, figures)));
+        out.push(match found {
+            Some((id, figures)) => v1::LoadedPiece {
+                id: id.0.to_vec(),
+                population: figures.population,
+                extent: wire::extent_to_wire(&figures.extent),
+            },
+            None => v1::LoadedPiece::default(),
+        });
+    }
+    Ok(v1::LoadReply {
+        pieces: out,
+        records_read: 0,
+        chunks_read: 0,
+    })
+}
+
+/// The records under the stored quad at `root` (of `level`) that `ids`
+/// does not have yet, children before parents, with their content ids
+/// computed from the cells; `ids` learns each one's id.
+fn read_subtree(
+    stored: &mut StoredState<'_>,
+    root: QuadAt,
+    level: u32,
+    ids: &mut HashMap<QuadAt, ContentId, ahash::RandomState>,
+    empties: &mut Vec<ContentId>,
+) -> Result<Vec<(ContentId, Record)>, deeptime_engine::stored::ReadError> {
+    let mut empty = |level: u32| -> ContentId {
+        while empties.len() <= (level - LEAF_LEVEL) as usize {
+            let id = match empties.last() {
+                None => ContentId::of_leaf(0),
+                Some(below) => ContentId::of_inner(LEAF_LEVEL + empties.len() as u32, [*below; 4]),
+            };
+            empties.push(id);
+        }
+        empties[(level - LEAF_LEVEL) as usize]
+    };
+    let mut records = Vec::new();
+    // (quad, level, its children if read)
+    let mut stack: Vec<(QuadAt, u32, Option<[StoredNode; 4]>)> = vec![(root, level, None)];
+    while let Some((at, level, kids)) = stack.pop() {
+        if ids.contains_key(&at) {
+            continue;
+        }
+        if level == LEAF_LEVEL {
+            let bits = stored.cells(StoredNode::At(at))?;
+            let id = ContentId::of_leaf(bits);
+            ids.insert(at, id);
+            records.push((id, Record::Leaf(bits)));
+            continue;
+        }
+        match kids {
+            None => {
+                let kids = stored.children(StoredNode::At(at), level)?;
+                stack.push((at, level, Some(kids)));
+                for kid in kids.iter().rev() {
+                    if let StoredNode::At(kid) = kid
+                        && !ids.contains_key(kid)
+                    {
+                        stack.push((*kid, level - 1, None));
+                    }
+                }
+            }
+            Some(kids) => {
+                let kid_ids = kids.map(|kid| match kid {
+                    StoredNode::Empty => empty(level - 1),
+                    StoredNode::At(kid) => ids[&kid],
+                });
+                let id = ContentId::of_inner(level, kid_ids);
+                ids.insert(at, id);
+                records.push((
+                    id,
+                    Record::Inner {
+                        level,
+                        kids: kid_ids,
+                    },
+                ));
+            }
+        }
+    }
+    Ok(records)
 }

@@ -253,6 +253,17 @@ impl v1::node_server::Node for NodeService {
         Ok(Response::new(v1::RetainReply { held, quads, bytes }))
     }
 
+    async fn load(
+        &self,
+        request: Request<v1::LoadRequest>,
+    ) -> Result<Response<v1::LoadReply>, Status> {
+        let request = request.into_inner();
+        let terms = self.state.terms(&request.job)?;
+        Ok(Response::new(
+            crate::packs::load_pieces(&self.state, request, terms.shard_level - 1).await?,
+        ))
+    }
+
     async fn write_pack(
         &self,
         request: Request<v1::WritePackRequest>,

@@ -403,9 +403,9 @@ fn checkpoints(settings: &Settings) -> anyhow::Result<Vec<Figure>> {
     let (inner, leaves) = universe.live_quads();
     let quads = inner + leaves;
     let directory = tempfile::tempdir()?;
-    let counted = std::sync::Arc::new(deeptime_node::storage::Counting::new(Box::new(LocalDir::new(
-        directory.path().to_path_buf(),
-    ))));
+    let counted = std::sync::Arc::new(deeptime_node::storage::Counting::new(Box::new(
+        LocalDir::new(directory.path().to_path_buf()),
+    )));
     let checkpoints = Checkpoints::new(Box::new(counted.clone()));
     let digest = universe.digest()?;
     let mut known = deeptime_engine::KnownQuads::default();

@@ -23,7 +23,9 @@ use deeptime_engine::pack::{Checksum, IdQuad, QuadAt, write_id_pack};
 use deeptime_engine::shard::{Record, Shard};
 use deeptime_engine::{ContentId, KnownQuads, Universe};
 
-use crate::checkpoint::{BoxText, Checkpoints, FORMAT, MAX_PACKS, Manifest, PackEntry, VERSION};
+use crate::checkpoint::{
+    BoxText, Checkpoints, FORMAT, MAX_PACKS, Manifest, PackEntry, STAND_ALONE_AFTER, VERSION,
+};
 use crate::cluster::drive::{OnNodes, Run};
 use crate::cluster::tasks::PiecesLost;
 use deeptime_node::fetch::fetch_missing;
@@ -90,7 +92,7 @@ impl Run<'_> {
 
     /// Whether every live node writes packs to this job's folder (said
     /// once when one does not).
-    fn nodes_write(&self) -> bool {
+    pub(super) fn nodes_write(&self) -> bool {
         let live = self.members.live();
         let others: Vec<String> = live
             .iter()
@@ -123,7 +125,8 @@ impl Run<'_> {
         previous: &Option<Manifest>,
         known: &mut KnownQuads,
     ) -> anyhow::Result<Option<Manifest>> {
-        if !self.nodes_write() {
+        // One pack per node and one for the top must fit a manifest.
+        if !self.nodes_write() || self.members.live().len() + 1 > MAX_PACKS {
             return Ok(None);
         }
         let (root, level) = self.canonical(state).await?;
@@ -138,7 +141,8 @@ impl Run<'_> {
             .as_ref()
             .map(|m| m.packs.clone())
             .unwrap_or_default();
-        if packs.len() + self.members.live().len() + 1 > MAX_PACKS {
+        let adds = self.members.live().len() + 1;
+        if packs.len() + adds > STAND_ALONE_AFTER.max(adds) {
             packs.clear();
             known.clear();
         }
@@ -166,8 +170,8 @@ impl Run<'_> {
             if let Some(pack) = &reply.pack {
                 let name = Checksum(deeptime_node::wire::id_from(&pack.name)?.0);
                 let table = Checksum(deeptime_node::wire::id_from(&pack.table)?.0);
-                if !index.contains_key(&name) {
-                    index.insert(name, names.len() as u32);
+                if let std::collections::hash_map::Entry::Vacant(slot) = index.entry(name) {
+                    slot.insert(names.len() as u32);
                     names.push(name);
                     packs.push(PackEntry {
                         name: name.to_string(),

@@ -13,10 +13,10 @@ use deeptime_engine::{ContentId, KnownQuads, Universe};
 use num_bigint::{BigInt, BigUint};
 
 use crate::checkpoint::{Checkpoints, Manifest};
+use crate::cluster::checkpoint::Written;
 use crate::cluster::members::{Board, Members};
 use crate::cluster::recursion;
 use crate::cluster::tasks::{Dispatcher, PiecesLost};
-use crate::cluster::checkpoint::Written;
 use crate::cluster::upper::Upper;
 use crate::job::Job;
 use crate::report::{BoxReport, EngineReport, Report};
@@ -65,22 +65,43 @@ impl Run<'_> {
         let checkpoints = Checkpoints::new(deeptime_node::storage::open(&self.job.checkpoint_dir)?);
         // One writer at a time: held until the run ends.
         let _lock = checkpoints.lock()?;
-        let (mut universe, mut previous, mut known) = tokio::task::block_in_place(|| {
-            crate::run::resume_or_start(
-                &checkpoints,
-                self.job,
-                fresh,
-                &self.pattern_digest,
-                self.budget,
-            )
-        })?;
+        // A new run stores its pattern as checkpoint 1 and loads it from
+        // memory; a run that has checkpoints goes on from the newest that
+        // loads, which the nodes read themselves where they can.
+        let stored = tokio::task::block_in_place(|| checkpoints.manifest_keys())?;
+        let (mut from_memory, mut previous, mut known) = if stored.is_empty() {
+            let (universe, previous, known) = tokio::task::block_in_place(|| {
+                crate::run::resume_or_start(
+                    &checkpoints,
+                    self.job,
+                    fresh,
+                    &self.pattern_digest,
+                    self.budget,
+                )
+            })?;
+            (Some(universe), previous, known)
+        } else {
+            drop(fresh);
+            (None, None, KnownQuads::default())
+        };
         // The first load waits for --min-nodes; after a loss the run goes on
         // with the nodes that are left (or waits for one, if none is).
         let mut needed = self.min_nodes;
         loop {
             self.wait_for_nodes(needed).await;
             needed = 1;
-            let on_nodes = match self.load(&mut universe).await {
+            let loaded = match from_memory.as_mut() {
+                Some(universe) => self.load(universe).await,
+                None => match self.load_stored(&checkpoints).await {
+                    Ok((on_nodes, manifest, stored_known)) => {
+                        previous = Some(manifest);
+                        known = stored_known;
+                        Ok(on_nodes)
+                    }
+                    Err(error) => Err(error),
+                },
+            };
+            let on_nodes = match loaded {
                 Ok(on_nodes) => on_nodes,
                 Err(error) if error.chain().any(|cause| cause.is::<PiecesLost>()) => {
                     eprintln!("deeptime: {error:#}; loading again");
@@ -89,7 +110,7 @@ impl Run<'_> {
                 }
                 Err(error) => return Err(error),
             };
-            drop(universe);
+            from_memory = None;
             match self
                 .epoch(on_nodes, &checkpoints, &mut previous, &mut known)
                 .await?
@@ -99,19 +120,6 @@ impl Run<'_> {
                     eprintln!("deeptime: {why:#}; rolling back to the newest checkpoint");
                     self.say("rolling back");
                     self.tasks.forget_all();
-                    let stored = tokio::task::block_in_place(|| {
-                        checkpoints.latest_valid(self.budget, |warning| {
-                            eprintln!("deeptime: warning: {warning}")
-                        })
-                    })?
-                    .context("no checkpoint to roll back to")?;
-                    eprintln!(
-                        "deeptime: resuming from checkpoint {} at generation {}",
-                        stored.manifest.sequence, stored.manifest.generation
-                    );
-                    universe = stored.universe;
-                    previous = Some(stored.manifest);
-                    known = stored.known;
                 }
             }
         }
@@ -135,7 +143,7 @@ impl Run<'_> {
     /// Cuts the state at the shard level and hands its pieces to the live
     /// nodes, in runs of nearby pieces so that tasks find most of their
     /// input at one node.
-    async fn load(&self, universe: &mut Universe) -> anyhow::Result<OnNodes> {
+    pub(super) async fn load(&self, universe: &mut Universe) -> anyhow::Result<OnNodes> {
         self.say("loading");
         let shard_level = self.shard_level;
         let cut = tokio::task::block_in_place(|| universe.cut(shard_level))?;

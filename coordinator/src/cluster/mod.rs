@@ -9,6 +9,7 @@ mod checkpoint;
 mod drive;
 mod members;
 mod recursion;
+mod resume;
 pub mod status;
 mod tasks;
 mod upper;

@@ -174,7 +174,7 @@ impl Dispatcher {
             .collect()
     }
 
-    fn record_holding(&self, id: ContentId, member: u64, figures: Figures) {
+    pub fn record_holding(&self, id: ContentId, member: u64, figures: Figures) {
         if id == self.empty_piece {
             return;
         }
@@ -505,6 +505,22 @@ impl Dispatcher {
             }
         }
         Ok(())
+    }
+
+    /// A member's `Load` call (reading pieces of a checkpoint, or saying
+    /// which it holds).
+    pub async fn load(
+        &self,
+        member: &Member,
+        request: v1::LoadRequest,
+    ) -> anyhow::Result<v1::LoadReply> {
+        let mut client = member.client.clone();
+        let mut request = tonic::Request::new(request);
+        request.set_timeout(TASK_TIMEOUT);
+        Ok(until_lost(member, client.load(request))
+            .await
+            .map_err(|status| node_error(member, status))?
+            .into_inner())
     }
 
     /// Has the holders of `pieces` write them into packs, in parallel: each

@@ -150,6 +150,25 @@ pub fn put_pack(storage: &dyn Storage, bytes: &[u8]) -> anyhow::Result<String> {
     Ok(name)
 }
 
+/// Byte ranges of a checkpoint's packs (by their index in its manifest),
+/// from a storage backend: what a reader on demand fetches through.
+pub struct PackFetch<'s> {
+    pub storage: &'s dyn Storage,
+    /// the packs' keys, in the manifest's order
+    pub keys: Vec<String>,
+}
+
+impl deeptime_engine::stored::Fetch for PackFetch<'_> {
+    fn fetch(&mut self, pack: usize, offset: u64, len: u64) -> Result<Vec<u8>, String> {
+        let key = self.keys.get(pack).ok_or("no such pack")?;
+        match self.storage.get_range(key, offset, len) {
+            Ok(Some(bytes)) => Ok(bytes),
+            Ok(None) => Err("missing".to_string()),
+            Err(error) => Err(format!("cannot read: {error}")),
+        }
+    }
+}
+
 /// Keys are made by deeptime from hex ids and numbers; anything else (a
 /// path from elsewhere) is refused rather than joined onto a folder.
 pub fn check_key(key: &str) -> io::Result<()> {
