@@ -524,6 +524,84 @@ fn a_cluster_over_tls_gives_the_single_process_figures() {
 }
 
 #[test]
+fn a_cluster_started_again_from_nothing_has_its_nodes_read_the_checkpoint_and_skips_a_damaged_one()
+{
+    // The coordinator and every node killed; fresh nodes hold nothing, so
+    // they read their pieces from the checkpoint folder. The newest
+    // checkpoint has a byte of a node's pack flipped: the node that reads
+    // it finds the damage (chunk checksums, CHECKPOINTS.md), the run goes
+    // back to the checkpoint before and ends with evolve's figures.
+    let dir = temp_dir();
+    let job = long_job(dir.path());
+    let mut cluster = Cluster::start(&job, 2, &["--shard-level", "6"]);
+    cluster.add_nodes(2, "256MiB", &[]);
+    cluster.wait_for_checkpoints(4);
+    cluster.kill_coordinator();
+    for index in 0..2 {
+        cluster.kill_node(index);
+    }
+    let manifests = dir.path().join("runs/manifests");
+    let mut names: Vec<PathBuf> = std::fs::read_dir(&manifests)
+        .unwrap()
+        .map(|entry| entry.unwrap().path())
+        .filter(|path| !path.file_name().unwrap().to_string_lossy().starts_with('.'))
+        .collect();
+    names.sort();
+    let read = |path: &Path| -> serde_json::Value {
+        serde_json::from_str(&std::fs::read_to_string(path).unwrap()).unwrap()
+    };
+    let newest = read(&names[names.len() - 1]);
+    let before = read(&names[names.len() - 2]);
+    let old: Vec<&serde_json::Value> = before["packs"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|p| &p["name"])
+        .collect();
+    let new: Vec<&serde_json::Value> = newest["packs"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|p| &p["name"])
+        .filter(|name| !old.contains(name))
+        .collect();
+    // The nodes' packs, then the coordinator's (the top of the tree).
+    assert!(new.len() >= 2, "{newest}");
+    let damaged = dir
+        .path()
+        .join(format!("runs/packs/{}.pack", new[0].as_str().unwrap()));
+    let mut bytes = std::fs::read(&damaged).unwrap();
+    let middle = 16 + (bytes.len() - 40) / 3;
+    bytes[middle] ^= 0x10;
+    std::fs::write(&damaged, bytes).unwrap();
+
+    cluster.start_coordinator(2);
+    cluster.add_nodes(2, "256MiB", &[]);
+    let (report, stderr) = cluster.report();
+    assert!(stderr.contains("skipping damaged checkpoint"), "{stderr}");
+    let resumed_from = before["sequence"].as_u64().unwrap();
+    assert!(
+        stderr.contains(&format!("from checkpoint {resumed_from} ")),
+        "{stderr}"
+    );
+    // Fresh nodes held nothing: every piece was read from the folder.
+    assert!(!stderr.contains("on the nodes already"), "{stderr}");
+    let single = evolve_report(&dir.path().join("soup.rle"), "3000", "B3/S23");
+    assert_same_figures(&report, &single);
+    // verify still names the damaged pack (nothing repairs a pack no
+    // later checkpoint wrote again).
+    let verify = run_deeptime(["verify".as_ref(), dir.path().join("runs").as_os_str()]);
+    assert_ne!(verify.code, Some(0), "{}", verify.stdout);
+    assert!(
+        verify.stdout.contains(new[0].as_str().unwrap())
+            || verify.stderr.contains(new[0].as_str().unwrap()),
+        "{} {}",
+        verify.stdout,
+        verify.stderr
+    );
+}
+
+#[test]
 fn a_node_that_stops_answering_loses_its_lease_and_the_run_goes_on() {
     let dir = temp_dir();
     let job = long_job(dir.path());

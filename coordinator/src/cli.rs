@@ -186,7 +186,7 @@ pub struct BenchArgs {
     #[arg(long, value_name = "PATH")]
     pub python: Option<PathBuf>,
 
-    /// Run one part only: reach, stepping, chaotic or numpy
+    /// Run one part only: reach, stepping, chaotic, numpy, checkpoints or cluster
     #[arg(long, value_name = "PART")]
     pub only: Option<String>,
 }

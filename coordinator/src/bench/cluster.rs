@@ -41,6 +41,8 @@ struct Measured {
     waited: f64,
     /// each node's peak resident memory (VmHWM), where the system says
     resident: Vec<u64>,
+    /// the coordinator's peak resident memory (its rusage at exit)
+    coordinator_resident: Option<u64>,
 }
 
 impl Measured {
@@ -96,6 +98,7 @@ fn embedded(exe: &Path, job: &Path) -> anyhow::Result<Measured> {
         seconds,
         waited: 0.0,
         resident: Vec::new(),
+        coordinator_resident: None,
     })
 }
 
@@ -113,12 +116,15 @@ fn peak_resident(pid: u32) -> Option<u64> {
 }
 
 /// Runs `job` on a coordinator with `nodes` fresh nodes on loopback.
+/// With `checkpoint_dir`, the nodes write their own packs there (it must
+/// be the job's folder); without, the coordinator gathers each checkpoint.
 fn on_cluster(
     exe: &Path,
     job: &Path,
     nodes: usize,
     shard_level: Option<u64>,
     dir: &Path,
+    checkpoint_dir: Option<&Path>,
 ) -> anyhow::Result<Measured> {
     let token = dir.join(format!("token-{}", rand::random::<u64>()));
     let port = free_port()?;
@@ -167,6 +173,11 @@ fn on_cluster(
             .args(["--listen", "127.0.0.1:0", "--memory", "8G"])
             .arg("--token-file")
             .arg(&token)
+            .args(
+                checkpoint_dir
+                    .iter()
+                    .flat_map(|dir| ["--checkpoint-dir".as_ref(), dir.as_os_str()]),
+            )
             .stdin(Stdio::null())
             .stdout(Stdio::null())
             .stderr(Stdio::null())
@@ -176,7 +187,8 @@ fn on_cluster(
     }
     let mut text = String::new();
     stdout.read_to_string(&mut text)?;
-    let status = children.0[0].wait()?;
+    let coordinator = children.0.remove(0);
+    let (status, coordinator_resident) = wait_with_peak(&coordinator)?;
     let seconds = started.elapsed().as_secs_f64();
     let resident = children.0[1..]
         .iter()
@@ -208,7 +220,27 @@ fn on_cluster(
         seconds: seconds - waited,
         waited,
         resident,
+        coordinator_resident,
     })
+}
+
+/// Waits for a child; its exit status and peak resident memory (from the
+/// kernel's accounting of the reaped process, in KiB on Linux).
+fn wait_with_peak(child: &Child) -> anyhow::Result<(std::process::ExitStatus, Option<u64>)> {
+    use std::os::unix::process::ExitStatusExt;
+    let mut status = 0;
+    // SAFETY: rusage is plain data; wait4 fills it for our own child.
+    let mut usage: libc::rusage = unsafe { std::mem::zeroed() };
+    let pid = child.id() as libc::pid_t;
+    // SAFETY: waits for a child this process started and has not reaped.
+    let reaped = unsafe { libc::wait4(pid, &mut status, 0, &mut usage) };
+    ensure!(
+        reaped == pid,
+        "waiting for the coordinator: {}",
+        std::io::Error::last_os_error()
+    );
+    let peak = u64::try_from(usage.ru_maxrss).ok().map(|kib| kib * 1024);
+    Ok((std::process::ExitStatus::from_raw(status), peak))
 }
 
 /// The coordinator's last few messages, for an error.
@@ -261,7 +293,8 @@ pub fn cluster(settings: &Settings) -> anyhow::Result<Vec<Figure>> {
         let embedded_job = write_job(dir, &format!("embedded-{name}"), target, every)?;
         let cluster_job = write_job(dir, &format!("cluster-{name}"), target, every)?;
         let alone = embedded(&exe, &embedded_job)?;
-        let cluster = on_cluster(&exe, &cluster_job, 2, None, dir)?;
+        let folder = dir.join(format!("runs/cluster-{name}"));
+        let cluster = on_cluster(&exe, &cluster_job, 2, None, dir, Some(&folder))?;
         ensure!(
             cluster.digest() == alone.digest(),
             "the cluster's digest {} differs from the embedded run's {}",
@@ -294,11 +327,19 @@ pub fn cluster(settings: &Settings) -> anyhow::Result<Vec<Figure>> {
             )
             .detail(format!(
                 "embedded {:.2} s, cluster {:.2} s (after {:.2} s waiting for nodes); \
+                 checkpoints written by the nodes {} (their packs {}, the coordinator's {}), \
+                 coordinator peak resident {}; \
                  {} tasks ({} memoised), on nodes {:.2} s computing of {:.2} s in tasks; \
                  digest {}",
                 alone.seconds,
                 cluster.seconds,
                 cluster.waited,
+                cluster.cluster("checkpoints_by_nodes"),
+                human_bytes(cluster.cluster("node_pack_bytes") as u64),
+                human_bytes(cluster.cluster("coordinator_pack_bytes") as u64),
+                cluster
+                    .coordinator_resident
+                    .map_or("?".to_string(), human_bytes),
                 tasks,
                 cluster.cluster("tasks_memoised"),
                 compute,
@@ -322,8 +363,8 @@ pub fn cluster(settings: &Settings) -> anyhow::Result<Vec<Figure>> {
         if let Some(last) = figures.last_mut() {
             last.detail.push_str(&format!(
                 "; each extra stop (a shorter stride and a checkpoint) cost the \
-                 embedded run {:.3} s, the cluster {:.3} s (its coordinator gathers the \
-                 whole state from the nodes for each checkpoint)",
+                 embedded run {:.3} s, the cluster {:.3} s (its nodes write their \
+                 pieces' packs in parallel)",
                 (alone_many - alone_one) / extra,
                 (cluster_many - cluster_one) / extra
             ));
@@ -362,7 +403,8 @@ pub fn cluster(settings: &Settings) -> anyhow::Result<Vec<Figure>> {
 
     // Peak store bytes per node as nodes are added, at one shard level.
     let job = |nodes: usize| write_job(dir, &format!("memory-{nodes}"), target, target);
-    let single = on_cluster(&exe, &job(1)?, 1, shard_level, dir)?;
+    let folder = |nodes: usize| dir.join(format!("runs/memory-{nodes}"));
+    let single = on_cluster(&exe, &job(1)?, 1, shard_level, dir, Some(&folder(1)))?;
     ensure!(
         single.digest() == two.digest(),
         "one node's digest differs from the embedded run's"
@@ -371,7 +413,10 @@ pub fn cluster(settings: &Settings) -> anyhow::Result<Vec<Figure>> {
     ensure!(single_peak > 0, "the single node reported no bytes");
     let runs = [
         (2usize, two),
-        (4, on_cluster(&exe, &job(4)?, 4, shard_level, dir)?),
+        (
+            4,
+            on_cluster(&exe, &job(4)?, 4, shard_level, dir, Some(&folder(4)))?,
+        ),
     ];
     for (nodes, run) in &runs {
         ensure!(

@@ -113,7 +113,10 @@ impl Run<'_> {
                     return Err(error);
                 }
                 Err(error) => {
-                    eprintln!("deeptime: warning: skipping damaged checkpoint: {error:#}");
+                    eprintln!(
+                        "deeptime: warning: skipping damaged checkpoint {}: {error:#}",
+                        manifest.sequence
+                    );
                     self.tasks.forget_all();
                 }
             }
