@@ -187,6 +187,8 @@ fn on_cluster(
     }
     let mut text = String::new();
     stdout.read_to_string(&mut text)?;
+    // Reaped by wait4 below, which also gives its peak memory.
+    #[allow(clippy::zombie_processes)]
     let coordinator = children.0.remove(0);
     let (status, coordinator_resident) = wait_with_peak(&coordinator)?;
     let seconds = started.elapsed().as_secs_f64();
