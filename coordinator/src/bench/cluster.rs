@@ -192,7 +192,8 @@ fn on_cluster(
     let coordinator = children.0.remove(0);
     let (status, coordinator_resident) = wait_with_peak(&coordinator)?;
     let seconds = started.elapsed().as_secs_f64();
-    let resident = children.0[1..]
+    let resident = children
+        .0
         .iter()
         .filter_map(|node| peak_resident(node.id()))
         .collect();

@@ -22,6 +22,10 @@ const TASK_TIMEOUT: Duration = Duration::from_secs(600);
 /// A member may run this many more tasks than the least loaded one before
 /// work that would go to it for locality goes elsewhere.
 const LOAD_SLACK: u64 = 2;
+/// Work goes by locality only to members whose stores hold at most a
+/// quarter (and this floor) more bytes than the emptiest member's.
+const MEMORY_SLACK: u64 = 4;
+const MEMORY_FLOOR: u64 = 4 << 20;
 /// How long a task is retried before its input counts as lost, and the
 /// pause between tries after a failed fetch (longer than a lease lapses).
 const RETRY_FOR: Duration = Duration::from_secs(10);
@@ -233,8 +237,14 @@ impl Dispatcher {
             .iter()
             .min_by_key(|m| (load(m), m.id))
             .ok_or_else(|| PiecesLost("no node is live".to_string()))?;
+        // Locality decides among the members whose stores are not much
+        // fuller than the emptiest one's, so memory spreads as nodes fill.
+        let bytes = |m: &Member| m.bytes.load(Ordering::Relaxed);
+        let emptiest = live.iter().map(|m| bytes(m)).min().unwrap_or(0);
+        let roomy = |m: &Member| bytes(m) <= emptiest + emptiest / MEMORY_SLACK + MEMORY_FLOOR;
         let best = live
             .iter()
+            .filter(|m| roomy(m))
             .max_by_key(|m| {
                 (
                     score.get(&m.id).copied().unwrap_or(0),
