@@ -70,6 +70,18 @@ impl Written {
         ))
     }
 
+    /// Forgets what no later pack can refer to: quads in packs outside
+    /// `base` (a checkpoint that never got its manifest, or packs a
+    /// checkpoint that stood alone let go) and quads the shard no longer
+    /// has (it cannot write them). Keeps this map within the shard's size.
+    fn prune(&mut self, base: &HashMap<Checksum, u32>, has: impl Fn(&ContentId) -> bool) {
+        let kept: Vec<bool> = self.packs.iter().map(|name| base.contains_key(name)).collect();
+        self.quads
+            .retain(|id, (pack, _)| kept[*pack as usize] && has(id));
+        self.pieces
+            .retain(|(pack, _), id| kept[*pack as usize] && has(id));
+    }
+
     fn pack_index(&mut self, name: Checksum) -> u32 {
         *self.by_name.entry(name).or_insert_with(|| {
             self.packs.push(name);
@@ -143,11 +155,12 @@ pub async fn write_pieces(
             .map(|(at, name)| (*name, at as u32))
             .collect();
         let written = {
-            let known = state.written.lock().expect("written");
+            let mut known = state.written.lock().expect("written");
             let mut guard = state.shard.lock().expect("shard");
             let shard = guard
                 .as_mut()
                 .ok_or_else(|| Status::failed_precondition("this node has not joined a job"))?;
+            known.prune(&index, |id| shard.has(id));
             let locate = |id: &ContentId| known.locate(id, &index).map(|(_, at)| at);
             shard
                 .write_pack(&pieces, &locate, &base)

@@ -153,13 +153,13 @@ impl Advance {
         level: u32,
         stride: Stride,
     ) -> BoxFuture<'static, Result<ContentId, Failure>> {
+        // Most calls find the sub-advance done already: answer those at
+        // once, without a task or a wait on a shared future.
+        if let Some(done) = self.done(quad, level, stride) {
+            return futures::future::ready(done).boxed();
+        }
         async move {
-            {
-                let mut upper = self.upper.lock().expect("upper");
-                if quad == upper.empty(level) {
-                    return Ok(upper.empty(level - 1));
-                }
-            }
+            // (Empty quads were answered by `done`.)
             if stride == Stride::Residual && self.trailing_zeros >= (level - 2) as u64 {
                 return self.centre(quad, level).await;
             }
@@ -189,6 +189,26 @@ impl Advance {
             pending.await
         }
         .boxed()
+    }
+
+    /// The result of a sub-advance that needs no waiting: an empty quad's,
+    /// or one the memo holds finished.
+    fn done(&self, quad: ContentId, level: u32, stride: Stride) -> Option<Result<ContentId, Failure>> {
+        {
+            let mut upper = self.upper.lock().expect("upper");
+            if quad == upper.empty(level) {
+                return Some(Ok(upper.empty(level - 1)));
+            }
+        }
+        if stride == Stride::Residual && self.trailing_zeros >= (level - 2) as u64 {
+            return None;
+        }
+        let memo = self.memo.lock().expect("memo");
+        let finished = memo.get(&(quad, Kind::Step(stride)))?.peek()?.clone();
+        self.tasks
+            .memoised
+            .fetch_add(1, std::sync::atomic::Ordering::Relaxed);
+        Some(finished)
     }
 
     async fn task(&self, kids: [ContentId; 4], steps: u64) -> Result<ContentId, Failure> {
@@ -241,29 +261,28 @@ impl Advance {
             let of_kids = kids.map(|kid| upper.kids(&kid, level - 1));
             (recursion::grandchildren(of_kids), kids)
         };
-        // Phase one: nine squares of level n-1, each advanced (or centred).
-        let mut nine = Vec::with_capacity(9);
-        for i in 0..3 {
-            for j in 0..3 {
-                let four = recursion::block(&g, i, j);
-                let this = self.clone();
-                nine.push(match first {
-                    None => {
-                        // The centre of four level-(n-2) quads: a level-(n-1)
-                        // square's centre.
-                        let square = self.upper.lock().expect("upper").join(level - 1, four);
-                        this.centre(square, level - 1)
+        // Phase one: nine squares of level n-1, each advanced (or centred:
+        // the centre of four level-(n-2) quads is a level-(n-1) square's
+        // centre). The squares are made under one lock.
+        let squares: Vec<ContentId> = {
+            let mut upper = self.upper.lock().expect("upper");
+            (0..9)
+                .map(|at| {
+                    let (i, j) = (at / 3, at % 3);
+                    match (first, recursion::corner_child(i, j)) {
+                        (Some(_), Some(corner)) => kids[corner],
+                        _ => upper.join(level - 1, recursion::block(&g, i, j)),
                     }
-                    Some(stride) => {
-                        let square = match recursion::corner_child(i, j) {
-                            Some(at) => kids[at],
-                            None => self.upper.lock().expect("upper").join(level - 1, four),
-                        };
-                        this.advance(square, level - 1, stride)
-                    }
-                });
-            }
-        }
+                })
+                .collect()
+        };
+        let nine: Vec<_> = squares
+            .into_iter()
+            .map(|square| match first {
+                None => self.clone().centre(square, level - 1),
+                Some(stride) => self.clone().advance(square, level - 1, stride),
+            })
+            .collect();
         let nine = try_join_all(nine).await?;
         let mid: [[ContentId; 3]; 3] = [
             [nine[0], nine[1], nine[2]],
@@ -271,15 +290,17 @@ impl Advance {
             [nine[6], nine[7], nine[8]],
         ];
         // Phase two: four squares of the results, advanced the rest.
-        let mut four = Vec::with_capacity(4);
-        for (i, j) in SECOND_PHASE {
-            let square = self
-                .upper
-                .lock()
-                .expect("upper")
-                .join(level - 1, recursion::block(&mid, i, j));
-            four.push(self.clone().advance(square, level - 1, second));
-        }
+        let squares: Vec<ContentId> = {
+            let mut upper = self.upper.lock().expect("upper");
+            SECOND_PHASE
+                .iter()
+                .map(|&(i, j)| upper.join(level - 1, recursion::block(&mid, i, j)))
+                .collect()
+        };
+        let four: Vec<_> = squares
+            .into_iter()
+            .map(|square| self.clone().advance(square, level - 1, second))
+            .collect();
         let out = try_join_all(four).await?;
         let result = self
             .upper
