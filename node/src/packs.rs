@@ -75,7 +75,11 @@ impl Written {
     /// checkpoint that stood alone let go) and quads the shard no longer
     /// has (it cannot write them). Keeps this map within the shard's size.
     fn prune(&mut self, base: &HashMap<Checksum, u32>, has: impl Fn(&ContentId) -> bool) {
-        let kept: Vec<bool> = self.packs.iter().map(|name| base.contains_key(name)).collect();
+        let kept: Vec<bool> = self
+            .packs
+            .iter()
+            .map(|name| base.contains_key(name))
+            .collect();
         self.quads
             .retain(|id, (pack, _)| kept[*pack as usize] && has(id));
         self.pieces

@@ -5,6 +5,7 @@
 //! Checkpoints (`checkpoint.rs`) are written in the embedded run's format,
 //! by the nodes in parallel where they can.
 
+use std::collections::HashSet;
 use std::sync::{Arc, Mutex};
 use std::time::{Duration, Instant};
 
@@ -48,6 +49,10 @@ pub(super) struct OnNodes {
     pub level: u32,
     pub generation: BigUint,
 }
+
+/// Pieces the finished sub-advances of a step may keep on the nodes for the
+/// next step, beyond the state's, however small the state.
+const MIN_CARRIED_PIECES: usize = 4096;
 
 /// How an epoch (a run from one stored state) ended.
 enum Ended {
@@ -228,6 +233,7 @@ impl Run<'_> {
         let shard_level = self.shard_level;
         let mut pacer = job.wall_clock.map(crate::run::Pacer::new);
         let mut last_checkpoint = Instant::now();
+        let mut carried: Option<recursion::Carried> = None;
         while state.generation < job.target {
             // As in an embedded run: stop on every multiple of `every` and
             // at the target, in steps the wall-clock pacer allows.
@@ -258,6 +264,7 @@ impl Run<'_> {
                 state.upper.clone(),
                 self.tasks.clone(),
                 step.clone(),
+                carried.take(),
             );
             let outcome = advance.run(root, level).await;
             let root = match outcome {
@@ -278,19 +285,36 @@ impl Run<'_> {
             level -= 1;
             state.generation += &step;
             let took = stepping.elapsed();
-            let pieces = {
+            let finished = advance.finished();
+            let (pieces, kept) = {
                 let mut upper = state.upper.lock().expect("upper");
                 let mut root = root;
                 while level > shard_level + 1 && upper.fits_centre_half(&root, level) {
                     root = upper.centre(&root, level);
                     level -= 1;
                 }
-                upper.keep_only(&root, level);
                 state.root = root;
                 state.level = level;
-                upper.pieces(&root, level)
+                let pieces = upper.pieces(&root, level);
+                // The finished sub-advances go on to the next step (with
+                // the quads and pieces their results need), unless their
+                // pieces would more than double what the nodes hold (and
+                // are more than a few).
+                let mut roots: Vec<(ContentId, u32)> = finished.results.values().copied().collect();
+                let carried_pieces = upper.pieces_under(&roots);
+                let extra = carried_pieces.difference(&pieces).count();
+                if extra <= pieces.len().max(MIN_CARRIED_PIECES) {
+                    roots.push((root, level));
+                    upper.keep_under(&roots);
+                    carried = Some(finished);
+                    let kept: HashSet<ContentId> = pieces.union(&carried_pieces).copied().collect();
+                    (pieces, kept)
+                } else {
+                    upper.keep_only(&root, level);
+                    (pieces.clone(), pieces)
+                }
             };
-            self.tasks.retain(self.job_id, &pieces).await?;
+            self.tasks.retain(self.job_id, &kept).await?;
             let figures = self.tasks.figures(&pieces);
             let (population, _) =
                 state

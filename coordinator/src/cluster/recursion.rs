@@ -19,9 +19,13 @@ use crate::cluster::upper::Upper;
 type Failure = Arc<anyhow::Error>;
 type Pending = Shared<BoxFuture<'static, Result<ContentId, Failure>>>;
 
+/// A memo entry: the result's level, its shared future, and whether the
+/// advance holding it made or used it.
+type MemoEntry = (u32, Pending, bool);
+
 /// What a memo entry is keyed by besides the quad.
 #[derive(Clone, Copy, PartialEq, Eq, Hash, Debug)]
-enum Kind {
+pub enum Kind {
     Step(Stride),
     /// the centre, no generations on
     Centre,
@@ -61,6 +65,21 @@ fn spawned(
     .shared()
 }
 
+/// The finished sub-advances of one advance, handed to the next so that
+/// what recurs (the same quads advanced by the same strides: the regular
+/// parts of a pattern) is not computed again, as the local engine keeps
+/// its results in its quads.
+pub struct Carried {
+    /// the N of the advance they came from (residual strides depend on it)
+    pub steps: BigUint,
+    /// (quad, kind) → (result, the result's level)
+    pub results: HashMap<(ContentId, Kind), (ContentId, u32)>,
+}
+
+/// Finished sub-advances an advance hands on whole; beyond this, only the
+/// ones it made or used (each entry is about 150 bytes).
+const MAX_CARRIED: usize = 1 << 20;
+
 /// One advance of the whole state by N generations.
 pub struct Advance {
     pub job: String,
@@ -70,7 +89,10 @@ pub struct Advance {
     /// N as little-endian bits
     steps: BigUint,
     trailing_zeros: u64,
-    memo: Mutex<HashMap<(ContentId, Kind), Pending>>,
+    /// (quad, kind) → (the result's level, its shared future, whether this
+    /// advance made or used it: past `MAX_CARRIED` entries only those go on
+    /// to the next advance, so the memo stays bounded)
+    memo: Mutex<HashMap<(ContentId, Kind), MemoEntry>>,
     /// set when one sub-advance failed: the others stop at their next step
     cancelled: std::sync::atomic::AtomicBool,
     /// the sub-advances running now, to stop them at once when one fails
@@ -85,9 +107,24 @@ impl Advance {
         upper: Arc<Mutex<Upper>>,
         tasks: Arc<Dispatcher>,
         steps: BigUint,
+        carried: Option<Carried>,
     ) -> Arc<Advance> {
         let shard_level = upper.lock().expect("upper").shard_level;
         let trailing_zeros = steps.trailing_zeros().unwrap_or(0);
+        let mut memo = HashMap::new();
+        if let Some(carried) = carried {
+            let same_steps = carried.steps == steps;
+            for ((quad, kind), (result, level)) in carried.results {
+                // A residual stride means N's low bits: only for the same N.
+                if kind == Kind::Step(Stride::Residual) && !same_steps {
+                    continue;
+                }
+                let ready: Pending = futures::future::ready(Ok(result)).boxed().shared();
+                // Polled once, so that it counts as finished (`peek`).
+                let _ = ready.clone().now_or_never();
+                memo.insert((quad, kind), (level, ready, false));
+            }
+        }
         Arc::new(Advance {
             job,
             upper,
@@ -95,7 +132,7 @@ impl Advance {
             shard_level,
             steps,
             trailing_zeros,
-            memo: Mutex::new(HashMap::new()),
+            memo: Mutex::new(memo),
             cancelled: std::sync::atomic::AtomicBool::new(false),
             running: Arc::new(Mutex::new(HashMap::new())),
         })
@@ -122,6 +159,23 @@ impl Advance {
         self.cancelled
             .store(true, std::sync::atomic::Ordering::Relaxed);
         self.memo.lock().expect("memo").clear();
+    }
+
+    /// Its finished sub-advances, for the next advance.
+    pub fn finished(&self) -> Carried {
+        let memo = self.memo.lock().expect("memo");
+        let results = memo
+            .iter()
+            .filter(|(_, (_, _, used))| *used || memo.len() <= MAX_CARRIED)
+            .filter_map(|(key, (level, pending, _))| match pending.peek() {
+                Some(Ok(result)) => Some((*key, (*result, *level))),
+                _ => None,
+            })
+            .collect();
+        Carried {
+            steps: self.steps.clone(),
+            results,
+        }
     }
 
     fn check_cancelled(&self) -> Result<(), Failure> {
@@ -166,7 +220,8 @@ impl Advance {
             let key = (quad, Kind::Step(stride));
             let pending = {
                 let mut memo = self.memo.lock().expect("memo");
-                if let Some(pending) = memo.get(&key) {
+                if let Some((_, pending, used)) = memo.get_mut(&key) {
+                    *used = true;
                     self.tasks
                         .memoised
                         .fetch_add(1, std::sync::atomic::Ordering::Relaxed);
@@ -182,7 +237,7 @@ impl Advance {
                             this.advance_inner(quad, level, stride).await
                         }
                     });
-                    memo.insert(key, work.clone());
+                    memo.insert(key, (level - 1, work.clone(), true));
                     work
                 }
             };
@@ -193,7 +248,12 @@ impl Advance {
 
     /// The result of a sub-advance that needs no waiting: an empty quad's,
     /// or one the memo holds finished.
-    fn done(&self, quad: ContentId, level: u32, stride: Stride) -> Option<Result<ContentId, Failure>> {
+    fn done(
+        &self,
+        quad: ContentId,
+        level: u32,
+        stride: Stride,
+    ) -> Option<Result<ContentId, Failure>> {
         {
             let mut upper = self.upper.lock().expect("upper");
             if quad == upper.empty(level) {
@@ -203,8 +263,10 @@ impl Advance {
         if stride == Stride::Residual && self.trailing_zeros >= (level - 2) as u64 {
             return None;
         }
-        let memo = self.memo.lock().expect("memo");
-        let finished = memo.get(&(quad, Kind::Step(stride)))?.peek()?.clone();
+        let mut memo = self.memo.lock().expect("memo");
+        let entry = memo.get_mut(&(quad, Kind::Step(stride)))?;
+        let finished = entry.1.peek()?.clone();
+        entry.2 = true;
         self.tasks
             .memoised
             .fetch_add(1, std::sync::atomic::Ordering::Relaxed);
@@ -233,15 +295,16 @@ impl Advance {
             let key = (quad, Kind::Centre);
             let pending = {
                 let mut memo = self.memo.lock().expect("memo");
-                memo.entry(key)
-                    .or_insert_with(|| {
-                        let this = self.clone();
-                        spawned(&self, async move {
-                            let kids = this.upper.lock().expect("upper").kids(&quad, level);
-                            this.task(kids, 0).await
-                        })
-                    })
-                    .clone()
+                let entry = memo.entry(key).or_insert_with(|| {
+                    let this = self.clone();
+                    let work = spawned(&self, async move {
+                        let kids = this.upper.lock().expect("upper").kids(&quad, level);
+                        this.task(kids, 0).await
+                    });
+                    (level - 1, work, true)
+                });
+                entry.2 = true;
+                entry.1.clone()
             };
             pending.await
         }

@@ -116,11 +116,17 @@ impl Upper {
 
     /// The distinct level-(K-1) pieces under `root` (empty ones left out).
     pub fn pieces(&mut self, root: &ContentId, level: u32) -> HashSet<ContentId> {
+        self.pieces_under(&[(*root, level)])
+    }
+
+    /// The distinct level-(K-1) pieces under any of `roots` (each of level
+    /// K-1 or more; empty ones left out).
+    pub fn pieces_under(&mut self, roots: &[(ContentId, u32)]) -> HashSet<ContentId> {
         let piece_level = self.shard_level - 1;
         let empty = self.empty(piece_level);
         let mut seen = HashSet::new();
         let mut pieces = HashSet::new();
-        let mut stack = vec![(*root, level)];
+        let mut stack = roots.to_vec();
         while let Some((id, level)) = stack.pop() {
             if level == piece_level {
                 if id != empty {
@@ -191,8 +197,13 @@ impl Upper {
 
     /// Forgets every quad not under `root` (the memo of the last advance).
     pub fn keep_only(&mut self, root: &ContentId, level: u32) {
+        self.keep_under(&[(*root, level)]);
+    }
+
+    /// Forgets every quad not under one of `roots`.
+    pub fn keep_under(&mut self, roots: &[(ContentId, u32)]) {
         let mut keep = HashSet::new();
-        let mut stack = vec![(*root, level)];
+        let mut stack = roots.to_vec();
         while let Some((id, level)) = stack.pop() {
             if level < self.shard_level || !keep.insert(id) {
                 continue;
