@@ -300,7 +300,7 @@ impl Run<'_> {
                 // the quads and pieces their results need), unless their
                 // pieces would more than double what the nodes hold (and
                 // are more than a few).
-                let mut roots: Vec<(ContentId, u32)> = finished.results.values().copied().collect();
+                let mut roots = finished.results();
                 let carried_pieces = upper.pieces_under(&roots);
                 let extra = carried_pieces.difference(&pieces).count();
                 if extra <= pieces.len().max(MIN_CARRIED_PIECES) {

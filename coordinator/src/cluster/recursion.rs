@@ -71,9 +71,22 @@ fn spawned(
 /// its results in its quads.
 pub struct Carried {
     /// the N of the advance they came from (residual strides depend on it)
-    pub steps: BigUint,
-    /// (quad, kind) → (result, the result's level)
-    pub results: HashMap<(ContentId, Kind), (ContentId, u32)>,
+    steps: BigUint,
+    /// the memo, finished entries only
+    memo: HashMap<(ContentId, Kind), MemoEntry, ahash::RandomState>,
+}
+
+impl Carried {
+    /// The results (each with its level), for keeping what they need.
+    pub fn results(&self) -> Vec<(ContentId, u32)> {
+        self.memo
+            .values()
+            .filter_map(|(level, pending, _)| match pending.peek() {
+                Some(Ok(result)) => Some((*result, *level)),
+                _ => None,
+            })
+            .collect()
+    }
 }
 
 /// Finished sub-advances an advance hands on whole; beyond this, only the
@@ -92,7 +105,7 @@ pub struct Advance {
     /// (quad, kind) → (the result's level, its shared future, whether this
     /// advance made or used it: past `MAX_CARRIED` entries only those go on
     /// to the next advance, so the memo stays bounded)
-    memo: Mutex<HashMap<(ContentId, Kind), MemoEntry>>,
+    memo: Mutex<HashMap<(ContentId, Kind), MemoEntry, ahash::RandomState>>,
     /// set when one sub-advance failed: the others stop at their next step
     cancelled: std::sync::atomic::AtomicBool,
     /// the sub-advances running now, to stop them at once when one fails
@@ -111,19 +124,16 @@ impl Advance {
     ) -> Arc<Advance> {
         let shard_level = upper.lock().expect("upper").shard_level;
         let trailing_zeros = steps.trailing_zeros().unwrap_or(0);
-        let mut memo = HashMap::new();
+        let mut memo: HashMap<(ContentId, Kind), MemoEntry, ahash::RandomState> =
+            HashMap::default();
         if let Some(carried) = carried {
             let same_steps = carried.steps == steps;
-            for ((quad, kind), (result, level)) in carried.results {
-                // A residual stride means N's low bits: only for the same N.
-                if kind == Kind::Step(Stride::Residual) && !same_steps {
-                    continue;
-                }
-                let ready: Pending = futures::future::ready(Ok(result)).boxed().shared();
-                // Polled once, so that it counts as finished (`peek`).
-                let _ = ready.clone().now_or_never();
-                memo.insert((quad, kind), (level, ready, false));
-            }
+            memo = carried.memo;
+            // A residual stride means N's low bits: only for the same N.
+            memo.retain(|(_, kind), entry| {
+                entry.2 = false;
+                same_steps || *kind != Kind::Step(Stride::Residual)
+            });
         }
         Arc::new(Advance {
             job,
@@ -162,19 +172,16 @@ impl Advance {
     }
 
     /// Its finished sub-advances, for the next advance.
+    /// (Takes them: call it once the advance is over.)
     pub fn finished(&self) -> Carried {
-        let memo = self.memo.lock().expect("memo");
-        let results = memo
-            .iter()
-            .filter(|(_, (_, _, used))| *used || memo.len() <= MAX_CARRIED)
-            .filter_map(|(key, (level, pending, _))| match pending.peek() {
-                Some(Ok(result)) => Some((*key, (*result, *level))),
-                _ => None,
-            })
-            .collect();
+        let mut memo = std::mem::take(&mut *self.memo.lock().expect("memo"));
+        let whole = memo.len() <= MAX_CARRIED;
+        memo.retain(|_, (_, pending, used)| {
+            (*used || whole) && matches!(pending.peek(), Some(Ok(_)))
+        });
         Carried {
             steps: self.steps.clone(),
-            results,
+            memo,
         }
     }
 

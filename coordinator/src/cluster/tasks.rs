@@ -111,7 +111,7 @@ pub struct Counters {
 
 pub struct Dispatcher {
     members: Arc<Members>,
-    directory: Mutex<HashMap<ContentId, Holding>>,
+    directory: Mutex<HashMap<ContentId, Holding, ahash::RandomState>>,
     /// the empty piece: every member has it
     empty_piece: ContentId,
     done: AtomicU64,
@@ -130,7 +130,7 @@ impl Dispatcher {
     pub fn new(members: Arc<Members>, empty_piece: ContentId) -> Dispatcher {
         Dispatcher {
             members,
-            directory: Mutex::new(HashMap::new()),
+            directory: Mutex::new(HashMap::default()),
             empty_piece,
             done: AtomicU64::new(0),
             running: AtomicU64::new(0),

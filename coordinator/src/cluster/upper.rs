@@ -14,7 +14,7 @@ use num_traits::{One, Zero};
 /// Quads of level ≥ K by id; the empty quad of every level.
 pub struct Upper {
     pub shard_level: u32,
-    quads: HashMap<ContentId, UpperQuad>,
+    quads: HashMap<ContentId, UpperQuad, ahash::RandomState>,
     /// `empties[level]`: the id of the empty quad of that level (from 3)
     empties: Vec<ContentId>,
 }
@@ -23,7 +23,7 @@ impl Upper {
     pub fn new(shard_level: u32) -> Upper {
         let mut upper = Upper {
             shard_level,
-            quads: HashMap::new(),
+            quads: HashMap::default(),
             empties: vec![ContentId([0; 16]); 3],
         };
         upper.empties.push(ContentId::of_leaf(0));
@@ -124,7 +124,7 @@ impl Upper {
     pub fn pieces_under(&mut self, roots: &[(ContentId, u32)]) -> HashSet<ContentId> {
         let piece_level = self.shard_level - 1;
         let empty = self.empty(piece_level);
-        let mut seen = HashSet::new();
+        let mut seen: HashSet<ContentId, ahash::RandomState> = HashSet::default();
         let mut pieces = HashSet::new();
         let mut stack = roots.to_vec();
         while let Some((id, level)) = stack.pop() {
@@ -154,7 +154,7 @@ impl Upper {
         pieces: &HashMap<ContentId, Figures>,
     ) -> Vec<(UpperQuad, BigUint)> {
         let piece_level = self.shard_level - 1;
-        let mut population: HashMap<ContentId, BigUint> = HashMap::new();
+        let mut population: HashMap<ContentId, BigUint, ahash::RandomState> = HashMap::default();
         let mut out = Vec::new();
         // (quad, level, children done?)
         let mut stack = vec![(*root, level, false)];
@@ -202,7 +202,7 @@ impl Upper {
 
     /// Forgets every quad not under one of `roots`.
     pub fn keep_under(&mut self, roots: &[(ContentId, u32)]) {
-        let mut keep = HashSet::new();
+        let mut keep: HashSet<ContentId, ahash::RandomState> = HashSet::default();
         let mut stack = roots.to_vec();
         while let Some((id, level)) = stack.pop() {
             if level < self.shard_level || !keep.insert(id) {
