@@ -93,16 +93,18 @@ impl Written {
         })
     }
 
+    /// Takes the quads of a pack just written; a quad also in an older
+    /// pack is found at its newest place (the one a later base keeps).
     fn add(&mut self, name: Checksum, ids: &[ContentId]) {
         let pack = self.pack_index(name);
         for (record, id) in ids.iter().enumerate() {
-            self.quads.entry(*id).or_insert((pack, record as u32));
+            self.quads.insert(*id, (pack, record as u32));
         }
     }
 
     fn add_piece(&mut self, name: Checksum, record: u32, id: ContentId) {
         let pack = self.pack_index(name);
-        self.quads.entry(id).or_insert((pack, record));
+        self.quads.insert(id, (pack, record));
         self.pieces.insert((pack, record), id);
     }
 
@@ -325,7 +327,7 @@ pub async fn load_pieces(
         for (at, id) in &ids {
             let name = names[at.pack as usize];
             let pack = written.pack_index(name);
-            written.quads.entry(*id).or_insert((pack, at.record));
+            written.quads.insert(*id, (pack, at.record));
         }
         for piece in &pieces {
             written.add_piece(names[piece.pack as usize], piece.record, ids[piece]);
@@ -436,4 +438,41 @@ fn read_subtree(
         }
     }
     Ok(records)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn id(n: u8) -> ContentId {
+        ContentId([n; 16])
+    }
+
+    fn name(n: u8) -> Checksum {
+        Checksum([n; 16])
+    }
+
+    #[test]
+    fn written_quads_are_found_only_in_base_packs_and_pruned_to_them_and_the_shard() {
+        // Common practice for incremental content-addressed writes: refer
+        // only to what the reader is told to read.
+        let mut written = Written::default();
+        written.add(name(1), &[id(10), id(11)]);
+        written.add(name(2), &[id(20), id(11)]);
+        written.add_piece(name(2), 0, id(20));
+        let base: HashMap<Checksum, u32> = [(name(2), 0)].into();
+        // id 10 is only in pack 1, which is not in the base.
+        assert_eq!(written.locate(&id(10), &base), None);
+        let (pack, at) = written.locate(&id(20), &base).unwrap();
+        assert_eq!((pack, at.pack, at.record), (name(2), 0, 0));
+        // id 11 is in both: found at its newest place, in the base.
+        let (pack, at) = written.locate(&id(11), &base).unwrap();
+        assert_eq!((pack, at.record), (name(2), 1));
+        assert_eq!(written.piece_at(&name(2), 0), Some(id(20)));
+        // Pruned to the base and to what the shard has.
+        written.prune(&base, |quad| *quad != id(20));
+        assert_eq!(written.quads.len(), 1, "{:?}", written.quads);
+        assert!(written.quads.contains_key(&id(11)));
+        assert_eq!(written.piece_at(&name(2), 0), None);
+    }
 }

@@ -370,20 +370,32 @@ impl Dispatcher {
         self.directory.lock().expect("directory").clear();
     }
 
-    /// The addresses of the live members holding a piece.
-    pub fn holders_of(&self, piece: &ContentId) -> anyhow::Result<Vec<String>> {
-        let directory = self.directory.lock().expect("directory");
-        let addresses: Vec<String> = directory
+    /// The live members holding a piece, by the directory.
+    fn live_holders(
+        &self,
+        directory: &HashMap<ContentId, Holding, ahash::RandomState>,
+        piece: &ContentId,
+    ) -> Vec<Arc<Member>> {
+        directory
             .get(piece)
             .map(|holding| {
                 holding
                     .holders
                     .iter()
                     .filter_map(|id| self.members.get(*id).filter(|m| m.is_live()))
-                    .map(|m| m.address.clone())
                     .collect()
             })
-            .unwrap_or_default();
+            .unwrap_or_default()
+    }
+
+    /// The addresses of the live members holding a piece.
+    pub fn holders_of(&self, piece: &ContentId) -> anyhow::Result<Vec<String>> {
+        let directory = self.directory.lock().expect("directory");
+        let addresses: Vec<String> = self
+            .live_holders(&directory, piece)
+            .iter()
+            .map(|m| m.address.clone())
+            .collect();
         if addresses.is_empty() {
             return Err(PiecesLost(format!("piece {} is on no live node", piece.short())).into());
         }
@@ -548,17 +560,8 @@ impl Dispatcher {
         {
             let directory = self.directory.lock().expect("directory");
             for piece in pieces {
-                let holders: Vec<Arc<Member>> = directory
-                    .get(piece)
-                    .map(|holding| {
-                        holding
-                            .holders
-                            .iter()
-                            .filter_map(|id| self.members.get(*id).filter(|m| m.is_live()))
-                            .collect()
-                    })
-                    .unwrap_or_default();
-                let writer = holders
+                let writer = self
+                    .live_holders(&directory, piece)
                     .into_iter()
                     .min_by_key(|m| (shares.get(&m.id).map_or(0, |(_, s)| s.len()), m.id))
                     .ok_or_else(|| {
