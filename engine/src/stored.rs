@@ -66,6 +66,13 @@ pub enum StoredNode {
     At(QuadAt),
 }
 
+/// A quad met by `StoredState::post_order`.
+#[derive(Clone, Copy, Debug)]
+pub enum Visited {
+    Leaf(u64),
+    Inner([StoredNode; 4]),
+}
+
 /// A pack's table, once read, with its slots resolved to pack indices.
 struct OpenPack {
     table: PackTable,
@@ -199,6 +206,55 @@ impl<'f> StoredState<'f> {
             });
         }
         QuadView::leaf_bits(self, node)
+    }
+
+    /// Visits the stored quads under `root` (of `level`) once each,
+    /// children before parents, nw to se: leaves with their cells, inner
+    /// quads with their children. Quads of level `floor` are visited but
+    /// not gone below (their children are named, not visited); quads in
+    /// `visited` are skipped (and every quad visited is added to it, so
+    /// several walks share their work).
+    pub fn post_order(
+        &mut self,
+        root: QuadAt,
+        level: u32,
+        floor: u32,
+        visited: &mut std::collections::HashSet<QuadAt, ahash::RandomState>,
+        visit: &mut dyn FnMut(QuadAt, u32, Visited),
+    ) -> Result<(), ReadError> {
+        // (quad, level, its children once read)
+        let mut stack: Vec<(QuadAt, u32, Option<[StoredNode; 4]>)> = vec![(root, level, None)];
+        while let Some((at, level, kids)) = stack.pop() {
+            if visited.contains(&at) {
+                continue;
+            }
+            if level == LEAF_LEVEL {
+                let bits = self.cells(StoredNode::At(at))?;
+                visited.insert(at);
+                visit(at, level, Visited::Leaf(bits));
+                continue;
+            }
+            match kids {
+                None => {
+                    let kids = self.children(StoredNode::At(at), level)?;
+                    stack.push((at, level, Some(kids)));
+                    if level > floor {
+                        for kid in kids.iter().rev() {
+                            if let StoredNode::At(kid) = kid
+                                && !visited.contains(kid)
+                            {
+                                stack.push((*kid, level - 1, None));
+                            }
+                        }
+                    }
+                }
+                Some(kids) => {
+                    visited.insert(at);
+                    visit(at, level, Visited::Inner(kids));
+                }
+            }
+        }
+        Ok(())
     }
 
     /// How many decoded chunks are kept.

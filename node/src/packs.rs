@@ -16,7 +16,7 @@ use std::time::Instant;
 
 use deeptime_engine::pack::{Checksum, QuadAt};
 use deeptime_engine::shard::Record;
-use deeptime_engine::stored::{StoredNode, StoredPack, StoredState};
+use deeptime_engine::stored::{StoredNode, StoredPack, StoredState, Visited};
 use deeptime_engine::{ContentId, LEAF_LEVEL};
 use deeptime_proto::v1;
 use tonic::Status;
@@ -300,11 +300,19 @@ pub async fn load_pieces(
         let names: Vec<Checksum> = packs.iter().map(|p| p.name).collect();
         let mut stored = StoredState::over(&mut fetch, packs, rule);
         let mut ids: HashMap<QuadAt, ContentId, ahash::RandomState> = HashMap::default();
+        let mut visited = std::collections::HashSet::default();
         let mut empties = Vec::new();
         let mut out = Vec::with_capacity(pieces.len());
         for piece in &pieces {
-            let records = read_subtree(&mut stored, *piece, piece_level, &mut ids, &mut empties)
-                .map_err(|error| Status::data_loss(error.to_string()))?;
+            let records = read_subtree(
+                &mut stored,
+                *piece,
+                piece_level,
+                &mut ids,
+                &mut visited,
+                &mut empties,
+            )
+            .map_err(|error| Status::data_loss(error.to_string()))?;
             let id = ids[piece];
             {
                 let mut guard = state.shard.lock().expect("shard");
@@ -382,6 +390,7 @@ fn read_subtree(
     root: QuadAt,
     level: u32,
     ids: &mut HashMap<QuadAt, ContentId, ahash::RandomState>,
+    visited: &mut std::collections::HashSet<QuadAt, ahash::RandomState>,
     empties: &mut Vec<ContentId>,
 ) -> Result<Vec<(ContentId, Record)>, deeptime_engine::stored::ReadError> {
     let mut empty = |level: u32| -> ContentId {
@@ -395,48 +404,23 @@ fn read_subtree(
         empties[(level - LEAF_LEVEL) as usize]
     };
     let mut records = Vec::new();
-    // (quad, level, its children if read)
-    let mut stack: Vec<(QuadAt, u32, Option<[StoredNode; 4]>)> = vec![(root, level, None)];
-    while let Some((at, level, kids)) = stack.pop() {
-        if ids.contains_key(&at) {
-            continue;
-        }
-        if level == LEAF_LEVEL {
-            let bits = stored.cells(StoredNode::At(at))?;
-            let id = ContentId::of_leaf(bits);
-            ids.insert(at, id);
-            records.push((id, Record::Leaf(bits)));
-            continue;
-        }
-        match kids {
-            None => {
-                let kids = stored.children(StoredNode::At(at), level)?;
-                stack.push((at, level, Some(kids)));
-                for kid in kids.iter().rev() {
-                    if let StoredNode::At(kid) = kid
-                        && !ids.contains_key(kid)
-                    {
-                        stack.push((*kid, level - 1, None));
-                    }
-                }
-            }
-            Some(kids) => {
-                let kid_ids = kids.map(|kid| match kid {
+    stored.post_order(root, level, LEAF_LEVEL, visited, &mut |at, level, quad| {
+        let (id, record) = match quad {
+            Visited::Leaf(bits) => (ContentId::of_leaf(bits), Record::Leaf(bits)),
+            Visited::Inner(kids) => {
+                let kids = kids.map(|kid| match kid {
                     StoredNode::Empty => empty(level - 1),
                     StoredNode::At(kid) => ids[&kid],
                 });
-                let id = ContentId::of_inner(level, kid_ids);
-                ids.insert(at, id);
-                records.push((
-                    id,
-                    Record::Inner {
-                        level,
-                        kids: kid_ids,
-                    },
-                ));
+                (
+                    ContentId::of_inner(level, kids),
+                    Record::Inner { level, kids },
+                )
             }
-        }
-    }
+        };
+        ids.insert(at, id);
+        records.push((id, record));
+    })?;
     Ok(records)
 }
 

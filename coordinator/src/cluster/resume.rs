@@ -18,7 +18,7 @@ use anyhow::Context;
 use deeptime_engine::cut::UpperQuad;
 use deeptime_engine::pack::QuadAt;
 use deeptime_engine::shard::Figures;
-use deeptime_engine::stored::StoredNode;
+use deeptime_engine::stored::{StoredNode, Visited};
 use deeptime_engine::{BudgetExceeded, ContentId, KnownQuads};
 use deeptime_node::wire::{self, MAX_BATCH};
 use deeptime_proto::v1;
@@ -335,41 +335,29 @@ fn read_top(
     let mut quads = Vec::new();
     let mut pieces = Vec::new();
     let mut seen_pieces = HashSet::new();
-    let mut done = HashSet::new();
-    // (quad, level, its children if read): children first, in walk order.
-    let mut stack: Vec<(QuadAt, u32, Option<[StoredNode; 4]>)> = vec![(root, root_level, None)];
-    while let Some((at, level, kids)) = stack.pop() {
-        if done.contains(&at) {
-            continue;
-        }
-        match kids {
-            None => {
-                let kids = stored.children(StoredNode::At(at), level)?;
-                stack.push((at, level, Some(kids)));
-                for kid in kids.iter().rev() {
+    let mut visited = HashSet::default();
+    // Down to the level-K quads, whose children are the pieces.
+    stored.post_order(
+        root,
+        root_level,
+        shard_level,
+        &mut visited,
+        &mut |at, level, quad| {
+            let Visited::Inner(kids) = quad else {
+                unreachable!("no leaf above the shard level");
+            };
+            if level == shard_level {
+                for kid in kids {
                     if let StoredNode::At(kid) = kid
-                        && level > shard_level
-                        && !done.contains(kid)
+                        && seen_pieces.insert(kid)
                     {
-                        stack.push((*kid, level - 1, None));
+                        pieces.push(kid);
                     }
                 }
             }
-            Some(kids) => {
-                if level == shard_level {
-                    for kid in kids {
-                        if let StoredNode::At(kid) = kid
-                            && seen_pieces.insert(kid)
-                        {
-                            pieces.push(kid);
-                        }
-                    }
-                }
-                done.insert(at);
-                quads.push((at, level, kids));
-            }
-        }
-    }
+            quads.push((at, level, kids));
+        },
+    )?;
     Ok(Some(StoredTop {
         quads,
         pieces,
