@@ -995,6 +995,9 @@ impl Reader {
         let mut local: Vec<ReadQuad> = Vec::with_capacity(table.records as usize);
         let mut pops: Vec<u64> = Vec::with_capacity(table.records as usize);
         let mut decompressor = zstd::bulk::Decompressor::new().expect("a zstd decompressor");
+        // Quads of this pack that an earlier pack holds too.
+        let mut also_here: std::collections::HashSet<ContentId, ahash::RandomState> =
+            Default::default();
         // Chunk by chunk: one chunk's records are held decoded at a time.
         for chunk in 0..table.chunks.len() {
             let entry = table.chunks[chunk];
@@ -1111,7 +1114,9 @@ impl Reader {
                 // first place found is the one references resolve to.
                 match self.known.entry(id) {
                     std::collections::hash_map::Entry::Occupied(first) => {
-                        if first.get().pack == pack as u32 {
+                        // Twice in this pack: found here first, or found in
+                        // an earlier pack and already met once in this one.
+                        if first.get().pack == pack as u32 || !also_here.insert(id) {
                             return Err(bad(format!("quad {id} is stored twice")));
                         }
                     }

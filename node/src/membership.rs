@@ -119,21 +119,22 @@ async fn renew_until_lapsed(
     // The first renewal goes at once: it tells the coordinator that this
     // node has taken the job's terms and can take tasks.
     let mut first = true;
+    let mut last = (0, 0);
     loop {
         if !first {
             tokio::time::sleep(every).await;
         }
         first = false;
-        let (quads, bytes) = {
-            let guard = state.shard.lock().expect("shard");
-            guard
-                .as_ref()
-                .map(|shard| {
-                    let stats = shard.stats();
-                    (stats.quads, stats.bytes)
-                })
-                .unwrap_or((0, 0))
-        };
+        // Never wait for the shard: a long task or pack holds it, and a
+        // renewal that waited could let the lease lapse. When it is busy,
+        // the last figures go again.
+        if let Ok(guard) = state.shard.try_lock()
+            && let Some(shard) = guard.as_ref()
+        {
+            let stats = shard.stats();
+            last = (stats.quads, stats.bytes);
+        }
+        let (quads, bytes) = last;
         let renew = v1::RenewRequest {
             member: reply.member,
             quads,

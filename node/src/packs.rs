@@ -357,15 +357,20 @@ fn held(
     pieces: &[QuadAt],
 ) -> Result<v1::LoadReply, Status> {
     let written = state.written.lock().expect("written");
-    let guard = state.shard.lock().expect("shard");
+    let mut guard = state.shard.lock().expect("shard");
     let shard = guard
-        .as_ref()
+        .as_mut()
         .ok_or_else(|| Status::failed_precondition("this node has not joined a job"))?;
     let mut out = Vec::with_capacity(pieces.len());
     for piece in pieces {
         let found = written
             .piece_at(&packs[piece.pack as usize].name, piece.record)
             .and_then(|id| shard.figures(&id).map(|figures| (id, figures)));
+        // Found: held from now on, as pieces read are (else the collector
+        // could take it before the coordinator's retain names it).
+        if let Some((id, _)) = &found {
+            shard.hold(id).map_err(wire::shard_status)?;
+        }
         out.push(match found {
             Some((id, figures)) => v1::LoadedPiece {
                 id: id.0.to_vec(),

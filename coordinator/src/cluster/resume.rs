@@ -72,7 +72,20 @@ impl Run<'_> {
                 &self.pattern_digest,
             )?;
             let attempt = if self.nodes_write() {
-                self.load_on_nodes(checkpoints, &manifest).await
+                match self.load_on_nodes(checkpoints, &manifest).await {
+                    // The nodes could not read it (damage, or a storage or
+                    // node that failed): read it here, whole, which tells
+                    // damage from the rest as an embedded run does.
+                    Err(error) if !stops_the_load(&error) => {
+                        eprintln!(
+                            "deeptime: warning: the nodes could not read checkpoint {}: {error:#}; reading it whole",
+                            manifest.sequence
+                        );
+                        self.tasks.forget_all();
+                        Ok(None)
+                    }
+                    other => other,
+                }
             } else {
                 Ok(None)
             };
@@ -100,18 +113,7 @@ impl Run<'_> {
                     );
                     return Ok((on_nodes, manifest, known));
                 }
-                // Not damage: a lost node, memory, a checkpoint of another
-                // version or run. Stop rather than go further back.
-                Err(error)
-                    if error.chain().any(|c| {
-                        c.is::<PiecesLost>()
-                            || c.is::<NodeOutOfMemory>()
-                            || c.is::<BudgetExceeded>()
-                            || c.is::<BadInput>()
-                    }) =>
-                {
-                    return Err(error);
-                }
+                Err(error) if stops_the_load(&error) => return Err(error),
                 Err(error) => {
                     eprintln!(
                         "deeptime: warning: skipping damaged checkpoint {}: {error:#}",
@@ -156,6 +158,9 @@ impl Run<'_> {
             })
             .collect::<anyhow::Result<_>>()?;
         let live = self.members.live();
+        if live.is_empty() {
+            return Err(PiecesLost("no node is live".to_string()).into());
+        }
         // Pieces still on a node stay there.
         let mut placed: HashMap<QuadAt, Placed> = HashMap::new();
         for member in &live {
@@ -217,7 +222,14 @@ impl Run<'_> {
             for (slot, kid) in kids.iter().enumerate() {
                 kid_ids[slot] = match kid {
                     StoredNode::Empty => upper.empty(level - 1),
-                    StoredNode::At(kid) if *level == shard_level => placed[kid].id,
+                    StoredNode::At(kid) if *level == shard_level => {
+                        placed
+                            .get(kid)
+                            .with_context(|| {
+                                format!("no node read the piece at record {}", kid.record)
+                            })?
+                            .id
+                    }
                     StoredNode::At(kid) => ids[kid],
                 };
             }
@@ -314,6 +326,18 @@ impl Run<'_> {
         }
         Ok(out)
     }
+}
+
+/// Errors that are no damage of a checkpoint: a lost node, memory, a
+/// checkpoint of another version or run. The load stops rather than go
+/// further back.
+fn stops_the_load(error: &anyhow::Error) -> bool {
+    error.chain().any(|c| {
+        c.is::<PiecesLost>()
+            || c.is::<NodeOutOfMemory>()
+            || c.is::<BudgetExceeded>()
+            || c.is::<BadInput>()
+    })
 }
 
 /// Reads a checkpoint's records of level K and up, on demand; None when its
