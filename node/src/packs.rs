@@ -146,7 +146,7 @@ pub async fn write_pieces(
     }
     let mut base = Vec::with_capacity(request.base.len());
     for name in &request.base {
-        base.push(Checksum(wire::id_from(name)?.0));
+        base.push(wire::checksum_from(name)?);
     }
     let mut pieces = Vec::with_capacity(request.pieces.len());
     for piece in &request.pieces {
@@ -201,24 +201,20 @@ pub async fn write_pieces(
         let mut known = state.written.lock().expect("written");
         let mut places = Vec::with_capacity(pieces.len());
         for piece in &pieces {
-            let place = match (new_records.get(piece), name) {
-                (Some(&record), Some(name)) => v1::PiecePlace {
-                    pack: name.0.to_vec(),
-                    record,
-                },
+            let (name, record) = match (new_records.get(piece), name) {
+                (Some(&record), Some(name)) => (name, record),
                 _ => {
                     let (name, at) = known.locate(piece, &index).ok_or_else(|| {
                         Status::internal(format!("piece {} is in no pack", piece.short()))
                     })?;
-                    v1::PiecePlace {
-                        pack: name.0.to_vec(),
-                        record: at.record,
-                    }
+                    (name, at.record)
                 }
             };
-            let name = Checksum(place.pack.as_slice().try_into().expect("16 bytes"));
-            known.add_piece(name, place.record, *piece);
-            places.push(place);
+            known.add_piece(name, record, *piece);
+            places.push(v1::PiecePlace {
+                pack: name.0.to_vec(),
+                record,
+            });
         }
         Ok(v1::WritePackReply {
             pack,
@@ -250,12 +246,12 @@ pub async fn load_pieces(
     }
     let mut packs = Vec::with_capacity(request.packs.len());
     for pack in &request.packs {
-        let name = Checksum(wire::id_from(&pack.name)?.0);
+        let name = wire::checksum_from(&pack.name)?;
         packs.push(StoredPack {
             name,
             bytes: pack.bytes,
             records: pack.records,
-            table: Checksum(wire::id_from(&pack.table)?.0),
+            table: wire::checksum_from(&pack.table)?,
             place: checkpoints
                 .storage
                 .locate(&storage::pack_key(&name.to_string())),

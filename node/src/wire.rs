@@ -112,6 +112,14 @@ pub fn id_from(bytes: &[u8]) -> Result<ContentId, Status> {
     Ok(ContentId(array))
 }
 
+/// A pack name or table checksum (16 bytes) from the wire.
+pub fn checksum_from(bytes: &[u8]) -> Result<deeptime_engine::pack::Checksum, Status> {
+    let array: [u8; 16] = bytes.try_into().map_err(|_| {
+        Status::invalid_argument(format!("a checksum has 16 bytes, not {}", bytes.len()))
+    })?;
+    Ok(deeptime_engine::pack::Checksum(array))
+}
+
 /// Four content ids (nw, ne, sw, se) from 64 bytes.
 pub fn ids4_from(bytes: &[u8]) -> Result<[ContentId; 4], Status> {
     if bytes.len() != 64 {

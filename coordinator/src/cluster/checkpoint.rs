@@ -168,8 +168,8 @@ impl Run<'_> {
         let mut node_bytes = 0;
         for (member, reply, share) in replies {
             if let Some(pack) = &reply.pack {
-                let name = Checksum(deeptime_node::wire::id_from(&pack.name)?.0);
-                let table = Checksum(deeptime_node::wire::id_from(&pack.table)?.0);
+                let name = deeptime_node::wire::checksum_from(&pack.name)?;
+                let table = deeptime_node::wire::checksum_from(&pack.table)?;
                 if let std::collections::hash_map::Entry::Vacant(slot) = index.entry(name) {
                     slot.insert(names.len() as u32);
                     names.push(name);
@@ -183,7 +183,7 @@ impl Run<'_> {
                 }
             }
             for (piece, place) in share.iter().zip(&reply.places) {
-                let name = Checksum(deeptime_node::wire::id_from(&place.pack)?.0);
+                let name = deeptime_node::wire::checksum_from(&place.pack)?;
                 let pack = *index.get(&name).with_context(|| {
                     format!(
                         "node {} ({}) placed piece {} in pack {name}, which this checkpoint does not list",
