@@ -138,12 +138,13 @@ impl<'a, 'o> Advance<'a, 'o> {
         }
         let memo = match stride {
             Stride::Full => self.store.result(quad),
-            Stride::Residual => self
-                .store
-                .residual
-                .get(&quad)
-                .copied()
-                .unwrap_or(Handle::NONE),
+            Stride::Residual => match self.store.residual.get(&quad).copied() {
+                Some(found) => {
+                    self.store.touch(quad);
+                    found
+                }
+                None => Handle::NONE,
+            },
         };
         if memo != Handle::NONE {
             return Ok(memo);
@@ -160,7 +161,7 @@ impl<'a, 'o> Advance<'a, 'o> {
         match stride {
             Stride::Full => self.store.set_result(quad, result),
             Stride::Residual => {
-                self.store.residual.insert(quad, result);
+                self.store.remember_residual(quad, result);
             }
         }
         Ok(result)

@@ -271,6 +271,14 @@ impl Universe {
         &self.generation
     }
 
+    /// Makes every allocation of later advances collect first, keeping only
+    /// what must stay: a test mode that finds any handle the recursion
+    /// holds without protecting it (runs are many times slower).
+    #[doc(hidden)]
+    pub fn collect_at_every_allocation(&mut self) {
+        self.store.set_stress(true);
+    }
+
     /// The store's counters.
     pub fn store_stats(&self) -> StoreStats {
         self.store.stats()
