@@ -28,6 +28,9 @@ pub fn run(args: EvolveArgs) -> anyhow::Result<()> {
     let started = Instant::now();
     let mut universe = Universe::from_pattern(&loaded.pattern, rule, budget)
         .with_context(|| format!("{}: building the pattern", loaded.name))?;
+    // The pattern as read can be larger than the budget: give it back
+    // before the quads fill the budget.
+    drop(loaded);
     let line = progress::Line::start("advancing");
     let mut observe = |progress: &Progress| line.update(progress);
     let advanced = universe.advance(&generations, Some(&mut observe));

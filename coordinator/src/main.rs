@@ -35,6 +35,7 @@ fn main() -> ExitCode {
     unsafe {
         libc::signal(libc::SIGPIPE, libc::SIG_DFL);
     }
+    memory::return_large_blocks();
     let cli = Cli::parse();
     let outcome = match cli.command {
         Command::Evolve(args) => evolve::run(args),

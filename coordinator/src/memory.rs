@@ -5,7 +5,7 @@ use bytesize::ByteSize;
 use crate::failure::BadInput;
 
 /// The smallest budget accepted: below it nothing useful fits.
-const MIN_BUDGET: u64 = 1 << 20;
+pub(crate) const MIN_BUDGET: u64 = 1 << 20;
 
 /// The budget in bytes from the option's text, or the default: half of the
 /// machine's memory, so the rest of the system keeps room.
@@ -30,4 +30,20 @@ pub fn budget(option: Option<&str>) -> Result<u64, BadInput> {
         )));
     }
     Ok(size.as_u64())
+}
+
+/// Makes the allocator map every large block on its own and unmap it when
+/// freed. By default it raises that threshold after a large block is freed
+/// (a pattern read, then dropped), so the quad store's arena and table then
+/// grow inside the heap, where each reallocation leaves the old copy behind
+/// as a hole: the process used up to twice its budget. With a fixed
+/// threshold a growing arena is moved by remapping, never copied, and what
+/// is freed goes back to the system at once.
+pub fn return_large_blocks() {
+    #[cfg(all(target_os = "linux", target_env = "gnu"))]
+    // SAFETY: tuning the allocator at start-up, before any thread exists.
+    unsafe {
+        libc::mallopt(libc::M_MMAP_THRESHOLD, 256 << 10);
+        libc::mallopt(libc::M_TRIM_THRESHOLD, 1 << 20);
+    }
 }

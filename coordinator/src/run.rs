@@ -26,6 +26,9 @@ pub fn run(args: RunArgs) -> anyhow::Result<()> {
     let started = Instant::now();
     let mut fresh = Universe::from_pattern(&loaded.pattern, rule, budget)
         .with_context(|| format!("{}: building the pattern", loaded.name))?;
+    // The pattern as read can be larger than the budget: give it back
+    // before the quads fill the budget.
+    drop(loaded);
     let pattern_digest = fresh.digest()?;
 
     let checkpoints = Checkpoints::new(deeptime_node::storage::open(&job.checkpoint_dir)?);
