@@ -13,12 +13,12 @@ use std::sync::{Arc, Mutex};
 use std::time::{Duration, Instant};
 
 use anyhow::{Context, bail, ensure};
+use deeptime_engine::human_bytes;
 use deeptime_engine::rule::Rule;
-use deeptime_engine::{Universe, human_bytes};
 use serde_json::Value;
 
-use super::suite::soup;
-use super::{Figure, Goal, Settings, compact};
+use super::suite::{soup, write_rle};
+use super::{Figure, Goal, Settings, compact, process};
 
 /// Child processes, killed when the part ends however it ends.
 struct Children(Vec<Child>);
@@ -107,14 +107,6 @@ fn free_port() -> anyhow::Result<u16> {
     Ok(TcpListener::bind("127.0.0.1:0")?.local_addr()?.port())
 }
 
-/// Peak resident bytes of a process, from /proc (Linux).
-fn peak_resident(pid: u32) -> Option<u64> {
-    let status = std::fs::read_to_string(format!("/proc/{pid}/status")).ok()?;
-    let line = status.lines().find(|line| line.starts_with("VmHWM:"))?;
-    let kib: u64 = line.split_whitespace().nth(1)?.parse().ok()?;
-    Some(kib * 1024)
-}
-
 /// Runs `job` on a coordinator with `nodes` fresh nodes on loopback.
 /// With `checkpoint_dir`, the nodes write their own packs there (it must
 /// be the job's folder); without, the coordinator gathers each checkpoint.
@@ -140,12 +132,12 @@ fn on_cluster(
         command.args(["--shard-level", &level.to_string()]);
     }
     let started = Instant::now();
-    let mut coordinator = command
+    command
         .stdin(Stdio::null())
         .stdout(Stdio::piped())
-        .stderr(Stdio::piped())
-        .spawn()
-        .context("cannot start deeptime coordinator")?;
+        .stderr(Stdio::piped());
+    let mut coordinator =
+        process::spawn(&mut command).context("cannot start deeptime coordinator")?;
     let mut stdout = coordinator.stdout.take().expect("piped");
     let stderr = coordinator.stderr.take().expect("piped");
     let mut children = Children(vec![coordinator]);
@@ -190,12 +182,12 @@ fn on_cluster(
     // Reaped by wait4 below, which also gives its peak memory.
     #[allow(clippy::zombie_processes)]
     let coordinator = children.0.remove(0);
-    let (status, coordinator_resident) = wait_with_peak(&coordinator)?;
+    let (status, coordinator_resident) = process::wait_with_peak(&coordinator)?;
     let seconds = started.elapsed().as_secs_f64();
     let resident = children
         .0
         .iter()
-        .filter_map(|node| peak_resident(node.id()))
+        .filter_map(|node| process::peak_resident(node.id()))
         .collect();
     drop(children);
     let _ = reader.join();
@@ -227,25 +219,6 @@ fn on_cluster(
     })
 }
 
-/// Waits for a child; its exit status and peak resident memory (from the
-/// kernel's accounting of the reaped process, in KiB on Linux).
-fn wait_with_peak(child: &Child) -> anyhow::Result<(std::process::ExitStatus, Option<u64>)> {
-    use std::os::unix::process::ExitStatusExt;
-    let mut status = 0;
-    // SAFETY: rusage is plain data; wait4 fills it for our own child.
-    let mut usage: libc::rusage = unsafe { std::mem::zeroed() };
-    let pid = child.id() as libc::pid_t;
-    // SAFETY: waits for a child this process started and has not reaped.
-    let reaped = unsafe { libc::wait4(pid, &mut status, 0, &mut usage) };
-    ensure!(
-        reaped == pid,
-        "waiting for the coordinator: {}",
-        std::io::Error::last_os_error()
-    );
-    let peak = u64::try_from(usage.ru_maxrss).ok().map(|kib| kib * 1024);
-    Ok((std::process::ExitStatus::from_raw(status), peak))
-}
-
 /// The coordinator's last few messages, for an error.
 fn said(lines: &Mutex<Vec<(Instant, String)>>) -> String {
     let lines = lines.lock().expect("lines");
@@ -257,20 +230,6 @@ fn said(lines: &Mutex<Vec<(Instant, String)>>) -> String {
         .join("; ")
 }
 
-/// A copy of this executable in `dir`, so every process of the part runs
-/// this very build even if a build replaces the file meanwhile (on Linux
-/// the running image stays readable through /proc/self/exe).
-fn this_executable(dir: &Path) -> anyhow::Result<PathBuf> {
-    let mut source = std::env::current_exe().context("cannot find this executable")?;
-    if !source.exists() {
-        source = PathBuf::from("/proc/self/exe");
-    }
-    let copy = dir.join("deeptime");
-    std::fs::copy(&source, &copy)
-        .with_context(|| format!("cannot copy {} to {}", source.display(), copy.display()))?;
-    Ok(copy)
-}
-
 /// The cluster's figures, on a soup that takes a few seconds embedded.
 pub fn cluster(settings: &Settings) -> anyhow::Result<Vec<Figure>> {
     let (side, target, every) = if settings.quick {
@@ -280,11 +239,8 @@ pub fn cluster(settings: &Settings) -> anyhow::Result<Vec<Figure>> {
     };
     let directory = tempfile::tempdir()?;
     let dir = directory.path();
-    let exe = this_executable(dir)?;
-    let mut universe = Universe::from_pattern(&soup(side, 4), Rule::LIFE, 1 << 30)?;
-    let mut text = Vec::new();
-    universe.write_rle(&mut text)?;
-    std::fs::write(dir.join("soup.rle"), text)?;
+    let exe = process::this_executable(dir)?;
+    write_rle(&soup(side, 4), Rule::LIFE, &dir.join("soup.rle"))?;
     let label = format!("{side}² soup to {target}");
 
     // One checkpoint (at the target) and one every `every` generations.

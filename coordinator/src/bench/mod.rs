@@ -3,10 +3,14 @@
 //! written as JSON with a description of the machine.
 //!
 //! The figures themselves live in `suite.rs` (the cluster's in
-//! `cluster.rs`, with real processes on loopback); this file runs them, decides
-//! whether each goal is met, and reports.
+//! `cluster.rs`, with real processes on loopback; the resident memory of a
+//! child under a budget in `resident.rs`; the child processes' plumbing in
+//! `process.rs`); this file runs them, decides whether each goal is met, and
+//! reports.
 
 mod cluster;
+mod process;
+mod resident;
 mod suite;
 
 use std::path::PathBuf;
