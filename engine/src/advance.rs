@@ -11,14 +11,15 @@
 //! pass costs about two passes of the next power of two, never one pass per
 //! binary digit of N.
 //!
-//! The base case is level 4 (four leaves), advanced by the bit-parallel
-//! kernel. Every handle the recursion holds across an allocation sits on the
+//! The base case is a quad of level 6 (64×64 cells) or smaller, advanced
+//! by the bit-parallel kernel: on chaotic patterns, making and hashing every
+//! smaller square in between costs more than computing it again. Every handle the recursion holds across an allocation sits on the
 //! store's scratch stack, so the collector may run at any allocation.
 
 use std::time::{Duration, Instant};
 
 use crate::error::BudgetExceeded;
-use crate::kernel::{self, Kernel};
+use crate::kernel::{self, Kernel, LeafGrid};
 use crate::recursion::{self, SECOND_PHASE, Stride};
 use crate::rule::Rule;
 use crate::store::{Handle, LEAF_LEVEL, Store, StoreStats};
@@ -115,13 +116,32 @@ impl<'a, 'o> Advance<'a, 'o> {
         word < self.steps.len() && self.steps[word] >> (index % 64) & 1 == 1
     }
 
-    /// The number of generations a stride means at `level` ≥ 4, when small.
+    /// The number of generations a stride means at a level ≤ `BASE_LEVEL`.
     fn small_steps(&self, level: u32, stride: Stride) -> u32 {
-        debug_assert_eq!(level, 4);
+        debug_assert!((4..=BASE_LEVEL).contains(&level));
+        let full = 1u32 << (level - 2);
         match stride {
-            Stride::Full => 4,
-            Stride::Residual => (self.steps.first().copied().unwrap_or(0) & 3) as u32,
+            Stride::Full => full,
+            Stride::Residual => (self.steps.first().copied().unwrap_or(0) as u32) & (full - 1),
         }
+    }
+
+    /// Advances a quad of level 4 to `BASE_LEVEL` (a square of side 16 to
+    /// 64) with the kernel and builds its centre from the leaves out.
+    fn base_case(
+        &mut self,
+        quad: Handle,
+        level: u32,
+        stride: Stride,
+    ) -> Result<Handle, BudgetExceeded> {
+        let side = 8usize << (level - LEAF_LEVEL);
+        let mut leaves = [[0; 8]; 8];
+        gather_leaves(self.store, quad, level, 0, 0, &mut leaves);
+        let mut block = kernel::block_from_leaves(&leaves, side);
+        self.kernel
+            .advance_block(&mut block, side, self.small_steps(level, stride));
+        let centre = kernel::centre_leaves(&block, side);
+        build_from_leaves(self.store, &centre, level - 1, 0, 0)
     }
 
     fn advance(
@@ -150,11 +170,8 @@ impl<'a, 'o> Advance<'a, 'o> {
             return Ok(memo);
         }
         self.tick();
-        let result = if level == 4 {
-            let kids = self.store.kids(quad);
-            let bits = kids.map(|kid| self.store.leaf_bits(kid));
-            let steps = self.small_steps(level, stride);
-            self.store.leaf(self.kernel.advance_square(bits, steps))?
+        let result = if level <= BASE_LEVEL {
+            self.base_case(quad, level, stride)?
         } else {
             self.advance_inner(quad, level, stride)?
         };
@@ -262,6 +279,54 @@ impl<'a, 'o> Advance<'a, 'o> {
             observer(&progress);
         }
     }
+}
+
+/// The highest level advanced by the kernel: a square of 64×64 cells moved
+/// 16 generations at once. Above it results are memoised in the store;
+/// below it nothing is made but the result's own quads.
+const BASE_LEVEL: u32 = 6;
+
+/// Writes the leaves of `quad` (of `level` ≤ `BASE_LEVEL`) into `leaves`
+/// from leaf-column x, leaf-row y on; empty quads are skipped (the grid
+/// starts empty).
+fn gather_leaves(store: &Store, quad: Handle, level: u32, x: usize, y: usize, leaves: &mut LeafGrid) {
+    if level == LEAF_LEVEL {
+        leaves[x][y] = store.leaf_bits(quad);
+        return;
+    }
+    if quad == store.known_empty(level) {
+        return;
+    }
+    let half = 1 << (level - LEAF_LEVEL - 1);
+    for (at, kid) in store.kids(quad).into_iter().enumerate() {
+        let (dx, dy) = (at & 1, at >> 1);
+        gather_leaves(store, kid, level - 1, x + dx * half, y + dy * half, leaves);
+    }
+}
+
+/// The quad of `level` whose leaves are `centre[x..][y..]`. Each quad made
+/// is held on the scratch stack until its parent is joined.
+fn build_from_leaves(
+    store: &mut Store,
+    centre: &[[u64; 4]; 4],
+    level: u32,
+    x: usize,
+    y: usize,
+) -> Result<Handle, BudgetExceeded> {
+    if level == LEAF_LEVEL {
+        return store.leaf(centre[x][y]);
+    }
+    let base = store.scratch.len();
+    let half = 1 << (level - LEAF_LEVEL - 1);
+    let mut kids = [Handle::NONE; 4];
+    for (at, kid) in kids.iter_mut().enumerate() {
+        let (dx, dy) = (at & 1, at >> 1);
+        *kid = build_from_leaves(store, centre, level - 1, x + dx * half, y + dy * half)?;
+        store.scratch.push(*kid);
+    }
+    let quad = store.join(kids)?;
+    store.scratch.truncate(base);
+    Ok(quad)
 }
 
 /// The 4×4 grandchildren of an inner quad of level ≥ 5, row by row.

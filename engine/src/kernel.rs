@@ -50,10 +50,6 @@ impl Block {
     pub(crate) fn row(&self, y: usize) -> u64 {
         self.groups[y % 8][y / 8]
     }
-
-    pub(crate) fn set_row(&mut self, y: usize, row: u64) {
-        self.groups[y % 8][y / 8] = row;
-    }
 }
 
 /// The leaves of a square, column by column like cells: `leaves[x][y]` is
@@ -164,14 +160,6 @@ impl Kernel {
         for (k, group) in block.groups.iter_mut().enumerate() {
             group[..L].copy_from_slice(&cells.0[L * k..L * (k + 1)]);
         }
-    }
-
-    /// The centre leaf of the square `[nw, ne, sw, se]` after `steps` ≤ 4
-    /// generations. Leaf bits: `y * 8 + x`.
-    pub fn advance_square(&self, leaves: [u64; 4], steps: u32) -> u64 {
-        let mut block = square_block(leaves);
-        self.advance_block(&mut block, 16, steps);
-        centre_leaves(&block, 16)[0][0]
     }
 }
 
@@ -320,7 +308,6 @@ fn select(when: u64, no: u64, yes: u64) -> u64 {
 
 /// Gathers leaves into a block of side `side` (16, 32 or 64): the leaves
 /// with x, y < side/8 are used, the others land outside the square.
-#[allow(dead_code)] // until the recursion's base case is a level-6 quad
 pub(crate) fn block_from_leaves(leaves: &LeafGrid, side: usize) -> Block {
     // Lane y of word x is the leaf (x, y), byte j its row j: transposed,
     // lane y of word j is row 8y + j of the square, byte x its leaf x.
@@ -409,22 +396,24 @@ fn swap_blocks<const N: usize, const HALF: usize>(words: &mut [[u64; N]; 8], mas
 }
 
 /// The 16×16 block of the square `[nw, ne, sw, se]`.
+#[cfg(test)]
 fn square_block(leaves: [u64; 4]) -> Block {
     let [nw, ne, sw, se] = leaves;
-    let mut block = Block::EMPTY;
-    for y in 0..8 {
-        let byte = |leaf: u64| leaf >> (8 * y) & 0xff;
-        block.set_row(y, byte(nw) | byte(ne) << 8);
-        block.set_row(y + 8, byte(sw) | byte(se) << 8);
-    }
-    block
+    let mut grid = [[0; 8]; 8];
+    grid[0][0] = nw;
+    grid[1][0] = ne;
+    grid[0][1] = sw;
+    grid[1][1] = se;
+    block_from_leaves(&grid, 16)
 }
 
 /// The centre leaf of the square `[nw, ne, sw, se]` after `steps` ≤ 4
 /// generations under `rule` (compiles the rule each call; see `Kernel`).
 #[cfg(test)]
 fn advance_square(rule: &Rule, leaves: [u64; 4], steps: u32) -> u64 {
-    Kernel::new(rule).advance_square(leaves, steps)
+    let mut block = square_block(leaves);
+    Kernel::new(rule).advance_block(&mut block, 16, steps);
+    centre_leaves(&block, 16)[0][0]
 }
 
 /// The centre leaf of the square `[nw, ne, sw, se]` as it is.
