@@ -1,11 +1,9 @@
-//! The HashLife recursion: advance a quad of level n by any number of
-//! generations t ≤ 2^(n-2) and get its centre, a quad of level n-1.
+//! The local advance: the one HashLife walker ([`crate::walk`]) over store
+//! handles, with the bit-parallel kernel as its base case, so every answer
+//! comes at once.
 //!
-//! Nine overlapping squares of level n-1 are advanced by t₁, their centres
-//! form four squares of level n-1, and those are advanced by t₂, with
-//! t₁ + t₂ = t and each at most 2^(n-3). An advance of a whole state by N
-//! generations runs this once: at level m the only strides that occur are
-//! the full stride 2^(m-2) and the residual N mod 2^(m-2). So each quad
+//! An advance of a whole state by N generations meets at level m only the
+//! full stride 2^(m-2) and the residual N mod 2^(m-2). So each quad
 //! memoises two results: the full-stride one in the quad itself and the
 //! residual one in a side map kept while N's low bits stay the same. One
 //! pass costs about two passes of the next power of two, never one pass per
@@ -13,16 +11,18 @@
 //!
 //! The base case is a quad of level 6 (64×64 cells) or smaller, advanced
 //! by the bit-parallel kernel: on chaotic patterns, making and hashing every
-//! smaller square in between costs more than computing it again. Every handle the recursion holds across an allocation sits on the
-//! store's scratch stack, so the collector may run at any allocation.
+//! smaller square in between costs more than computing it again. Every
+//! handle the walk holds across an allocation sits on the store's scratch
+//! stack, so the collector may run at any allocation.
 
 use std::time::{Duration, Instant};
 
 use crate::error::BudgetExceeded;
 use crate::kernel::{self, Kernel, LeafGrid};
-use crate::recursion::{self, SECOND_PHASE, Stride};
+use crate::recursion::{self, Stride};
 use crate::rule::Rule;
 use crate::store::{Handle, LEAF_LEVEL, Store, StoreStats};
+use crate::walk::{Answer, Tree, Walk};
 
 /// Where a long advance is, for progress lines.
 #[derive(Clone, Copy, Debug)]
@@ -37,23 +37,39 @@ pub struct Progress {
 pub type Observer<'a> = &'a mut (dyn FnMut(&Progress) + Send);
 
 const PROGRESS_EVERY: Duration = Duration::from_millis(250);
-/// How many levels below the top are tracked for the progress estimate.
-const TRACKED_DEPTH: usize = 4;
+
+/// An advance is thrashing (each collection discards work it then repeats,
+/// so each piece of progress costs more collections than the last) when,
+/// over its latest `THRASHING_WINDOW` collections, it moved so little that
+/// the rest at that rate would take more than `THRASHING_PROJECTED`. An
+/// advance that merely collects often keeps a steady rate and needs a few
+/// thousand in all.
+const THRASHING_WINDOW: u64 = 256;
+const THRASHING_PROJECTED: f64 = (1u64 << 18) as f64;
+
+/// The highest level advanced by the kernel: a square of 64×64 cells moved
+/// 16 generations at once. Above it results are memoised in the store;
+/// below it nothing is made but the result's own quads.
+const BASE_LEVEL: u32 = 6;
 
 /// One advance of a state by N generations.
 pub(crate) struct Advance<'a, 'o> {
-    store: &'a mut Store,
-    kernel: Kernel,
+    tree: Local<'a, 'o>,
     /// N as little-endian 64-bit words
     steps: &'a [u64],
-    /// N's trailing zero bits: the residual at level m is 0 iff m-2 ≤ this
-    trailing_zeros: u64,
     top_level: u32,
+}
+
+/// The store seen as the walker's tree.
+struct Local<'a, 'o> {
+    store: &'a mut Store,
+    kernel: Kernel,
     observer: Option<Observer<'o>>,
-    /// (sub-advances done, sub-advances in all) at each tracked depth
-    path: [(u8, u8); TRACKED_DEPTH],
     calls: u32,
     last_report: Instant,
+    /// the store's collections and the share done when the latest window
+    /// of collections began (see `THRASHING_WINDOW`)
+    window_start: (u64, f64),
 }
 
 impl<'a, 'o> Advance<'a, 'o> {
@@ -66,25 +82,10 @@ impl<'a, 'o> Advance<'a, 'o> {
         top_level: u32,
         observer: Option<Observer<'o>>,
     ) -> Advance<'a, 'o> {
-        let mut trailing_zeros = 0;
-        for word in steps {
-            if *word == 0 {
-                trailing_zeros += 64;
-            } else {
-                trailing_zeros += word.trailing_zeros() as u64;
-                break;
-            }
-        }
         Advance {
-            store,
-            kernel: Kernel::new(&rule),
+            tree: Local::new(store, rule, observer),
             steps,
-            trailing_zeros,
             top_level,
-            observer,
-            path: [(0, 0); TRACKED_DEPTH],
-            calls: 0,
-            last_report: Instant::now(),
         }
     }
 
@@ -101,62 +102,65 @@ impl<'a, 'o> Advance<'a, 'o> {
         stride: Stride,
     ) -> Result<Handle, BudgetExceeded> {
         debug_assert!(self.top_level >= 4);
-        let result = self.advance(root, self.top_level, stride)?;
-        if let Some(observer) = self.observer.as_mut() {
+        let mut walk = Walk::new(self.steps, self.top_level);
+        let result = walk
+            .start(&mut self.tree, root, stride)?
+            .expect("every local answer comes at once");
+        if let Some(observer) = self.tree.observer.as_mut() {
             observer(&Progress {
                 done: 1.0,
-                store: self.store.stats(),
+                store: self.tree.store.stats(),
             });
         }
         Ok(result)
     }
+}
 
-    fn bit(&self, index: u32) -> bool {
-        let word = (index / 64) as usize;
-        word < self.steps.len() && self.steps[word] >> (index % 64) & 1 == 1
-    }
-
-    /// The number of generations a stride means at a level ≤ `BASE_LEVEL`.
-    fn small_steps(&self, level: u32, stride: Stride) -> u32 {
-        debug_assert!((4..=BASE_LEVEL).contains(&level));
-        let full = 1u32 << (level - 2);
-        match stride {
-            Stride::Full => full,
-            Stride::Residual => (self.steps.first().copied().unwrap_or(0) as u32) & (full - 1),
+impl<'a, 'o> Local<'a, 'o> {
+    fn new(store: &'a mut Store, rule: Rule, observer: Option<Observer<'o>>) -> Local<'a, 'o> {
+        let collections = store.collections();
+        Local {
+            store,
+            kernel: Kernel::new(&rule),
+            observer,
+            calls: 0,
+            last_report: Instant::now(),
+            window_start: (collections, 0.0),
         }
     }
+}
 
-    /// Advances a quad of level 4 to `BASE_LEVEL` (a square of side 16 to
-    /// 64) with the kernel and builds its centre from the leaves out.
-    fn base_case(
-        &mut self,
-        quad: Handle,
-        level: u32,
-        stride: Stride,
-    ) -> Result<Handle, BudgetExceeded> {
-        let side = 8usize << (level - LEAF_LEVEL);
-        let mut leaves = [[0; 8]; 8];
-        gather_leaves(self.store, quad, level, 0, 0, &mut leaves);
-        let mut block = kernel::block_from_leaves(&leaves, side);
-        self.kernel
-            .advance_block(&mut block, side, self.small_steps(level, stride));
-        let centre = kernel::centre_leaves(&block, side);
-        build_from_leaves(self.store, &centre, level - 1, 0, 0)
+impl Tree for Local<'_, '_> {
+    type Quad = Handle;
+    type Error = BudgetExceeded;
+
+    fn base_level(&self) -> u32 {
+        BASE_LEVEL
     }
 
-    fn advance(
-        &mut self,
-        quad: Handle,
-        level: u32,
-        stride: Stride,
-    ) -> Result<Handle, BudgetExceeded> {
-        if quad == self.store.known_empty(level) {
-            return Ok(self.store.known_empty(level - 1));
-        }
-        if stride == Stride::Residual && self.trailing_zeros >= (level - 2) as u64 {
-            return centre(self.store, quad, level);
-        }
-        let memo = match stride {
+    #[inline]
+    fn is_empty(&self, quad: Handle, level: u32) -> bool {
+        quad == self.store.known_empty(level)
+    }
+
+    #[inline]
+    fn empty(&self, level: u32) -> Handle {
+        self.store.known_empty(level)
+    }
+
+    #[inline]
+    fn kids(&mut self, quad: Handle, _level: u32) -> [Handle; 4] {
+        self.store.kids(quad)
+    }
+
+    #[inline]
+    fn join(&mut self, kids: [Handle; 4], _level: u32) -> Result<Handle, BudgetExceeded> {
+        self.store.join(kids)
+    }
+
+    #[inline]
+    fn memo(&mut self, quad: Handle, _level: u32, stride: Stride) -> Option<Handle> {
+        let found = match stride {
             Stride::Full => self.store.result(quad),
             Stride::Residual => match self.store.residual.get(&quad).copied() {
                 Some(found) => {
@@ -166,130 +170,112 @@ impl<'a, 'o> Advance<'a, 'o> {
                 None => Handle::NONE,
             },
         };
-        if memo != Handle::NONE {
-            return Ok(memo);
-        }
-        self.tick();
-        let result = if level <= BASE_LEVEL {
-            self.base_case(quad, level, stride)?
-        } else {
-            self.advance_inner(quad, level, stride)?
-        };
-        match stride {
-            Stride::Full => self.store.set_result(quad, result),
-            Stride::Residual => {
-                self.store.remember_residual(quad, result);
-            }
-        }
-        Ok(result)
+        (found != Handle::NONE).then_some(found)
     }
 
-    fn advance_inner(
+    #[inline]
+    fn remember(&mut self, quad: Handle, _level: u32, stride: Stride, result: Handle) {
+        match stride {
+            Stride::Full => self.store.set_result(quad, result),
+            Stride::Residual => self.store.remember_residual(quad, result),
+        }
+    }
+
+    /// Advances a quad of level 4 to `BASE_LEVEL` (a square of side 16 to
+    /// 64) with the kernel and builds its centre from the leaves out.
+    fn base(
         &mut self,
         quad: Handle,
         level: u32,
-        stride: Stride,
-    ) -> Result<Handle, BudgetExceeded> {
-        // The first phase moves 2^(level-3) generations or none; the second
-        // moves the rest.
-        let (first, second) = recursion::phases(stride, self.bit(level - 3));
-        let depth = (self.top_level - level) as usize;
-        let parts = if first.is_some() { 13 } else { 4 };
-        if depth < TRACKED_DEPTH {
-            self.path[depth] = (0, parts);
-        }
-        let base = self.store.scratch.len();
-        let g = grandchildren(self.store, quad);
-        let mut mid = [[Handle::NONE; 3]; 3];
-        for (i, row) in mid.iter_mut().enumerate() {
-            for (j, cell) in row.iter_mut().enumerate() {
-                let four = recursion::block(&g, i, j);
-                *cell = match first {
-                    None => centre_of_four(self.store, four, level - 2)?,
-                    Some(stride) => {
-                        let square = self.square(quad, i, j, four)?;
-                        self.store.scratch.push(square);
-                        let result = self.advance(square, level - 1, stride)?;
-                        self.mark_done(depth);
-                        result
-                    }
-                };
-                self.store.scratch.push(*cell);
-            }
-        }
-        let mut out = [Handle::NONE; 4];
-        for (at, (i, j)) in SECOND_PHASE.into_iter().enumerate() {
-            let square = self.store.join(recursion::block(&mid, i, j))?;
-            self.store.scratch.push(square);
-            out[at] = self.advance(square, level - 1, second)?;
-            self.store.scratch.push(out[at]);
-            self.mark_done(depth);
-        }
-        let result = self.store.join(out)?;
-        self.store.scratch.truncate(base);
-        Ok(result)
+        generations: u64,
+    ) -> Result<Answer<Handle>, BudgetExceeded> {
+        let side = 8usize << (level - LEAF_LEVEL);
+        let mut leaves = [[0; 8]; 8];
+        gather_leaves(self.store, quad, level, 0, 0, &mut leaves);
+        let mut block = kernel::block_from_leaves(&leaves, side);
+        self.kernel
+            .advance_block(&mut block, side, generations as u32);
+        let centre = kernel::centre_leaves(&block, side);
+        Ok(Answer::Now(build_from_leaves(
+            self.store,
+            &centre,
+            level - 1,
+            0,
+            0,
+        )?))
     }
 
-    /// The level-(n-1) square at offset (i, j) in halves of a child: the
-    /// corners are the children themselves, the others are joined.
-    fn square(
+    #[inline]
+    fn centre_of_four(
         &mut self,
-        quad: Handle,
-        i: usize,
-        j: usize,
         four: [Handle; 4],
-    ) -> Result<Handle, BudgetExceeded> {
-        Ok(match recursion::corner_child(i, j) {
-            Some(at) => self.store.kids(quad)[at],
-            None => self.store.join(four)?,
-        })
+        level: u32,
+    ) -> Result<Answer<Handle>, BudgetExceeded> {
+        Ok(Answer::Now(centre_of_four(self.store, four, level)?))
     }
 
-    fn mark_done(&mut self, depth: usize) {
-        if depth < TRACKED_DEPTH {
-            self.path[depth].0 += 1;
-        }
+    #[inline]
+    fn hold(&mut self, quad: Handle) {
+        self.store.scratch.push(quad);
     }
 
-    /// Counts calls and reports progress now and then.
-    fn tick(&mut self) {
+    #[inline]
+    fn held(&self) -> usize {
+        self.store.scratch.len()
+    }
+
+    #[inline]
+    fn release(&mut self, mark: usize) {
+        self.store.scratch.truncate(mark);
+    }
+
+    /// Counts sub-advances, reports progress now and then, and stops an
+    /// advance that collections keep from getting any further.
+    fn tick(&mut self, done: &dyn Fn() -> f64) -> Result<(), BudgetExceeded> {
         self.calls = self.calls.wrapping_add(1);
-        if self.observer.is_none() || !self.calls.is_multiple_of(1024) {
-            return;
+        if !self.calls.is_multiple_of(1024) {
+            return Ok(());
+        }
+        let collections = self.store.collections();
+        let (started, done_then) = self.window_start;
+        if collections - started >= THRASHING_WINDOW {
+            let done_now = done();
+            let rate = (done_now - done_then) / (collections - started) as f64;
+            if (1.0 - done_now) > rate * THRASHING_PROJECTED {
+                return Err(self.store.exceeded(true));
+            }
+            self.window_start = (collections, done_now);
+        }
+        if self.observer.is_none() {
+            return Ok(());
         }
         let now = Instant::now();
         if now - self.last_report < PROGRESS_EVERY {
-            return;
+            return Ok(());
         }
         self.last_report = now;
-        let mut done = 0.0;
-        let mut weight = 1.0;
-        for (finished, parts) in self.path {
-            if parts == 0 {
-                break;
-            }
-            done += weight * finished as f64 / parts as f64;
-            weight /= parts as f64;
-        }
         let progress = Progress {
-            done: done.min(1.0),
+            done: done(),
             store: self.store.stats(),
         };
         if let Some(observer) = self.observer.as_mut() {
             observer(&progress);
         }
+        Ok(())
     }
 }
-
-/// The highest level advanced by the kernel: a square of 64×64 cells moved
-/// 16 generations at once. Above it results are memoised in the store;
-/// below it nothing is made but the result's own quads.
-const BASE_LEVEL: u32 = 6;
 
 /// Writes the leaves of `quad` (of `level` ≤ `BASE_LEVEL`) into `leaves`
 /// from leaf-column x, leaf-row y on; empty quads are skipped (the grid
 /// starts empty).
-fn gather_leaves(store: &Store, quad: Handle, level: u32, x: usize, y: usize, leaves: &mut LeafGrid) {
+fn gather_leaves(
+    store: &Store,
+    quad: Handle,
+    level: u32,
+    x: usize,
+    y: usize,
+    leaves: &mut LeafGrid,
+) {
     if level == LEAF_LEVEL {
         leaves[x][y] = store.leaf_bits(quad);
         return;
@@ -329,11 +315,6 @@ fn build_from_leaves(
     Ok(quad)
 }
 
-/// The 4×4 grandchildren of an inner quad of level ≥ 5, row by row.
-fn grandchildren(store: &Store, quad: Handle) -> [[Handle; 4]; 4] {
-    recursion::grandchildren(store.kids(quad).map(|kid| store.kids(kid)))
-}
-
 /// The centre (level n-1) of a quad of level n ≥ 4.
 pub(crate) fn centre(
     store: &mut Store,
@@ -356,4 +337,152 @@ pub(crate) fn centre_of_four(
         return store.leaf(kernel::centre_of_leaves(bits));
     }
     store.join(recursion::centre_of_four(four.map(|quad| store.kids(quad))))
+}
+
+#[cfg(test)]
+mod tests {
+    use std::collections::HashMap;
+
+    use super::*;
+    use crate::walk::Ticket;
+
+    /// The local tree, except that every base case and every centre of
+    /// level-4 quads is answered later, as a node answers the coordinator:
+    /// equal requests share a ticket.
+    struct Deferred<'a, 'o> {
+        local: Local<'a, 'o>,
+        tickets: HashMap<(Handle, u32, u64), Ticket>,
+        answers: HashMap<Ticket, Handle>,
+        requests: u64,
+    }
+
+    impl Deferred<'_, '_> {
+        fn later(&mut self, key: (Handle, u32, u64), answer: Handle) -> Answer<Handle> {
+            self.requests += 1;
+            let next = Ticket(self.tickets.len() as u64);
+            let ticket = *self.tickets.entry(key).or_insert(next);
+            self.answers.insert(ticket, answer);
+            Answer::Later(ticket)
+        }
+    }
+
+    impl Tree for Deferred<'_, '_> {
+        type Quad = Handle;
+        type Error = BudgetExceeded;
+
+        fn base_level(&self) -> u32 {
+            self.local.base_level()
+        }
+        fn is_empty(&self, quad: Handle, level: u32) -> bool {
+            self.local.is_empty(quad, level)
+        }
+        fn empty(&self, level: u32) -> Handle {
+            self.local.empty(level)
+        }
+        fn kids(&mut self, quad: Handle, level: u32) -> [Handle; 4] {
+            self.local.kids(quad, level)
+        }
+        fn join(&mut self, kids: [Handle; 4], level: u32) -> Result<Handle, BudgetExceeded> {
+            self.local.join(kids, level)
+        }
+        fn memo(&mut self, quad: Handle, level: u32, stride: Stride) -> Option<Handle> {
+            self.local.memo(quad, level, stride)
+        }
+        fn remember(&mut self, quad: Handle, level: u32, stride: Stride, result: Handle) {
+            self.local.remember(quad, level, stride, result)
+        }
+        fn base(
+            &mut self,
+            quad: Handle,
+            level: u32,
+            generations: u64,
+        ) -> Result<Answer<Handle>, BudgetExceeded> {
+            let Answer::Now(result) = self.local.base(quad, level, generations)? else {
+                unreachable!("the local base case answers at once")
+            };
+            Ok(self.later((quad, level, generations), result))
+        }
+        fn centre_of_four(
+            &mut self,
+            four: [Handle; 4],
+            level: u32,
+        ) -> Result<Answer<Handle>, BudgetExceeded> {
+            let centre = centre_of_four(self.local.store, four, level)?;
+            if level != 4 {
+                return Ok(Answer::Now(centre));
+            }
+            let square = self.local.store.join(four)?;
+            Ok(self.later((square, level + 1, 0), centre))
+        }
+    }
+
+    /// A level-`level` quad of random cells (density 1/2) from `seed`.
+    fn soup(store: &mut Store, level: u32, seed: &mut u64) -> Handle {
+        if level == LEAF_LEVEL {
+            *seed = seed
+                .wrapping_mul(6364136223846793005)
+                .wrapping_add(1442695040888963407);
+            return store.leaf(*seed ^ *seed >> 29).unwrap();
+        }
+        let kids = [0; 4].map(|_| soup(store, level - 1, seed));
+        store.join(kids).unwrap()
+    }
+
+    // The walker gives the same result whether every answer comes at once
+    // or later, in any order, with equal requests sharing one ticket
+    // (common practice: one computation, two schedules).
+    #[test]
+    fn answers_later_in_any_order_give_the_same_result() {
+        let rule = Rule::LIFE;
+        for (level, steps, stride) in [
+            (7, 1u64, Stride::Residual),
+            (7, 31, Stride::Residual),
+            (8, 37, Stride::Residual),
+            (9, 127, Stride::Residual),
+            (9, 64, Stride::Residual),
+            (8, 64, Stride::Full),
+        ] {
+            let mut store = Store::new(1 << 30);
+            for at in LEAF_LEVEL..=level {
+                store.empty(at).unwrap();
+            }
+            let mut seed = steps;
+            let root = soup(&mut store, level, &mut seed);
+            store.scratch.push(root);
+            let words = [steps];
+            let at_once = Advance::new(&mut store, rule, &words, level, None)
+                .run_as(root, stride)
+                .unwrap();
+            // A fresh memo: the deferred walk must not find the answers.
+            store.residual.clear();
+            store.forget_results();
+            let mut tree = Deferred {
+                local: Local::new(&mut store, rule, None),
+                tickets: HashMap::new(),
+                answers: HashMap::new(),
+                requests: 0,
+            };
+            let mut walk = Walk::new(&words, level);
+            let mut outcome = walk.start(&mut tree, root, stride).unwrap();
+            let mut widest = 0;
+            while outcome.is_none() {
+                let mut owed: Vec<Ticket> = walk.unanswered().collect();
+                widest = widest.max(owed.len());
+                assert!(!owed.is_empty(), "a walk that waits owes answers");
+                owed.sort_by_key(|ticket| std::cmp::Reverse(ticket.0));
+                for ticket in owed {
+                    let answer = tree.answers[&ticket];
+                    walk.answer(&mut tree, ticket, answer);
+                }
+                outcome = walk.run(&mut tree).unwrap();
+            }
+            assert_eq!(outcome, Some(at_once), "level {level}, {steps} generations");
+            assert!(
+                tree.requests as usize > tree.tickets.len() || level < 8,
+                "equal requests shared tickets"
+            );
+            // At least the four second-phase squares of the top wait at once.
+            assert!(widest >= 4, "{widest} requests at once, level {level}");
+        }
+    }
 }

@@ -9,10 +9,23 @@ pub struct BudgetExceeded {
     pub budget: u64,
     /// bytes in use when the store gave up
     pub in_use: u64,
+    /// whether the advance stopped because collections kept discarding its
+    /// work without it getting any further (rather than because the live
+    /// quads alone filled the budget)
+    pub thrashing: bool,
 }
 
 impl fmt::Display for BudgetExceeded {
     fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        if self.thrashing {
+            return write!(
+                f,
+                "memory budget of {} is too small for this advance: collections kept \
+                 discarding its work in progress, even in smaller steps; give the run \
+                 a larger memory budget",
+                human_bytes(self.budget)
+            );
+        }
         write!(
             f,
             "memory budget of {} is too small: at least {} of quads are live; \

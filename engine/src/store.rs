@@ -374,6 +374,11 @@ impl Store {
         }
     }
 
+    /// How many collections have run.
+    pub(crate) fn collections(&self) -> u64 {
+        self.collections
+    }
+
     /// Quads allocated (live or not yet collected).
     fn count(&self) -> usize {
         self.nodes.len() - self.free_count
@@ -469,6 +474,15 @@ impl Store {
         let node = &mut self.nodes[handle.index()];
         node.set_result(result);
         node.stamp(epoch);
+    }
+
+    /// Forgets every memoised full-stride result (for tests that must
+    /// compute everything again).
+    #[cfg(test)]
+    pub(crate) fn forget_results(&mut self) {
+        for node in self.nodes.iter_mut().filter(|node| !node.is_leaf()) {
+            node.set_result(Handle::NONE);
+        }
     }
 
     /// Marks an inner quad as used now (its residual result was found).
@@ -663,7 +677,7 @@ impl Store {
             return Ok(());
         }
         if !self.collect_allowed {
-            return Err(self.exceeded());
+            return Err(self.exceeded(false));
         }
         // First keep the working set; if that leaves too little room, keep
         // only what must stay. Collecting again after a handful of new quads
@@ -676,7 +690,7 @@ impl Store {
                 return Ok(());
             }
         }
-        Err(self.exceeded())
+        Err(self.exceeded(false))
     }
 
     fn table_has_room(&self) -> bool {
@@ -690,11 +704,14 @@ impl Store {
             && self.table_has_room()
     }
 
-    fn exceeded(&self) -> BudgetExceeded {
+    /// The error for a budget the live quads fill (or, `thrashing`, that
+    /// collections keep the advance from getting any further in).
+    pub(crate) fn exceeded(&self, thrashing: bool) -> BudgetExceeded {
         // What is allocated after the last collection: the live quads.
         BudgetExceeded {
             budget: self.budget,
             in_use: self.count() as u64 * NODE_BYTES + self.table_and_maps(),
+            thrashing,
         }
     }
 
@@ -978,7 +995,10 @@ impl Store {
             let grown = (self.residual.capacity() * 2).max(4) as u64 * RESIDUAL_ENTRY;
             let reserved = self.bytes_reserved(self.nodes.capacity(), self.table.len());
             if reserved + grown > self.budget {
+                // A collection of the residual memo: counted, so that an
+                // advance that keeps losing it is seen to thrash.
                 self.residual.clear();
+                self.collections += 1;
             }
         }
         self.residual.insert(quad, result);

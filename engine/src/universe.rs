@@ -19,13 +19,16 @@ use crate::figures::{self, Side};
 use crate::pack::{self, Checksum, QuadAt};
 use crate::pattern::{MAX_COORDINATE, Pattern, write};
 use crate::rule::Rule;
-use crate::stack;
 use crate::store::{Handle, LEAF_LEVEL, Store, StoreStats};
 use crate::stored::ReadError;
 use crate::view::{QuadView, StoreView, descend};
 
 /// The smallest root level kept while evolving (32×32 cells).
 const MIN_ROOT_LEVEL: u32 = 5;
+
+/// How many times an advance that thrashes is halved before it fails: at
+/// most 2^3 pieces, each a pass of its own.
+const MAX_SPLITS: u32 = 3;
 /// Cells allowed in a pattern written as text.
 pub const MAX_TEXT_CELLS: u64 = 1 << 26;
 
@@ -157,6 +160,7 @@ impl Universe {
             return Err(BudgetExceeded {
                 budget,
                 in_use: leaves_bound.saturating_mul(32),
+                thrashing: false,
             });
         }
         let mut leaves: HashMap<(u64, u64), u64, ahash::RandomState> = HashMap::default();
@@ -302,8 +306,42 @@ impl Universe {
         self.level = level;
     }
 
-    /// Advances the state by `generations`, in one pass of the recursion.
+    /// Advances the state by `generations`, in one pass of the recursion;
+    /// where collections keep that pass from getting any further, in two
+    /// halves (and so on, up to `MAX_SPLITS` times). On an error the state
+    /// is the last one reached, at its generation.
     pub fn advance(
+        &mut self,
+        generations: &BigUint,
+        mut observer: Option<Observer<'_>>,
+    ) -> Result<(), AdvanceError> {
+        self.advance_split(generations, &mut observer, 0)
+    }
+
+    fn advance_split(
+        &mut self,
+        generations: &BigUint,
+        observer: &mut Option<Observer<'_>>,
+        splits: u32,
+    ) -> Result<(), AdvanceError> {
+        let piece: Option<Observer<'_>> = match observer {
+            Some(observer) => Some(&mut **observer),
+            None => None,
+        };
+        match self.advance_whole(generations, piece) {
+            Err(AdvanceError::Budget(error))
+                if error.thrashing && splits < MAX_SPLITS && *generations > BigUint::one() =>
+            {
+                let half = generations / 2u32;
+                self.advance_split(&half, observer, splits + 1)?;
+                self.advance_split(&(generations - &half), observer, splits + 1)
+            }
+            outcome => outcome,
+        }
+    }
+
+    /// Advances the state by `generations` in one pass of the recursion.
+    fn advance_whole(
         &mut self,
         generations: &BigUint,
         observer: Option<Observer<'_>>,
@@ -331,16 +369,13 @@ impl Universe {
             self.residual_for = words.clone();
         }
         let level = self.level;
-        let root = self.root;
-        let rule = self.rule;
-        let store = &mut self.store;
-        let result = stack::deep(level, move || {
-            Advance::new(store, rule, &words, level, observer).run(root)
-        });
+        // The walk keeps its frames on the heap: no deep stack needed.
+        let result =
+            Advance::new(&mut self.store, self.rule, &words, level, observer).run(self.root);
         // A failed advance leaves its path on the scratch stack: drop it, so
         // a caller that retries (with a larger budget) starts clean.
         self.store.scratch.clear();
-        let result = result??;
+        let result = result?;
         self.set_root(result, level - 1);
         self.generation += generations;
         while self.level > MIN_ROOT_LEVEL && self.fits_centre_half(self.root, self.level) {
