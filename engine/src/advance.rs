@@ -289,7 +289,14 @@ const BASE_LEVEL: u32 = 6;
 /// Writes the leaves of `quad` (of `level` ≤ `BASE_LEVEL`) into `leaves`
 /// from leaf-column x, leaf-row y on; empty quads are skipped (the grid
 /// starts empty).
-fn gather_leaves(store: &Store, quad: Handle, level: u32, x: usize, y: usize, leaves: &mut LeafGrid) {
+fn gather_leaves(
+    store: &Store,
+    quad: Handle,
+    level: u32,
+    x: usize,
+    y: usize,
+    leaves: &mut LeafGrid,
+) {
     if level == LEAF_LEVEL {
         leaves[x][y] = store.leaf_bits(quad);
         return;
