@@ -19,7 +19,7 @@ pub fn run(args: EvolveArgs) -> anyhow::Result<()> {
     let generations =
         parse_generations(&args.gens).map_err(|error| BadInput(format!("--gens: {error}")))?;
     let budget = memory::budget(args.memory.as_deref())?;
-    let loaded = input::read(&args.pattern)?;
+    let loaded = input::read(&args.pattern, budget)?;
     let rule = input::rule(args.rule.as_deref(), &loaded)?;
     if let Some(out) = &args.out {
         check_output_path(out)?;
@@ -28,8 +28,8 @@ pub fn run(args: EvolveArgs) -> anyhow::Result<()> {
     let started = Instant::now();
     let mut universe = Universe::from_pattern(&loaded.pattern, rule, budget)
         .with_context(|| format!("{}: building the pattern", loaded.name))?;
-    // The pattern as read can be larger than the budget: give it back
-    // before the quads fill the budget.
+    // The pattern counts against the budget only while its quads are
+    // made: give it back before they fill the budget.
     drop(loaded);
     let line = progress::Line::start("advancing");
     let mut observe = |progress: &Progress| line.update(progress);

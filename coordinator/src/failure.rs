@@ -10,6 +10,11 @@ use deeptime_engine::{AdvanceError, BudgetExceeded};
 #[error("{0}")]
 pub struct BadInput(pub String);
 
+/// Input that is sound but does not fit the memory budget.
+#[derive(Debug, thiserror::Error)]
+#[error("{0}")]
+pub struct InputOverBudget(pub String);
+
 pub const EXIT_FAILURE: u8 = 1;
 pub const EXIT_BAD_INPUT: u8 = 2;
 pub const EXIT_BUDGET: u8 = 3;
@@ -47,6 +52,7 @@ pub fn describe(error: &anyhow::Error) -> String {
 
 fn is_budget(cause: &(dyn std::error::Error + 'static)) -> bool {
     cause.is::<BudgetExceeded>()
+        || cause.is::<InputOverBudget>()
         || cause.is::<crate::cluster::NodeOutOfMemory>()
         || matches!(
             cause.downcast_ref::<AdvanceError>(),

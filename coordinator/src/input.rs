@@ -7,7 +7,7 @@ use std::path::Path;
 use deeptime_engine::pattern::{self, Pattern};
 use deeptime_engine::rule::Rule;
 
-use crate::failure::BadInput;
+use crate::failure::{BadInput, InputOverBudget};
 
 /// Pattern files larger than this are refused before they are read whole.
 const MAX_PATTERN_BYTES: u64 = 1 << 30;
@@ -18,8 +18,9 @@ pub struct Loaded {
     pub pattern: Pattern,
 }
 
-/// Reads and parses a pattern file; `-` is standard input.
-pub fn read(path: &Path) -> anyhow::Result<Loaded> {
+/// Reads and parses a pattern file (`-` is standard input) into leaves that
+/// take at most `budget` bytes. The file's bytes are let go once parsed.
+pub fn read(path: &Path, budget: u64) -> anyhow::Result<Loaded> {
     let name = if path == Path::new("-") {
         "<stdin>".to_string()
     } else {
@@ -41,8 +42,13 @@ pub fn read(path: &Path) -> anyhow::Result<Loaded> {
     if bytes.len() as u64 > MAX_PATTERN_BYTES {
         return Err(BadInput(format!("{name}: pattern file is larger than 1 GiB")).into());
     }
-    let pattern =
-        pattern::read_pattern(&bytes).map_err(|error| BadInput(format!("{name}:{error}")))?;
+    let pattern = pattern::read_pattern(&bytes, budget).map_err(|error| {
+        let message = format!("{name}:{error}");
+        match error.budget {
+            Some(_) => anyhow::Error::new(InputOverBudget(message)),
+            None => anyhow::Error::new(BadInput(message)),
+        }
+    })?;
     Ok(Loaded { name, pattern })
 }
 

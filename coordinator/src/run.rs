@@ -21,13 +21,13 @@ use crate::{input, memory, progress};
 pub fn run(args: RunArgs) -> anyhow::Result<()> {
     let job = Job::load(&args.job)?;
     let budget = memory::budget(job.memory.as_deref())?;
-    let loaded = input::read(&job.pattern)?;
+    let loaded = input::read(&job.pattern, budget)?;
     let rule = input::rule(job.rule.as_deref(), &loaded)?;
     let started = Instant::now();
     let mut fresh = Universe::from_pattern(&loaded.pattern, rule, budget)
         .with_context(|| format!("{}: building the pattern", loaded.name))?;
-    // The pattern as read can be larger than the budget: give it back
-    // before the quads fill the budget.
+    // The pattern counts against the budget only while its quads are
+    // made: give it back before they fill the budget.
     drop(loaded);
     let pattern_digest = fresh.digest()?;
 

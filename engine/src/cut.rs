@@ -277,7 +277,7 @@ mod tests {
         // and sends off six gliders), 10^40 generations on: a root of level
         // about 135 whose positions are astronomically many but whose
         // distinct quads are few. Visiting positions would never end.
-        let pattern = crate::pattern::read_pattern(b"x = 3, y = 3\nb2o$2o$bo!\n").unwrap();
+        let pattern = crate::pattern::read_pattern(b"x = 3, y = 3\nb2o$2o$bo!\n", 1 << 28).unwrap();
         let rule: crate::rule::Rule = "B3/S23".parse().unwrap();
         let mut universe = Universe::from_pattern(&pattern, rule, 1 << 28).unwrap();
         let far = num_bigint::BigUint::from(10u32).pow(40);

@@ -9,7 +9,7 @@
 //! grid grows by whole tiles whenever a live cell reaches its outer ring of
 //! tiles, so the plane is unbounded in practice.
 
-use crate::pattern::Pattern;
+use crate::pattern::{BuildError, Builder, Pattern};
 use crate::rule::Rule;
 
 const TILE: usize = 64;
@@ -39,13 +39,8 @@ pub struct Grid {
 impl Grid {
     /// The grid holding `pattern` with its top-left cell at (0, 0).
     pub fn from_pattern(pattern: &Pattern, rule: Rule) -> Grid {
-        let width = pattern
-            .runs
-            .iter()
-            .map(|run| run.x + run.len)
-            .max()
-            .unwrap_or(1);
-        let height = pattern.runs.iter().map(|run| run.y + 1).max().unwrap_or(1);
+        let (width, height) = pattern.extent();
+        let (width, height) = (width.max(1), height.max(1));
         // One empty ring of tiles around the pattern.
         let words = (width as usize).div_ceil(TILE) + 2;
         let rows = ((height as usize).div_ceil(TILE) + 2) * TILE;
@@ -62,19 +57,20 @@ impl Grid {
             occupied_back: vec![false; words * rows / TILE],
             generation: 0,
         };
-        for run in &pattern.runs {
-            for x in run.x..run.x + run.len {
-                grid.set(x as i64, run.y as i64);
+        // A leaf's rows are bytes that sit whole inside one word (leaf
+        // columns and the grid's left edge are multiples of 8).
+        for (row, leaves) in pattern.leaf_rows() {
+            for &(column, bits) in leaves {
+                let x = ((column * 8) as i64 - grid.left) as usize;
+                for line in 0..8 {
+                    let y = ((row * 8 + line) as i64 - grid.top) as usize;
+                    let byte = (bits >> (line * 8)) & 0xff;
+                    grid.cells[y * grid.words + x / 64] |= byte << (x % 64);
+                }
             }
         }
         grid.refresh_occupancy();
         grid
-    }
-
-    fn set(&mut self, x: i64, y: i64) {
-        let column = (x - self.left) as usize;
-        let row = (y - self.top) as usize;
-        self.cells[row * self.words + column / 64] |= 1 << (column % 64);
     }
 
     /// The rule the grid evolves under.
@@ -113,21 +109,22 @@ impl Grid {
         cells
     }
 
-    /// The cells as pattern runs with the top-left of the bounding box at
-    /// (0, 0), and that corner's plane coordinates; None when empty.
-    pub fn to_pattern(&self) -> Option<(Pattern, i64, i64)> {
+    /// The cells as a pattern with the top-left of the bounding box at
+    /// (0, 0), and that corner's plane coordinates; None when empty. The
+    /// pattern's leaves may take up to `budget` bytes.
+    pub fn to_pattern(&self, budget: u64) -> Result<Option<(Pattern, i64, i64)>, BuildError> {
         let cells = self.cells();
-        let left = cells.iter().map(|cell| cell.0).min()?;
-        let top = cells.iter().map(|cell| cell.1).min()?;
-        let mut runs: Vec<crate::pattern::Run> = Vec::new();
+        let (Some(left), Some(top)) = (
+            cells.iter().map(|cell| cell.0).min(),
+            cells.iter().map(|cell| cell.1).min(),
+        ) else {
+            return Ok(None);
+        };
+        let mut pattern = Builder::new(budget);
         for (x, y) in cells {
-            let (x, y) = ((x - left) as u64, (y - top) as u64);
-            match runs.last_mut() {
-                Some(run) if run.y == y && run.x + run.len == x => run.len += 1,
-                _ => runs.push(crate::pattern::Run { y, x, len: 1 }),
-            }
+            pattern.push_run((y - top) as u64, (x - left) as u64, 1)?;
         }
-        Some((Pattern { rule: None, runs }, left, top))
+        Ok(Some((pattern.finish(None), left, top)))
     }
 
     /// Steps `generations` generations, one at a time.
@@ -318,7 +315,7 @@ mod tests {
     #[test]
     fn a_glider_crosses_word_and_tile_boundaries() {
         // LifeWiki, "Glider": period 4, displacement (1, 1).
-        let glider = read_pattern(b"x = 3, y = 3\nbob$2bo$3o!").unwrap();
+        let glider = read_pattern(b"x = 3, y = 3\nbob$2bo$3o!", 1 << 20).unwrap();
         let mut grid = Grid::from_pattern(&glider, Rule::LIFE);
         let start = grid.cells();
         grid.advance(4 * 300);
@@ -330,7 +327,7 @@ mod tests {
     #[test]
     fn a_glider_flying_north_west_grows_the_grid_on_that_side() {
         // The glider above, turned by 180 degrees, travels towards -x, -y.
-        let glider = read_pattern(b"x = 3, y = 3\n3o$o$bo!").unwrap();
+        let glider = read_pattern(b"x = 3, y = 3\n3o$o$bo!", 1 << 20).unwrap();
         let mut grid = Grid::from_pattern(&glider, Rule::LIFE);
         let start = grid.cells();
         grid.advance(4 * 200);

@@ -446,7 +446,7 @@ mod tests {
     fn a_square_advanced_in_a_shard_equals_the_universe_advanced() {
         // The R-pentomino (common practice): its first 64 generations stay
         // within a 64-cell square around it.
-        let pattern = crate::pattern::read_pattern(b"x = 3, y = 3\nb2o$2o$bo!\n").unwrap();
+        let pattern = crate::pattern::read_pattern(b"x = 3, y = 3\nb2o$2o$bo!\n", 1 << 28).unwrap();
         let rule: Rule = "B3/S23".parse().unwrap();
         let mut universe = Universe::from_pattern(&pattern, rule, 1 << 28).unwrap();
         let level = 7;

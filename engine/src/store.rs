@@ -324,6 +324,9 @@ pub struct Store {
     /// pattern is built: there is nothing to collect, and the builder's own
     /// maps hold handles the collector cannot see).
     collect_allowed: bool,
+    /// Bytes held outside the store that count against its budget for a
+    /// while (a pattern whose quads are being made).
+    held_outside: u64,
     /// When true, every allocation collects first (tests: any handle the
     /// recursion forgot to protect is freed at once).
     stress: bool,
@@ -354,6 +357,7 @@ impl Store {
             by_id: ahash::HashMap::default(),
             budget,
             collect_allowed: true,
+            held_outside: 0,
             stress: false,
             epoch: EPOCH_AFTER_COLLECTION,
             epoch_left: MIN_CAPACITY,
@@ -399,6 +403,7 @@ impl Store {
                 .table_bytes_reserved(capacity)
                 .max(buckets as u64 * BUCKET_BYTES)
             + self.maps()
+            + self.held_outside
     }
 
     /// Bytes of the table a full arena of `capacity` needs (highest load).
@@ -416,6 +421,12 @@ impl Store {
         self.residual.capacity() as u64 * RESIDUAL_ENTRY
             + self.ids.capacity() as u64 * id_entry
             + self.by_id.capacity() as u64 * by_id_entry
+    }
+
+    /// Counts `bytes` held outside the store against its budget, until set
+    /// back to 0.
+    pub(crate) fn set_held_outside(&mut self, bytes: u64) {
+        self.held_outside = bytes;
     }
 
     /// Allows or forbids collection when the budget is reached.
@@ -710,7 +721,7 @@ impl Store {
         // What is allocated after the last collection: the live quads.
         BudgetExceeded {
             budget: self.budget,
-            in_use: self.count() as u64 * NODE_BYTES + self.table_and_maps(),
+            in_use: self.count() as u64 * NODE_BYTES + self.table_and_maps() + self.held_outside,
             thrashing,
         }
     }

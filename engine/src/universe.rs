@@ -135,59 +135,27 @@ impl Universe {
         })
     }
 
-    /// The plane holding `pattern` with its top-left cell at (0, 0).
+    /// The plane holding `pattern` with its top-left cell at (0, 0). The
+    /// pattern stays in memory while its quads are made, so it counts
+    /// against the budget until the state is built.
     pub fn from_pattern(
         pattern: &Pattern,
         rule: Rule,
         budget: u64,
     ) -> Result<Universe, BudgetExceeded> {
         let mut universe = Universe::new(rule, budget)?;
-        // The leaf map costs about 32 bytes per leaf; refuse before filling
-        // it rather than after. Leaves are at most: those the runs touch,
-        // the live cells, and the leaves of the bounding square.
-        let touched: u64 = pattern
-            .runs
-            .iter()
-            .map(|run| run.len / 8 + 2)
-            .fold(0u64, u64::saturating_add);
-        let (width, height) = pattern.runs.iter().fold((0u64, 0u64), |(w, h), run| {
-            (w.max(run.x + run.len), h.max(run.y + 1))
-        });
-        let leaves_bound = touched
-            .min(pattern.population())
-            .min(width.div_ceil(8).saturating_mul(height.div_ceil(8)));
-        if leaves_bound.saturating_mul(32) > budget {
-            return Err(BudgetExceeded {
-                budget,
-                in_use: leaves_bound.saturating_mul(32),
-                thrashing: false,
-            });
-        }
-        let mut leaves: HashMap<(u64, u64), u64, ahash::RandomState> = HashMap::default();
-        let mut extent = 1u64;
-        for run in &pattern.runs {
-            let end = run.x + run.len; // exclusive
-            extent = extent.max(end).max(run.y + 1);
-            let row = (run.y % 8) * 8;
-            let mut x = run.x;
-            while x < end {
-                let column = x % 8;
-                let span = (8 - column).min(end - x);
-                let bits = ((1u64 << span) - 1) << column;
-                *leaves.entry((x / 8, run.y / 8)).or_default() |= bits << row;
-                x += span;
-            }
-        }
-        // Nothing here is garbage, and the builder's maps hold handles the
+        // Nothing here is garbage, and the builder's rows hold handles the
         // collector cannot see: collection stays off until the root is pinned.
         let store = &mut universe.store;
         store.set_collect_allowed(false);
-        let built = build_tree(store, leaves, extent).and_then(|(quad, level)| {
+        store.set_held_outside(pattern.heap_bytes());
+        let built = build_tree(store, pattern).and_then(|(quad, level)| {
             let empty = store.empty(level)?;
             let root = store.join([empty, empty, empty, quad])?;
             store.empty(level + 1)?;
             Ok((root, level + 1))
         });
+        store.set_held_outside(0);
         store.set_collect_allowed(true);
         let (root, level) = built?;
         universe.set_root(root, level);
@@ -696,37 +664,114 @@ fn centred_root(
     Ok((quad, level))
 }
 
-/// Builds the quadtree of the square [0, 2^k)² (k ≥ 4, 2^k ≥ extent) from
-/// its non-empty leaves keyed by leaf column and row; returns it and k.
-fn build_tree(
-    store: &mut Store,
-    leaves: HashMap<(u64, u64), u64, ahash::RandomState>,
-    extent: u64,
-) -> Result<(Handle, u32), BudgetExceeded> {
-    let target = (64 - (extent - 1).leading_zeros()).max(LEAF_LEVEL + 1);
-    let mut level = LEAF_LEVEL;
-    let mut quads: HashMap<(u64, u64), Handle, ahash::RandomState> = HashMap::default();
-    for (at, bits) in leaves {
-        quads.insert(at, store.leaf(bits)?);
-    }
-    while level < target {
-        let empty = store.empty(level)?;
-        let mut parents: HashMap<(u64, u64), [Handle; 4], ahash::RandomState> = HashMap::default();
-        for ((x, y), quad) in quads {
-            let kids = parents.entry((x / 2, y / 2)).or_insert([empty; 4]);
-            kids[((y % 2) * 2 + x % 2) as usize] = quad;
-        }
-        quads = HashMap::default();
-        for (at, kids) in parents {
-            quads.insert(at, store.join(kids)?);
-        }
-        level += 1;
-    }
-    let quad = match quads.get(&(0, 0)) {
-        Some(&quad) => quad,
-        None => store.empty(level)?,
+/// The quad of the smallest level (at least 4) whose square, with its
+/// corner at (0, 0), holds the pattern, and that level. Rows of leaves are
+/// joined into rows of their parents as they come, so the builder holds at
+/// most one waiting row per level, whatever the pattern's height.
+fn build_tree(store: &mut Store, pattern: &Pattern) -> Result<(Handle, u32), BudgetExceeded> {
+    let (width, height) = pattern.extent();
+    let extent = width.max(height).max(1);
+    let top = (64 - (extent - 1).leading_zeros()).max(LEAF_LEVEL + 1);
+    let mut rows = RowJoiner {
+        top,
+        waiting: vec![None; (top - LEAF_LEVEL) as usize],
+        quad: None,
     };
-    Ok((quad, level))
+    for (y, leaves) in pattern.leaf_rows() {
+        let mut row = Vec::with_capacity(leaves.len());
+        for &(x, bits) in leaves {
+            row.push((x, store.leaf(bits)?));
+        }
+        rows.push(store, LEAF_LEVEL, y, row)?;
+    }
+    for level in LEAF_LEVEL..top {
+        if let Some((y, row)) = rows.waiting[(level - LEAF_LEVEL) as usize].take() {
+            let joined = join_rows(store, level, &row, &[])?;
+            rows.push(store, level + 1, y / 2, joined)?;
+        }
+    }
+    let quad = match rows.quad {
+        Some(quad) => quad,
+        None => store.empty(top)?,
+    };
+    Ok((quad, top))
+}
+
+/// A row of quads of one level: (column, quad), left to right.
+type QuadRow = Vec<(u64, Handle)>;
+
+/// Rows of quads joined level by level up to the top level's one quad.
+struct RowJoiner {
+    top: u32,
+    /// Per level from the leaves up: an even row waiting for the row below.
+    waiting: Vec<Option<(u64, QuadRow)>>,
+    /// The quad of the top level, once made.
+    quad: Option<Handle>,
+}
+
+impl RowJoiner {
+    /// Takes row `y` of `level`; rows of a level come top to bottom.
+    fn push(
+        &mut self,
+        store: &mut Store,
+        level: u32,
+        y: u64,
+        row: QuadRow,
+    ) -> Result<(), BudgetExceeded> {
+        if level == self.top {
+            // The pattern fits the top quad: its one row holds column 0.
+            self.quad = row.first().map(|&(_, quad)| quad);
+            return Ok(());
+        }
+        let slot = (level - LEAF_LEVEL) as usize;
+        if let Some((above, upper)) = self.waiting[slot].take() {
+            if above / 2 == y / 2 {
+                let joined = join_rows(store, level, &upper, &row)?;
+                return self.push(store, level + 1, y / 2, joined);
+            }
+            let joined = join_rows(store, level, &upper, &[])?;
+            self.push(store, level + 1, above / 2, joined)?;
+        }
+        if y.is_multiple_of(2) {
+            self.waiting[slot] = Some((y, row));
+            return Ok(());
+        }
+        let joined = join_rows(store, level, &[], &row)?;
+        self.push(store, level + 1, y / 2, joined)
+    }
+}
+
+/// Joins an even row of quads of `level` and the odd row below it (either
+/// may be empty) into the row of their parents.
+fn join_rows(
+    store: &mut Store,
+    level: u32,
+    upper: &[(u64, Handle)],
+    lower: &[(u64, Handle)],
+) -> Result<QuadRow, BudgetExceeded> {
+    let empty = store.empty(level)?;
+    let mut parents = Vec::with_capacity(upper.len().max(lower.len()));
+    let (mut i, mut j) = (0, 0);
+    loop {
+        let next = match (upper.get(i), lower.get(j)) {
+            (Some(&(a, _)), Some(&(b, _))) => a.min(b) / 2,
+            (Some(&(a, _)), None) => a / 2,
+            (None, Some(&(b, _))) => b / 2,
+            (None, None) => break,
+        };
+        // nw, ne, sw, se
+        let mut kids = [empty; 4];
+        while let Some(&(x, quad)) = upper.get(i).filter(|&&(x, _)| x / 2 == next) {
+            kids[(x % 2) as usize] = quad;
+            i += 1;
+        }
+        while let Some(&(x, quad)) = lower.get(j).filter(|&&(x, _)| x / 2 == next) {
+            kids[2 + (x % 2) as usize] = quad;
+            j += 1;
+        }
+        parents.push((next, store.join(kids)?));
+    }
+    Ok(parents)
 }
 
 /// Why collecting leaves stopped.

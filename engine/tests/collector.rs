@@ -6,7 +6,7 @@
 //! the direct stepper checks the soups cell by cell elsewhere, in
 //! direct_vs_hashlife.rs.)
 
-use deeptime_engine::pattern::{Pattern, Run, read_pattern};
+use deeptime_engine::pattern::{Builder, Pattern, read_pattern};
 use deeptime_engine::rule::Rule;
 use deeptime_engine::{AdvanceError, ContentId, Universe};
 use num_bigint::BigUint;
@@ -17,18 +17,18 @@ const UNLIMITED: u64 = 1 << 30;
 /// probability `density`/256.
 fn soup(seed: u64, side: u64, density: u64) -> Pattern {
     let mut state = seed.wrapping_mul(0x9e37_79b9_7f4a_7c15) | 1;
-    let mut runs = Vec::new();
+    let mut cells = Builder::new(UNLIMITED);
     for y in 0..side {
         for x in 0..side {
             state ^= state << 13;
             state ^= state >> 7;
             state ^= state << 17;
             if state % 256 < density {
-                runs.push(Run { y, x, len: 1 });
+                cells.push_run(y, x, 1).unwrap();
             }
         }
     }
-    Pattern { rule: None, runs }
+    cells.finish(None)
 }
 
 /// The Gosper glider gun (the usual RLE, from memory).
@@ -76,7 +76,7 @@ fn a_collection_at_every_allocation_changes_no_digest() {
         // jumps: with nothing memoised kept, a far jump costs time
         // exponential in its length; the budget test below makes them.)
         (
-            read_pattern(GUN).unwrap(),
+            read_pattern(GUN, UNLIMITED).unwrap(),
             "B3/S23",
             numbers(&["256", "300"]),
         ),
@@ -94,7 +94,7 @@ fn every_budget_from_the_tightest_that_fits_gives_the_same_digests() {
     let cases: Vec<(Pattern, &str, Vec<BigUint>)> = vec![
         (soup(3, 96, 96), "B3/S23", numbers(&["1000", "1024", "77"])),
         (
-            read_pattern(GUN).unwrap(),
+            read_pattern(GUN, UNLIMITED).unwrap(),
             "B3/S23",
             numbers(&["4096", "100000000000000000000", "3"]),
         ),

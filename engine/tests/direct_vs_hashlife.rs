@@ -4,7 +4,7 @@
 
 use deeptime_engine::Universe;
 use deeptime_engine::direct::Grid;
-use deeptime_engine::pattern::{Pattern, Run, read_pattern};
+use deeptime_engine::pattern::{Builder, Pattern, read_pattern};
 use deeptime_engine::rule::Rule;
 use num_bigint::BigUint;
 
@@ -13,18 +13,18 @@ const BUDGET: u64 = 1 << 30;
 /// A seeded soup (xorshift), `side`×`side` at `density`/256.
 fn soup(seed: u64, side: u64, density: u64) -> Pattern {
     let mut state = seed.wrapping_mul(0x9e37_79b9_7f4a_7c15) | 1;
-    let mut runs = Vec::new();
+    let mut cells = Builder::new(BUDGET);
     for y in 0..side {
         for x in 0..side {
             state ^= state << 13;
             state ^= state >> 7;
             state ^= state << 17;
             if state % 256 < density {
-                runs.push(Run { y, x, len: 1 });
+                cells.push_run(y, x, 1).unwrap();
             }
         }
     }
-    Pattern { rule: None, runs }
+    cells.finish(None)
 }
 
 fn agree(pattern: &Pattern, rule: &str, checkpoints: &[u64]) {
@@ -71,6 +71,7 @@ fn the_gosper_gun_agrees_for_a_thousand_generations() {
     let gun = read_pattern(
         b"x = 36, y = 9\n24bo$22bobo$12b2o6b2o12b2o$11bo3bo4b2o12b2o$2o8bo5bo3b2o$\
           2o8bo3bob2o4bobo$10bo5bo7bo$11bo3bo$12b2o!",
+        BUDGET,
     )
     .unwrap();
     agree(&gun, "B3/S23", &[30, 300, 1000]);

@@ -26,7 +26,12 @@ fn soup(side: u64, seed: u64) -> Universe {
         rows.push(row);
     }
     let text = format!("x = {side}, y = {side}\n{}!", rows.join("$"));
-    Universe::from_pattern(&read_pattern(text.as_bytes()).unwrap(), Rule::LIFE, BUDGET).unwrap()
+    Universe::from_pattern(
+        &read_pattern(text.as_bytes(), BUDGET).unwrap(),
+        Rule::LIFE,
+        BUDGET,
+    )
+    .unwrap()
 }
 
 #[test]
@@ -63,9 +68,12 @@ fn small_and_empty_states_round_trip() {
         "x = 3, y = 3\nbob$2bo$3o!",
         "x = 0, y = 0\n!",
     ] {
-        let mut state =
-            Universe::from_pattern(&read_pattern(text.as_bytes()).unwrap(), Rule::LIFE, BUDGET)
-                .unwrap();
+        let mut state = Universe::from_pattern(
+            &read_pattern(text.as_bytes(), BUDGET).unwrap(),
+            Rule::LIFE,
+            BUDGET,
+        )
+        .unwrap();
         let (digest, pack) = state.write_pack(&|_| None, &[]).unwrap();
         let pack = pack.expect("even the empty state stores its root");
         let (mut back, _) = Universe::from_packs(

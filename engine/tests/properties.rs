@@ -4,7 +4,7 @@
 //! deterministic simulator and a content-addressed store.)
 
 use deeptime_engine::Universe;
-use deeptime_engine::pattern::{Pattern, Run, read_pattern};
+use deeptime_engine::pattern::{Builder, Pattern, read_pattern};
 use deeptime_engine::rule::Rule;
 use num_bigint::BigUint;
 use proptest::prelude::*;
@@ -14,15 +14,14 @@ const RULES: [&str; 4] = ["B3/S23", "B36/S23", "B3678/S34678", "B2/S"];
 
 /// A soup from a list of cell bits, `side` wide.
 fn soup(bits: &[bool], side: u64, at: (u64, u64)) -> Pattern {
-    let mut runs = Vec::new();
+    let mut cells = Builder::new(BUDGET);
     for (index, &alive) in bits.iter().enumerate() {
         if alive {
             let (x, y) = (index as u64 % side + at.0, index as u64 / side + at.1);
-            runs.push(Run { y, x, len: 1 });
+            cells.push_run(y, x, 1).unwrap();
         }
     }
-    runs.sort_by_key(|run| (run.y, run.x));
-    Pattern { rule: None, runs }
+    cells.finish(None)
 }
 
 fn state(pattern: &Pattern, rule: &str) -> Universe {
@@ -75,10 +74,10 @@ proptest! {
         let mut distant = state(&moved, "B3/S23");
         let mut text = Vec::new();
         distant.write_rle(&mut text).unwrap();
-        let mut again = state(&read_pattern(&text).unwrap(), "B3/S23");
+        let mut again = state(&read_pattern(&text, BUDGET).unwrap(), "B3/S23");
         let mut direct_text = Vec::new();
         direct.write_rle(&mut direct_text).unwrap();
-        let mut direct_again = state(&read_pattern(&direct_text).unwrap(), "B3/S23");
+        let mut direct_again = state(&read_pattern(&direct_text, BUDGET).unwrap(), "B3/S23");
         prop_assert_eq!(again.digest().unwrap(), direct_again.digest().unwrap());
         if bits.iter().any(|&b| b) && far > 0 {
             prop_assert_ne!(direct.digest().unwrap(), distant.digest().unwrap());
@@ -97,7 +96,7 @@ proptest! {
         original.write_rle(&mut text).unwrap();
         let text = String::from_utf8(text).unwrap();
         prop_assert!(text.lines().all(|line| line.len() <= 70));
-        let read = read_pattern(text.as_bytes()).unwrap();
+        let read = read_pattern(text.as_bytes(), BUDGET).unwrap();
         let rule_text = read.rule.clone().map(|(rule, _)| rule);
         prop_assert_eq!(rule_text, Some(RULES[rule].to_string()));
         let mut copy = state(&read, RULES[rule]);
@@ -113,7 +112,7 @@ fn a_state_reached_through_a_huge_root_has_the_digest_of_its_cells() {
     // Common practice: padding and root level must not matter. A block
     // (still life) advanced 10^100 generations grows its root to level ~340
     // and back; its digest equals the block's built directly.
-    let block = read_pattern(b"x = 2, y = 2\n2o$2o!").unwrap();
+    let block = read_pattern(b"x = 2, y = 2\n2o$2o!", BUDGET).unwrap();
     let mut far = state(&block, "B3/S23");
     far.advance(&BigUint::from(10u32).pow(100), None).unwrap();
     let mut near = state(&block, "B3/S23");
@@ -173,9 +172,9 @@ proptest! {
         let region = deeptime_engine::Region { left: left.into(), top: top.into(), width, height };
         let mut text = Vec::new();
         state.write_rle_region(&mut text, &region).unwrap();
-        let read = read_pattern(&text).unwrap();
+        let read = read_pattern(&text, BUDGET).unwrap();
         let mut got: Vec<(i64, i64)> = Vec::new();
-        for run in &read.runs {
+        for run in read.runs() {
             for dx in 0..run.len {
                 got.push(((run.x + dx) as i64 + left, run.y as i64 + top));
             }

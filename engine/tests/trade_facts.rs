@@ -22,7 +22,7 @@ const GOSPER_GUN: &str = "x = 36, y = 9, rule = B3/S23\n\
     2o8bo3bob2o4bobo$10bo5bo7bo$11bo3bo$12b2o!";
 
 fn universe(rle: &str, rule: &str) -> Universe {
-    let pattern = read_pattern(rle.as_bytes()).expect("a valid pattern");
+    let pattern = read_pattern(rle.as_bytes(), BUDGET).expect("a valid pattern");
     Universe::from_pattern(&pattern, Rule::parse(rule).unwrap(), BUDGET).unwrap()
 }
 

@@ -240,7 +240,7 @@ pub fn cluster(settings: &Settings) -> anyhow::Result<Vec<Figure>> {
     let directory = tempfile::tempdir()?;
     let dir = directory.path();
     let exe = process::this_executable(dir)?;
-    write_rle(&soup(side, 4), Rule::LIFE, &dir.join("soup.rle"))?;
+    write_rle(&soup(side, 4)?, Rule::LIFE, &dir.join("soup.rle"))?;
     let label = format!("{side}² soup to {target}");
 
     // One checkpoint (at the target) and one every `every` generations.

@@ -8,7 +8,7 @@ use std::time::{Duration, Instant};
 
 use anyhow::{Context, bail, ensure};
 use deeptime_engine::direct::Grid;
-use deeptime_engine::pattern::{Pattern, Run, read_pattern};
+use deeptime_engine::pattern::{Builder, Pattern, read_pattern};
 use deeptime_engine::rule::Rule;
 use deeptime_engine::{ContentId, Universe, human_bytes};
 use num_bigint::BigUint;
@@ -62,7 +62,8 @@ const SPILL: &str = "x = 7, y = 5, rule = B12345678/S012345678\nbo3bo$2obob2o$3b
 const BUDGET: u64 = 16 << 30;
 
 fn pattern(text: &str) -> anyhow::Result<(Pattern, Rule)> {
-    let pattern = read_pattern(text.as_bytes()).map_err(|error| anyhow::anyhow!("{error}"))?;
+    let pattern =
+        read_pattern(text.as_bytes(), BUDGET).map_err(|error| anyhow::anyhow!("{error}"))?;
     let rule = match &pattern.rule {
         Some((rule, _)) => Rule::parse(rule)?,
         None => Rule::LIFE,
@@ -71,9 +72,9 @@ fn pattern(text: &str) -> anyhow::Result<(Pattern, Rule)> {
 }
 
 /// A seeded random soup, `side`×`side`, each cell alive with probability 3/8.
-pub fn soup(side: u64, seed: u64) -> Pattern {
+pub fn soup(side: u64, seed: u64) -> anyhow::Result<Pattern> {
     let mut state = seed.wrapping_mul(0x9e37_79b9_7f4a_7c15) | 1;
-    let mut runs: Vec<Run> = Vec::new();
+    let mut cells = Builder::new(BUDGET);
     for y in 0..side {
         for x in 0..side {
             // xorshift64
@@ -81,14 +82,11 @@ pub fn soup(side: u64, seed: u64) -> Pattern {
             state ^= state >> 7;
             state ^= state << 17;
             if state % 8 < 3 {
-                match runs.last_mut() {
-                    Some(run) if run.y == y && run.x + run.len == x => run.len += 1,
-                    _ => runs.push(Run { y, x, len: 1 }),
-                }
+                cells.push_run(y, x, 1)?;
             }
         }
     }
-    Pattern { rule: None, runs }
+    Ok(cells.finish(None))
 }
 
 /// Writes `pattern` as RLE to `path`, for the parts that hand it to another
@@ -223,7 +221,7 @@ fn chaotic(settings: &Settings) -> anyhow::Result<Vec<Figure>> {
     // from its private memory.
     let resident = Resident::start()?;
     let label = format!("{side}² soup, 2^{}", generations.trailing_zeros());
-    let pattern = soup(side, 1);
+    let pattern = soup(side, 1)?;
     let rule = Rule::LIFE;
     resident.write_soup(&pattern, rule)?;
     let steps = BigUint::from(generations);
@@ -278,7 +276,7 @@ fn chaotic(settings: &Settings) -> anyhow::Result<Vec<Figure>> {
     // but the start state, plus those of one holding nothing but the end
     // state.
     let end_state = grid
-        .to_pattern()
+        .to_pattern(BUDGET)?
         .map(|(pattern, _, _)| pattern)
         .unwrap_or_default();
     drop(grid);
@@ -384,7 +382,7 @@ fn numpy(settings: &Settings) -> anyhow::Result<Vec<Figure>> {
              (bench/run sets one up)"
         );
     };
-    let pattern = soup(side, 2);
+    let pattern = soup(side, 2)?;
     let rule = Rule::LIFE;
     let directory = tempfile::tempdir()?;
     let soup_path = directory.path().join("soup.rle");
@@ -454,7 +452,7 @@ fn checkpoints(settings: &Settings) -> anyhow::Result<Vec<Figure>> {
     use deeptime_node::storage::LocalDir;
 
     let side = if settings.quick { 512 } else { 23_200 };
-    let pattern = soup(side, 3);
+    let pattern = soup(side, 3)?;
     let rule = Rule::LIFE;
     let mut universe = Universe::from_pattern(&pattern, rule, BUDGET)?;
     let (inner, leaves) = universe.live_quads();

@@ -122,10 +122,13 @@ async fn coordinate(args: CoordinatorArgs) -> anyhow::Result<()> {
     let started = Instant::now();
     let job = Job::load(&args.job)?;
     let budget = memory::budget(job.memory.as_deref())?;
-    let loaded = input::read(&job.pattern)?;
+    let loaded = input::read(&job.pattern, budget)?;
     let rule = input::rule(job.rule.as_deref(), &loaded)?;
     let mut universe = Universe::from_pattern(&loaded.pattern, rule, budget)
         .with_context(|| format!("{}: building the pattern", loaded.name))?;
+    // The pattern counts against the budget only while its quads are made;
+    // the run does not need it again.
+    drop(loaded);
     let pattern_digest = universe.digest()?;
     let side = universe
         .bounding_box()

@@ -4,9 +4,11 @@
 //! Readers take raw bytes and never trust them: any malformed input gives a
 //! [`PatternError`] with a line and column, never a panic, and every size is
 //! checked against [`MAX_COORDINATE`] and [`MAX_LIVE_CELLS`] before it is
-//! used. Cells are kept as horizontal runs, so a run of a billion cells costs
-//! the same as a run of one. Coordinates: the pattern's top-left cell is
-//! (0, 0), x grows right, y grows down.
+//! used. Readers hand their runs to a [`Builder`], which keeps the cells as
+//! 8×8 leaves: a loaded pattern costs what its leaves cost, whatever its
+//! runs, and is refused once its leaves would pass the memory budget it is
+//! read under. Coordinates: the pattern's top-left cell is (0, 0), x grows
+//! right, y grows down.
 
 pub mod plaintext;
 pub mod rle;
@@ -18,6 +20,12 @@ pub const MAX_COORDINATE: u64 = 1 << 40;
 
 /// A pattern with more live cells than this is refused.
 pub const MAX_LIVE_CELLS: u64 = 1 << 32;
+
+/// Bytes one leaf of a loaded pattern takes (its column and its cells).
+pub const LEAF_BYTES: u64 = std::mem::size_of::<(u64, u64)>() as u64;
+
+/// Cells on a side of a leaf.
+const SIDE: u64 = 8;
 
 /// A horizontal run of live cells: row `y`, columns `x .. x + len`.
 #[derive(Clone, Copy, Debug, PartialEq, Eq)]
@@ -34,26 +42,225 @@ pub struct Position {
     pub column: usize,
 }
 
-/// A pattern as read from text.
+/// A pattern as read from text: its live cells in 8×8 leaves.
 #[derive(Clone, Debug, Default, PartialEq, Eq)]
 pub struct Pattern {
     /// The rule text of an RLE header, unparsed, with its position (so a bad
     /// rule can be reported at file:line:column).
     pub rule: Option<(String, Position)>,
-    /// Live cells as runs, sorted by (y, x), non-overlapping, len >= 1.
-    pub runs: Vec<Run>,
+    /// The non-empty leaves, sorted by (leaf row, leaf column): each leaf's
+    /// column and cells (bit `8*y + x`, as in the quad store); the rows are
+    /// in `rows`.
+    leaves: Vec<(u64, u64)>,
+    /// Each leaf row that has leaves, ascending, with the end of its leaves
+    /// in `leaves`.
+    rows: Vec<(u64, usize)>,
+    population: u64,
+    /// One past the rightmost live column and the lowest live row.
+    width: u64,
+    height: u64,
 }
 
 impl Pattern {
     /// The number of live cells.
     pub fn population(&self) -> u64 {
-        let mut total: u64 = 0;
-        for run in &self.runs {
-            // Readers keep the total within MAX_LIVE_CELLS, but the fields
-            // are public.
-            total = total.saturating_add(run.len);
+        self.population
+    }
+
+    /// Columns and rows from (0, 0) to the last live cell, inclusive: 0 by 0
+    /// when there is none.
+    pub fn extent(&self) -> (u64, u64) {
+        (self.width, self.height)
+    }
+
+    /// The leaf rows that hold live cells, top to bottom: each row's index
+    /// (cells `8*row ..`) and its leaves left to right as (leaf column, cells),
+    /// cells with bit `8*y + x` for the cell at (`8*column + x`, `8*row + y`).
+    pub fn leaf_rows(&self) -> impl Iterator<Item = (u64, &[(u64, u64)])> + '_ {
+        let mut start = 0;
+        self.rows.iter().map(move |&(row, end)| {
+            let leaves = &self.leaves[start..end];
+            start = end;
+            (row, leaves)
+        })
+    }
+
+    /// Bytes the pattern holds on the heap, as allocated.
+    pub fn heap_bytes(&self) -> u64 {
+        let rows = std::mem::size_of::<(u64, usize)>() as u64;
+        self.leaves.capacity() as u64 * LEAF_BYTES + self.rows.capacity() as u64 * rows
+    }
+
+    /// The live cells as runs, sorted by (y, x), touching runs joined.
+    pub fn runs(&self) -> Vec<Run> {
+        let mut runs: Vec<Run> = Vec::new();
+        for (row, leaves) in self.leaf_rows() {
+            for line in 0..SIDE {
+                let y = row * SIDE + line;
+                for &(column, bits) in leaves {
+                    let mut byte = (bits >> (line * SIDE)) & 0xff;
+                    while byte != 0 {
+                        let start = u64::from(byte.trailing_zeros());
+                        let len = u64::from((byte >> start).trailing_ones());
+                        byte &= !(((1u64 << len) - 1) << start);
+                        let x = column * SIDE + start;
+                        match runs.last_mut() {
+                            Some(last) if last.y == y && last.x + last.len == x => last.len += len,
+                            _ => runs.push(Run { y, x, len }),
+                        }
+                    }
+                }
+            }
         }
-        total
+        runs
+    }
+}
+
+/// Why a [`Builder`] refused a run.
+#[derive(Clone, Copy, Debug, PartialEq, Eq, thiserror::Error)]
+pub enum BuildError {
+    /// the leaves would take more than the memory budget
+    #[error(
+        "memory budget of {} is too small: the pattern's 8×8 leaves alone would take more",
+        crate::error::human_bytes(*budget)
+    )]
+    OverBudget { budget: u64 },
+    /// a run reaches past [`MAX_COORDINATE`] or is empty
+    #[error("run of {len} cells at x = {x}, y = {y} is empty or outside the pattern's limits")]
+    Outside { y: u64, x: u64, len: u64 },
+    /// a run's row is above the row of an earlier run
+    #[error("row {y} comes after row {previous}")]
+    OutOfOrder { y: u64, previous: u64 },
+}
+
+/// Gathers runs, given row by row from the top (in any order within a row),
+/// into the leaves of a [`Pattern`], within a memory budget. It holds the
+/// leaves done and those of the leaf row being filled, nothing per run.
+#[derive(Debug)]
+pub struct Builder {
+    pattern: Pattern,
+    /// Leaves the budget allows (done and in the row being filled).
+    max_leaves: u64,
+    budget: u64,
+    /// The leaf row being filled and its leaves, left to right except for
+    /// those of the cell row being read, which may start again at the left.
+    row: u64,
+    filling: Vec<(u64, u64)>,
+    /// Whether `filling` needs sorting and merging before it is read again.
+    unsorted: bool,
+    /// The cell row of the last run.
+    last_y: Option<u64>,
+}
+
+impl Builder {
+    /// An empty pattern whose leaves may take up to `budget` bytes.
+    pub fn new(budget: u64) -> Builder {
+        Builder {
+            pattern: Pattern::default(),
+            max_leaves: budget / LEAF_BYTES,
+            budget,
+            row: 0,
+            filling: Vec::new(),
+            unsorted: false,
+            last_y: None,
+        }
+    }
+
+    /// Adds `len` live cells at row `y`, columns `x .. x + len`. Rows come in
+    /// increasing order; runs may overlap. The cost is one step per leaf the
+    /// run touches, checked against the budget before any is added; a run
+    /// refused leaves the builder as it was.
+    pub fn push_run(&mut self, y: u64, x: u64, len: u64) -> Result<(), BuildError> {
+        let end = x
+            .checked_add(len)
+            .filter(|&end| len > 0 && end <= MAX_COORDINATE && y < MAX_COORDINATE)
+            .ok_or(BuildError::Outside { y, x, len })?;
+        if let Some(previous) = self.last_y.filter(|&previous| y < previous) {
+            return Err(BuildError::OutOfOrder { y, previous });
+        }
+        let touched = (end - 1) / SIDE - x / SIDE + 1;
+        let held = (self.pattern.leaves.len() + self.filling.len()) as u64;
+        if held.saturating_add(touched) > self.max_leaves {
+            return Err(BuildError::OverBudget {
+                budget: self.budget,
+            });
+        }
+        if self.last_y != Some(y) {
+            self.end_line();
+            if y / SIDE != self.row {
+                self.end_row();
+                self.row = y / SIDE;
+            }
+            self.last_y = Some(y);
+        }
+        let shift = (y % SIDE) * SIDE;
+        let mut at = x;
+        while at < end {
+            let column = at % SIDE;
+            let span = (SIDE - column).min(end - at);
+            let bits = (((1u64 << span) - 1) << column) << shift;
+            let leaf = at / SIDE;
+            match self.filling.last_mut() {
+                Some(last) if last.0 == leaf => last.1 |= bits,
+                Some(last) => {
+                    self.unsorted |= last.0 > leaf;
+                    self.filling.push((leaf, bits));
+                }
+                None => self.filling.push((leaf, bits)),
+            }
+            at += span;
+        }
+        self.pattern.width = self.pattern.width.max(end);
+        self.pattern.height = self.pattern.height.max(y + 1);
+        Ok(())
+    }
+
+    /// The pattern, with the rule of its header if it has one.
+    pub fn finish(mut self, rule: Option<(String, Position)>) -> Pattern {
+        self.end_line();
+        self.end_row();
+        let mut pattern = self.pattern;
+        pattern.rule = rule;
+        pattern.leaves.shrink_to_fit();
+        pattern.rows.shrink_to_fit();
+        pattern
+    }
+
+    /// Puts the leaves being filled back in order, merging a leaf given twice.
+    fn end_line(&mut self) {
+        if !self.unsorted {
+            return;
+        }
+        self.filling.sort_unstable_by_key(|leaf| leaf.0);
+        self.filling.dedup_by(|next, kept| {
+            let same = next.0 == kept.0;
+            if same {
+                kept.1 |= next.1;
+            }
+            same
+        });
+        self.unsorted = false;
+    }
+
+    /// Moves the filled leaf row to the pattern.
+    fn end_row(&mut self) {
+        if self.filling.is_empty() {
+            return;
+        }
+        let pattern = &mut self.pattern;
+        // Grow by doubling, but never past what the budget allows.
+        let need = pattern.leaves.len() + self.filling.len();
+        if need > pattern.leaves.capacity() {
+            let target = (pattern.leaves.capacity() * 2)
+                .max(need)
+                .min(usize::try_from(self.max_leaves).unwrap_or(usize::MAX));
+            pattern.leaves.reserve_exact(target - pattern.leaves.len());
+        }
+        for &(_, bits) in &self.filling {
+            pattern.population += u64::from(bits.count_ones());
+        }
+        pattern.leaves.append(&mut self.filling);
+        pattern.rows.push((self.row, pattern.leaves.len()));
     }
 }
 
@@ -63,6 +270,9 @@ impl Pattern {
 pub struct PatternError {
     pub position: Position,
     pub message: String,
+    /// The memory budget, when the text is sound but the pattern does not
+    /// fit it.
+    pub budget: Option<u64>,
 }
 
 impl PatternError {
@@ -70,7 +280,17 @@ impl PatternError {
         PatternError {
             position: Position { line, column },
             message: message.into(),
+            budget: None,
         }
+    }
+
+    /// A run the builder refused, at the item that gave it.
+    pub(crate) fn build(at: Position, error: BuildError) -> PatternError {
+        let mut built = PatternError::new(at.line, at.column, error.to_string());
+        if let BuildError::OverBudget { budget } = error {
+            built.budget = Some(budget);
+        }
+        built
     }
 
     /// Input with no cells and no header at all.
@@ -82,7 +302,8 @@ impl PatternError {
 /// Reads either format, recognised by content: blank lines are skipped, and
 /// a first non-blank line that starts with `!` (a plaintext comment) or is
 /// made only of `.`, `O`, `o` and `*` means plaintext; anything else is RLE.
-pub fn read_pattern(bytes: &[u8]) -> Result<Pattern, PatternError> {
+/// The pattern's leaves may take up to `budget` bytes.
+pub fn read_pattern(bytes: &[u8], budget: u64) -> Result<Pattern, PatternError> {
     let mut source = Source::new(bytes);
     while let Some(line) = source.next_line()? {
         if line.text.trim().is_empty() {
@@ -94,9 +315,9 @@ pub fn read_pattern(bytes: &[u8]) -> Result<Pattern, PatternError> {
                 .bytes()
                 .all(|b| matches!(b, b'.' | b'O' | b'o' | b'*'));
         return if plaintext {
-            plaintext::read_plaintext(bytes)
+            plaintext::read_plaintext(bytes, budget)
         } else {
-            rle::read_rle(bytes)
+            rle::read_rle(bytes, budget)
         };
     }
     Err(PatternError::empty())
@@ -217,27 +438,17 @@ pub(crate) fn shorten(text: &str) -> String {
     format!("{head}...")
 }
 
-/// Appends `len` live cells at (`x`, `y`) to runs sorted by (y, x), joining
-/// them to the last run when they touch it.
-pub(crate) fn push_run(runs: &mut Vec<Run>, y: u64, x: u64, len: u64) {
-    if let Some(last) = runs.last_mut()
-        && last.y == y
-        && last.x + last.len == x
-    {
-        last.len += len;
-        return;
-    }
-    runs.push(Run { y, x, len });
-}
-
 #[cfg(test)]
 mod tests {
     use super::*;
     use proptest::prelude::*;
 
+    /// Enough for any test text; a huge count of live cells is refused.
+    const BUDGET: u64 = 1 << 26;
+
     fn cells(pattern: &Pattern) -> Vec<(u64, u64)> {
         let mut cells = Vec::new();
-        for run in &pattern.runs {
+        for run in pattern.runs() {
             for x in run.x..run.x + run.len {
                 cells.push((x, run.y));
             }
@@ -250,15 +461,19 @@ mod tests {
 
     #[test]
     fn detects_rle_and_plaintext() {
-        let rle = read_pattern(b"#N glider\nx = 3, y = 3, rule = B3/S23\nbob$2bo$3o!\n").unwrap();
+        let rle = read_pattern(
+            b"#N glider\nx = 3, y = 3, rule = B3/S23\nbob$2bo$3o!\n",
+            BUDGET,
+        )
+        .unwrap();
         assert_eq!(cells(&rle), GLIDER);
         assert!(rle.rule.is_some());
-        let plaintext = read_pattern(b"!Name: glider\n.O.\n..O\nOOO\n").unwrap();
+        let plaintext = read_pattern(b"!Name: glider\n.O.\n..O\nOOO\n", BUDGET).unwrap();
         assert_eq!(cells(&plaintext), GLIDER);
         assert_eq!(plaintext.rule, None);
-        let no_comment = read_pattern(b"\n\n  \n.O\n..O\nOOO").unwrap();
+        let no_comment = read_pattern(b"\n\n  \n.O\n..O\nOOO", BUDGET).unwrap();
         assert_eq!(cells(&no_comment), GLIDER);
-        let headerless_rle = read_pattern(b"bob$2bo$3o!").unwrap();
+        let headerless_rle = read_pattern(b"bob$2bo$3o!", BUDGET).unwrap();
         assert_eq!(cells(&headerless_rle), GLIDER);
         assert_eq!(headerless_rle.population(), 5);
     }
@@ -274,7 +489,7 @@ mod tests {
             b"!Name: only a comment\n",
             b"\xef\xbb\xbf",
         ] {
-            assert_eq!(read_pattern(input), Err(empty.clone()), "{input:?}");
+            assert_eq!(read_pattern(input, BUDGET), Err(empty.clone()), "{input:?}");
         }
     }
 
@@ -290,7 +505,7 @@ mod tests {
         ];
         for (input, line, column, message) in cases {
             assert_eq!(
-                read_pattern(input),
+                read_pattern(input, BUDGET),
                 Err(PatternError::new(line, column, message)),
                 "{input:?}"
             );
@@ -304,24 +519,73 @@ mod tests {
     }
 
     #[test]
-    fn population_saturates() {
-        let pattern = Pattern {
-            rule: None,
-            runs: vec![
-                Run {
-                    y: 0,
-                    x: 0,
-                    len: u64::MAX,
-                },
-                Run { y: 1, x: 0, len: 5 },
-            ],
-        };
-        assert_eq!(pattern.population(), u64::MAX);
+    fn builder_gathers_leaves() {
+        // An 8×8 block given row by row, then a run that touches three
+        // leaves, given in two overlapping pieces out of order.
+        let mut cells = Builder::new(BUDGET);
+        for y in 8..16 {
+            cells.push_run(y, 16, 8).unwrap();
+        }
+        cells.push_run(20, 10, 10).unwrap();
+        cells.push_run(20, 5, 8).unwrap();
+        let pattern = cells.finish(None);
+        let rows: Vec<(u64, Vec<(u64, u64)>)> = pattern
+            .leaf_rows()
+            .map(|(row, leaves)| (row, leaves.to_vec()))
+            .collect();
+        assert_eq!(
+            rows,
+            [
+                (1, vec![(2, u64::MAX)]),
+                (2, vec![(0, 0xe0 << 32), (1, 0xff << 32), (2, 0x0f << 32)]),
+            ]
+        );
+        assert_eq!(pattern.population(), 64 + 15);
+        assert_eq!(pattern.extent(), (24, 21));
+        assert_eq!(
+            pattern.runs(),
+            (8..16)
+                .map(|y| Run { y, x: 16, len: 8 })
+                .chain([Run {
+                    y: 20,
+                    x: 5,
+                    len: 15
+                }])
+                .collect::<Vec<_>>()
+        );
+    }
+
+    #[test]
+    fn builder_refusals() {
+        // Room for four leaves: three are used, and a run is refused when
+        // the leaves it touches might not fit, whatever its length; a
+        // refused run changes nothing.
+        let budget = 4 * LEAF_BYTES;
+        let mut cells = Builder::new(budget);
+        cells.push_run(0, 0, 24).unwrap();
+        cells.push_run(1, 0, 8).unwrap();
+        let over = Err(BuildError::OverBudget { budget });
+        assert_eq!(cells.push_run(2, 0, 25), over);
+        assert_eq!(cells.push_run(9, 0, 9), over);
+        assert_eq!(cells.push_run(9, 0, MAX_COORDINATE), over);
+        assert_eq!(
+            cells.push_run(0, 0, 1),
+            Err(BuildError::OutOfOrder { y: 0, previous: 1 })
+        );
+        for (y, x, len) in [(1, 0, 0), (MAX_COORDINATE, 0, 1), (1, u64::MAX, 2)] {
+            assert_eq!(
+                cells.push_run(y, x, len),
+                Err(BuildError::Outside { y, x, len })
+            );
+        }
+        let pattern = cells.finish(None);
+        assert_eq!(pattern.population(), 32);
+        assert_eq!(pattern.extent(), (24, 2));
     }
 
     /// What every reader promises of the runs it returns.
     fn check_runs(pattern: &Pattern) -> Result<(), TestCaseError> {
-        for pair in pattern.runs.windows(2) {
+        for pair in pattern.runs().windows(2) {
             let (a, b) = (pair[0], pair[1]);
             // Sorted, apart: touching runs would have been joined.
             prop_assert!(
@@ -329,7 +593,7 @@ mod tests {
                 "{a:?} {b:?}"
             );
         }
-        for run in &pattern.runs {
+        for run in pattern.runs() {
             prop_assert!(run.len >= 1);
             prop_assert!(run.y < MAX_COORDINATE && run.x + run.len <= MAX_COORDINATE);
         }
@@ -340,7 +604,7 @@ mod tests {
     proptest! {
         #[test]
         fn arbitrary_bytes_never_panic(bytes in proptest::collection::vec(any::<u8>(), 0..300)) {
-            if let Ok(pattern) = read_pattern(&bytes) {
+            if let Ok(pattern) = read_pattern(&bytes, BUDGET) {
                 check_runs(&pattern)?;
             }
         }
@@ -350,9 +614,9 @@ mod tests {
             text in "[xyXY=, 0-9bo$!#\n\r\t.O*rulB/S]{0,300}",
         ) {
             for result in [
-                read_pattern(text.as_bytes()),
-                rle::read_rle(text.as_bytes()),
-                plaintext::read_plaintext(text.as_bytes()),
+                read_pattern(text.as_bytes(), BUDGET),
+                rle::read_rle(text.as_bytes(), BUDGET),
+                plaintext::read_plaintext(text.as_bytes(), BUDGET),
             ] {
                 match result {
                     Ok(pattern) => check_runs(&pattern)?,

@@ -1,21 +1,23 @@
 //! Reading plaintext patterns: one text line per row, `.` for a dead cell,
 //! `O` (or `o`, `*`) for a live one, and `!` comment lines.
 //!
-//! Rows are turned into runs as they are read; the format has no header, so
-//! it carries no rule.
+//! Rows are turned into leaves as they are read; the format has no header,
+//! so it carries no rule.
 
 use super::{
-    MAX_COORDINATE, MAX_LIVE_CELLS, Pattern, PatternError, Source, push_run, unexpected_character,
+    Builder, MAX_COORDINATE, MAX_LIVE_CELLS, Pattern, PatternError, Position, Source,
+    unexpected_character,
 };
 
 /// Reads a plaintext pattern.
 ///
 /// A line starting with `!` is a comment wherever it stands. Every other line
 /// is a row, trailing whitespace ignored; blank lines before the first row
-/// are skipped, blank lines after it are empty rows.
-pub fn read_plaintext(bytes: &[u8]) -> Result<Pattern, PatternError> {
+/// are skipped, blank lines after it are empty rows. The pattern's leaves
+/// may take up to `budget` bytes.
+pub fn read_plaintext(bytes: &[u8], budget: u64) -> Result<Pattern, PatternError> {
     let mut source = Source::new(bytes);
-    let mut pattern = Pattern::default();
+    let mut cells = Builder::new(budget);
     let mut started = false;
     let mut y: u64 = 0;
     let mut live: u64 = 0;
@@ -54,7 +56,13 @@ pub fn read_plaintext(bytes: &[u8]) -> Result<Pattern, PatternError> {
                             "pattern has more than {MAX_LIVE_CELLS} live cells"
                         )));
                     }
-                    push_run(&mut pattern.runs, y, x, 1);
+                    let at = Position {
+                        line: line.number,
+                        column: offset + 1,
+                    };
+                    cells
+                        .push_run(y, x, 1)
+                        .map_err(|e| PatternError::build(at, e))?;
                 }
                 _ => return Err(unexpected_character(&line, offset)),
             }
@@ -64,13 +72,15 @@ pub fn read_plaintext(bytes: &[u8]) -> Result<Pattern, PatternError> {
     if !started {
         return Err(PatternError::empty());
     }
-    Ok(pattern)
+    Ok(cells.finish(None))
 }
 
 #[cfg(test)]
 mod tests {
     use super::*;
     use crate::pattern::Run;
+
+    const BUDGET: u64 = 1 << 26;
 
     fn run(y: u64, x: u64, len: u64) -> Run {
         Run { y, x, len }
@@ -79,8 +89,8 @@ mod tests {
     #[test]
     fn glider() {
         // The glider, as in the RLE tests (common practice).
-        let pattern = read_plaintext(b"!Name: Glider\n!\n.O.\n..O\nOOO\n").unwrap();
-        assert_eq!(pattern.runs, [run(0, 1, 1), run(1, 2, 1), run(2, 0, 3)]);
+        let pattern = read_plaintext(b"!Name: Glider\n!\n.O.\n..O\nOOO\n", BUDGET).unwrap();
+        assert_eq!(pattern.runs(), [run(0, 1, 1), run(1, 2, 1), run(2, 0, 3)]);
         assert_eq!(pattern.rule, None);
         assert_eq!(pattern.population(), 5);
     }
@@ -94,18 +104,19 @@ mod tests {
             b"\xef\xbb\xbf.O\n..O\nOOO\n\n\n",
         ];
         for input in inputs {
-            let pattern = read_plaintext(input).unwrap_or_else(|e| panic!("{input:?}: {e}"));
+            let pattern =
+                read_plaintext(input, BUDGET).unwrap_or_else(|e| panic!("{input:?}: {e}"));
             assert_eq!(
-                pattern.runs,
+                pattern.runs(),
                 [run(0, 1, 1), run(1, 2, 1), run(2, 0, 3)],
                 "{input:?}"
             );
         }
         // A blank line after the first row is an empty row.
-        let gapped = read_plaintext(b"O\n\n\n.OO").unwrap();
-        assert_eq!(gapped.runs, [run(0, 0, 1), run(3, 1, 2)]);
+        let gapped = read_plaintext(b"O\n\n\n.OO", BUDGET).unwrap();
+        assert_eq!(gapped.runs(), [run(0, 0, 1), run(3, 1, 2)]);
         // Rows of dead cells only are a valid, empty pattern.
-        assert_eq!(read_plaintext(b"...\n...").unwrap().runs, []);
+        assert_eq!(read_plaintext(b"...\n...", BUDGET).unwrap().runs(), []);
     }
 
     #[test]
@@ -128,7 +139,7 @@ mod tests {
         ];
         for &(input, line, column, message) in cases {
             assert_eq!(
-                read_plaintext(input),
+                read_plaintext(input, BUDGET),
                 Err(PatternError::new(line, column, message)),
                 "{:?}",
                 String::from_utf8_lossy(input)

@@ -2,12 +2,13 @@
 //! `x = 3, y = 3, rule = B3/S23`, then a body of run-length items ended by
 //! `!`.
 //!
-//! The body is read item by item into runs, so a run count is applied in
-//! constant time whatever its size; every count and cursor move is checked
-//! against the limits of the module before it is applied.
+//! The body is read item by item: a count of dead cells or rows is applied
+//! in constant time whatever its size, a count of live cells in one step per
+//! leaf it touches; every count and cursor move is checked against the
+//! limits of the module and the budget before it is applied.
 
 use super::{
-    Line, MAX_COORDINATE, MAX_LIVE_CELLS, Pattern, PatternError, Position, Run, Source, push_run,
+    Builder, Line, MAX_COORDINATE, MAX_LIVE_CELLS, Pattern, PatternError, Position, Source,
     shorten, unexpected_character,
 };
 
@@ -18,11 +19,12 @@ use super::{
 /// and line breaks may stand between items and between a count and its tag;
 /// a line whose first non-blank character is `#` is a comment; everything
 /// after `!` is ignored. The header's `x` and `y` are checked but not used:
-/// the cells alone say where the pattern is.
-pub fn read_rle(bytes: &[u8]) -> Result<Pattern, PatternError> {
+/// the cells alone say where the pattern is. The pattern's leaves may take
+/// up to `budget` bytes.
+pub fn read_rle(bytes: &[u8], budget: u64) -> Result<Pattern, PatternError> {
     let mut source = Source::new(bytes);
     let mut rule = None;
-    let mut body = Body::default();
+    let mut body = Body::new(budget);
     let mut started = false;
     // Where a missing '!' is reported: just after the last thing read.
     let mut end = Position { line: 1, column: 1 };
@@ -43,10 +45,7 @@ pub fn read_rle(bytes: &[u8]) -> Result<Pattern, PatternError> {
             }
         }
         if body.read_line(&line)? {
-            return Ok(Pattern {
-                rule,
-                runs: body.runs,
-            });
+            return Ok(body.cells.finish(rule));
         }
         if let Some(last) = body.last_end {
             end = last;
@@ -190,11 +189,11 @@ impl Count {
     }
 }
 
-/// The state of the body reader: a cursor, the runs so far, and a count that
+/// The state of the body reader: a cursor, the cells so far, and a count that
 /// may be waiting for its tag on a later line.
-#[derive(Debug, Default)]
+#[derive(Debug)]
 struct Body {
-    runs: Vec<Run>,
+    cells: Builder,
     x: u64,
     y: u64,
     live: u64,
@@ -204,6 +203,17 @@ struct Body {
 }
 
 impl Body {
+    fn new(budget: u64) -> Body {
+        Body {
+            cells: Builder::new(budget),
+            x: 0,
+            y: 0,
+            live: 0,
+            pending: None,
+            last_end: None,
+        }
+    }
+
     /// Reads the items of one line; `true` once `!` has been read.
     fn read_line(&mut self, line: &Line<'_>) -> Result<bool, PatternError> {
         let bytes = line.text.as_bytes();
@@ -287,7 +297,9 @@ impl Body {
                 .ok_or_else(|| {
                     error(format!("pattern has more than {MAX_LIVE_CELLS} live cells"))
                 })?;
-            push_run(&mut self.runs, self.y, start, count);
+            self.cells
+                .push_run(self.y, start, count)
+                .map_err(|e| PatternError::build(at, e))?;
         }
         Ok(())
     }
@@ -312,10 +324,13 @@ fn parse_count(digits: &str, position: Position) -> Result<u64, PatternError> {
 #[cfg(test)]
 mod tests {
     use super::*;
+    use crate::pattern::Run;
+
+    const BUDGET: u64 = 1 << 26;
 
     fn cells(pattern: &Pattern) -> Vec<(u64, u64)> {
         let mut cells = Vec::new();
-        for run in &pattern.runs {
+        for run in pattern.runs() {
             for x in run.x..run.x + run.len {
                 cells.push((x, run.y));
             }
@@ -332,9 +347,9 @@ mod tests {
 
     #[test]
     fn standard_glider() {
-        let pattern = read_rle(b"x = 3, y = 3, rule = B3/S23\nbob$2bo$3o!").unwrap();
+        let pattern = read_rle(b"x = 3, y = 3, rule = B3/S23\nbob$2bo$3o!", BUDGET).unwrap();
         assert_eq!(cells(&pattern), GLIDER);
-        assert_eq!(pattern.runs, [run(0, 1, 1), run(1, 2, 1), run(2, 0, 3)]);
+        assert_eq!(pattern.runs(), [run(0, 1, 1), run(1, 2, 1), run(2, 0, 3)]);
         assert_eq!(
             pattern.rule,
             Some((
@@ -361,10 +376,10 @@ mod tests {
             b"\xef\xbb\xbfx = 3, y = 3\nbob$2bo$3o! and more",
         ];
         for input in inputs {
-            let pattern = read_rle(input).unwrap_or_else(|e| panic!("{input:?}: {e}"));
+            let pattern = read_rle(input, BUDGET).unwrap_or_else(|e| panic!("{input:?}: {e}"));
             assert_eq!(cells(&pattern), GLIDER, "{input:?}");
         }
-        let spaced = read_rle(b"x=3,y=3,rule=B3/S23\nbob!").unwrap();
+        let spaced = read_rle(b"x=3,y=3,rule=B3/S23\nbob!", BUDGET).unwrap();
         assert_eq!(
             spaced.rule,
             Some((
@@ -375,33 +390,51 @@ mod tests {
                 }
             ))
         );
-        let lowercase = read_rle(b"x = 1, y = 1, rule = b3/s23 \no!").unwrap();
+        let lowercase = read_rle(b"x = 1, y = 1, rule = b3/s23 \no!", BUDGET).unwrap();
         assert_eq!(lowercase.rule.unwrap().0, "b3/s23");
     }
 
     #[test]
     fn runs_are_merged_and_trailing_dead_cells_ignored() {
-        let pattern = read_rle(b"x = 9, y = 3\n2o3o2b$$o3b!").unwrap();
-        assert_eq!(pattern.runs, [run(0, 0, 5), run(2, 0, 1)]);
+        let pattern = read_rle(b"x = 9, y = 3\n2o3o2b$$o3b!", BUDGET).unwrap();
+        assert_eq!(pattern.runs(), [run(0, 0, 5), run(2, 0, 1)]);
         assert_eq!(pattern.rule, None);
     }
 
     #[test]
     fn empty_pattern_with_header_is_valid() {
-        let pattern = read_rle(b"x = 0, y = 0, rule = B3/S23\n!\n").unwrap();
-        assert!(pattern.runs.is_empty());
+        let pattern = read_rle(b"x = 0, y = 0, rule = B3/S23\n!\n", BUDGET).unwrap();
+        assert!(pattern.runs().is_empty());
         assert_eq!(pattern.population(), 0);
-        let dead_only = read_rle(b"x = 5, y = 2\n5b$5b!").unwrap();
-        assert!(dead_only.runs.is_empty());
+        let dead_only = read_rle(b"x = 5, y = 2\n5b$5b!", BUDGET).unwrap();
+        assert!(dead_only.runs().is_empty());
     }
 
     #[test]
-    fn huge_runs_cost_nothing() {
+    fn huge_counts_cost_nothing_or_are_refused_at_once() {
         // Each of these would take hours if it were a loop over cells.
-        let pattern = read_rle(b"1000000000000$1000b4294967296o$1099511627775b!").unwrap();
-        assert_eq!(pattern.runs, [run(1_000_000_000_000, 1000, 1 << 32)]);
-        let edge = read_rle(b"1099511627775$1099511627775bo!").unwrap();
-        assert_eq!(edge.runs, [run(MAX_COORDINATE - 1, MAX_COORDINATE - 1, 1)]);
+        let pattern = read_rle(b"1000000000000$1000b3o$1099511627775b!", BUDGET).unwrap();
+        assert_eq!(pattern.runs(), [run(1_000_000_000_000, 1000, 3)]);
+        let edge = read_rle(b"1099511627775$1099511627775bo!", BUDGET).unwrap();
+        assert_eq!(
+            edge.runs(),
+            [run(MAX_COORDINATE - 1, MAX_COORDINATE - 1, 1)]
+        );
+        // 2^32 live cells in a row are 2^29 leaves, more than the budget
+        // holds: refused at the item, before a leaf is made.
+        let error = read_rle(b"1000000000000$1000b4294967296o$1099511627775b!", BUDGET);
+        let mut expected = PatternError::new(
+            1,
+            20,
+            "memory budget of 64.0 MiB is too small: the pattern's 8×8 leaves alone would take more",
+        );
+        expected.budget = Some(BUDGET);
+        assert_eq!(error, Err(expected.clone()));
+        // So is a count that the live-cell limit allows: 2^32 live cells
+        // need 2^26 leaves at least, so below 1 GiB the budget refuses them
+        // first.
+        expected.position = Position { line: 1, column: 1 };
+        assert_eq!(read_rle(b"4294967296o$o!", BUDGET), Err(expected));
     }
 
     #[test]
@@ -412,9 +445,10 @@ mod tests {
             text.push_str("bo$");
         }
         text.push('!');
-        let pattern = read_rle(text.as_bytes()).unwrap();
-        assert_eq!(pattern.runs.len(), 200_000);
-        assert_eq!(pattern.runs[199_999], run(199_999, 1, 1));
+        let pattern = read_rle(text.as_bytes(), BUDGET).unwrap();
+        let runs = pattern.runs();
+        assert_eq!(runs.len(), 200_000);
+        assert_eq!(runs[199_999], run(199_999, 1, 1));
     }
 
     #[test]
@@ -575,12 +609,6 @@ mod tests {
                 "pattern is wider than 1099511627776 columns",
             ),
             (
-                b"4294967296o$o!",
-                1,
-                13,
-                "pattern has more than 4294967296 live cells",
-            ),
-            (
                 b"1099511627776o!",
                 1,
                 1,
@@ -591,7 +619,7 @@ mod tests {
         ];
         for &(input, line, column, message) in cases {
             assert_eq!(
-                read_rle(input),
+                read_rle(input, BUDGET),
                 Err(PatternError::new(line, column, message)),
                 "{:?}",
                 String::from_utf8_lossy(input)

@@ -142,6 +142,8 @@ mod tests {
     use proptest::prelude::*;
     use std::collections::BTreeSet;
 
+    const BUDGET: u64 = 1 << 26;
+
     type Rows = Vec<(u64, Vec<(u64, u64)>)>;
 
     fn written(
@@ -218,12 +220,12 @@ mod tests {
                 .map_or(pair[1].len(), |i| i + 1);
             assert!(pair[0].len() + next_item > MAX_LINE, "{pair:?}");
         }
-        let pattern = read_rle(text.as_bytes()).unwrap();
+        let pattern = read_rle(text.as_bytes(), BUDGET).unwrap();
         let expected: Vec<Run> = rows
             .iter()
             .flat_map(|(y, runs)| runs.iter().map(|&(x, len)| Run { y: *y, x, len }))
             .collect();
-        assert_eq!(pattern.runs, expected);
+        assert_eq!(pattern.runs(), expected);
     }
 
     #[test]
@@ -293,12 +295,12 @@ mod tests {
             for line in text.lines().skip(1) {
                 prop_assert!(line.len() <= MAX_LINE);
             }
-            let pattern = read_rle(text.as_bytes()).unwrap();
+            let pattern = read_rle(text.as_bytes(), BUDGET).unwrap();
             let expected: Vec<Run> = rows
                 .iter()
                 .flat_map(|(y, runs)| runs.iter().map(|&(x, len)| Run { y: *y, x, len }))
                 .collect();
-            prop_assert_eq!(&pattern.runs, &expected);
+            prop_assert_eq!(pattern.runs(), expected);
             prop_assert_eq!(pattern.population(), cells.len() as u64);
             prop_assert_eq!(pattern.rule.map(|(rule, _)| rule), Some("B3/S23".to_string()));
         }
