@@ -704,13 +704,13 @@ fn a_snapshot_of_a_small_region_of_a_stored_state_reads_a_small_part_of_its_pack
 #[test]
 fn a_wall_clock_interval_writes_checkpoints_between_those_of_every() {
     let dir = temp_dir();
-    // About 3 s of work (a 512² soup for 3000 generations); `every` alone
-    // stores generations 0, 1500 and 3000.
-    let job_path = job_of(dir.path(), 512, 3000, 1500, "B3/S23");
+    // Several seconds of work (a 2048² soup for 8000 generations); `every`
+    // alone stores generations 0, 4000 and 8000.
+    let job_path = job_of(dir.path(), 2048, 8000, 4000, "B3/S23");
     let text = std::fs::read_to_string(&job_path).unwrap() + "wall_clock = \"1s\"\n";
     std::fs::write(&job_path, text).unwrap();
     let done = run_deeptime(["run", job_path.to_str().unwrap(), "--json"]);
-    assert_eq!(digest_of(&done), evolved(dir.path(), 3000));
+    assert_eq!(digest_of(&done), evolved(dir.path(), 8000));
     let generations: Vec<u64> = manifests(dir.path())
         .iter()
         .map(|path| {
@@ -720,7 +720,7 @@ fn a_wall_clock_interval_writes_checkpoints_between_those_of_every() {
         })
         .collect();
     // Still on the grid of `every` and the target...
-    for grid in [0, 1500, 3000] {
+    for grid in [0, 4000, 8000] {
         assert!(generations.contains(&grid), "{generations:?}");
     }
     // ...and more: the clock asked for checkpoints in between.
