@@ -213,7 +213,7 @@ fn stepping(settings: &Settings) -> anyhow::Result<Vec<Figure>> {
 /// budget (see `resident.rs`).
 fn chaotic(settings: &Settings) -> anyhow::Result<Vec<Figure>> {
     let (side, generations) = if settings.quick {
-        (256u64, 1u64 << 8)
+        (1024u64, 1u64 << 12)
     } else {
         (2048, 1 << 12)
     };
