@@ -2,7 +2,7 @@
 //! (tests/clients/status_client.py, stubs compiled from our proto at run
 //! time) against a real coordinator and real nodes on loopback. What it
 //! reads must agree with `deeptime status --json`, with the coordinator's
-//! final report and with a single-process `deeptime evolve`; a wrong token
+//! final report and with a single-process `deeptime leap`; a wrong token
 //! must get UNAUTHENTICATED and change nothing.
 
 use std::io::{BufRead, BufReader, Read};
@@ -13,8 +13,8 @@ use std::sync::{Arc, Mutex};
 use std::time::{Duration, Instant};
 
 use deeptime_tests::{
-    Processes, Run, deeptime_bin, evolve_report, free_port, python, run_deeptime, run_program,
-    soup, temp_dir, write_job,
+    Processes, Run, deeptime_bin, free_port, leap_report, python, run_deeptime, run_program, soup,
+    temp_dir, write_job,
 };
 use serde_json::Value;
 
@@ -233,7 +233,7 @@ fn a_python_client_reads_the_same_status_as_deeptime_and_wrong_tokens_change_not
     let report = coordinator.report(Duration::from_secs(300));
     // The cluster's figures are a single process's (common practice: a
     // distributed run is checked against the sequential one).
-    let single = evolve_report(&dir.path().join("soup.rle"), target, rule);
+    let single = leap_report(&dir.path().join("soup.rle"), target, rule);
     for field in ["generation", "population", "digest", "rule"] {
         assert_eq!(
             report[field], single[field],

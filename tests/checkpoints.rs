@@ -1,6 +1,6 @@
 //! Runs that survive: real `deeptime run` processes killed with SIGKILL at
 //! random moments, damaged checkpoints, changed jobs. The final digest must
-//! always equal that of one uninterrupted `deeptime evolve` (common practice
+//! always equal that of one uninterrupted `deeptime leap` (common practice
 //! for crash-consistent storage: a crash loses at most the work since the
 //! last durable checkpoint, never correctness).
 
@@ -44,10 +44,10 @@ fn digest_of(run: &Run) -> String {
     report["digest"].as_str().unwrap().to_string()
 }
 
-fn evolved(dir: &Path, generations: u32) -> String {
+fn digest_after(dir: &Path, generations: u32) -> String {
     let pattern = dir.join("soup.rle");
     digest_of(&run_deeptime([
-        "evolve",
+        "leap",
         pattern.to_str().unwrap(),
         "--gens",
         &generations.to_string(),
@@ -71,7 +71,7 @@ fn a_run_killed_many_times_finishes_with_the_uninterrupted_digest() {
     let dir = temp_dir();
     // About 3 s uninterrupted: 300 checkpoints of a 512² soup.
     let job = job_of(dir.path(), 512, 3000, 10, "B3/S23");
-    let expected = evolved(dir.path(), 3000);
+    let expected = digest_after(dir.path(), 3000);
     // Deterministic "random" kill moments, 30 to 400 ms into each start.
     let mut state = 12345u64;
     let mut kills = 0;
@@ -154,7 +154,7 @@ fn a_damaged_newest_checkpoint_is_reported_and_the_previous_one_used() {
         "{}",
         resumed.describe()
     );
-    assert_eq!(digest_of(&resumed), evolved(dir.path(), 400));
+    assert_eq!(digest_of(&resumed), digest_after(dir.path(), 400));
     // Redoing generation 300 made the same pack again: the damaged file was
     // repaired, not reused, so every checkpoint reads back whole now.
     run_deeptime(["verify", runs.to_str().unwrap()]).assert_success();
@@ -181,7 +181,7 @@ fn a_damaged_newest_checkpoint_is_reported_and_the_previous_one_used() {
         "{}",
         resumed.describe()
     );
-    assert_eq!(digest_of(&resumed), evolved(dir.path(), 500));
+    assert_eq!(digest_of(&resumed), digest_after(dir.path(), 500));
 }
 
 #[test]
@@ -202,7 +202,7 @@ fn a_job_that_no_longer_matches_its_run_is_refused() {
     // A changed target and interval are fine.
     let job_path = job(dir.path(), 90, 30, "B3/S23");
     let more = run_deeptime(["run", job_path.to_str().unwrap(), "--json"]);
-    assert_eq!(digest_of(&more), evolved(dir.path(), 90));
+    assert_eq!(digest_of(&more), digest_after(dir.path(), 90));
     // An unknown key is refused with its place.
     let text = std::fs::read_to_string(&job_path)
         .unwrap()
@@ -220,29 +220,29 @@ fn a_job_that_no_longer_matches_its_run_is_refused() {
 }
 
 #[test]
-fn a_snapshot_of_any_generation_matches_evolve() {
+fn a_snapshot_of_any_generation_matches_leap() {
     let dir = temp_dir();
     let job_path = job(dir.path(), 400, 100, "B3/S23");
     run_deeptime(["run", job_path.to_str().unwrap()]).assert_success();
     let runs = dir.path().join("runs");
     let runs = runs.to_str().unwrap();
     // Stored (200) and between checkpoints (250, 399): the same digest as
-    // one evolve from the pattern.
+    // one leap from the pattern.
     for generation in [200u32, 250, 399] {
         let snap = run_deeptime(["snapshot", runs, "--gen", &generation.to_string(), "--json"]);
         assert_eq!(
             digest_of(&snap),
-            evolved(dir.path(), generation),
+            digest_after(dir.path(), generation),
             "generation {generation}"
         );
     }
     // Beyond the last checkpoint: advanced from it.
     let snap = run_deeptime(["snapshot", runs, "--gen", "1000", "--json"]);
-    assert_eq!(digest_of(&snap), evolved(dir.path(), 1000));
+    assert_eq!(digest_of(&snap), digest_after(dir.path(), 1000));
 
-    // The RLE of the whole state is byte for byte evolve's.
+    // The RLE of the whole state is byte for byte leap's.
     let from_snapshot = dir.path().join("snap.rle");
-    let from_evolve = dir.path().join("evolve.rle");
+    let from_leap = dir.path().join("leap.rle");
     run_deeptime([
         "snapshot",
         runs,
@@ -254,17 +254,17 @@ fn a_snapshot_of_any_generation_matches_evolve() {
     .assert_success();
     let pattern = dir.path().join("soup.rle");
     run_deeptime([
-        "evolve",
+        "leap",
         pattern.to_str().unwrap(),
         "--gens",
         "250",
         "--out",
-        from_evolve.to_str().unwrap(),
+        from_leap.to_str().unwrap(),
     ])
     .assert_success();
     assert_eq!(
         std::fs::read(&from_snapshot).unwrap(),
-        std::fs::read(&from_evolve).unwrap()
+        std::fs::read(&from_leap).unwrap()
     );
 
     // A picture at one cell per pixel of a region is black exactly where
@@ -387,7 +387,7 @@ fn retention_bounds_the_checkpoints_and_keeps_what_they_need() {
     let text = std::fs::read_to_string(&job_path).unwrap() + "keep = 3\n";
     std::fs::write(&job_path, text).unwrap();
     let done = run_deeptime(["run", job_path.to_str().unwrap(), "--json"]);
-    assert_eq!(digest_of(&done), evolved(dir.path(), 300));
+    assert_eq!(digest_of(&done), digest_after(dir.path(), 300));
     assert_eq!(manifests(dir.path()).len(), 3);
     let runs = dir.path().join("runs");
     run_deeptime(["verify", runs.to_str().unwrap()]).assert_success();
@@ -418,7 +418,7 @@ fn retention_bounds_the_checkpoints_and_keeps_what_they_need() {
         "{}",
         resumed.describe()
     );
-    assert_eq!(digest_of(&resumed), evolved(dir.path(), 340));
+    assert_eq!(digest_of(&resumed), digest_after(dir.path(), 340));
 }
 
 /// A tmpfs of `size` mounted on a fresh folder, unmounted when dropped
@@ -527,7 +527,7 @@ fn a_run_on_s3_compatible_storage_matches_the_local_one() {
     let job_path = job(dir.path(), 300, 50, "B3/S23");
     store_runs_in(&job_path, &remote);
     let done = run_deeptime(["run", job_path.to_str().unwrap(), "--json"]);
-    assert_eq!(digest_of(&done), evolved(dir.path(), 300));
+    assert_eq!(digest_of(&done), digest_after(dir.path(), 300));
     let verify = run_deeptime(["verify", &remote]);
     verify.assert_success();
     assert_eq!(
@@ -543,7 +543,7 @@ fn a_run_on_s3_compatible_storage_matches_the_local_one() {
     let rows: serde_json::Value = serde_json::from_str(&listed.stdout).unwrap();
     assert_eq!(rows.as_array().unwrap().len(), 7);
     let snap = run_deeptime(["snapshot", &remote, "--gen", "275", "--json"]);
-    assert_eq!(digest_of(&snap), evolved(dir.path(), 275));
+    assert_eq!(digest_of(&snap), digest_after(dir.path(), 275));
     // Resumed from S3 after the target grows.
     let job_path2 = job(dir.path(), 350, 50, "B3/S23");
     store_runs_in(&job_path2, &remote);
@@ -553,7 +553,7 @@ fn a_run_on_s3_compatible_storage_matches_the_local_one() {
         "{}",
         more.describe()
     );
-    assert_eq!(digest_of(&more), evolved(dir.path(), 350));
+    assert_eq!(digest_of(&more), digest_after(dir.path(), 350));
 }
 
 #[test]
@@ -626,28 +626,28 @@ fn a_snapshot_of_a_small_region_of_a_stored_state_reads_a_small_part_of_its_pack
         "read {read} of {packs} bytes: {}",
         snap.describe()
     );
-    // The figures are the manifest's, the same as evolve's.
+    // The figures are the manifest's, the same as leap's.
     let pattern = dir.path().join("soup.rle");
-    let evolve_out = dir.path().join("whole.rle");
-    let evolve = report_of(&run_deeptime([
-        "evolve",
+    let leap_out = dir.path().join("whole.rle");
+    let leapt = report_of(&run_deeptime([
+        "leap",
         pattern.to_str().unwrap(),
         "--gens",
         "2",
         "--out",
-        evolve_out.to_str().unwrap(),
+        leap_out.to_str().unwrap(),
         "--json",
     ]));
     for field in ["digest", "population", "bbox", "generation"] {
-        assert_eq!(report[field], evolve[field], "{field}");
+        assert_eq!(report[field], leapt[field], "{field}");
     }
-    // The region's cells are evolve's cells inside it.
-    let bbox = &evolve["bbox"];
+    // The region's cells are leap's cells inside it.
+    let bbox = &leapt["bbox"];
     let (left, top): (i64, i64) = (
         bbox["left"].as_str().unwrap().parse().unwrap(),
         bbox["top"].as_str().unwrap().parse().unwrap(),
     );
-    let whole = rle_cells(&std::fs::read_to_string(&evolve_out).unwrap());
+    let whole = rle_cells(&std::fs::read_to_string(&leap_out).unwrap());
     let expected: std::collections::HashSet<(usize, usize)> = whole
         .iter()
         .map(|&(x, y)| (x as i64 + left - 1000, y as i64 + top - 2000))
@@ -684,7 +684,7 @@ fn a_snapshot_of_a_small_region_of_a_stored_state_reads_a_small_part_of_its_pack
     // 4096 cells and the two generations' spill, at 64 cells a pixel.
     assert!((64..=66).contains(&info.width), "{}", info.width);
 
-    // A whole-state RLE of a stored generation is byte for byte evolve's.
+    // A whole-state RLE of a stored generation is byte for byte leap's.
     let stored_out = dir.path().join("stored.rle");
     run_deeptime([
         "snapshot",
@@ -697,7 +697,7 @@ fn a_snapshot_of_a_small_region_of_a_stored_state_reads_a_small_part_of_its_pack
     .assert_success();
     assert_eq!(
         std::fs::read(&stored_out).unwrap(),
-        std::fs::read(&evolve_out).unwrap()
+        std::fs::read(&leap_out).unwrap()
     );
 }
 
@@ -710,7 +710,7 @@ fn a_wall_clock_interval_writes_checkpoints_between_those_of_every() {
     let text = std::fs::read_to_string(&job_path).unwrap() + "wall_clock = \"1s\"\n";
     std::fs::write(&job_path, text).unwrap();
     let done = run_deeptime(["run", job_path.to_str().unwrap(), "--json"]);
-    assert_eq!(digest_of(&done), evolved(dir.path(), 8000));
+    assert_eq!(digest_of(&done), digest_after(dir.path(), 8000));
     let generations: Vec<u64> = manifests(dir.path())
         .iter()
         .map(|path| {
@@ -737,7 +737,7 @@ fn a_wall_clock_interval_writes_checkpoints_between_those_of_every() {
     std::fs::write(&job_path, text).unwrap();
     store_runs_in(&job_path, "clock-only");
     let done = run_deeptime(["run", job_path.to_str().unwrap(), "--json"]);
-    assert_eq!(digest_of(&done), evolved(dir.path(), 100));
+    assert_eq!(digest_of(&done), digest_after(dir.path(), 100));
 }
 
 #[test]
@@ -760,7 +760,7 @@ fn unfinished_writes_are_ignored_by_readers_and_cleared_by_the_next_writer() {
     assert!(left.iter().all(|path| path.exists()), "readers leave them");
     let job_path = job(dir.path(), 60, 20, "B3/S23");
     let resumed = run_deeptime(["run", job_path.to_str().unwrap(), "--json"]);
-    assert_eq!(digest_of(&resumed), evolved(dir.path(), 60));
+    assert_eq!(digest_of(&resumed), digest_after(dir.path(), 60));
     for path in &left {
         assert!(!path.exists(), "{} is still there", path.display());
     }

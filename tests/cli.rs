@@ -1,4 +1,4 @@
-//! The `deeptime evolve` command as a user meets it: the figures it reports,
+//! The `deeptime leap` command as a user meets it: the figures it reports,
 //! its output files, and a table of malformed inputs, each with the exit code
 //! and the one-line message it must give — never a panic, never a hang.
 
@@ -56,7 +56,7 @@ fn reports_the_figures_as_json() {
     let path = dir.path().join("glider.rle");
     std::fs::write(&path, GLIDER).unwrap();
     let report = json(&run_deeptime([
-        "evolve",
+        "leap",
         path.to_str().unwrap(),
         "--gens",
         "4*10^20",
@@ -90,7 +90,7 @@ fn reads_standard_input_and_writes_rle_at_the_bounding_box() {
     let out = dir.path().join("later.rle");
     let run = run_bounded(
         &[
-            "evolve",
+            "leap",
             "-",
             "--gens",
             "2",
@@ -108,14 +108,14 @@ fn reads_standard_input_and_writes_rle_at_the_bounding_box() {
     // The written pattern, advanced 2 more, is the glider of generation 4
     // (moved by (1, 1) from the start) less the offset of the box written.
     let four = json(&run_deeptime([
-        "evolve",
+        "leap",
         out.to_str().unwrap(),
         "--gens",
         "2",
         "--json",
     ]));
     let start = json(&run_bounded(
-        &["evolve", "-", "--gens", "4", "--json"],
+        &["leap", "-", "--gens", "4", "--json"],
         GLIDER.as_bytes(),
         Duration::from_secs(20),
     ));
@@ -138,7 +138,7 @@ fn the_readme_demo_runs() {
     // blocks that never change population: 59 + 5k at generation 30k.
     let demo = concat!(env!("CARGO_MANIFEST_DIR"), "/../demo-jobs/lighthouse.rle");
     let report = json(&run_deeptime([
-        "evolve",
+        "leap",
         demo,
         "--gens",
         "30*10^100",
@@ -146,7 +146,7 @@ fn the_readme_demo_runs() {
     ]));
     let expected = format!("5{}59", "0".repeat(98));
     assert_eq!(report["population"], expected.as_str());
-    let human = run_deeptime(["evolve", demo, "--gens", "3000"]);
+    let human = run_deeptime(["leap", demo, "--gens", "3000"]);
     human.assert_success();
     assert!(
         human.stdout.contains("population    559"),
@@ -164,7 +164,7 @@ fn a_state_too_large_for_text_is_refused_and_the_old_file_kept() {
     std::fs::write(&out, "precious").unwrap();
     // Under B12345678/S012345678 the cell becomes a square 2·10^30+1 wide.
     let run = run_deeptime([
-        "evolve",
+        "leap",
         pattern.to_str().unwrap(),
         "--rule",
         "B12345678/S012345678",
@@ -201,7 +201,7 @@ fn a_budget_too_small_is_its_own_exit_code() {
     }
     std::fs::write(&path, format!("x = 2048, y = 2048\n{}!", rows.join("$"))).unwrap();
     let run = run_deeptime([
-        "evolve",
+        "leap",
         path.to_str().unwrap(),
         "--gens",
         "1000",
@@ -304,7 +304,7 @@ const MALFORMED: &[(&[u8], &[&str], i32, &str)] = &[
         b"x = 1, y = 1\no!",
         &["--rule", "B03/S23"],
         2,
-        "--rule: rule B03/S23 has B0 (empty cells are born): deeptime does not evolve B0 rules",
+        "--rule: rule B03/S23 has B0 (empty cells are born): deeptime does not run B0 rules",
     ),
     (
         b"x = 1, y = 1\no!",
@@ -347,7 +347,7 @@ fn malformed_input_gets_a_one_line_error_and_exit_code() {
         let path = dir.path().join(format!("case{at}.rle"));
         std::fs::write(&path, bytes).unwrap();
         let path = path.to_str().unwrap();
-        let mut args = vec!["evolve", path];
+        let mut args = vec!["leap", path];
         if !extra.contains(&"--gens") {
             args.extend(["--gens", "8"]);
         }
@@ -365,13 +365,13 @@ fn malformed_input_gets_a_one_line_error_and_exit_code() {
 
 #[test]
 fn a_missing_file_and_bad_usage_are_bad_input() {
-    let run = run_deeptime(["evolve", "/nonexistent/pattern.rle", "--gens", "1"]);
+    let run = run_deeptime(["leap", "/nonexistent/pattern.rle", "--gens", "1"]);
     assert_eq!(run.code, Some(2), "{}", run.describe());
     assert!(
         run.stderr
             .starts_with("deeptime: /nonexistent/pattern.rle: cannot read the pattern")
     );
-    let run = run_deeptime(["evolve", "x.rle"]);
+    let run = run_deeptime(["leap", "x.rle"]);
     assert_eq!(run.code, Some(2), "{}", run.describe());
     assert!(run.stderr.contains("--gens"), "{}", run.describe());
 }

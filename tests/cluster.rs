@@ -1,6 +1,6 @@
 //! A cluster on loopback: a real coordinator and real nodes, each its own
 //! process. Whatever the cluster computes must equal what one process
-//! computes (`deeptime evolve`): the same digest, population and bounding
+//! computes (`deeptime leap`): the same digest, population and bounding
 //! box (common practice: a distributed run is checked against the
 //! sequential one).
 
@@ -8,7 +8,7 @@ use std::path::{Path, PathBuf};
 use std::process::{Child, Command, Stdio};
 use std::time::{Duration, Instant};
 
-use deeptime_tests::{Processes, deeptime_bin, evolve_report, free_port, run_deeptime, temp_dir};
+use deeptime_tests::{Processes, deeptime_bin, free_port, leap_report, run_deeptime, temp_dir};
 
 /// How a coordinator ended.
 struct Outcome {
@@ -283,7 +283,7 @@ fn three_nodes_give_the_single_process_figures_on_the_demo_pattern() {
     cluster.node_checkpoints = None;
     cluster.add_nodes(3, "256MiB", &[]);
     let (cluster, stderr) = cluster.report();
-    let single = evolve_report(&dir.path().join("lighthouse.rle"), "30000", "B3/S23");
+    let single = leap_report(&dir.path().join("lighthouse.rle"), "30000", "B3/S23");
     assert_same_figures(&cluster, &single);
     assert_eq!(cluster["cluster"]["nodes"], 3);
     assert_eq!(cluster["cluster"]["checkpoints_by_nodes"], 0, "{cluster}");
@@ -350,14 +350,14 @@ fn three_nodes_give_the_single_process_figures_on_a_soup_that_spans_many_pieces(
     std::fs::write(dir.path().join("soup.rle"), soup(96)).unwrap();
     let job = write_job(dir.path(), "soup.rle", "B36/S23", "200", "64");
     let cluster = run_cluster(&job, 3, &["--shard-level", "6"]);
-    let single = evolve_report(&dir.path().join("soup.rle"), "200", "B36/S23");
+    let single = leap_report(&dir.path().join("soup.rle"), "200", "B36/S23");
     assert_same_figures(&cluster, &single);
     // Checkpoints at 64, 128, 192 and 200 (and 0), readable as any run's;
     // the nodes wrote all but the first, each its own pack.
     assert_checkpoints_hold(dir.path(), &cluster);
     assert_eq!(cluster["cluster"]["checkpoints_by_nodes"], 4, "{cluster}");
     // A snapshot of a stored generation reads the nodes' packs on demand
-    // and gives evolve's figures (the same stats as evolve, README).
+    // and gives leap's figures (the same stats as leap, README).
     let snapshot = run_deeptime([
         "snapshot".as_ref(),
         dir.path().join("runs").as_os_str(),
@@ -367,7 +367,7 @@ fn three_nodes_give_the_single_process_figures_on_a_soup_that_spans_many_pieces(
     ]);
     snapshot.assert_success();
     let snapshot: serde_json::Value = serde_json::from_str(&snapshot.stdout).unwrap();
-    let at_128 = evolve_report(&dir.path().join("soup.rle"), "128", "B36/S23");
+    let at_128 = leap_report(&dir.path().join("soup.rle"), "128", "B36/S23");
     assert_same_figures(&snapshot, &at_128);
     assert!(
         cluster["cluster"]["bytes_fetched"].as_u64().unwrap() > 0,
@@ -409,7 +409,7 @@ fn a_node_with_a_wrong_token_is_refused_and_exits_non_zero() {
 fn a_state_too_big_for_one_node_runs_on_four_nodes_of_the_same_size() {
     // A 2048² soup: about 4.7 MiB of live quads at the first step (measured
     // on one node). One node of 4 MiB cannot hold it and says so; four nodes
-    // of 4 MiB each hold a quarter apiece and finish with evolve's figures.
+    // of 4 MiB each hold a quarter apiece and finish with leap's figures.
     let dir = temp_dir();
     std::fs::write(dir.path().join("soup.rle"), soup(2048)).unwrap();
     let job = write_job(dir.path(), "soup.rle", "B3/S23", "32", "16");
@@ -424,7 +424,7 @@ fn a_state_too_big_for_one_node_runs_on_four_nodes_of_the_same_size() {
     let four = run_cluster_with(&job, 4, "4MiB", &["--shard-level", "8"]);
     assert_eq!(four.code, Some(0), "{}", four.stderr);
     let cluster: serde_json::Value = serde_json::from_str(&four.stdout).unwrap();
-    let single = evolve_report(&dir.path().join("soup.rle"), "32", "B3/S23");
+    let single = leap_report(&dir.path().join("soup.rle"), "32", "B3/S23");
     assert_same_figures(&cluster, &single);
 }
 
@@ -446,7 +446,7 @@ fn a_node_killed_mid_run_costs_a_rollback_and_the_figures_stay_the_same() {
     let (report, stderr) = cluster.report();
     assert!(stderr.contains("lost"), "{stderr}");
     assert!(stderr.contains("rolling back"), "{stderr}");
-    let single = evolve_report(&dir.path().join("soup.rle"), "3000", "B3/S23");
+    let single = leap_report(&dir.path().join("soup.rle"), "3000", "B3/S23");
     assert_same_figures(&report, &single);
     assert_checkpoints_hold(dir.path(), &report);
 }
@@ -469,7 +469,7 @@ fn a_coordinator_killed_and_started_again_resumes_and_the_figures_stay_the_same(
         stderr.contains("pieces are on the nodes already"),
         "{stderr}"
     );
-    let single = evolve_report(&dir.path().join("soup.rle"), "3000", "B3/S23");
+    let single = leap_report(&dir.path().join("soup.rle"), "3000", "B3/S23");
     assert_same_figures(&report, &single);
     assert_checkpoints_hold(dir.path(), &report);
 }
@@ -519,7 +519,7 @@ fn a_cluster_over_tls_gives_the_single_process_figures() {
     let mut cluster = Cluster::start(&job, 2, &with_level);
     cluster.add_nodes(2, "64MiB", &tls);
     let (report, _) = cluster.report();
-    let single = evolve_report(&dir.path().join("soup.rle"), "200", "B3/S23");
+    let single = leap_report(&dir.path().join("soup.rle"), "200", "B3/S23");
     assert_same_figures(&report, &single);
 }
 
@@ -530,7 +530,7 @@ fn a_cluster_started_again_from_nothing_has_its_nodes_read_the_checkpoint_and_sk
     // they read their pieces from the checkpoint folder. The newest
     // checkpoint has a byte of a node's pack flipped: the node that reads
     // it finds the damage (chunk checksums, CHECKPOINTS.md), the run goes
-    // back to the checkpoint before and ends with evolve's figures.
+    // back to the checkpoint before and ends with leap's figures.
     let dir = temp_dir();
     let job = long_job(dir.path());
     let mut cluster = Cluster::start(&job, 2, &["--shard-level", "6"]);
@@ -586,7 +586,7 @@ fn a_cluster_started_again_from_nothing_has_its_nodes_read_the_checkpoint_and_sk
     );
     // Fresh nodes held nothing: every piece was read from the folder.
     assert!(!stderr.contains("on the nodes already"), "{stderr}");
-    let single = evolve_report(&dir.path().join("soup.rle"), "3000", "B3/S23");
+    let single = leap_report(&dir.path().join("soup.rle"), "3000", "B3/S23");
     assert_same_figures(&report, &single);
     // verify still names the damaged pack (nothing repairs a pack no
     // later checkpoint wrote again).
@@ -616,7 +616,7 @@ fn a_node_that_stops_answering_loses_its_lease_and_the_run_goes_on() {
     // SAFETY: as above; let it go so that it can be killed and reaped.
     unsafe { libc::kill(stopped, libc::SIGCONT) };
     assert!(stderr.contains("lost"), "{stderr}");
-    let single = evolve_report(&dir.path().join("soup.rle"), "3000", "B3/S23");
+    let single = leap_report(&dir.path().join("soup.rle"), "3000", "B3/S23");
     assert_same_figures(&report, &single);
     assert_checkpoints_hold(dir.path(), &report);
 }
@@ -640,6 +640,6 @@ fn nodes_that_join_mid_run_are_used_at_once() {
         .collect();
     assert_eq!(tasks.len(), 3, "{report}");
     assert!(tasks.iter().all(|&n| n > 0), "tasks per node {tasks:?}");
-    let single = evolve_report(&dir.path().join("soup.rle"), "3000", "B3/S23");
+    let single = leap_report(&dir.path().join("soup.rle"), "3000", "B3/S23");
     assert_same_figures(&report, &single);
 }

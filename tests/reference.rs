@@ -1,10 +1,10 @@
 //! Whole-system test: the real `deeptime` binary against the independent
 //! reference simulator (tests/reference/life_reference.py, numpy/scipy).
 //!
-//! For each rule and a few seeded random soups, the reference evolves the soup
+//! For each rule and a few seeded random soups, the reference runs the soup
 //! for 300 generations and records population, bounding box, digest and cells
 //! at many generations (powers of two and their neighbours matter most to
-//! HashLife); `deeptime evolve --json --out` is run once for each of those
+//! HashLife); `deeptime leap --json --out` is run once for each of those
 //! generations, from generation 0, and the reference compares its report and
 //! RLE with its own records cell by cell. Needs `DEEPTIME_PYTHON` (set by
 //! tests/run-tests) and a release build of the binary.
@@ -45,7 +45,7 @@ fn compare_all(dir: &Path, pattern: &Path, rule: &str, gens: &[u64], expected: &
         let got_rle = dir.join(format!("got-{generation}.rle"));
         let got_json = dir.join(format!("got-{generation}.json"));
         let run = run_deeptime([
-            "evolve".as_ref(),
+            "leap".as_ref(),
             pattern.as_os_str(),
             "--rule".as_ref(),
             rule.as_ref(),
@@ -123,7 +123,7 @@ fn check_rule(rule: &str, soups: &[Soup]) {
     }
 }
 
-/// Has the reference evolve `pattern` under `rule` and record every
+/// Has the reference run `pattern` under `rule` and record every
 /// generation of GENS in `expected`.
 fn reference_expect(pattern: &Path, rule: &str, expected: &Path) {
     let gens = GENS

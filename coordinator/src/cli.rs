@@ -8,8 +8,8 @@ use clap::{Args, Parser, Subcommand};
 #[command(
     name = "deeptime",
     version,
-    about = "Evolve Life-like cellular automata to astronomically far generations",
-    long_about = "Evolve two-state Life-like cellular automata (B/S rules) with the HashLife \
+    about = "Advance Life-like cellular automata to astronomically far generations",
+    long_about = "Advance two-state Life-like cellular automata (B/S rules) with the HashLife \
                   method: canonical quadtrees, memoised results, jumps of 2^k generations."
 )]
 pub struct Cli {
@@ -20,7 +20,7 @@ pub struct Cli {
 #[derive(Subcommand, Debug)]
 pub enum Command {
     /// Advance a pattern by any number of generations and report the result
-    Evolve(EvolveArgs),
+    Leap(LeapArgs),
     /// Run a job file to its target, writing checkpoints; resume after a crash
     Run(RunArgs),
     /// List the checkpoints stored in a run's folder
@@ -147,7 +147,7 @@ pub struct DirArgs {
 }
 
 #[derive(Args, Debug)]
-pub struct EvolveArgs {
+pub struct LeapArgs {
     /// Pattern file, RLE or plaintext (recognised by content); `-` reads standard input
     pub pattern: PathBuf,
 
@@ -216,7 +216,7 @@ pub struct SnapshotArgs {
     #[arg(long)]
     pub json: bool,
 
-    /// Memory budget for quads, as for evolve
+    /// Memory budget for quads, as for leap
     #[arg(long, value_name = "SIZE")]
     pub memory: Option<String>,
 }

@@ -1,4 +1,4 @@
-//! `deeptime`: evolve Life-like patterns to astronomically far generations.
+//! `deeptime`: advance Life-like patterns to astronomically far generations.
 //!
 //! `main` turns the outcome into an exit code; each subcommand lives in a
 //! module of its own and returns a `Result`.
@@ -7,11 +7,11 @@ mod bench;
 mod checkpoint;
 mod cli;
 mod cluster;
-mod evolve;
 mod failure;
 mod input;
 mod inspect;
 mod job;
+mod leap;
 mod memory;
 mod node;
 mod output;
@@ -38,7 +38,7 @@ fn main() -> ExitCode {
     memory::return_large_blocks();
     let cli = Cli::parse();
     let outcome = match cli.command {
-        Command::Evolve(args) => evolve::run(args),
+        Command::Leap(args) => leap::run(args),
         Command::Run(args) => run::run(args),
         Command::Checkpoints(args) => inspect::list(args),
         Command::Verify(args) => inspect::verify(args),

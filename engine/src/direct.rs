@@ -73,7 +73,7 @@ impl Grid {
         grid
     }
 
-    /// The rule the grid evolves under.
+    /// The rule the grid runs under.
     pub fn rule(&self) -> Rule {
         self.rule
     }

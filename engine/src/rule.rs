@@ -1,7 +1,7 @@
 //! Life-like rules: outer-totalistic two-state rules written in B/S notation.
 //!
 //! This module parses rule text (`B3/S23`, `S23/B3`, the older survival/birth
-//! form `23/3`), refuses what the engine cannot evolve (B0 rules, rules that
+//! form `23/3`), refuses what the engine cannot run (B0 rules, rules that
 //! look at which neighbours are alive rather than how many), prints rules in
 //! one canonical form, and answers the one question the kernels ask: does a
 //! cell live in the next generation.
@@ -71,7 +71,7 @@ pub enum RuleError {
     /// Birth on zero neighbours: every empty cell of the infinite plane would
     /// be born, which the engine's quadtree (empty space stays empty) cannot
     /// represent. This is a documented choice, not a parsing failure.
-    #[error("rule {rule} has B0 (empty cells are born): deeptime does not evolve B0 rules")]
+    #[error("rule {rule} has B0 (empty cells are born): deeptime does not run B0 rules")]
     BirthOnZero { rule: String },
     /// A mask given to [`Rule::from_masks`] with a bit for more than 8
     /// neighbours.
@@ -374,7 +374,7 @@ mod tests {
     fn from_masks_refuses_b0_and_wide_masks() {
         assert_eq!(
             Rule::from_masks(0b1001, 0b1100).unwrap_err().to_string(),
-            "rule B03/S23 has B0 (empty cells are born): deeptime does not evolve B0 rules"
+            "rule B03/S23 has B0 (empty cells are born): deeptime does not run B0 rules"
         );
         assert_eq!(
             Rule::from_masks(0x200, 0).unwrap_err().to_string(),
@@ -449,11 +449,11 @@ mod tests {
             ("s3/S23", "rule \"s3/S23\" has two 'S' parts"),
             (
                 "B03/S23",
-                "rule B03/S23 has B0 (empty cells are born): deeptime does not evolve B0 rules",
+                "rule B03/S23 has B0 (empty cells are born): deeptime does not run B0 rules",
             ),
             (
                 "23/03",
-                "rule B03/S23 has B0 (empty cells are born): deeptime does not evolve B0 rules",
+                "rule B03/S23 has B0 (empty cells are born): deeptime does not run B0 rules",
             ),
         ];
         for (text, message) in cases {

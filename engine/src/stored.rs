@@ -275,7 +275,7 @@ impl<'f> StoredState<'f> {
         self.level
     }
 
-    /// The rule the state evolves under.
+    /// The rule the state runs under.
     pub fn rule(&self) -> Rule {
         self.rule
     }

@@ -23,7 +23,7 @@ use crate::store::{Handle, LEAF_LEVEL, Store, StoreStats};
 use crate::stored::ReadError;
 use crate::view::{QuadView, StoreView, descend};
 
-/// The smallest root level kept while evolving (32×32 cells).
+/// The smallest root level kept while advancing (32×32 cells).
 const MIN_ROOT_LEVEL: u32 = 5;
 
 /// How many times an advance that thrashes is halved before it fails: at
@@ -233,7 +233,7 @@ impl Universe {
         Ok((universe, reader.known))
     }
 
-    /// The rule this state evolves under.
+    /// The rule this state runs under.
     pub fn rule(&self) -> Rule {
         self.rule
     }

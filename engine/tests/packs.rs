@@ -54,7 +54,7 @@ fn a_state_read_back_from_its_pack_has_its_digest() {
         assert_eq!(back.population(), state.population());
         assert_eq!(back.generation(), &BigUint::from(steps));
         assert_eq!(ids.len() as u64, pack.records);
-        // And it evolves on like the original.
+        // And it goes on like the original.
         back.advance(&64u32.into(), None).unwrap();
         state.advance(&64u32.into(), None).unwrap();
         assert_eq!(back.digest().unwrap(), state.digest().unwrap());

@@ -1,14 +1,14 @@
 #!/usr/bin/env python3
 """Independent reference simulator for deeptime's whole-system tests.
 
-It evolves two-state Life-like rules (B/S notation, no B0) the plain way: a
+It runs two-state Life-like rules (B/S notation, no B0) the plain way: a
 numpy boolean grid, padded so that nothing reaches its edge, and neighbour
 counts from scipy's 2-D convolution with the 3x3 kernel. It shares no code with
 the Rust engine: it has its own rule parser, RLE reader and writer, and its own
 computation of the state digest from the grid. tests/reference.rs drives it:
 
   soup     write a seeded random N x N soup as RLE (top-left cell at (0, 0))
-  expect   evolve a pattern and record, at each listed generation, the
+  expect   run a pattern and record, at each listed generation, the
            population, bounding box, digest and live cells
   compare  check deeptime's --json report and --out RLE against those records;
            on any mismatch print a diff and exit 1
@@ -375,8 +375,8 @@ def cmd_soup(args):
         f.write(text)
 
 
-def evolve_records(cells, rule, gens):
-    """Evolve from the cells; the record of each listed generation."""
+def run_records(cells, rule, gens):
+    """Run from the cells; the record of each listed generation."""
     last = max(gens)
     plane = Plane.from_cells(cells, last + 2)
     wanted = set(gens)
@@ -412,7 +412,7 @@ def cmd_expect(args):
     with open(args.pattern) as f:
         _, _, _, cells = read_rle(f.read())
     gens = parse_gens(args.gens)
-    records = evolve_records(cells, rule, gens)
+    records = run_records(cells, rule, gens)
     with open(args.out, "w") as f:
         json.dump({"rule": rule.canonical(), "pattern": args.pattern, "generations": records}, f)
         f.write("\n")
@@ -635,7 +635,7 @@ def main():
     p.add_argument("--out", required=True)
     p.set_defaults(func=cmd_soup)
 
-    p = sub.add_parser("expect", help="evolve a pattern and record the listed generations")
+    p = sub.add_parser("expect", help="run a pattern and record the listed generations")
     p.add_argument("--pattern", required=True)
     p.add_argument("--rule", required=True)
     p.add_argument("--gens", required=True, help="comma-separated generations, e.g. 0,1,2,100")

@@ -218,11 +218,11 @@ pub fn write_job(
     path
 }
 
-/// `deeptime evolve PATTERN --gens GENS --rule RULE --json`, succeeded: its
+/// `deeptime leap PATTERN --gens GENS --rule RULE --json`, succeeded: its
 /// report.
-pub fn evolve_report(pattern: &Path, gens: &str, rule: &str) -> serde_json::Value {
+pub fn leap_report(pattern: &Path, gens: &str, rule: &str) -> serde_json::Value {
     let run = run_deeptime([
-        "evolve".as_ref(),
+        "leap".as_ref(),
         pattern.as_os_str(),
         "--gens".as_ref(),
         gens.as_ref(),
@@ -231,5 +231,5 @@ pub fn evolve_report(pattern: &Path, gens: &str, rule: &str) -> serde_json::Valu
         "--json".as_ref(),
     ]);
     run.assert_success();
-    serde_json::from_str(&run.stdout).expect("evolve --json prints one object")
+    serde_json::from_str(&run.stdout).expect("leap --json prints one object")
 }

@@ -1,5 +1,5 @@
 //! Resident memory under a budget: the chaotic soup's jump run by a child
-//! `deeptime evolve --memory BYTES --json` (this executable), its peak
+//! `deeptime leap --memory BYTES --json` (this executable), its peak
 //! resident memory as the kernel counts it at exit, less the process's fixed
 //! overhead (the same child's peak on a glider), against its budget. Each
 //! child's digest is checked equal to the in-process run's.
@@ -18,20 +18,20 @@ use super::suite::write_rle;
 use super::{Figure, Goal, process};
 use crate::memory::MIN_BUDGET;
 
-/// A glider: the smallest run that goes through all of `evolve`.
+/// A glider: the smallest run that goes through all of `leap`.
 const GLIDER: &str = "x = 3, y = 3, rule = B3/S23\nbo$2bo$3o!\n";
 
 const MIB: f64 = (1u64 << 20) as f64;
 
-/// A finished child `evolve`: its report and its peak resident bytes.
-struct Evolved {
+/// A finished child `leap`: its report and its peak resident bytes.
+struct ChildRun {
     report: Value,
     peak: u64,
     /// this process's private bytes when it forked the child
     started_from: Option<u64>,
 }
 
-impl Evolved {
+impl ChildRun {
     fn engine(&self, field: &str) -> &Value {
         &self.report["engine"][field]
     }
@@ -50,27 +50,27 @@ impl Evolved {
     }
 }
 
-/// Runs `exe evolve PATTERN --gens N --memory BUDGET --json`; a child that
+/// Runs `exe leap PATTERN --gens N --memory BUDGET --json`; a child that
 /// fails is an error carrying what it said.
-fn evolve(exe: &Path, pattern: &Path, generations: &str, budget: u64) -> anyhow::Result<Evolved> {
+fn leap(exe: &Path, pattern: &Path, generations: &str, budget: u64) -> anyhow::Result<ChildRun> {
     let finished = process::run(
         Command::new(exe)
-            .arg("evolve")
+            .arg("leap")
             .arg(pattern)
             .args(["--gens", generations, "--memory", &budget.to_string()])
             .arg("--json"),
     )?;
     ensure!(
         finished.status.success(),
-        "deeptime evolve failed: {}",
+        "deeptime leap failed: {}",
         finished.stderr.trim()
     );
     let Some(peak) = finished.peak else {
-        bail!("the system reports no peak resident memory for deeptime evolve");
+        bail!("the system reports no peak resident memory for deeptime leap");
     };
-    Ok(Evolved {
+    Ok(ChildRun {
         report: serde_json::from_slice(&finished.stdout)
-            .context("deeptime evolve printed no JSON")?,
+            .context("deeptime leap printed no JSON")?,
         peak,
         started_from: finished.started_from,
     })
@@ -80,7 +80,7 @@ fn evolve(exe: &Path, pattern: &Path, generations: &str, budget: u64) -> anyhow:
 pub struct Resident {
     directory: TempDir,
     exe: PathBuf,
-    fixed: Evolved,
+    fixed: ChildRun,
 }
 
 impl Resident {
@@ -92,7 +92,7 @@ impl Resident {
         let exe = process::this_executable(directory.path())?;
         let glider = directory.path().join("glider.rle");
         std::fs::write(&glider, GLIDER)?;
-        let fixed = evolve(&exe, &glider, "1", MIN_BUDGET).context("evolve on a glider")?;
+        let fixed = leap(&exe, &glider, "1", MIN_BUDGET).context("leap on a glider")?;
         Ok(Resident {
             directory,
             exe,
@@ -122,7 +122,7 @@ impl Resident {
         let mut figures = vec![
             Figure::new(
                 "resident",
-                "evolve on a glider: fixed peak resident",
+                "leap on a glider: fixed peak resident",
                 fixed as f64 / MIB,
                 "MiB",
                 None,
@@ -138,7 +138,7 @@ impl Resident {
             let budget = wanted.max(MIN_BUDGET);
             let raised = if budget > wanted {
                 format!(
-                    " (raised from {}, below evolve's smallest)",
+                    " (raised from {}, below leap's smallest)",
                     human_bytes(wanted)
                 )
             } else {
@@ -147,7 +147,7 @@ impl Resident {
             let name = format!("{label}, budget {fraction}: (peak resident − fixed) / budget");
             let goal = Some(Goal::AtMost(1.1));
             let run =
-                match evolve(&self.exe, &self.soup(), &generations.to_string(), budget) {
+                match leap(&self.exe, &self.soup(), &generations.to_string(), budget) {
                     Ok(run) => run,
                     Err(error) => {
                         figures.push(Figure::new("resident", &name, 0.0, "×", goal).detail(
@@ -159,7 +159,7 @@ impl Resident {
             let theirs = run.report["digest"].as_str().unwrap_or("");
             ensure!(
                 theirs == digest.to_string(),
-                "evolve under a budget of {} gave digest {theirs}, the in-process run {digest}",
+                "leap under a budget of {} gave digest {theirs}, the in-process run {digest}",
                 human_bytes(budget)
             );
             let mib = |bytes: u64| bytes as f64 / MIB;
@@ -176,7 +176,7 @@ impl Resident {
                 )
                 .detail(format!(
                     "peak {:.1} MiB = fixed {:.1} MiB + {:.1} MiB, budget {:.1} MiB{raised}: \
-                     peak − budget {:+.1} MiB, peak − fixed − budget {:+.1} MiB; evolve \
+                     peak − budget {:+.1} MiB, peak − fixed − budget {:+.1} MiB; leap \
                      {:.2} s, {} collections, store {:.1} MiB at the end; same digest {}{}",
                     mib(run.peak),
                     mib(fixed),

@@ -209,7 +209,7 @@ fn stepping(settings: &Settings) -> anyhow::Result<Vec<Figure>> {
 /// A random soup advanced 2^k generations: one HashLife jump vs the direct
 /// stepper; the same jump under budgets of 1/10 and 1/20 of the bytes it
 /// used unconstrained and of twice its live set; and, for the fractions, a
-/// child `deeptime evolve` whose peak resident memory is held against its
+/// child `deeptime leap` whose peak resident memory is held against its
 /// budget (see `resident.rs`).
 fn chaotic(settings: &Settings) -> anyhow::Result<Vec<Figure>> {
     let (side, generations) = if settings.quick {

@@ -1,4 +1,4 @@
-//! `deeptime evolve`: read a pattern, advance it, report and optionally
+//! `deeptime leap`: read a pattern, advance it, report and optionally
 //! write the result.
 
 use std::path::Path;
@@ -8,13 +8,13 @@ use anyhow::Context;
 use deeptime_engine::generation::parse_generations;
 use deeptime_engine::{Progress, Universe, WriteError};
 
-use crate::cli::EvolveArgs;
+use crate::cli::LeapArgs;
 use crate::failure::BadInput;
 use crate::progress;
 use crate::report::Report;
 use crate::{input, memory, output};
 
-pub fn run(args: EvolveArgs) -> anyhow::Result<()> {
+pub fn run(args: LeapArgs) -> anyhow::Result<()> {
     // Validate everything the user typed before any work starts.
     let generations =
         parse_generations(&args.gens).map_err(|error| BadInput(format!("--gens: {error}")))?;
