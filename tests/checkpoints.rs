@@ -66,6 +66,37 @@ fn manifests(dir: &Path) -> Vec<PathBuf> {
     found
 }
 
+/// The generations of the stored checkpoints, in order.
+fn stored_generations(dir: &Path) -> Vec<u64> {
+    manifests(dir)
+        .iter()
+        .map(|path| {
+            let manifest: serde_json::Value =
+                serde_json::from_str(&std::fs::read_to_string(path).unwrap()).unwrap();
+            manifest["generation"].as_str().unwrap().parse().unwrap()
+        })
+        .collect()
+}
+
+#[test]
+fn a_folder_that_does_not_exist_is_bad_input_for_every_reader() {
+    let dir = temp_dir();
+    let missing = dir.path().join("no-such-run");
+    for command in [
+        vec!["checkpoints"],
+        vec!["checkpoints", "--json"],
+        vec!["verify"],
+        vec!["prune", "--keep", "1"],
+    ] {
+        let mut args = vec![command[0], missing.to_str().unwrap()];
+        args.extend(&command[1..]);
+        let run = run_deeptime(&args);
+        assert_eq!(run.code, Some(2), "{}", run.describe());
+        assert!(run.stderr.contains("no such folder"), "{}", run.describe());
+    }
+    assert!(!missing.exists(), "a reader made the folder");
+}
+
 #[test]
 fn a_run_killed_many_times_finishes_with_the_uninterrupted_digest() {
     let dir = temp_dir();
@@ -388,9 +419,21 @@ fn retention_bounds_the_checkpoints_and_keeps_what_they_need() {
     std::fs::write(&job_path, text).unwrap();
     let done = run_deeptime(["run", job_path.to_str().unwrap(), "--json"]);
     assert_eq!(digest_of(&done), digest_after(dir.path(), 300));
-    assert_eq!(manifests(dir.path()).len(), 3);
+    // The first checkpoint and the newest three.
+    assert_eq!(stored_generations(dir.path()), [0, 260, 280, 300]);
     let runs = dir.path().join("runs");
-    run_deeptime(["verify", runs.to_str().unwrap()]).assert_success();
+    // What verify reads, as JSON: one entry per checkpoint, all whole.
+    let verify = run_deeptime(["verify", runs.to_str().unwrap(), "--json"]);
+    verify.assert_success();
+    let checked: serde_json::Value = serde_json::from_str(&verify.stdout).unwrap();
+    let checked = checked.as_array().unwrap();
+    assert_eq!(checked.len(), 4, "{}", verify.stdout);
+    assert!(
+        checked.iter().all(|entry| entry["ok"] == true),
+        "{}",
+        verify.stdout
+    );
+    assert_eq!(checked[3]["generation"], "300");
     // Every pack left is needed by a kept checkpoint.
     let mut needed = std::collections::HashSet::new();
     for manifest in manifests(dir.path()) {
@@ -407,10 +450,17 @@ fn retention_bounds_the_checkpoints_and_keeps_what_they_need() {
             "{name} is needed by no kept checkpoint"
         );
     }
-    // Prune by hand to one; the run still resumes and the state is whole.
+    // Keeping none is refused and deletes nothing.
+    let refused = run_deeptime(["prune", runs.to_str().unwrap(), "--keep", "0"]);
+    assert_eq!(refused.code, Some(2), "{}", refused.describe());
+    assert_eq!(manifests(dir.path()).len(), 4);
+    // Prune by hand to one; the run still resumes and the state is whole,
+    // and a generation before the newest still opens from the first.
     let pruned = run_deeptime(["prune", runs.to_str().unwrap(), "--keep", "1"]);
     pruned.assert_success();
-    assert_eq!(manifests(dir.path()).len(), 1);
+    assert_eq!(stored_generations(dir.path()), [0, 300]);
+    let early = run_deeptime(["snapshot", runs.to_str().unwrap(), "--gen", "50", "--json"]);
+    assert_eq!(digest_of(&early), digest_after(dir.path(), 50));
     let job_path = job(dir.path(), 340, 20, "B3/S23");
     let resumed = run_deeptime(["run", job_path.to_str().unwrap(), "--json"]);
     assert!(

@@ -375,3 +375,59 @@ fn a_missing_file_and_bad_usage_are_bad_input() {
     assert_eq!(run.code, Some(2), "{}", run.describe());
     assert!(run.stderr.contains("--gens"), "{}", run.describe());
 }
+
+#[test]
+fn a_token_file_that_is_missing_or_too_short_is_bad_input() {
+    // README: exit code 2 for input the user must fix.
+    let dir = temp_dir();
+    let missing = dir.path().join("missing.token");
+    let short = dir.path().join("short.token");
+    std::fs::write(&short, "tooshort\n").unwrap();
+    let job = dir.path().join("job.toml");
+    std::fs::write(dir.path().join("glider.rle"), "x = 3, y = 3\nbo$2bo$3o!\n").unwrap();
+    std::fs::write(
+        &job,
+        "version = 1\nname = \"glider\"\npattern = \"glider.rle\"\ntarget = \"8\"\n\n\
+         [checkpoint]\ndir = \"runs\"\nevery = \"8\"\n",
+    )
+    .unwrap();
+    let cases: Vec<Vec<&str>> = vec![
+        vec![
+            "status",
+            "--coordinator",
+            "http://127.0.0.1:9",
+            "--token-file",
+        ],
+        vec![
+            "node",
+            "--join",
+            "http://127.0.0.1:9",
+            "--listen",
+            "127.0.0.1:0",
+            "--token-file",
+        ],
+        vec![
+            "coordinator",
+            job.to_str().unwrap(),
+            "--listen",
+            "127.0.0.1:0",
+            "--token-file",
+        ],
+    ];
+    for case in &cases {
+        for (token, says) in [
+            (&missing, "cannot read the token file"),
+            (&short, "at least 16"),
+        ] {
+            // A coordinator makes its token file when there is none.
+            if case[0] == "coordinator" && token == &missing {
+                continue;
+            }
+            let mut args = case.clone();
+            args.push(token.to_str().unwrap());
+            let run = run_bounded(&args, b"", Duration::from_secs(30));
+            assert_eq!(run.code, Some(2), "{args:?}: {}", run.describe());
+            assert!(run.stderr.contains(says), "{args:?}: {}", run.describe());
+        }
+    }
+}

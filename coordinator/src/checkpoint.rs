@@ -409,12 +409,14 @@ impl Checkpoints {
         Ok(None)
     }
 
-    /// Keeps the newest `keep` checkpoints (at least one) and deletes the
-    /// rest: manifests first, oldest first, then every pack no kept
+    /// Keeps the first checkpoint and the newest `keep` (at least one, else
+    /// a bad-input error) and deletes the rest: manifests first, oldest first, then every pack no kept
     /// manifest needs. Returns (manifests, packs) deleted. A crash part way
     /// leaves only unneeded packs behind, which the next prune removes.
     pub fn prune(&self, keep: usize) -> anyhow::Result<(usize, usize)> {
-        let keep = keep.max(1);
+        if keep == 0 {
+            return Err(BadInput("keep at least 1 checkpoint".to_string()).into());
+        }
         // Only checkpoints that can be read count towards `keep`; damaged
         // manifests are left alone (verify reports them).
         let mut readable = Vec::new();
@@ -428,8 +430,12 @@ impl Checkpoints {
                 Err(_) => {}
             }
         }
+        // The first checkpoint stays too: the generations before the kept
+        // ones can only be reached from it.
         let cut = readable.len().saturating_sub(keep);
-        let (old, kept) = readable.split_at(cut);
+        let first = usize::from(cut > 0);
+        let old = &readable[first.min(cut)..cut];
+        let kept = readable[..first].iter().chain(&readable[cut..]);
         let mut needed = HashSet::new();
         for (_, manifest) in kept {
             needed.extend(manifest.packs.iter().map(|pack| pack_key(&pack.name)));

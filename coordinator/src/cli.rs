@@ -226,7 +226,7 @@ pub struct PruneArgs {
     /// A run's checkpoint folder (the job's checkpoint.dir)
     pub dir: PathBuf,
 
-    /// How many of the newest checkpoints to keep (at least 1)
+    /// How many of the newest checkpoints to keep besides the first (at least 1)
     #[arg(long, value_name = "N")]
     pub keep: usize,
 }

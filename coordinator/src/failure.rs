@@ -22,7 +22,7 @@ pub const EXIT_BUDGET: u8 = 3;
 /// The exit code for an error, from the kind at the root of its chain.
 pub fn exit_code(error: &anyhow::Error) -> u8 {
     for cause in error.chain() {
-        if cause.is::<BadInput>() {
+        if cause.is::<BadInput>() || cause.is::<deeptime_node::auth::BadTokenFile>() {
             return EXIT_BAD_INPUT;
         }
         if is_budget(cause) {

@@ -1,11 +1,39 @@
 //! Commands over a run's storage: `checkpoints` lists the stored
 //! generations, `verify` reads every one back whole.
 
+use std::path::Path;
+
 use anyhow::bail;
 use serde::Serialize;
 
 use crate::checkpoint::Checkpoints;
 use crate::cli::DirArgs;
+use crate::failure::BadInput;
+
+/// The checkpoints of a run's folder (or `s3://` URL); a local folder that
+/// does not exist is the user's mistake, not an empty run.
+fn open(dir: &Path) -> anyhow::Result<Checkpoints> {
+    let is_url = dir.to_string_lossy().contains("s3://");
+    if !is_url && !dir.is_dir() {
+        return Err(BadInput(format!("{}: no such folder", dir.display())).into());
+    }
+    Ok(Checkpoints::new(deeptime_node::storage::open(dir)?))
+}
+
+/// One checkpoint as `verify --json` reports it.
+#[derive(Serialize)]
+struct Checked {
+    manifest: String,
+    ok: bool,
+    #[serde(skip_serializing_if = "Option::is_none")]
+    sequence: Option<u64>,
+    #[serde(skip_serializing_if = "Option::is_none")]
+    generation: Option<String>,
+    #[serde(skip_serializing_if = "Option::is_none")]
+    digest: Option<String>,
+    #[serde(skip_serializing_if = "Option::is_none")]
+    error: Option<String>,
+}
 
 #[derive(Serialize)]
 struct Row {
@@ -17,7 +45,7 @@ struct Row {
 }
 
 pub fn list(args: DirArgs) -> anyhow::Result<()> {
-    let checkpoints = Checkpoints::new(deeptime_node::storage::open(&args.dir)?);
+    let checkpoints = open(&args.dir)?;
     let mut rows = Vec::new();
     for key in checkpoints.manifest_keys()? {
         let manifest = match checkpoints.manifest(&key) {
@@ -69,26 +97,52 @@ pub fn list(args: DirArgs) -> anyhow::Result<()> {
 }
 
 pub fn verify(args: DirArgs) -> anyhow::Result<()> {
-    let checkpoints = Checkpoints::new(deeptime_node::storage::open(&args.dir)?);
+    let checkpoints = open(&args.dir)?;
     let keys = checkpoints.manifest_keys()?;
     if keys.is_empty() {
         bail!("{}: no checkpoints to verify", args.dir.display());
     }
     let mut damaged = Vec::new();
+    let mut report = Vec::new();
     for key in &keys {
         let checked = checkpoints
             .manifest(key)
             .and_then(|manifest| checkpoints.load(manifest, crate::memory::budget(None)?));
-        match checked {
-            Ok(loaded) => println!(
-                "ok       checkpoint {} generation {} digest {}",
-                loaded.manifest.sequence, loaded.manifest.generation, loaded.manifest.root
-            ),
+        let row = match checked {
+            Ok(loaded) => Checked {
+                manifest: key.clone(),
+                ok: true,
+                sequence: Some(loaded.manifest.sequence),
+                generation: Some(loaded.manifest.generation),
+                digest: Some(loaded.manifest.root),
+                error: None,
+            },
             Err(error) => {
-                println!("DAMAGED  {key}: {error:#}");
                 damaged.push(key.clone());
+                Checked {
+                    manifest: key.clone(),
+                    ok: false,
+                    sequence: None,
+                    generation: None,
+                    digest: None,
+                    error: Some(format!("{error:#}")),
+                }
+            }
+        };
+        if !args.json {
+            match (&row.sequence, &row.generation, &row.digest, &row.error) {
+                (Some(sequence), Some(generation), Some(digest), _) => println!(
+                    "ok       checkpoint {sequence} generation {generation} digest {digest}"
+                ),
+                (_, _, _, error) => {
+                    println!("DAMAGED  {key}: {}", error.as_deref().unwrap_or(""))
+                }
             }
         }
+        report.push(row);
+    }
+    if args.json {
+        println!("{}", serde_json::to_string(&report)?);
     }
     if !damaged.is_empty() {
         bail!(
@@ -111,13 +165,13 @@ fn short(decimal: &str) -> String {
 }
 
 pub fn prune(args: crate::cli::PruneArgs) -> anyhow::Result<()> {
-    let checkpoints = Checkpoints::new(deeptime_node::storage::open(&args.dir)?);
+    let checkpoints = open(&args.dir)?;
     let _lock = checkpoints.lock()?;
     let (manifests, packs) = checkpoints.prune(args.keep)?;
     println!(
-        "deleted {manifests} checkpoints and {packs} packs from {}; kept the newest {}",
+        "deleted {manifests} checkpoints and {packs} packs from {}; kept the first and the newest {}",
         args.dir.display(),
-        args.keep.max(1)
+        args.keep
     );
     Ok(())
 }

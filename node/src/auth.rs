@@ -13,6 +13,12 @@ use tonic::{Request, Status};
 /// Tokens shorter than this are refused: they could be guessed.
 pub const MIN_TOKEN_CHARS: usize = 16;
 
+/// A token file that cannot be read or holds no usable token: the user's
+/// input, so the commands exit with their bad-input code.
+#[derive(Debug, thiserror::Error)]
+#[error("{0}")]
+pub struct BadTokenFile(pub String);
+
 /// The cluster's shared secret.
 #[derive(Clone)]
 pub struct Token(Arc<str>);
@@ -27,9 +33,13 @@ impl Token {
     /// Reads a token file: one line of printable ASCII, at least 16 characters.
     pub fn read(path: &Path) -> anyhow::Result<Token> {
         let text = std::fs::read_to_string(path).map_err(|error| {
-            anyhow::anyhow!("{}: cannot read the token file: {error}", path.display())
+            BadTokenFile(format!(
+                "{}: cannot read the token file: {error}",
+                path.display()
+            ))
         })?;
-        Token::parse(text.trim()).map_err(|what| anyhow::anyhow!("{}: {what}", path.display()))
+        Token::parse(text.trim())
+            .map_err(|what| BadTokenFile(format!("{}: {what}", path.display())).into())
     }
 
     /// A token from its text.
