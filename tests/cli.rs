@@ -431,3 +431,29 @@ fn a_token_file_that_is_missing_or_too_short_is_bad_input() {
         }
     }
 }
+
+#[test]
+fn a_far_generation_reads_the_same_short_way_in_the_summary_and_whole_in_json() {
+    // 5·10^100 + 59: the summary keeps the low digits that tell it from
+    // 5·10^100 + 60 (common practice for such forms); JSON is exact.
+    let dir = temp_dir();
+    let glider = dir.path().join("glider.rle");
+    std::fs::write(&glider, "x = 3, y = 3\nbo$2bo$3o!\n").unwrap();
+    let far = format!("5{}59", "0".repeat(98));
+    let human = run_deeptime(["leap", glider.to_str().unwrap(), "--gens", &far]);
+    human.assert_success();
+    assert!(
+        human.stdout.contains("generation    5×10^100 + 59\n"),
+        "{}",
+        human.stdout
+    );
+    assert!(
+        human.stdout.contains("population    5\n"),
+        "{}",
+        human.stdout
+    );
+    let json = run_deeptime(["leap", glider.to_str().unwrap(), "--gens", &far, "--json"]);
+    json.assert_success();
+    let report: serde_json::Value = serde_json::from_str(&json.stdout).unwrap();
+    assert_eq!(report["generation"], far.as_str());
+}

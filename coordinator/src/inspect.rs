@@ -9,6 +9,7 @@ use serde::Serialize;
 use crate::checkpoint::Checkpoints;
 use crate::cli::DirArgs;
 use crate::failure::BadInput;
+use crate::numbers::for_people;
 
 /// The checkpoints of a run's folder (or `s3://` URL); a local folder that
 /// does not exist is the user's mistake, not an empty run.
@@ -87,8 +88,8 @@ pub fn list(args: DirArgs) -> anyhow::Result<()> {
         println!(
             "{:>8}  {:>24}  {:>24}  {:32}  {:>12}",
             row.sequence,
-            short(&row.generation),
-            short(&row.population),
+            for_people(&row.generation),
+            for_people(&row.population),
             row.digest,
             row.pack_bytes
         );
@@ -154,14 +155,6 @@ pub fn verify(args: DirArgs) -> anyhow::Result<()> {
         );
     }
     Ok(())
-}
-
-/// A decimal for a table column: whole when it fits, else its size.
-fn short(decimal: &str) -> String {
-    if decimal.len() <= 24 {
-        return decimal.to_string();
-    }
-    format!("{}.{}e{}", &decimal[..1], &decimal[1..4], decimal.len() - 1)
 }
 
 pub fn prune(args: crate::cli::PruneArgs) -> anyhow::Result<()> {

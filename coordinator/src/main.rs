@@ -14,6 +14,7 @@ mod job;
 mod leap;
 mod memory;
 mod node;
+mod numbers;
 mod output;
 mod progress;
 mod report;

@@ -2,6 +2,7 @@
 //! Numbers a user relies on (generation, population, coordinates) are
 //! decimal strings: they can be astronomically large.
 
+use crate::numbers::for_people;
 use std::time::Duration;
 
 use deeptime_engine::{Universe, human_bytes};
@@ -87,16 +88,16 @@ impl Report {
             println!("{}", serde_json::to_string(self)?);
             return Ok(());
         }
-        println!("generation    {}", abbreviate(&self.generation));
-        println!("population    {}", abbreviate(&self.population));
+        println!("generation    {}", for_people(&self.generation));
+        println!("population    {}", for_people(&self.population));
         match &self.bbox {
             None => println!("bounding box  none (no live cells)"),
             Some(bbox) => println!(
                 "bounding box  {} × {} at ({}, {})",
-                abbreviate(&bbox.width),
-                abbreviate(&bbox.height),
-                abbreviate(&bbox.left),
-                abbreviate(&bbox.top)
+                for_people(&bbox.width),
+                for_people(&bbox.height),
+                for_people(&bbox.left),
+                for_people(&bbox.top)
             ),
         }
         println!("rule          {}", self.rule);
@@ -119,20 +120,4 @@ impl Report {
         }
         Ok(())
     }
-}
-
-/// Long decimals shortened for people: the first and last digits and the
-/// digit count (the JSON form always has them whole).
-fn abbreviate(decimal: &str) -> String {
-    let digits = decimal.trim_start_matches('-');
-    if digits.len() <= 40 {
-        return decimal.to_string();
-    }
-    let sign = if decimal.starts_with('-') { "-" } else { "" };
-    format!(
-        "{sign}{}…{} ({} digits)",
-        &digits[..12],
-        &digits[digits.len() - 12..],
-        digits.len()
-    )
 }

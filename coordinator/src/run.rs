@@ -15,6 +15,7 @@ use crate::checkpoint::{Checkpoints, Manifest};
 use crate::cli::RunArgs;
 use crate::failure::BadInput;
 use crate::job::Job;
+use crate::numbers::for_people;
 use crate::report::Report;
 use crate::{input, memory, progress};
 
@@ -39,8 +40,8 @@ pub fn run(args: RunArgs) -> anyhow::Result<()> {
     if universe.generation() > &job.target {
         return Err(BadInput(format!(
             "the stored run is at generation {}, past the job's target {}",
-            universe.generation(),
-            job.target
+            for_people(&universe.generation().to_string()),
+            for_people(&job.target.to_string())
         ))
         .into());
     }
@@ -69,14 +70,15 @@ pub fn run(args: RunArgs) -> anyhow::Result<()> {
         let rate = approximate(&(universe.generation() - &from)) / seconds;
         let note = format!(
             "gen {} pop {} {}/s ",
-            short(&universe.generation().to_string()),
-            short(population),
+            for_people(&universe.generation().to_string()),
+            for_people(population),
             short_float(rate)
         );
         let mut observe = |progress: &Progress| line.update_part(before, span, progress, &note);
         let started_step = Instant::now();
         let advanced = universe.advance(&step, Some(&mut observe));
-        advanced.with_context(|| format!("advancing {step} generations"))?;
+        advanced
+            .with_context(|| format!("advancing {} generations", for_people(&step.to_string())))?;
         let took = started_step.elapsed();
         let due = match pacer.as_mut() {
             Some(pacer) => {
@@ -126,7 +128,9 @@ pub fn resume_or_start(
             check_identity(&manifest, job, &rule.to_string(), pattern_digest)?;
             eprintln!(
                 "deeptime: resuming {} from checkpoint {} at generation {}",
-                job.name, manifest.sequence, manifest.generation
+                job.name,
+                manifest.sequence,
+                for_people(&manifest.generation)
             );
             (stored.universe, Some(manifest), stored.known)
         }
@@ -223,14 +227,6 @@ fn share(part: &BigUint, whole: &BigUint) -> f64 {
 fn approximate(value: &BigUint) -> f64 {
     let drop = value.bits().saturating_sub(60);
     (value >> drop).to_f64().unwrap_or(0.0) * 2f64.powi(drop.min(2000) as i32)
-}
-
-/// A decimal shortened for a progress line.
-fn short(decimal: &str) -> String {
-    if decimal.len() <= 12 {
-        return decimal.to_string();
-    }
-    format!("{}.{}e{}", &decimal[..1], &decimal[1..3], decimal.len() - 1)
 }
 
 fn short_float(value: f64) -> String {

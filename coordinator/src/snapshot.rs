@@ -23,6 +23,7 @@ use num_bigint::{BigInt, BigUint};
 use crate::checkpoint::{Checkpoints, Manifest};
 use crate::cli::SnapshotArgs;
 use crate::failure::BadInput;
+use crate::numbers::for_people;
 use crate::report::{BoxReport, EngineReport, Report};
 use crate::{memory, output, progress};
 use deeptime_node::storage::Counting;
@@ -110,11 +111,17 @@ pub fn run(args: SnapshotArgs) -> anyhow::Result<()> {
         }
     }
     let Some((stored, mut universe, pack_bytes)) = opened else {
-        bail!("no undamaged checkpoint at or before generation {generation}");
+        bail!(
+            "no undamaged checkpoint at or before generation {}",
+            for_people(&generation.to_string())
+        );
     };
     if stored < generation {
         let steps = &generation - &stored;
-        eprintln!("deeptime: advancing from the checkpoint at generation {stored}");
+        eprintln!(
+            "deeptime: advancing from the checkpoint at generation {}",
+            for_people(&stored.to_string())
+        );
         let line = progress::Line::start("advancing");
         let mut observe = |progress: &Progress| line.update(progress);
         let advanced = universe.advance(&steps, Some(&mut observe));

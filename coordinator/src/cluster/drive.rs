@@ -20,6 +20,7 @@ use crate::cluster::recursion;
 use crate::cluster::tasks::{Dispatcher, PiecesLost};
 use crate::cluster::upper::Upper;
 use crate::job::Job;
+use crate::numbers::for_people;
 use crate::report::{BoxReport, EngineReport, Report};
 use deeptime_node::fetch::Peers;
 
@@ -276,8 +277,9 @@ impl Run<'_> {
                     }
                     return Err(error).with_context(|| {
                         format!(
-                            "advancing {step} generations from generation {}",
-                            state.generation
+                            "advancing {} generations from generation {}",
+                            for_people(&step.to_string()),
+                            for_people(&state.generation.to_string())
                         )
                     });
                 }
@@ -328,8 +330,9 @@ impl Run<'_> {
                 status.population = population.to_string();
             }
             eprintln!(
-                "deeptime: generation {}, population {population}, {} tasks",
-                state.generation,
+                "deeptime: generation {}, population {}, {} tasks",
+                for_people(&state.generation.to_string()),
+                for_people(&population.to_string()),
                 self.tasks.counters().done
             );
             let due = match pacer.as_mut() {

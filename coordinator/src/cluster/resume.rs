@@ -29,6 +29,7 @@ use crate::cluster::members::Member;
 use crate::cluster::tasks::{NodeOutOfMemory, PiecesLost};
 use crate::cluster::upper::Upper;
 use crate::failure::BadInput;
+use crate::numbers::for_people;
 
 /// The top of a stored state, read down to its pieces.
 struct StoredTop {
@@ -109,7 +110,9 @@ impl Run<'_> {
                 Ok((on_nodes, known)) => {
                     eprintln!(
                         "deeptime: resuming {} from checkpoint {} at generation {}",
-                        self.job.name, manifest.sequence, manifest.generation
+                        self.job.name,
+                        manifest.sequence,
+                        for_people(&manifest.generation)
                     );
                     return Ok((on_nodes, manifest, known));
                 }
