@@ -374,6 +374,150 @@ fn a_snapshot_before_any_checkpoint_or_of_a_bad_region_is_refused() {
     );
 }
 
+#[test]
+fn a_snapshot_reads_a_few_manifests_of_a_long_run_not_all() {
+    // A glider stored at every generation from 0 to 200: 201 manifests.
+    // A snapshot of a stored generation finds its manifest by bisection:
+    // it reads a handful of manifests (log2 201 < 8, plus the one it
+    // opens), never all of them.
+    let dir = temp_dir();
+    std::fs::write(dir.path().join("glider.rle"), "bo$2bo$3o!\n").unwrap();
+    let job_path = write_job(
+        dir.path(),
+        "g.toml",
+        "g",
+        "glider.rle",
+        "B3/S23",
+        "200",
+        "1",
+    );
+    run_deeptime(["run", job_path.to_str().unwrap()]).assert_success();
+    let all = manifests(dir.path());
+    assert_eq!(all.len(), 201);
+    let largest = all
+        .iter()
+        .map(|path| std::fs::metadata(path).unwrap().len())
+        .max()
+        .unwrap();
+    let runs = dir.path().join("runs");
+    for generation in ["0", "57", "200"] {
+        let snap = run_deeptime([
+            "snapshot",
+            runs.to_str().unwrap(),
+            "--gen",
+            generation,
+            "--json",
+        ]);
+        let report = report_of(&snap);
+        assert_eq!(report["generation"], generation);
+        let read = report["bytes_read"].as_u64().unwrap();
+        let packs = report["pack_bytes"].as_u64().unwrap();
+        assert!(
+            read <= packs + 10 * largest,
+            "generation {generation}: read {read} bytes, packs {packs}, a manifest at most {largest}"
+        );
+    }
+}
+
+#[test]
+fn an_output_that_cannot_be_written_is_never_blamed_on_the_checkpoints() {
+    // README: exit code 2 for what the user must fix, checked before any
+    // work; a checkpoint is never called damaged for an output error.
+    let dir = temp_dir();
+    let job_path = job(dir.path(), 40, 20, "B3/S23");
+    run_deeptime(["run", job_path.to_str().unwrap()]).assert_success();
+    let runs = dir.path().join("runs");
+    let runs = runs.to_str().unwrap();
+    let missing = dir.path().join("no-such-folder/x.png");
+    let cases: Vec<(Vec<&str>, &str)> = vec![
+        // Stored (20) and between checkpoints (30): the folder is missing.
+        (
+            vec!["--gen", "20", "--out", missing.to_str().unwrap()],
+            "does not exist",
+        ),
+        (
+            vec!["--gen", "30", "--out", missing.to_str().unwrap()],
+            "does not exist",
+        ),
+        (vec!["--gen", "20", "--out", "x.gif"], "write .rle or .png"),
+        // A region too large for a picture at scale 0, with its real size.
+        (
+            vec![
+                "--gen",
+                "30",
+                "--region",
+                "0,0,1000000,1000000",
+                "--scale",
+                "0",
+                "--out",
+                "x.png",
+            ],
+            "a picture of 1000000×1000000 pixels is too large",
+        ),
+    ];
+    for (options, says) in cases {
+        let mut args = vec!["snapshot", runs];
+        args.extend(&options);
+        let run = run_deeptime(&args);
+        assert_eq!(run.code, Some(2), "{args:?}: {}", run.describe());
+        assert!(run.stderr.contains(says), "{args:?}: {}", run.describe());
+        assert!(
+            !run.stderr.contains("damaged"),
+            "{args:?}: {}",
+            run.describe()
+        );
+        assert!(
+            !run.stderr.contains("advancing"),
+            "{args:?}: {}",
+            run.describe()
+        );
+    }
+    // Two gliders flying apart (each moves one cell diagonally every four
+    // generations, a published fact): 80000 generations on, 40000 cells
+    // each way, too large a picture at scale 0, known only once the state
+    // is there. Stored (read on demand) or advanced from the checkpoint
+    // before: told with the real size, and no checkpoint called damaged.
+    let far = temp_dir();
+    std::fs::write(far.path().join("pair.rle"), "3o$o$bo$2$5bo$6bo$5b3o!\n").unwrap();
+    let job_path = write_job(
+        far.path(),
+        "pair.toml",
+        "pair",
+        "pair.rle",
+        "B3/S23",
+        "80000",
+        "40000",
+    );
+    run_deeptime(["run", job_path.to_str().unwrap()]).assert_success();
+    let runs = far.path().join("runs");
+    for generation in ["80000", "79999"] {
+        let picture = far.path().join("whole.png");
+        let run = run_deeptime([
+            "snapshot",
+            runs.to_str().unwrap(),
+            "--gen",
+            generation,
+            "--scale",
+            "0",
+            "--out",
+            picture.to_str().unwrap(),
+        ]);
+        assert_eq!(run.code, Some(2), "{}", run.describe());
+        assert!(
+            run.stderr.contains("pixels is too large"),
+            "{}",
+            run.describe()
+        );
+        assert!(
+            !run.stderr.contains("18446744073709551615"),
+            "{}",
+            run.describe()
+        );
+        assert!(!run.stderr.contains("damaged"), "{}", run.describe());
+        assert!(!picture.exists());
+    }
+}
+
 /// Live cells of a small RLE text, read here without the engine (common
 /// practice: the RLE tags b, o, $ and !).
 fn rle_cells(text: &str) -> std::collections::HashSet<(usize, usize)> {

@@ -10,6 +10,12 @@ use deeptime_engine::{AdvanceError, BudgetExceeded};
 #[error("{0}")]
 pub struct BadInput(pub String);
 
+/// An output file that could not be written (its folder, the disk): a
+/// failure of the system, never a sign that what was read is damaged.
+#[derive(Debug, thiserror::Error)]
+#[error("{0}")]
+pub struct OutputFailed(pub String);
+
 /// Input that is sound but does not fit the memory budget.
 #[derive(Debug, thiserror::Error)]
 #[error("{0}")]

@@ -5,7 +5,7 @@
 use std::io::{BufWriter, Write};
 use std::path::Path;
 
-use anyhow::Context;
+use crate::failure::OutputFailed;
 
 /// Writes `out` with `fill`, which gets a buffered writer. Errors from
 /// `fill` are reported as they are (they say what was wrong); errors of
@@ -14,17 +14,20 @@ pub fn write_whole(
     out: &Path,
     fill: impl FnOnce(&mut BufWriter<&mut std::fs::File>) -> anyhow::Result<()>,
 ) -> anyhow::Result<()> {
-    let cannot = || format!("cannot write {}", out.display());
+    let cannot =
+        |error: std::io::Error| OutputFailed(format!("cannot write {}: {error}", out.display()));
     let directory = match out.parent() {
         Some(parent) if !parent.as_os_str().is_empty() => parent,
         _ => Path::new("."),
     };
-    let mut temporary = tempfile::NamedTempFile::new_in(directory).with_context(cannot)?;
+    let mut temporary = tempfile::NamedTempFile::new_in(directory).map_err(cannot)?;
     {
         let mut writer = BufWriter::new(temporary.as_file_mut());
         fill(&mut writer)?;
-        writer.flush().with_context(cannot)?;
+        writer.flush().map_err(cannot)?;
     }
-    temporary.persist(out).with_context(cannot)?;
+    temporary
+        .persist(out)
+        .map_err(|error| cannot(error.error))?;
     Ok(())
 }

@@ -15,14 +15,14 @@ use std::time::{Duration, Instant};
 
 use anyhow::{Context, bail};
 use deeptime_engine::generation::parse_generations;
-use deeptime_engine::render::Picture;
+use deeptime_engine::render::{MAX_PIXELS, Picture};
 use deeptime_engine::stored::StoredState;
 use deeptime_engine::{BoundingBox, Progress, Region, Universe};
 use num_bigint::{BigInt, BigUint};
 
 use crate::checkpoint::{Checkpoints, Manifest};
 use crate::cli::SnapshotArgs;
-use crate::failure::BadInput;
+use crate::failure::{BadInput, OutputFailed};
 use crate::numbers::for_people;
 use crate::report::{BoxReport, EngineReport, Report};
 use crate::{memory, output, progress};
@@ -35,6 +35,9 @@ pub fn run(args: SnapshotArgs) -> anyhow::Result<()> {
     let generation =
         parse_generations(&args.generation).map_err(|error| BadInput(format!("--gen: {error}")))?;
     let region = args.region.as_deref().map(parse_region).transpose()?;
+    if let Some(out) = &args.out {
+        check_out(out, region.as_ref(), args.scale)?;
+    }
     let budget = memory::budget(args.memory.as_deref())?;
     let started = Instant::now();
     // Every byte read from the run's storage is counted, for the report.
@@ -44,39 +47,27 @@ pub fn run(args: SnapshotArgs) -> anyhow::Result<()> {
     if keys.is_empty() {
         bail!("{}: no checkpoints", args.dir.display());
     }
-    // The stored generations at or before G, newest first; damaged
-    // manifests and checkpoints are skipped with a warning.
-    let mut candidates = Vec::new();
-    let mut earliest: Option<BigUint> = None;
-    for key in &keys {
-        let manifest = match checkpoints.manifest(key) {
-            Ok(manifest) => manifest,
-            Err(error) if stops(&error) => return Err(error),
+    // The newest checkpoint at or before G, found by bisection (the
+    // generations grow with the sequence), so only a handful of manifests
+    // are read; then the earlier ones, newest first, should it be damaged.
+    let last = last_at_or_before(&checkpoints, &keys, &generation)?;
+    let mut candidates = keys[..last.unwrap_or(0)]
+        .iter()
+        .rev()
+        .filter_map(|key| match checkpoints.manifest(key) {
+            Ok(manifest) => match manifest.generation() {
+                Ok(stored) => (stored <= generation).then_some(Ok((stored, manifest))),
+                Err(error) => Some(Err(error)),
+            },
+            Err(error) if stops(&error) => Some(Err(error)),
             Err(error) => {
                 eprintln!("deeptime: warning: skipping damaged checkpoint: {error:#}");
-                continue;
+                None
             }
-        };
-        let stored = manifest.generation()?;
-        if earliest.as_ref().is_none_or(|e| &stored < e) {
-            earliest = Some(stored.clone());
-        }
-        if stored <= generation {
-            candidates.push((stored, manifest));
-        }
-    }
-    candidates.sort_by(|a, b| b.0.cmp(&a.0));
-    if candidates.is_empty() {
-        return Err(BadInput(format!(
-            "no checkpoint at or before generation {generation} (the earliest is {})",
-            earliest
-                .map(|e| e.to_string())
-                .unwrap_or_else(|| "none".to_string())
-        ))
-        .into());
-    }
+        });
     let mut opened = None;
-    for (stored, manifest) in candidates {
+    for candidate in &mut candidates {
+        let (stored, manifest) = candidate?;
         let pack_bytes = manifest.pack_bytes();
         if stored == generation {
             // Stored: read on demand.
@@ -110,7 +101,17 @@ pub fn run(args: SnapshotArgs) -> anyhow::Result<()> {
             }
         }
     }
+    drop(candidates);
     let Some((stored, mut universe, pack_bytes)) = opened else {
+        if last.is_none() {
+            let earliest = earliest_generation(&checkpoints, &keys)
+                .map_or_else(|| "none".to_string(), |e| for_people(&e.to_string()));
+            return Err(BadInput(format!(
+                "no checkpoint at or before generation {} (the earliest is {earliest})",
+                for_people(&generation.to_string())
+            ))
+            .into());
+        }
         bail!(
             "no undamaged checkpoint at or before generation {}",
             for_people(&generation.to_string())
@@ -144,13 +145,125 @@ pub fn run(args: SnapshotArgs) -> anyhow::Result<()> {
     report.print(args.json)
 }
 
+/// One past the index of the newest key whose checkpoint is at or before
+/// `generation` (None: every readable one is later). Bisects while the
+/// manifests it reads are sound; a damaged one ends the bisection, and
+/// the walk down from the bound found so far skips it.
+fn last_at_or_before(
+    checkpoints: &Checkpoints,
+    keys: &[String],
+    generation: &BigUint,
+) -> anyhow::Result<Option<usize>> {
+    // Invariant: keys[..low] may hold it; keys[high..] are all later.
+    let (mut low, mut high) = (0, keys.len());
+    while low < high {
+        let middle = low + (high - low) / 2;
+        let stored = match checkpoints.manifest(&keys[middle]) {
+            Ok(manifest) => manifest.generation()?,
+            Err(error) if stops(&error) => return Err(error),
+            Err(_) => return Ok(Some(high)), // damaged: walk down from here
+        };
+        if &stored <= generation {
+            low = middle + 1;
+        } else {
+            high = middle;
+        }
+    }
+    Ok((high > 0).then_some(high))
+}
+
+/// The generation of the oldest readable checkpoint, for messages.
+fn earliest_generation(checkpoints: &Checkpoints, keys: &[String]) -> Option<BigUint> {
+    keys.iter()
+        .find_map(|key| checkpoints.manifest(key).ok())
+        .and_then(|manifest| manifest.generation().ok())
+}
+
 /// Errors that end the snapshot rather than send it to an earlier
 /// checkpoint: a budget too small, a checkpoint of another version, bad
-/// options.
+/// options, an output that cannot be written.
 fn stops(error: &anyhow::Error) -> bool {
-    error
-        .chain()
-        .any(|cause| cause.is::<deeptime_engine::BudgetExceeded>() || cause.is::<BadInput>())
+    error.chain().any(|cause| {
+        cause.is::<deeptime_engine::BudgetExceeded>()
+            || cause.is::<BadInput>()
+            || cause.is::<OutputFailed>()
+    })
+}
+
+/// What can be known of `--out` before any work: its kind, its folder and,
+/// for a region, its size.
+fn check_out(out: &Path, region: Option<&Region>, scale: Option<u32>) -> anyhow::Result<()> {
+    let kind = out
+        .extension()
+        .and_then(|e| e.to_str())
+        .unwrap_or("")
+        .to_ascii_lowercase();
+    if kind != "rle" && kind != "png" {
+        return Err(BadInput(format!("--out {}: write .rle or .png", out.display())).into());
+    }
+    let folder = match out.parent() {
+        Some(parent) if !parent.as_os_str().is_empty() => parent,
+        _ => Path::new("."),
+    };
+    if !folder.is_dir() {
+        return Err(BadInput(format!(
+            "--out {}: the folder {} does not exist",
+            out.display(),
+            folder.display()
+        ))
+        .into());
+    }
+    if let Some(region) = region {
+        let too_wide = deeptime_engine::pattern::MAX_COORDINATE;
+        if kind == "rle" && (region.width > too_wide || region.height > too_wide) {
+            return Err(BadInput(format!(
+                "--out {}: the region is {}×{} cells, too large for RLE (at most {too_wide} each way)",
+                out.display(),
+                for_people(&region.width.to_string()),
+                for_people(&region.height.to_string())
+            ))
+            .into());
+        }
+        if kind == "png"
+            && let Some(scale) = scale
+        {
+            let width = BigUint::from(region.width);
+            let height = BigUint::from(region.height);
+            picture_fits(&region.left, &region.top, &width, &height, scale)
+                .with_context(|| format!("--out {}", out.display()))?;
+        }
+    }
+    Ok(())
+}
+
+/// The pixels each way of a picture of the cells from (left, top), width ×
+/// height, at `scale` (pixels start at multiples of 2^scale); a bad-input
+/// error with the real size when it passes the largest picture drawn.
+fn picture_fits(
+    left: &BigInt,
+    top: &BigInt,
+    width: &BigUint,
+    height: &BigUint,
+    scale: u32,
+) -> anyhow::Result<(u64, u64)> {
+    let pixel = BigInt::from(1u32) << scale;
+    let pixels = |start: &BigInt, cells: &BigUint| -> BigInt {
+        let before = ((start % &pixel) + &pixel) % &pixel; // start mod 2^scale, ≥ 0
+        let span = before + BigInt::from(cells.clone());
+        (span + &pixel - 1u32) >> scale
+    };
+    let (columns, rows) = (pixels(left, width), pixels(top, height));
+    let most = BigInt::from(MAX_PIXELS);
+    if columns > most || rows > most {
+        return Err(BadInput(format!(
+            "a picture of {}×{} pixels is too large (at most {MAX_PIXELS} each way): give a larger --scale",
+            for_people(&columns.to_string()),
+            for_people(&rows.to_string())
+        ))
+        .into());
+    }
+    let small = |value: BigInt| u64::try_from(value).expect("at most MAX_PIXELS");
+    Ok((small(columns), small(rows)))
 }
 
 /// The snapshot of a stored generation read on demand: the figures from
@@ -273,7 +386,7 @@ fn write_out(
         .and_then(|e| e.to_str())
         .unwrap_or("")
         .to_ascii_lowercase();
-    output::write_whole(out, |writer| match extension.as_str() {
+    let written = output::write_whole(out, |writer| match extension.as_str() {
         "rle" => match region {
             Some(region) => source.write_rle_region(writer, region),
             // The whole state: the region of its bounding box.
@@ -289,7 +402,37 @@ fn write_out(
         "png" => draw(source, bbox, writer, region, scale)
             .with_context(|| format!("--out {}", out.display())),
         _ => Err(BadInput(format!("--out {}: write .rle or .png", out.display())).into()),
-    })
+    });
+    written.map_err(|error| as_output_error(error, out))
+}
+
+/// An error met while writing `--out`, told apart from damage of what was
+/// read: a state too large for the output is bad input (the user picks
+/// another region or scale), a failed write is an output failure; only a
+/// stored quad that cannot be read stays what it is.
+fn as_output_error(error: anyhow::Error, out: &Path) -> anyhow::Error {
+    use deeptime_engine::WriteError;
+    for cause in error.chain() {
+        if cause.is::<BadInput>() || cause.is::<OutputFailed>() {
+            return error;
+        }
+        let text = format!("--out {}: {cause}", out.display());
+        match cause.downcast_ref::<WriteError>() {
+            Some(WriteError::TooLarge(_)) => return BadInput(text).into(),
+            Some(WriteError::Io(_)) => return OutputFailed(text).into(),
+            _ => {}
+        }
+        use deeptime_engine::render::RenderError;
+        if let Some(RenderError::TooLarge { .. } | RenderError::Scale(_)) =
+            cause.downcast_ref::<RenderError>()
+        {
+            return BadInput(text).into();
+        }
+        if cause.is::<png::EncodingError>() {
+            return OutputFailed(text).into();
+        }
+    }
+    error
 }
 
 /// A grey picture: white where nothing lives, darker the denser.
@@ -328,14 +471,7 @@ fn draw(
     });
     // Pixels start at multiples of 2^scale at or before the corner, so
     // count them from there: every cell of the region is drawn.
-    let pixel = BigInt::from(1u32) << scale;
-    let pixels = |start: &BigInt, cells: &BigUint| -> u64 {
-        let before = ((start % &pixel) + &pixel) % &pixel; // start mod 2^scale, ≥ 0
-        let span = before + BigInt::from(cells.clone());
-        let whole: BigInt = (span + &pixel - 1u32) >> scale;
-        u64::try_from(whole).unwrap_or(u64::MAX)
-    };
-    let (columns, rows) = (pixels(&left, &width), pixels(&top, &height));
+    let (columns, rows) = picture_fits(&left, &top, &width, &height, scale)?;
     if columns == 0 || rows == 0 {
         return Err(BadInput("the region to draw is empty".to_string()).into());
     }
