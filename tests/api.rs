@@ -269,7 +269,10 @@ fn a_python_client_reads_the_same_status_as_deeptime_and_wrong_tokens_change_not
     // is done; the proto says what each field means).
     assert_eq!(status["name"], "api", "{status}");
     assert_eq!(status["state"], "done", "{status}");
-    assert_eq!(status["error"], "", "{status}");
+    assert_eq!(status["error"], Value::Null, "{status}");
+    // A fresh run: it began from generation 0; the box is the report's.
+    assert_eq!(status["started_from"], "0", "{status}");
+    assert_eq!(status["bbox"], report["bbox"], "{status}");
     assert_eq!(status["generation"], target, "{status}");
     assert_eq!(status["target"], target, "{status}");
     assert_eq!(status["generation"], report["generation"], "{status}");
@@ -299,6 +302,7 @@ fn a_python_client_reads_the_same_status_as_deeptime_and_wrong_tokens_change_not
         assert_eq!(member["state"], "live", "{member}");
         assert_eq!(member["tasks_running"], 0, "{member}");
         assert_eq!(member["memory"], 256 << 20, "{member}");
+        assert!(member["pieces_held"].is_u64(), "{member}");
         member_tasks += member["tasks_done"].as_u64().unwrap();
     }
     // Each task is counted once for the job and once for its member.

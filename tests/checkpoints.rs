@@ -478,7 +478,9 @@ fn an_output_that_cannot_be_written_is_never_blamed_on_the_checkpoints() {
     // is there. Stored (read on demand) or advanced from the checkpoint
     // before: told with the real size, and no checkpoint called damaged.
     let far = temp_dir();
-    std::fs::write(far.path().join("pair.rle"), "3o$o$bo$2$5bo$6bo$5b3o!\n").unwrap();
+    // A glider heading up-left in rows 0-2, one heading down-right in rows
+    // 13-15 (columns 15-17).
+    std::fs::write(far.path().join("pair.rle"), "3o$o$bo$10$16bo$17bo$15b3o!\n").unwrap();
     let job_path = write_job(
         far.path(),
         "pair.toml",
@@ -490,6 +492,31 @@ fn an_output_that_cannot_be_written_is_never_blamed_on_the_checkpoints() {
     );
     run_deeptime(["run", job_path.to_str().unwrap()]).assert_success();
     let runs = far.path().join("runs");
+    // The listing gives each checkpoint's extent and write time: at 80000
+    // each glider has moved 20000 cells diagonally (one cell per four
+    // generations, a published fact), so the box runs from (-20000, -20000)
+    // to (17 + 20000, 15 + 20000).
+    let listed = run_deeptime(["checkpoints", runs.to_str().unwrap(), "--json"]);
+    listed.assert_success();
+    let rows: serde_json::Value = serde_json::from_str(&listed.stdout).unwrap();
+    let last = &rows.as_array().unwrap()[2];
+    assert_eq!(last["generation"], "80000");
+    assert_eq!(last["population"], "10");
+    assert_eq!(
+        last["bbox"],
+        serde_json::json!({"left": "-20000", "top": "-20000", "width": "40018", "height": "40016"})
+    );
+    let written = last["written"].as_str().unwrap();
+    assert!(
+        written.starts_with("20") && written.ends_with('Z'),
+        "{written}"
+    );
+    let table = run_deeptime(["checkpoints", runs.to_str().unwrap()]);
+    assert!(
+        table.stdout.contains("40018 × 40016 at (-20000, -20000)"),
+        "{}",
+        table.stdout
+    );
     for generation in ["80000", "79999"] {
         let picture = far.path().join("whole.png");
         let run = run_deeptime([

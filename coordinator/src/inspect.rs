@@ -41,8 +41,13 @@ struct Row {
     sequence: u64,
     generation: String,
     population: String,
+    /// the extent of the live cells, null when none live
+    bbox: Option<crate::checkpoint::BoxText>,
     digest: String,
+    /// bytes of every pack the checkpoint needs (its own and earlier ones)
     pack_bytes: u64,
+    /// when its manifest was written, UTC (RFC 3339)
+    written: String,
 }
 
 pub fn list(args: DirArgs) -> anyhow::Result<()> {
@@ -64,12 +69,15 @@ pub fn list(args: DirArgs) -> anyhow::Result<()> {
                 continue;
             }
         };
+        let written = std::time::UNIX_EPOCH + std::time::Duration::from_secs(manifest.written);
         rows.push(Row {
             sequence: manifest.sequence,
             pack_bytes: manifest.pack_bytes(),
             generation: manifest.generation,
             population: manifest.population,
+            bbox: manifest.bbox,
             digest: manifest.root,
+            written: humantime::format_rfc3339_seconds(written).to_string(),
         });
     }
     if args.json {
@@ -81,17 +89,35 @@ pub fn list(args: DirArgs) -> anyhow::Result<()> {
         return Ok(());
     }
     println!(
-        "{:>8}  {:>24}  {:>24}  {:32}  {:>12}",
-        "sequence", "generation", "population", "digest", "pack bytes"
+        "{:>8}  {:>24}  {:>24}  {:<40}  {:32}  {:>14}  {:20}",
+        "sequence",
+        "generation",
+        "population",
+        "bounding box",
+        "digest",
+        "packs needed",
+        "written (UTC)"
     );
     for row in rows {
+        let bbox = match &row.bbox {
+            Some(bbox) => format!(
+                "{} × {} at ({}, {})",
+                for_people(&bbox.width),
+                for_people(&bbox.height),
+                for_people(&bbox.left),
+                for_people(&bbox.top)
+            ),
+            None => "none".to_string(),
+        };
         println!(
-            "{:>8}  {:>24}  {:>24}  {:32}  {:>12}",
+            "{:>8}  {:>24}  {:>24}  {:<40}  {:32}  {:>14}  {:20}",
             row.sequence,
             for_people(&row.generation),
             for_people(&row.population),
+            bbox,
             row.digest,
-            row.pack_bytes
+            deeptime_engine::human_bytes(row.pack_bytes),
+            row.written
         );
     }
     Ok(())

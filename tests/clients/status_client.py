@@ -133,6 +133,8 @@ def to_json(message):
             out[field.name] = [to_json(v) if is_message else v for v in value]
         elif is_message:
             out[field.name] = to_json(value) if message.HasField(field.name) else None
+        elif field.has_presence and not message.HasField(field.name):
+            out[field.name] = None  # an optional field left unset
         elif field.type == FieldDescriptor.TYPE_BYTES:
             out[field.name] = value.hex()
         elif field.type == FieldDescriptor.TYPE_ENUM:

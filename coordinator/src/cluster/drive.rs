@@ -211,7 +211,16 @@ impl Run<'_> {
         {
             let mut status = self.board.status.lock().expect("board");
             status.generation = generation.to_string();
+            status.started_from = generation.to_string();
             status.population = population.to_string();
+            status.bbox = universe
+                .bounding_box()
+                .map(|bbox| deeptime_proto::v1::BoundingBox {
+                    left: bbox.left.to_string(),
+                    top: bbox.top.to_string(),
+                    width: bbox.width.to_string(),
+                    height: bbox.height.to_string(),
+                });
         }
         Ok(OnNodes {
             upper: Arc::new(Mutex::new(upper)),
@@ -288,7 +297,7 @@ impl Run<'_> {
             state.generation += &step;
             let took = stepping.elapsed();
             let finished = advance.finished();
-            let (pieces, kept) = {
+            let kept = {
                 let mut upper = state.upper.lock().expect("upper");
                 let mut root = root;
                 while level > shard_level + 1 && upper.fits_centre_half(&root, level) {
@@ -309,25 +318,27 @@ impl Run<'_> {
                     roots.push((root, level));
                     upper.keep_under(&roots);
                     carried = Some(finished);
-                    let kept: HashSet<ContentId> = pieces.union(&carried_pieces).copied().collect();
-                    (pieces, kept)
+                    pieces
+                        .union(&carried_pieces)
+                        .copied()
+                        .collect::<HashSet<ContentId>>()
                 } else {
                     upper.keep_only(&root, level);
-                    (pieces.clone(), pieces)
+                    pieces
                 }
             };
             self.tasks.retain(self.job_id, &kept).await?;
-            let figures = self.tasks.figures(&pieces);
-            let (population, _) =
-                state
-                    .upper
-                    .lock()
-                    .expect("upper")
-                    .figures(&state.root, state.level, &figures);
+            let (population, bbox) = self.figures(&state);
             {
                 let mut status = self.board.status.lock().expect("board");
                 status.generation = state.generation.to_string();
                 status.population = population.to_string();
+                status.bbox = bbox.map(|bbox| deeptime_proto::v1::BoundingBox {
+                    left: bbox.left,
+                    top: bbox.top,
+                    width: bbox.width,
+                    height: bbox.height,
+                });
             }
             eprintln!(
                 "deeptime: generation {}, population {}, {} tasks",

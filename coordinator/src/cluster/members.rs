@@ -251,7 +251,7 @@ impl v1::coordinator_server::Coordinator for CoordinatorService {
                     "lost"
                 }
                 .to_string(),
-                holds: holds.get(&m.id).copied().unwrap_or(0),
+                pieces_held: holds.get(&m.id).copied().unwrap_or(0),
                 tasks_done: m.done.load(Ordering::Relaxed),
                 tasks_running: m.running.load(Ordering::Relaxed),
                 quads: m.quads.load(Ordering::Relaxed),

@@ -278,7 +278,7 @@ async fn coordinate(args: CoordinatorArgs) -> anyhow::Result<()> {
         Err(error) => {
             let mut status = board.status.lock().expect("board");
             status.state = "failed".to_string();
-            status.error = format!("{error:#}");
+            status.error = Some(format!("{error:#}"));
             Err(error)
         }
     };

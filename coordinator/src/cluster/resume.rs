@@ -277,6 +277,7 @@ impl Run<'_> {
         {
             let mut status = self.board.status.lock().expect("board");
             status.generation = on_nodes.generation.to_string();
+            status.started_from = on_nodes.generation.to_string();
             status.population = population.to_string();
         }
         Ok(Some((on_nodes, known)))
