@@ -9,7 +9,7 @@ use serde::Serialize;
 use crate::checkpoint::Checkpoints;
 use crate::cli::DirArgs;
 use crate::failure::BadInput;
-use crate::numbers::for_people;
+use crate::numbers::{box_for_people, for_people};
 
 /// The checkpoints of a run's folder (or `s3://` URL); a local folder that
 /// does not exist is the user's mistake, not an empty run.
@@ -100,13 +100,7 @@ pub fn list(args: DirArgs) -> anyhow::Result<()> {
     );
     for row in rows {
         let bbox = match &row.bbox {
-            Some(bbox) => format!(
-                "{} × {} at ({}, {})",
-                for_people(&bbox.width),
-                for_people(&bbox.height),
-                for_people(&bbox.left),
-                for_people(&bbox.top)
-            ),
+            Some(bbox) => box_for_people(&bbox.left, &bbox.top, &bbox.width, &bbox.height),
             None => "none".to_string(),
         };
         println!(

@@ -39,6 +39,17 @@ pub fn for_people(decimal: &str) -> String {
     )
 }
 
+/// A bounding box for people: `WIDTH × HEIGHT at (LEFT, TOP)`.
+pub fn box_for_people(left: &str, top: &str, width: &str, height: &str) -> String {
+    format!(
+        "{} × {} at ({}, {})",
+        for_people(width),
+        for_people(height),
+        for_people(left),
+        for_people(top)
+    )
+}
+
 #[cfg(test)]
 mod tests {
     use super::for_people;

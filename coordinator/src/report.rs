@@ -2,7 +2,7 @@
 //! Numbers a user relies on (generation, population, coordinates) are
 //! decimal strings: they can be astronomically large.
 
-use crate::numbers::for_people;
+use crate::numbers::{box_for_people, for_people};
 use std::time::Duration;
 
 use deeptime_engine::{Universe, human_bytes};
@@ -93,11 +93,8 @@ impl Report {
         match &self.bbox {
             None => println!("bounding box  none (no live cells)"),
             Some(bbox) => println!(
-                "bounding box  {} × {} at ({}, {})",
-                for_people(&bbox.width),
-                for_people(&bbox.height),
-                for_people(&bbox.left),
-                for_people(&bbox.top)
+                "bounding box  {}",
+                box_for_people(&bbox.left, &bbox.top, &bbox.width, &bbox.height)
             ),
         }
         println!("rule          {}", self.rule);

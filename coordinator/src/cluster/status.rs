@@ -8,7 +8,7 @@ use num_bigint::BigUint;
 use serde_json::json;
 
 use crate::cli::StatusArgs;
-use crate::numbers::for_people;
+use crate::numbers::{box_for_people, for_people};
 
 /// Generations per second since the coordinator began, and the seconds
 /// left to the target at that rate (None before any progress): decimal
@@ -124,11 +124,8 @@ pub fn run(args: StatusArgs) -> anyhow::Result<()> {
         println!("population    {}", for_people(&status.population));
         if let Some(b) = &status.bbox {
             println!(
-                "bounding box  {} × {} at ({}, {})",
-                for_people(&b.width),
-                for_people(&b.height),
-                for_people(&b.left),
-                for_people(&b.top)
+                "bounding box  {}",
+                box_for_people(&b.left, &b.top, &b.width, &b.height)
             );
         }
         println!(
