@@ -112,6 +112,10 @@ struct Frame<Q> {
     first: Option<Stride>,
     second: Stride,
     grandchildren: [[Q; 4]; 4],
+    /// which of the 8×8 great-grandchildren are not empty (bit 8·row +
+    /// column), for the parts' weights in the progress estimate; None
+    /// below `WEIGHED_DEPTH`, where every part weighs alike
+    occupied: Option<u64>,
     /// the second phase's squares, once made
     squares: [Q; 4],
     second_made: bool,
@@ -149,8 +153,8 @@ pub struct Walk<'n, Q> {
     waiting: HashMap<Ticket, Vec<Waiter<Q>>, ahash::RandomState>,
     /// the result, once the top is done (or while the top is one request)
     result: Option<Q>,
-    /// (parts done, parts) at each tracked depth
-    path: [(u8, u8); TRACKED_DEPTH],
+    /// the progress estimate at each tracked depth
+    path: [Share; TRACKED_DEPTH],
 }
 
 impl<'n, Q: Copy + Eq> Walk<'n, Q> {
@@ -175,7 +179,7 @@ impl<'n, Q: Copy + Eq> Walk<'n, Q> {
             runnable: Vec::new(),
             waiting: HashMap::default(),
             result: None,
-            path: [(0, 0); TRACKED_DEPTH],
+            path: [Share::default(); TRACKED_DEPTH],
         }
     }
 
@@ -245,8 +249,8 @@ impl<'n, Q: Copy + Eq> Walk<'n, Q> {
         at: u32,
         part: u8,
     ) -> Result<(), T::Error> {
-        let path = self.path;
-        tree.tick(&|| done_of(&path))?;
+        let path = &self.path;
+        tree.tick(&|| done_of(path))?;
         let frame = &self.frames[at as usize];
         let (quad, level, first, second) = (frame.quad, frame.level, frame.first, frame.second);
         let into = Some((at, part));
@@ -280,7 +284,7 @@ impl<'n, Q: Copy + Eq> Walk<'n, Q> {
                 self.frames[at as usize].parts[part as usize] = result;
                 tree.hold(result);
                 if part >= FIRST_PARTS || first.is_some() {
-                    self.part_done(depth);
+                    self.part_done(depth, part_weight(self.frames[at as usize].occupied, part));
                 }
             }
             Launched::Later | Launched::Frame => self.frames[at as usize].pending += 1,
@@ -352,12 +356,24 @@ impl<'n, Q: Copy + Eq> Walk<'n, Q> {
         }
         let (first, second) = recursion::phases(stride, self.bit(level - 3));
         let depth = frame_depth(self.top_level, level);
-        if depth < TRACKED_DEPTH {
-            self.path[depth] = (0, if first.is_some() { PARTS as u8 } else { 4 });
-            self.forget_below(depth);
-        }
         let g =
             recursion::grandchildren(tree.kids(quad, level).map(|kid| tree.kids(kid, level - 1)));
+        let occupied = (depth < WEIGHED_DEPTH).then(|| occupancy(tree, &g, level - 2));
+        if depth < TRACKED_DEPTH {
+            let counted = if first.is_some() { 0 } else { FIRST_PARTS }..PARTS as u8;
+            self.path[depth] = Share {
+                done: 0.0,
+                total: counted.map(|part| part_weight(occupied, part)).sum(),
+                current: 0.0,
+            };
+            self.forget_below(depth);
+            if let Some((parent, part)) = into
+                && depth > 0
+            {
+                self.path[depth - 1].current =
+                    part_weight(self.frames[parent as usize].occupied, part);
+            }
+        }
         let frame = Frame {
             quad,
             level,
@@ -365,6 +381,7 @@ impl<'n, Q: Copy + Eq> Walk<'n, Q> {
             first,
             second,
             grandchildren: g,
+            occupied,
             squares: [quad; 4],
             second_made: false,
             parts: [quad; PARTS],
@@ -421,12 +438,13 @@ impl<'n, Q: Copy + Eq> Walk<'n, Q> {
         let depth = frame_depth(self.top_level, frame.level);
         // Centres count for nothing in the estimate: only advanced parts.
         let counted = part >= FIRST_PARTS || frame.first.is_some();
+        let weight = part_weight(frame.occupied, part);
         if wake {
             frame.waiting = false;
             self.runnable.push(at);
         }
         if counted {
-            self.part_done(depth);
+            self.part_done(depth, weight);
         }
     }
 
@@ -437,9 +455,9 @@ impl<'n, Q: Copy + Eq> Walk<'n, Q> {
             .push(Waiter { into, memo });
     }
 
-    fn part_done(&mut self, depth: usize) {
+    fn part_done(&mut self, depth: usize, weight: f64) {
         if depth < TRACKED_DEPTH {
-            self.path[depth].0 += 1;
+            self.path[depth].done += weight;
             self.forget_below(depth);
         }
     }
@@ -448,7 +466,7 @@ impl<'n, Q: Copy + Eq> Walk<'n, Q> {
     /// is counted in (or not yet begun at) `depth`.
     fn forget_below(&mut self, depth: usize) {
         if depth + 1 < TRACKED_DEPTH {
-            self.path[depth + 1] = (0, 0);
+            self.path[depth + 1] = Share::default();
         }
     }
 
@@ -486,16 +504,153 @@ fn frame_depth(top_level: u32, level: u32) -> usize {
     (top_level - level) as usize
 }
 
-/// The share done from (done, parts) at each tracked depth.
-fn done_of(path: &[(u8, u8); TRACKED_DEPTH]) -> f64 {
+/// Frames this close to the top weigh their parts by the work they add;
+/// deeper ones (small next to their ancestors) weigh them alike.
+const WEIGHED_DEPTH: usize = 8;
+
+/// The progress of one tracked frame: the weights of its parts done, of
+/// all its counted parts, and of the part the next depth is working on.
+#[derive(Clone, Copy, Debug, Default)]
+struct Share {
+    done: f64,
+    total: f64,
+    current: f64,
+}
+
+/// Which of the 8×8 great-grandchildren (of `level` - 1) under the 4×4
+/// grandchildren `g` (of `level`) are not empty.
+fn occupancy<T: Tree>(tree: &mut T, g: &[[T::Quad; 4]; 4], level: u32) -> u64 {
+    let mut occupied = 0u64;
+    for (row, line) in g.iter().enumerate() {
+        for (column, &grandchild) in line.iter().enumerate() {
+            if tree.is_empty(grandchild, level) {
+                continue;
+            }
+            for (at, kid) in tree.kids(grandchild, level).into_iter().enumerate() {
+                if !tree.is_empty(kid, level - 1) {
+                    let (r, c) = (2 * row + at / 2, 2 * column + at % 2);
+                    occupied |= 1 << (8 * r + c);
+                }
+            }
+        }
+    }
+    occupied
+}
+
+/// The 4×4 great-grandchildren a square covers from (row, column).
+const fn square_mask(row: usize, column: usize) -> u64 {
+    let mut mask = 0u64;
+    let mut r = 0;
+    while r < 4 {
+        let mut c = 0;
+        while c < 4 {
+            mask |= 1 << (8 * (row + r) + column + c);
+            c += 1;
+        }
+        r += 1;
+    }
+    mask
+}
+
+/// What each part adds to the area the parts of its phase before it
+/// covered, in great-grandchildren: the nine first-phase squares (row by
+/// row) from (2i, 2j), the four second-phase ones from (2i+1, 2j+1). The
+/// squares overlap, and each reuses the memoised work of the overlap the
+/// ones before it computed (they run in order), so a part's work is its
+/// new area; on a pattern much smaller than the frame, the first square
+/// over it does nearly all the work, and is weighed so.
+const NEW_AREA: [u64; PARTS] = {
+    let mut new = [0u64; PARTS];
+    let mut covered = 0u64;
+    let mut part = 0;
+    while part < PARTS {
+        if part == FIRST_PARTS as usize {
+            covered = 0; // the second phase is other generations
+        }
+        let mask = if part < FIRST_PARTS as usize {
+            square_mask(2 * (part / 3), 2 * (part % 3))
+        } else {
+            let (i, j) = SECOND_PHASE[part - FIRST_PARTS as usize];
+            square_mask(2 * i + 1, 2 * j + 1)
+        };
+        new[part] = mask & !covered;
+        covered |= mask;
+        part += 1;
+    }
+    new
+};
+
+/// A part's weight in the progress estimate: the non-empty area it adds
+/// (no occupancy: every part alike), at least `LEAST_WEIGHT` so that a
+/// square over empty space, which may still hold what moved in, shows its
+/// work.
+fn part_weight(occupied: Option<u64>, part: u8) -> f64 {
+    match occupied {
+        Some(occupied) => {
+            ((NEW_AREA[part as usize] & occupied).count_ones() as f64).max(LEAST_WEIGHT)
+        }
+        None => 1.0,
+    }
+}
+
+const LEAST_WEIGHT: f64 = 1.0 / 1024.0;
+
+/// The share done from the tracked depths.
+fn done_of(path: &[Share; TRACKED_DEPTH]) -> f64 {
     let mut done = 0.0;
-    let mut weight = 1.0;
-    for &(finished, parts) in path {
-        if parts == 0 {
+    let mut scale = 1.0;
+    for share in path {
+        if share.total <= 0.0 {
             break;
         }
-        done += weight * finished as f64 / parts as f64;
-        weight /= parts as f64;
+        done += scale * share.done / share.total;
+        scale *= share.current / share.total;
     }
     done.min(1.0)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn each_phase_covers_its_area_once() {
+        // The nine first-phase squares tile the whole 8×8 grid of
+        // great-grandchildren; the four second-phase ones its centre 6×6.
+        let first = NEW_AREA[..FIRST_PARTS as usize]
+            .iter()
+            .fold(0u64, |all, new| {
+                assert_eq!(all & new, 0, "a first-phase area counted twice");
+                all | new
+            });
+        assert_eq!(first, u64::MAX);
+        let second = NEW_AREA[FIRST_PARTS as usize..]
+            .iter()
+            .fold(0u64, |all, new| {
+                assert_eq!(all & new, 0, "a second-phase area counted twice");
+                all | new
+            });
+        let centre = (1..7).flat_map(|r| (1..7).map(move |c| 1u64 << (8 * r + c)));
+        assert_eq!(second, centre.fold(0, |all, bit| all | bit));
+    }
+
+    #[test]
+    fn the_first_square_over_a_small_pattern_weighs_nearly_all() {
+        // A pattern on the four centre great-grandchildren: the first
+        // second-phase square covers it whole, so it does the work and the
+        // other three find it memoised.
+        let centre = [(3, 3), (3, 4), (4, 3), (4, 4)]
+            .iter()
+            .fold(0u64, |all, (r, c)| all | 1 << (8 * r + c));
+        let weights: Vec<f64> = (FIRST_PARTS..PARTS as u8)
+            .map(|part| part_weight(Some(centre), part))
+            .collect();
+        assert_eq!(weights[0], 4.0);
+        assert!(
+            weights[1..].iter().all(|&w| w == LEAST_WEIGHT),
+            "{weights:?}"
+        );
+        // Without occupancy every part weighs alike.
+        assert!((0..PARTS as u8).all(|part| part_weight(None, part) == 1.0));
+    }
 }
