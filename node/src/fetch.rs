@@ -63,17 +63,26 @@ pub async fn fetch_missing(
     let mut got: HashMap<ContentId, Record> = HashMap::new();
     let mut bytes = 0u64;
     let mut calls = 0u64;
-    let lacks = |ids: Vec<(ContentId, u32, Vec<String>)>| -> Result<Vec<_>, Status> {
-        let guard = shard.lock().expect("shard");
-        let shard = guard
-            .as_ref()
-            .ok_or_else(|| Status::failed_precondition("this node has not joined a job"))?;
-        Ok(ids
-            .into_iter()
-            .filter(|(id, _, _)| !shard.has(id))
-            .collect())
+    // On a blocking thread: a task may hold the shard for long, and an
+    // async worker waiting on it could not run the lease renewals.
+    let lacks = |ids: Vec<(ContentId, u32, Vec<String>)>| {
+        let shard = shard.clone();
+        async move {
+            tokio::task::spawn_blocking(move || -> Result<Vec<_>, Status> {
+                let guard = shard.lock().expect("shard");
+                let shard = guard
+                    .as_ref()
+                    .ok_or_else(|| Status::failed_precondition("this node has not joined a job"))?;
+                Ok(ids
+                    .into_iter()
+                    .filter(|(id, _, _)| !shard.has(id))
+                    .collect())
+            })
+            .await
+            .map_err(|error| Status::internal(format!("a lookup failed: {error}")))?
+        }
     };
-    let mut round = lacks(wanted)?;
+    let mut round = lacks(wanted).await?;
     let mut asked: HashSet<ContentId> = HashSet::new();
     while !round.is_empty() {
         // One batch per source list (the ids a peer is asked for together).
@@ -106,7 +115,7 @@ pub async fn fetch_missing(
                 }
             }
         }
-        round = lacks(next)?;
+        round = lacks(next).await?;
     }
     // Children first: lower levels first.
     let mut records: Vec<(ContentId, Record)> = got.into_iter().collect();

@@ -183,20 +183,22 @@ impl v1::node_server::Node for NodeService {
             .iter()
             .map(|id| wire::id_from(id))
             .collect::<Result<Vec<_>, _>>()?;
-        let guard = self.state.shard.lock().expect("shard");
-        let Some(shard) = guard.as_ref() else {
-            return Err(Status::failed_precondition(
-                "this node has not joined a job",
-            ));
-        };
-        let records = ids
-            .iter()
-            .filter_map(|id| {
-                shard
-                    .record(id)
-                    .map(|record| wire::record_to_wire(id, &record))
+        // On a blocking thread, as every use of the shard: a task may hold
+        // it for long, and a fetch waiting on an async worker would keep
+        // that worker (and the lease renewals it runs) from anything else.
+        let records = self
+            .state
+            .with_shard(move |shard| {
+                Ok(ids
+                    .iter()
+                    .filter_map(|id| {
+                        shard
+                            .record(id)
+                            .map(|record| wire::record_to_wire(id, &record))
+                    })
+                    .collect())
             })
-            .collect();
+            .await?;
         Ok(Response::new(v1::FetchReply { records }))
     }
 
