@@ -39,12 +39,21 @@ pub fn for_people(decimal: &str) -> String {
     )
 }
 
-/// A bounding box for people: `WIDTH × HEIGHT at (LEFT, TOP)`.
+/// A bounding box for people: `WIDTH × HEIGHT at (LEFT, TOP)`, a side
+/// that is a sum in parentheses so the `×` between them stays clear.
 pub fn box_for_people(left: &str, top: &str, width: &str, height: &str) -> String {
+    let side = |decimal: &str| {
+        let text = for_people(decimal);
+        if text.contains(' ') {
+            format!("({text})")
+        } else {
+            text
+        }
+    };
     format!(
         "{} × {} at ({}, {})",
-        for_people(width),
-        for_people(height),
+        side(width),
+        side(height),
         for_people(left),
         for_people(top)
     )
@@ -52,7 +61,7 @@ pub fn box_for_people(left: &str, top: &str, width: &str, height: &str) -> Strin
 
 #[cfg(test)]
 mod tests {
-    use super::for_people;
+    use super::{box_for_people, for_people};
 
     fn power(digit: char, zeros: usize, tail: &str) -> String {
         let mut text = digit.to_string() + &"0".repeat(zeros);
@@ -78,6 +87,15 @@ mod tests {
         assert_eq!(
             for_people(&format!("-{}", power('5', 30, "1"))),
             "-5×10^30 - 1"
+        );
+    }
+
+    #[test]
+    fn a_box_keeps_its_sides_apart() {
+        let far = power('2', 100, "18");
+        assert_eq!(
+            box_for_people("0", "-3", &far, "5"),
+            "(2×10^100 + 18) × 5 at (0, -3)"
         );
     }
 
