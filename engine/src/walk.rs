@@ -261,13 +261,10 @@ impl<'n, Q: Copy + Eq> Walk<'n, Q> {
             let (i, j) = (part as usize / 3, part as usize % 3);
             let four = recursion::block(&frame.grandchildren, i, j);
             match first {
-                None => match tree.centre_of_four(four, level - 2)? {
-                    Answer::Now(centre) => Launched::Now(centre),
-                    Answer::Later(ticket) => {
-                        self.wait(ticket, into, None);
-                        Launched::Later
-                    }
-                },
+                None => {
+                    let answer = tree.centre_of_four(four, level - 2)?;
+                    self.launched(answer, into, None)
+                }
                 Some(stride) => {
                     let square = match recursion::corner_child(i, j) {
                         Some(corner) => tree.kids(quad, level)[corner],
@@ -278,18 +275,41 @@ impl<'n, Q: Copy + Eq> Walk<'n, Q> {
                 }
             }
         };
-        let depth = frame_depth(self.top_level, level);
         match launched {
-            Launched::Now(result) => {
-                self.frames[at as usize].parts[part as usize] = result;
-                tree.hold(result);
-                if part >= FIRST_PARTS || first.is_some() {
-                    self.part_done(depth, part_weight(self.frames[at as usize].occupied, part));
-                }
-            }
+            Launched::Now(result) => self.part_in(tree, at, part, result),
             Launched::Later | Launched::Frame => self.frames[at as usize].pending += 1,
         }
         Ok(())
+    }
+
+    /// Part `part` of frame `at` is in: kept, held, and counted in the
+    /// progress estimate (centres count for nothing: only advanced parts).
+    fn part_in<T: Tree<Quad = Q>>(&mut self, tree: &mut T, at: u32, part: u8, result: Q) {
+        let frame = &mut self.frames[at as usize];
+        frame.parts[part as usize] = result;
+        tree.hold(result);
+        if counts(frame.first, part) {
+            let weight = part_weight(frame.occupied, part);
+            let depth = frame_depth(self.top_level, frame.level);
+            self.part_done(depth, weight);
+        }
+    }
+
+    /// An answer of the tree as a launch: now, or waited for (and then
+    /// memoised as `memo` says).
+    fn launched(
+        &mut self,
+        answer: Answer<Q>,
+        into: Option<(u32, u8)>,
+        memo: Option<(Q, u32, Stride)>,
+    ) -> Launched<Q> {
+        match answer {
+            Answer::Now(result) => Launched::Now(result),
+            Answer::Later(ticket) => {
+                self.wait(ticket, into, memo);
+                Launched::Later
+            }
+        }
     }
 
     /// The first phase of frame `at` is in: makes the four squares of the
@@ -330,29 +350,19 @@ impl<'n, Q: Copy + Eq> Walk<'n, Q> {
         if stride == Stride::Residual && self.trailing_zeros >= (level - 2) as u64 {
             // No generations at this level: only the centre.
             let kids = tree.kids(quad, level);
-            return Ok(match tree.centre_of_four(kids, level - 1)? {
-                Answer::Now(centre) => Launched::Now(centre),
-                Answer::Later(ticket) => {
-                    self.wait(ticket, into, None);
-                    Launched::Later
-                }
-            });
+            let answer = tree.centre_of_four(kids, level - 1)?;
+            return Ok(self.launched(answer, into, None));
         }
         if let Some(found) = tree.memo(quad, level, stride) {
             return Ok(Launched::Now(found));
         }
         if level <= tree.base_level() {
             let generations = self.generations(level, stride);
-            return Ok(match tree.base(quad, level, generations)? {
-                Answer::Now(result) => {
-                    tree.remember(quad, level, stride, result);
-                    Launched::Now(result)
-                }
-                Answer::Later(ticket) => {
-                    self.wait(ticket, into, Some((quad, level, stride)));
-                    Launched::Later
-                }
-            });
+            let answer = tree.base(quad, level, generations)?;
+            if let Answer::Now(result) = answer {
+                tree.remember(quad, level, stride, result);
+            }
+            return Ok(self.launched(answer, into, Some((quad, level, stride))));
         }
         let (first, second) = recursion::phases(stride, self.bit(level - 3));
         let depth = frame_depth(self.top_level, level);
@@ -360,10 +370,12 @@ impl<'n, Q: Copy + Eq> Walk<'n, Q> {
             recursion::grandchildren(tree.kids(quad, level).map(|kid| tree.kids(kid, level - 1)));
         let occupied = (depth < WEIGHED_DEPTH).then(|| occupancy(tree, &g, level - 2));
         if depth < TRACKED_DEPTH {
-            let counted = if first.is_some() { 0 } else { FIRST_PARTS }..PARTS as u8;
             self.path[depth] = Share {
                 done: 0.0,
-                total: counted.map(|part| part_weight(occupied, part)).sum(),
+                total: (0..PARTS as u8)
+                    .filter(|&part| counts(first, part))
+                    .map(|part| part_weight(occupied, part))
+                    .sum(),
                 current: 0.0,
             };
             self.forget_below(depth);
@@ -431,21 +443,12 @@ impl<'n, Q: Copy + Eq> Walk<'n, Q> {
             return;
         };
         let frame = &mut self.frames[at as usize];
-        frame.parts[part as usize] = result;
         frame.pending -= 1;
-        tree.hold(result);
-        let wake = frame.waiting && frame.pending == 0;
-        let depth = frame_depth(self.top_level, frame.level);
-        // Centres count for nothing in the estimate: only advanced parts.
-        let counted = part >= FIRST_PARTS || frame.first.is_some();
-        let weight = part_weight(frame.occupied, part);
-        if wake {
+        if frame.waiting && frame.pending == 0 {
             frame.waiting = false;
             self.runnable.push(at);
         }
-        if counted {
-            self.part_done(depth, weight);
-        }
+        self.part_in(tree, at, part, result);
     }
 
     fn wait(&mut self, ticket: Ticket, into: Option<(u32, u8)>, memo: Option<(Q, u32, Stride)>) {
@@ -502,6 +505,12 @@ enum Launched<Q> {
 
 fn frame_depth(top_level: u32, level: u32) -> usize {
     (top_level - level) as usize
+}
+
+/// Whether part `part` of a frame whose first phase is `first` counts in
+/// the progress estimate: advanced parts do, first-phase centres do not.
+fn counts(first: Option<Stride>, part: u8) -> bool {
+    part >= FIRST_PARTS || first.is_some()
 }
 
 /// Frames this close to the top weigh their parts by the work they add;
