@@ -472,6 +472,17 @@ mod tests {
         *seed
     }
 
+    /// An 8×8 grid of leaves of random cells.
+    fn random_leaves(seed: &mut u64) -> LeafGrid {
+        let mut leaves = [[0u64; 8]; 8];
+        for column in leaves.iter_mut() {
+            for leaf in column.iter_mut() {
+                *leaf = random(seed);
+            }
+        }
+        leaves
+    }
+
     const RULES: [&str; 8] = [
         "B3/S23",
         "B36/S23",
@@ -513,12 +524,7 @@ mod tests {
                     for _ in 0..4 {
                         // Leaves outside the square hold soup too: they
                         // must not reach the centre.
-                        let mut leaves = [[0u64; 8]; 8];
-                        for column in leaves.iter_mut() {
-                            for leaf in column.iter_mut() {
-                                *leaf = random(&mut seed);
-                            }
-                        }
+                        let leaves = random_leaves(&mut seed);
                         let block = block_from_leaves(&leaves, side);
                         let mut cells: Vec<Vec<bool>> = (0..side)
                             .map(|y| (0..side).map(|x| block.row(y) >> x & 1 == 1).collect())
@@ -552,12 +558,7 @@ mod tests {
         let mut seed = 0x2545_f491_4f6c_dd1du64;
         for side in [16, 32, 64] {
             for _ in 0..20 {
-                let mut leaves = [[0u64; 8]; 8];
-                for column in leaves.iter_mut() {
-                    for leaf in column.iter_mut() {
-                        *leaf = random(&mut seed);
-                    }
-                }
+                let leaves = random_leaves(&mut seed);
                 let block = block_from_leaves(&leaves, side);
                 for y in 0..side {
                     for x in 0..side {

@@ -6,30 +6,16 @@
 //! the direct stepper checks the soups cell by cell elsewhere, in
 //! direct_vs_hashlife.rs.)
 
-use deeptime_engine::pattern::{Builder, Pattern, read_pattern};
+mod common;
+
+use common::soup;
+
+use deeptime_engine::pattern::{Pattern, read_pattern};
 use deeptime_engine::rule::Rule;
 use deeptime_engine::{AdvanceError, ContentId, Universe};
 use num_bigint::BigUint;
 
 const UNLIMITED: u64 = 1 << 30;
-
-/// A seeded soup (xorshift), `side`×`side`, each cell alive with
-/// probability `density`/256.
-fn soup(seed: u64, side: u64, density: u64) -> Pattern {
-    let mut state = seed.wrapping_mul(0x9e37_79b9_7f4a_7c15) | 1;
-    let mut cells = Builder::new(UNLIMITED);
-    for y in 0..side {
-        for x in 0..side {
-            state ^= state << 13;
-            state ^= state >> 7;
-            state ^= state << 17;
-            if state % 256 < density {
-                cells.push_run(y, x, 1).unwrap();
-            }
-        }
-    }
-    cells.finish(None)
-}
 
 /// The Gosper glider gun (the usual RLE, from memory).
 const GUN: &[u8] = b"x = 36, y = 9, rule = B3/S23\n24bo$22bobo$12b2o6b2o12b2o$11bo3bo4b2o12b2o$\

@@ -2,30 +2,17 @@
 //! same answer, must agree cell by cell on every pattern (common practice:
 //! differential testing of two implementations of one specification).
 
+mod common;
+
+use common::soup;
+
 use deeptime_engine::Universe;
 use deeptime_engine::direct::Grid;
-use deeptime_engine::pattern::{Builder, Pattern, read_pattern};
+use deeptime_engine::pattern::{Pattern, read_pattern};
 use deeptime_engine::rule::Rule;
 use num_bigint::BigUint;
 
 const BUDGET: u64 = 1 << 30;
-
-/// A seeded soup (xorshift), `side`×`side` at `density`/256.
-fn soup(seed: u64, side: u64, density: u64) -> Pattern {
-    let mut state = seed.wrapping_mul(0x9e37_79b9_7f4a_7c15) | 1;
-    let mut cells = Builder::new(BUDGET);
-    for y in 0..side {
-        for x in 0..side {
-            state ^= state << 13;
-            state ^= state >> 7;
-            state ^= state << 17;
-            if state % 256 < density {
-                cells.push_run(y, x, 1).unwrap();
-            }
-        }
-    }
-    cells.finish(None)
-}
 
 fn agree(pattern: &Pattern, rule: &str, checkpoints: &[u64]) {
     let rule = Rule::parse(rule).unwrap();
