@@ -87,6 +87,7 @@ fn a_folder_that_does_not_exist_is_bad_input_for_every_reader() {
         vec!["checkpoints", "--json"],
         vec!["verify"],
         vec!["prune", "--keep", "1"],
+        vec!["snapshot", "--gen", "0"],
     ] {
         let mut args = vec![command[0], missing.to_str().unwrap()];
         args.extend(&command[1..]);

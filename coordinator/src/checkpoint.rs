@@ -15,6 +15,17 @@ use num_bigint::{BigInt, BigUint};
 use serde::{Deserialize, Serialize};
 
 use crate::failure::BadInput;
+
+/// The storage of a run that is there to read: its folder (or `s3://`
+/// URL). A local folder that does not exist is the user's mistake, not an
+/// empty run, and is not made.
+pub fn open_existing(dir: &std::path::Path) -> anyhow::Result<Box<dyn Storage>> {
+    let is_url = dir.to_string_lossy().contains("s3://");
+    if !is_url && !dir.is_dir() {
+        return Err(BadInput(format!("{}: no such folder", dir.display())).into());
+    }
+    Ok(storage::open(dir)?)
+}
 use deeptime_node::storage::{self, PackFetch, Storage, pack_key};
 
 /// The manifest format's name and version.

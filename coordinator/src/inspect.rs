@@ -8,17 +8,10 @@ use serde::Serialize;
 
 use crate::checkpoint::Checkpoints;
 use crate::cli::DirArgs;
-use crate::failure::BadInput;
 use crate::numbers::{box_for_people, for_people};
 
-/// The checkpoints of a run's folder (or `s3://` URL); a local folder that
-/// does not exist is the user's mistake, not an empty run.
 fn open(dir: &Path) -> anyhow::Result<Checkpoints> {
-    let is_url = dir.to_string_lossy().contains("s3://");
-    if !is_url && !dir.is_dir() {
-        return Err(BadInput(format!("{}: no such folder", dir.display())).into());
-    }
-    Ok(Checkpoints::new(deeptime_node::storage::open(dir)?))
+    Ok(Checkpoints::new(crate::checkpoint::open_existing(dir)?))
 }
 
 /// One checkpoint as `verify --json` reports it.

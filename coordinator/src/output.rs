@@ -7,6 +7,14 @@ use std::path::Path;
 
 use crate::failure::OutputFailed;
 
+/// The folder `out` is written in (the current one for a bare name).
+pub fn folder_of(out: &Path) -> &Path {
+    match out.parent() {
+        Some(parent) if !parent.as_os_str().is_empty() => parent,
+        _ => Path::new("."),
+    }
+}
+
 /// Writes `out` with `fill`, which gets a buffered writer. Errors from
 /// `fill` are reported as they are (they say what was wrong); errors of
 /// the file itself as "cannot write OUT".
@@ -16,11 +24,7 @@ pub fn write_whole(
 ) -> anyhow::Result<()> {
     let cannot =
         |error: std::io::Error| OutputFailed(format!("cannot write {}: {error}", out.display()));
-    let directory = match out.parent() {
-        Some(parent) if !parent.as_os_str().is_empty() => parent,
-        _ => Path::new("."),
-    };
-    let mut temporary = tempfile::NamedTempFile::new_in(directory).map_err(cannot)?;
+    let mut temporary = tempfile::NamedTempFile::new_in(folder_of(out)).map_err(cannot)?;
     {
         let mut writer = BufWriter::new(temporary.as_file_mut());
         fill(&mut writer)?;

@@ -41,7 +41,7 @@ pub fn run(args: SnapshotArgs) -> anyhow::Result<()> {
     let budget = memory::budget(args.memory.as_deref())?;
     let started = Instant::now();
     // Every byte read from the run's storage is counted, for the report.
-    let counted = Arc::new(Counting::new(deeptime_node::storage::open(&args.dir)?));
+    let counted = Arc::new(Counting::new(crate::checkpoint::open_existing(&args.dir)?));
     let checkpoints = Checkpoints::new(Box::new(counted.clone()));
     let keys = checkpoints.manifest_keys()?;
     if keys.is_empty() {
@@ -193,18 +193,8 @@ fn stops(error: &anyhow::Error) -> bool {
 /// What can be known of `--out` before any work: its kind, its folder and,
 /// for a region, its size.
 fn check_out(out: &Path, region: Option<&Region>, scale: Option<u32>) -> anyhow::Result<()> {
-    let kind = out
-        .extension()
-        .and_then(|e| e.to_str())
-        .unwrap_or("")
-        .to_ascii_lowercase();
-    if kind != "rle" && kind != "png" {
-        return Err(BadInput(format!("--out {}: write .rle or .png", out.display())).into());
-    }
-    let folder = match out.parent() {
-        Some(parent) if !parent.as_os_str().is_empty() => parent,
-        _ => Path::new("."),
-    };
+    let kind = out_kind(out)?;
+    let folder = output::folder_of(out);
     if !folder.is_dir() {
         return Err(BadInput(format!(
             "--out {}: the folder {} does not exist",
@@ -215,7 +205,7 @@ fn check_out(out: &Path, region: Option<&Region>, scale: Option<u32>) -> anyhow:
     }
     if let Some(region) = region {
         let too_wide = deeptime_engine::pattern::MAX_COORDINATE;
-        if kind == "rle" && (region.width > too_wide || region.height > too_wide) {
+        if kind == OutKind::Rle && (region.width > too_wide || region.height > too_wide) {
             return Err(BadInput(format!(
                 "--out {}: the region is {}×{} cells, too large for RLE (at most {too_wide} each way)",
                 out.display(),
@@ -224,7 +214,7 @@ fn check_out(out: &Path, region: Option<&Region>, scale: Option<u32>) -> anyhow:
             ))
             .into());
         }
-        if kind == "png"
+        if kind == OutKind::Png
             && let Some(scale) = scale
         {
             let width = BigUint::from(region.width);
@@ -234,6 +224,24 @@ fn check_out(out: &Path, region: Option<&Region>, scale: Option<u32>) -> anyhow:
         }
     }
     Ok(())
+}
+
+/// What `--out` writes, by its extension.
+#[derive(Clone, Copy, PartialEq, Eq)]
+enum OutKind {
+    Rle,
+    Png,
+}
+
+fn out_kind(out: &Path) -> Result<OutKind, BadInput> {
+    match out.extension().and_then(|e| e.to_str()) {
+        Some(e) if e.eq_ignore_ascii_case("rle") => Ok(OutKind::Rle),
+        Some(e) if e.eq_ignore_ascii_case("png") => Ok(OutKind::Png),
+        _ => Err(BadInput(format!(
+            "--out {}: write .rle or .png",
+            out.display()
+        ))),
+    }
 }
 
 /// The pixels each way of a picture of the cells from (left, top), width ×
@@ -381,13 +389,9 @@ fn write_out(
     region: Option<&Region>,
     scale: Option<u32>,
 ) -> anyhow::Result<()> {
-    let extension = out
-        .extension()
-        .and_then(|e| e.to_str())
-        .unwrap_or("")
-        .to_ascii_lowercase();
-    let written = output::write_whole(out, |writer| match extension.as_str() {
-        "rle" => match region {
+    let kind = out_kind(out)?;
+    let written = output::write_whole(out, |writer| match kind {
+        OutKind::Rle => match region {
             Some(region) => source.write_rle_region(writer, region),
             // The whole state: the region of its bounding box.
             None => match &bbox {
@@ -399,9 +403,8 @@ fn write_out(
             },
         }
         .with_context(|| format!("--out {}", out.display())),
-        "png" => draw(source, bbox, writer, region, scale)
+        OutKind::Png => draw(source, bbox, writer, region, scale)
             .with_context(|| format!("--out {}", out.display())),
-        _ => Err(BadInput(format!("--out {}: write .rle or .png", out.display())).into()),
     });
     written.map_err(|error| as_output_error(error, out))
 }
