@@ -32,6 +32,17 @@ pub struct BoxReport {
     pub height: String,
 }
 
+impl From<&deeptime_engine::BoundingBox> for BoxReport {
+    fn from(bbox: &deeptime_engine::BoundingBox) -> BoxReport {
+        BoxReport {
+            left: bbox.left.to_string(),
+            top: bbox.top.to_string(),
+            width: bbox.width.to_string(),
+            height: bbox.height.to_string(),
+        }
+    }
+}
+
 /// What the engine did to get there.
 #[derive(Serialize, Debug)]
 pub struct EngineReport {
@@ -60,12 +71,7 @@ impl Report {
         Ok(Report {
             generation: universe.generation().to_string(),
             population: universe.population().to_string(),
-            bbox: universe.bounding_box().map(|bbox| BoxReport {
-                left: bbox.left.to_string(),
-                top: bbox.top.to_string(),
-                width: bbox.width.to_string(),
-                height: bbox.height.to_string(),
-            }),
+            bbox: universe.bounding_box().as_ref().map(BoxReport::from),
             rule: universe.rule().to_string(),
             digest: digest.to_string(),
             engine: EngineReport {

@@ -13,6 +13,7 @@ pub mod render;
 pub mod rule;
 pub mod shard;
 pub mod stored;
+pub mod top;
 pub mod walk;
 
 mod advance;

@@ -80,6 +80,15 @@ pub trait Tree {
         level: u32,
     ) -> Result<Answer<Self::Quad>, Self::Error>;
 
+    /// Whether any answer may come later. Such a tree may meet a
+    /// sub-advance while an equal one is still in progress (waiting for an
+    /// answer): the walker then waits for that one instead of starting it
+    /// again, which costs a map entry per frame (a tree that answers at
+    /// once never meets one, and pays nothing).
+    fn answers_later(&self) -> bool {
+        false
+    }
+
     /// Keeps `quad` alive until released (see the trait's note).
     fn hold(&mut self, _quad: Self::Quad) {}
     /// How many quads are held: a mark to release back to.
@@ -151,13 +160,17 @@ pub struct Walk<'n, Q> {
     free: Vec<u32>,
     runnable: Vec<u32>,
     waiting: HashMap<Ticket, Vec<Waiter<Q>>, ahash::RandomState>,
+    /// the frames in progress by sub-advance, and the parts that wait for
+    /// each besides its own parent (trees that answer later only)
+    open: HashMap<(Q, Stride), u32, ahash::RandomState>,
+    followers: HashMap<u32, Vec<Option<(u32, u8)>>, ahash::RandomState>,
     /// the result, once the top is done (or while the top is one request)
     result: Option<Q>,
     /// the progress estimate at each tracked depth
     path: [Share; TRACKED_DEPTH],
 }
 
-impl<'n, Q: Copy + Eq> Walk<'n, Q> {
+impl<'n, Q: Copy + Eq + std::hash::Hash> Walk<'n, Q> {
     /// An advance by N (little-endian words) of a state whose root has
     /// level `top_level`, with N < 2^(top_level-2) for a residual root stride.
     pub fn new(steps: &'n [u64], top_level: u32) -> Walk<'n, Q> {
@@ -178,6 +191,8 @@ impl<'n, Q: Copy + Eq> Walk<'n, Q> {
             free: Vec::new(),
             runnable: Vec::new(),
             waiting: HashMap::default(),
+            open: HashMap::default(),
+            followers: HashMap::default(),
             result: None,
             path: [Share::default(); TRACKED_DEPTH],
         }
@@ -356,6 +371,12 @@ impl<'n, Q: Copy + Eq> Walk<'n, Q> {
         if let Some(found) = tree.memo(quad, level, stride) {
             return Ok(Launched::Now(found));
         }
+        if tree.answers_later()
+            && let Some(&at) = self.open.get(&(quad, stride))
+        {
+            self.followers.entry(at).or_default().push(into);
+            return Ok(Launched::Later);
+        }
         if level <= tree.base_level() {
             let generations = self.generations(level, stride);
             let answer = tree.base(quad, level, generations)?;
@@ -413,6 +434,9 @@ impl<'n, Q: Copy + Eq> Walk<'n, Q> {
                 (self.frames.len() - 1) as u32
             }
         };
+        if tree.answers_later() {
+            self.open.insert((quad, stride), at);
+        }
         self.runnable.push(at);
         Ok(Launched::Frame)
     }
@@ -432,6 +456,12 @@ impl<'n, Q: Copy + Eq> Walk<'n, Q> {
         tree.release(mark);
         tree.remember(quad, level, stride, result);
         self.free.push(at);
+        if tree.answers_later() {
+            self.open.remove(&(quad, stride));
+            for into in self.followers.remove(&at).unwrap_or_default() {
+                self.deliver(tree, into, result);
+            }
+        }
         self.deliver(tree, parent, result);
         Ok(())
     }

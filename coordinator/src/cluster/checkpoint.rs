@@ -133,7 +133,7 @@ impl Run<'_> {
         if level < self.shard_level {
             return Ok(None);
         }
-        let pieces = state.upper.lock().expect("upper").pieces(&root, level);
+        let pieces = state.top.lock().expect("top").pieces(&root, level);
         let figures = self.tasks.figures(&pieces);
         // The packs this checkpoint builds on; when its own would take the
         // list past the bound, it stands alone.
@@ -203,9 +203,9 @@ impl Run<'_> {
         }
         // The top of the tree, into the coordinator's own pack.
         let top: Vec<IdQuad> = state
-            .upper
+            .top
             .lock()
-            .expect("upper")
+            .expect("top")
             .with_populations(&root, level, &figures)
             .into_iter()
             .filter(|(quad, _)| !known.contains_key(&quad.id))
@@ -280,9 +280,9 @@ impl Run<'_> {
     /// pieces fetched from the nodes.
     async fn gather(&self, state: &OnNodes) -> anyhow::Result<Universe> {
         let pieces = state
-            .upper
+            .top
             .lock()
-            .expect("upper")
+            .expect("top")
             .pieces(&state.root, state.level);
         let rule: deeptime_engine::rule::Rule = self
             .members
@@ -300,16 +300,16 @@ impl Run<'_> {
             .map_err(|status| {
                 PiecesLost(format!("gathering a checkpoint: {}", status.message()))
             })?;
-        let upper = state.upper.clone();
+        let top = state.top.clone();
         let (root, level, generation) = (state.root, state.level, state.generation.clone());
         let budget = self.budget;
         tokio::task::block_in_place(move || {
             let mut guard = shard.lock().expect("shard");
             let shard = guard.as_mut().expect("made above");
             shard.put(&fetched.records, &[])?;
-            let upper = upper.lock().expect("upper");
+            let top = top.lock().expect("top");
             let mut lookup = |id: &ContentId| -> Option<Record> {
-                match upper.get(id) {
+                match top.get(id) {
                     Some(quad) => Some(Record::Inner {
                         level: quad.level,
                         kids: quad.kids,

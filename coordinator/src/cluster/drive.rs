@@ -11,17 +11,17 @@ use std::time::{Duration, Instant};
 
 use anyhow::Context;
 use deeptime_engine::{ContentId, KnownQuads, Universe};
-use num_bigint::{BigInt, BigUint};
+use num_bigint::BigUint;
 
 use crate::checkpoint::{Checkpoints, Manifest};
+use crate::cluster::advance::{self, Memo};
 use crate::cluster::checkpoint::Written;
 use crate::cluster::members::{Board, Members};
-use crate::cluster::recursion;
 use crate::cluster::tasks::{Dispatcher, PiecesLost};
-use crate::cluster::upper::Upper;
 use crate::job::Job;
 use crate::numbers::for_people;
 use crate::report::{BoxReport, EngineReport, Report};
+use deeptime_engine::top::Top;
 use deeptime_node::fetch::Peers;
 
 /// Everything a cluster run works with.
@@ -45,7 +45,7 @@ pub struct Run<'a> {
 
 /// The state on the nodes: the top of the tree and its root.
 pub(super) struct OnNodes {
-    pub upper: Arc<Mutex<Upper>>,
+    pub top: Arc<Mutex<Top>>,
     pub root: ContentId,
     pub level: u32,
     pub generation: BigUint,
@@ -153,9 +153,9 @@ impl Run<'_> {
         self.say("loading");
         let shard_level = self.shard_level;
         let cut = tokio::task::block_in_place(|| universe.cut(shard_level))?;
-        let mut upper = Upper::new(shard_level);
+        let mut top = Top::new(shard_level);
         for quad in &cut.upper {
-            upper.insert(*quad);
+            top.insert(*quad);
         }
         // Pieces a node still has (a coordinator started again, a roll back
         // to a state the nodes still hold) stay where they are; the rest go
@@ -204,7 +204,7 @@ impl Run<'_> {
                 .await?;
         }
         let (root, level) = (cut.root, cut.root_level);
-        let pieces = upper.pieces(&root, level);
+        let pieces = top.pieces(&root, level);
         self.tasks.retain(self.job_id, &pieces).await?;
         let population = universe.population();
         let generation = universe.generation().clone();
@@ -223,7 +223,7 @@ impl Run<'_> {
                 });
         }
         Ok(OnNodes {
-            upper: Arc::new(Mutex::new(upper)),
+            top: Arc::new(Mutex::new(top)),
             root,
             level,
             generation,
@@ -243,7 +243,7 @@ impl Run<'_> {
         let shard_level = self.shard_level;
         let mut pacer = job.wall_clock.map(crate::run::Pacer::new);
         let mut last_checkpoint = Instant::now();
-        let mut carried: Option<recursion::Carried> = None;
+        let mut memo = Memo::default();
         while state.generation < job.target {
             // As in an embedded run: stop on every multiple of `every` and
             // at the target, in steps the wall-clock pacer allows.
@@ -256,31 +256,25 @@ impl Run<'_> {
                 step = step.min(pacer.step.clone());
             }
             let stepping = Instant::now();
-            let (mut root, mut level) = (state.root, state.level);
-            {
-                let mut upper = state.upper.lock().expect("upper");
-                let bits = step.bits();
-                while !(bits <= (level as u64).saturating_sub(2)
-                    && upper.fits_centre_half(&root, level))
-                {
-                    root = upper.expand(&root, level);
-                    level += 1;
-                }
-                root = upper.expand(&root, level);
-                level += 1;
-            }
-            let advance = recursion::Advance::new(
-                self.job_id.to_string(),
-                state.upper.clone(),
-                self.tasks.clone(),
-                step.clone(),
-                carried.take(),
-            );
-            let outcome = advance.run(root, level).await;
+            let (root, level) =
+                state
+                    .top
+                    .lock()
+                    .expect("top")
+                    .grown_for(state.root, state.level, step.bits());
+            let outcome = advance::advance(
+                self.tasks,
+                self.job_id,
+                &state.top,
+                &mut memo,
+                root,
+                level,
+                &step,
+            )
+            .await;
             let root = match outcome {
                 Ok(root) => root,
                 Err(error) => {
-                    advance.abort_all();
                     if error.chain().any(|cause| cause.is::<PiecesLost>()) {
                         return Ok(Ended::Lost(error));
                     }
@@ -293,37 +287,30 @@ impl Run<'_> {
                     });
                 }
             };
-            level -= 1;
             state.generation += &step;
             let took = stepping.elapsed();
-            let finished = advance.finished();
             let kept = {
-                let mut upper = state.upper.lock().expect("upper");
-                let mut root = root;
-                while level > shard_level + 1 && upper.fits_centre_half(&root, level) {
-                    root = upper.centre(&root, level);
-                    level -= 1;
-                }
+                let mut top = state.top.lock().expect("top");
+                let (root, level) = top.shrunk(root, level - 1, shard_level + 1);
                 state.root = root;
                 state.level = level;
-                let pieces = upper.pieces(&root, level);
-                // The finished sub-advances go on to the next step (with
-                // the quads and pieces their results need), unless their
-                // pieces would more than double what the nodes hold (and
-                // are more than a few).
-                let mut roots = finished.results();
-                let carried_pieces = upper.pieces_under(&roots);
+                let pieces = top.pieces(&root, level);
+                // The memo goes on to the next step (with the quads and
+                // pieces its results need), unless its pieces would more
+                // than double what the nodes hold (and are more than a few).
+                let mut roots = memo.results();
+                let carried_pieces = top.pieces_under(&roots);
                 let extra = carried_pieces.difference(&pieces).count();
                 if extra <= pieces.len().max(MIN_CARRIED_PIECES) {
                     roots.push((root, level));
-                    upper.keep_under(&roots);
-                    carried = Some(finished);
+                    top.keep_under(&roots);
                     pieces
                         .union(&carried_pieces)
                         .copied()
                         .collect::<HashSet<ContentId>>()
                 } else {
-                    upper.keep_only(&root, level);
+                    memo.clear();
+                    top.keep_only(&root, level);
                     pieces
                 }
             };
@@ -372,16 +359,12 @@ impl Run<'_> {
     /// shard level a node finds it.
     pub(super) async fn canonical(&self, state: &OnNodes) -> anyhow::Result<(ContentId, u32)> {
         let shard_level = self.shard_level;
-        let (mut quad, mut at) = (state.root, state.level);
-        {
-            let mut upper = state.upper.lock().expect("upper");
-            while at > shard_level && upper.fits_centre_half(&quad, at) {
-                quad = upper.centre(&quad, at);
-                at -= 1;
-            }
-        }
+        let (quad, at, kids) = {
+            let mut top = state.top.lock().expect("top");
+            let (quad, at) = top.shrunk(state.root, state.level, shard_level);
+            (quad, at, top.kids(&quad, at))
+        };
         if at == shard_level {
-            let kids = state.upper.lock().expect("upper").kids(&quad, at);
             return self.tasks.describe(self.job_id, at, kids).await;
         }
         Ok((quad, at))
@@ -389,19 +372,11 @@ impl Run<'_> {
 
     /// The state's population and bounding box, from the pieces' figures.
     pub(super) fn figures(&self, state: &OnNodes) -> (BigUint, Option<BoxReport>) {
-        let (root, level) = (state.root, state.level);
-        let mut upper = state.upper.lock().expect("upper");
-        let pieces = upper.pieces(&root, level);
+        let mut top = state.top.lock().expect("top");
+        let pieces = top.pieces(&state.root, state.level);
         let figures = self.tasks.figures(&pieces);
-        let (population, extent) = upper.figures(&root, level, &figures);
-        let half = BigInt::from(BigUint::from(1u32) << (level - 1));
-        let bbox = extent.map(|[left, top, right, bottom]| BoxReport {
-            left: (BigInt::from(left.clone()) - &half).to_string(),
-            top: (BigInt::from(top.clone()) - &half).to_string(),
-            width: (right - left + 1u32).to_string(),
-            height: (bottom - top + 1u32).to_string(),
-        });
-        (population, bbox)
+        let (population, bbox) = top.bounding_box(&state.root, state.level, &figures);
+        (population, bbox.as_ref().map(BoxReport::from))
     }
 
     async fn report(&self, state: &OnNodes, started: Instant) -> anyhow::Result<Report> {

@@ -1,18 +1,17 @@
 //! `deeptime coordinator JOB.toml`: a job run on a cluster. The coordinator
 //! loads the pattern, cuts it at the shard level K, hands the pieces to the
-//! nodes that joined, and runs the engine's recursion above K with tasks on
-//! nodes as its base case (see `recursion`), one step of `checkpoint.every`
+//! nodes that joined, and runs the engine's walker above K with tasks on
+//! nodes as its base case (see `advance`), one step of `checkpoint.every`
 //! generations at a time; at the target it prints the same figures as
 //! `deeptime run`.
 
+mod advance;
 mod checkpoint;
 mod drive;
 mod members;
-mod recursion;
 mod resume;
 pub mod status;
 mod tasks;
-mod upper;
 
 use std::path::Path;
 use std::sync::{Arc, Mutex};
@@ -37,7 +36,6 @@ use crate::{input, memory};
 use members::{Board, CoordinatorService, Members, Terms};
 use tasks::Dispatcher;
 pub use tasks::NodeOutOfMemory;
-use upper::Upper;
 
 /// Shard levels chosen automatically stay in this range.
 const MIN_AUTO_SHARD_LEVEL: u32 = 8;
@@ -157,7 +155,7 @@ async fn coordinate(args: CoordinatorArgs) -> anyhow::Result<()> {
             shard_level,
         },
     ));
-    let empty_piece = Upper::new(shard_level).empty(shard_level - 1);
+    let empty_piece = deeptime_engine::top::Top::new(shard_level).empty(shard_level - 1);
     let tasks = Arc::new(Dispatcher::new(members.clone(), empty_piece));
     let board = Arc::new(Board {
         status: Mutex::new(v1::JobStatus {

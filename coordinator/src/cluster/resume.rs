@@ -27,9 +27,9 @@ use crate::checkpoint::{Checkpoints, Manifest};
 use crate::cluster::drive::{OnNodes, Run};
 use crate::cluster::members::Member;
 use crate::cluster::tasks::{NodeOutOfMemory, PiecesLost};
-use crate::cluster::upper::Upper;
 use crate::failure::BadInput;
 use crate::numbers::for_people;
+use deeptime_engine::top::Top;
 
 /// The top of a stored state, read down to its pieces.
 struct StoredTop {
@@ -217,14 +217,14 @@ impl Run<'_> {
         }
         // The ids of the top, from the pieces' up; the root's must be the
         // manifest's.
-        let mut upper = Upper::new(shard_level);
+        let mut tree = Top::new(shard_level);
         let mut ids: HashMap<QuadAt, ContentId> = HashMap::new();
         let mut known = KnownQuads::default();
         for (at, level, kids) in &top.quads {
             let mut kid_ids = [ContentId([0; 16]); 4];
             for (slot, kid) in kids.iter().enumerate() {
                 kid_ids[slot] = match kid {
-                    StoredNode::Empty => upper.empty(level - 1),
+                    StoredNode::Empty => tree.empty(level - 1),
                     StoredNode::At(kid) if *level == shard_level => {
                         placed
                             .get(kid)
@@ -237,7 +237,7 @@ impl Run<'_> {
                 };
             }
             let id = ContentId::of_inner(*level, kid_ids);
-            upper.insert(UpperQuad {
+            tree.insert(UpperQuad {
                 id,
                 level: *level,
                 kids: kid_ids,
@@ -262,7 +262,7 @@ impl Run<'_> {
         self.tasks.retain(self.job_id, &pieces).await?;
         let generation = manifest.generation()?;
         let on_nodes = OnNodes {
-            upper: Arc::new(Mutex::new(upper)),
+            top: Arc::new(Mutex::new(tree)),
             root,
             level: top.root_level,
             generation,

@@ -1,33 +1,37 @@
-//! The top of the tree: the quads of level K and up, kept by the
-//! coordinator as content ids (each with its children's ids), and the
-//! figures of a whole state computed from them and the pieces' figures.
+//! The top of a tree cut at a shard level K: the quads of level K and up as
+//! content ids (each with its children's ids) above opaque level-(K-1)
+//! pieces kept elsewhere. A cluster's coordinator advances it with the one
+//! walker ([`crate::walk`]); here is what a state's root needs besides:
+//! growing it for an advance, shrinking it after, the pieces under it, and
+//! the figures of the whole from the pieces' figures.
 
 use std::collections::{HashMap, HashSet};
 
-use deeptime_engine::ContentId;
-use deeptime_engine::cut::UpperQuad;
-use deeptime_engine::recursion;
-use deeptime_engine::shard::Figures;
-use num_bigint::BigUint;
+use crate::content_id::ContentId;
+use crate::cut::UpperQuad;
+use crate::recursion;
+use crate::shard::Figures;
+use crate::universe::BoundingBox;
+use num_bigint::{BigInt, BigUint};
 use num_traits::{One, Zero};
 
 /// Quads of level ≥ K by id; the empty quad of every level.
-pub struct Upper {
+pub struct Top {
     pub shard_level: u32,
     quads: HashMap<ContentId, UpperQuad, ahash::RandomState>,
     /// `empties[level]`: the id of the empty quad of that level (from 3)
     empties: Vec<ContentId>,
 }
 
-impl Upper {
-    pub fn new(shard_level: u32) -> Upper {
-        let mut upper = Upper {
+impl Top {
+    pub fn new(shard_level: u32) -> Top {
+        let mut top = Top {
             shard_level,
             quads: HashMap::default(),
             empties: vec![ContentId([0; 16]); 3],
         };
-        upper.empties.push(ContentId::of_leaf(0));
-        upper
+        top.empties.push(ContentId::of_leaf(0));
+        top
     }
 
     /// The id of the empty quad of `level` (≥ 3).
@@ -51,7 +55,12 @@ impl Upper {
         self.empties[level as usize]
     }
 
-    /// A quad of level ≥ K the coordinator knows.
+    /// The id of the empty quad of `level`, if made (see [`Top::empty`]).
+    pub fn known_empty(&self, level: u32) -> Option<ContentId> {
+        self.empties.get(level as usize).copied()
+    }
+
+    /// A quad of level ≥ K this tree knows.
     pub fn get(&self, id: &ContentId) -> Option<UpperQuad> {
         self.quads.get(id).copied()
     }
@@ -68,7 +77,7 @@ impl Upper {
         debug_assert_eq!(
             *id,
             self.empty(level),
-            "an upper quad the coordinator does not know"
+            "a quad of the top this tree does not know"
         );
         [self.empty(level - 1); 4]
     }
@@ -112,6 +121,50 @@ impl Upper {
             self.join(level, [se, e, e, e]),
         ];
         self.join(level + 1, kids)
+    }
+
+    /// The root to advance `root` (of `level`) by a number of generations
+    /// of `bits` binary digits, and its level: grown until the state sits in
+    /// its centre half and the stride allows the advance, then once more, so
+    /// the state sits in the centre quarter and cannot leave the result.
+    /// (The same rule as `Universe::advance`.)
+    pub fn grown_for(&mut self, root: ContentId, level: u32, bits: u64) -> (ContentId, u32) {
+        let (mut root, mut level) = (root, level);
+        while !(bits <= (level as u64).saturating_sub(2) && self.fits_centre_half(&root, level)) {
+            root = self.expand(&root, level);
+            level += 1;
+        }
+        (self.expand(&root, level), level + 1)
+    }
+
+    /// `root` (of `level`) cut down to its centre while the state fits the
+    /// centre half, down to level `lowest`.
+    pub fn shrunk(&mut self, root: ContentId, level: u32, lowest: u32) -> (ContentId, u32) {
+        let (mut root, mut level) = (root, level);
+        while level > lowest && self.fits_centre_half(&root, level) {
+            root = self.centre(&root, level);
+            level -= 1;
+        }
+        (root, level)
+    }
+
+    /// The state's bounding box, from the figures of its pieces (see
+    /// [`Top::figures`]); the root is centred on the origin.
+    pub fn bounding_box(
+        &mut self,
+        root: &ContentId,
+        level: u32,
+        pieces: &HashMap<ContentId, Figures>,
+    ) -> (BigUint, Option<BoundingBox>) {
+        let (population, extent) = self.figures(root, level, pieces);
+        let half = BigInt::from(BigUint::one() << (level - 1));
+        let bbox = extent.map(|[left, top, right, bottom]| BoundingBox {
+            width: &right - &left + 1u32,
+            height: &bottom - &top + 1u32,
+            left: BigInt::from(left) - &half,
+            top: BigInt::from(top) - &half,
+        });
+        (population, bbox)
     }
 
     /// The distinct level-(K-1) pieces under `root` (empty ones left out).
