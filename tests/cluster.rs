@@ -605,7 +605,11 @@ fn a_cluster_started_again_from_nothing_has_its_nodes_read_the_checkpoint_and_sk
 fn a_node_that_stops_answering_loses_its_lease_and_the_run_goes_on() {
     let dir = temp_dir();
     let job = long_job(dir.path());
-    let mut cluster = Cluster::start(&job, 3, &["--shard-level", "6"]);
+    let mut cluster = Cluster::start(
+        &job,
+        3,
+        &["--shard-level", "6", "--lease", "1s", "--lost-after", "3s"],
+    );
     cluster.add_nodes(3, "256MiB", &[]);
     cluster.wait_for_checkpoints(4);
     // SIGSTOP: the process stays, its connections stay open, nothing answers.
@@ -616,6 +620,37 @@ fn a_node_that_stops_answering_loses_its_lease_and_the_run_goes_on() {
     // SAFETY: as above; let it go so that it can be killed and reaped.
     unsafe { libc::kill(stopped, libc::SIGCONT) };
     assert!(stderr.contains("lost"), "{stderr}");
+    let single = leap_report(&dir.path().join("soup.rle"), "3000", "B3/S23");
+    assert_same_figures(&report, &single);
+    assert_checkpoints_hold(dir.path(), &report);
+}
+
+#[test]
+fn a_node_frozen_for_longer_than_its_lease_is_taken_back_without_a_roll_back() {
+    // A busy machine: one node stops for 4 s, four leases long. It is late
+    // (no new tasks), not lost: what it holds is waited for, and when it
+    // answers again it takes tasks as before (common practice: a slow node
+    // is not a dead node).
+    let dir = temp_dir();
+    let job = long_job(dir.path());
+    let mut cluster = Cluster::start(
+        &job,
+        3,
+        &["--shard-level", "6", "--lease", "1s", "--lost-after", "60s"],
+    );
+    cluster.add_nodes(3, "256MiB", &[]);
+    cluster.wait_for_checkpoints(3);
+    let stopped = cluster.nodes.0[2].id() as i32;
+    // SAFETY: sending signals to a child process this test started.
+    unsafe { libc::kill(stopped, libc::SIGSTOP) };
+    std::thread::sleep(std::time::Duration::from_secs(4));
+    // SAFETY: as above.
+    unsafe { libc::kill(stopped, libc::SIGCONT) };
+    let (report, stderr) = cluster.report();
+    assert!(stderr.contains("is late"), "{stderr}");
+    assert!(stderr.contains("is back after"), "{stderr}");
+    assert!(!stderr.contains(") lost: "), "{stderr}");
+    assert!(!stderr.contains("rolling back"), "{stderr}");
     let single = leap_report(&dir.path().join("soup.rle"), "3000", "B3/S23");
     assert_same_figures(&report, &single);
     assert_checkpoints_hold(dir.path(), &report);

@@ -71,6 +71,17 @@ pub struct CoordinatorArgs {
     #[arg(long)]
     pub stay: bool,
 
+    /// How long a node may go unheard before it is late: no new tasks go to
+    /// it, but what it holds stays listed and its running tasks are waited
+    /// for (e.g. 10s, 500ms)
+    #[arg(long, default_value = "10s", value_parser = humantime::parse_duration)]
+    pub lease: std::time::Duration,
+
+    /// How long a node may go unheard before it is lost: what it held is
+    /// then found elsewhere (at least the lease)
+    #[arg(long, default_value = "60s", value_parser = humantime::parse_duration)]
+    pub lost_after: std::time::Duration,
+
     #[command(flatten)]
     pub tls: TlsArgs,
 }

@@ -92,18 +92,28 @@ pub async fn run_node(config: NodeConfig) -> anyhow::Result<()> {
             let _ = tokio::signal::ctrl_c().await;
         },
     );
-    let membership = keep_membership(
-        state,
-        config.join.clone(),
-        advertise,
-        token,
-        config.tls.clone(),
-    );
+    // Renewals on a thread and runtime of their own: no task, collection
+    // or lock of this node's work can delay one.
+    let (ended, membership) = tokio::sync::oneshot::channel();
+    let join = config.join.clone();
+    let tls = config.tls.clone();
+    std::thread::Builder::new()
+        .name("membership".to_string())
+        .spawn(move || {
+            let outcome = match tokio::runtime::Builder::new_current_thread()
+                .enable_all()
+                .build()
+            {
+                Ok(runtime) => runtime
+                    .block_on(keep_membership(state, join, advertise, token, tls))
+                    .map_err(anyhow::Error::from),
+                Err(error) => Err(anyhow::anyhow!("starting the membership runtime: {error}")),
+            };
+            let _ = ended.send(outcome);
+        })?;
     tokio::select! {
         served = serving => served.map_err(|error| anyhow::anyhow!("serving: {error}")),
-        refused = membership => match refused {
-            Ok(()) => Ok(()),
-            Err(refused) => Err(refused.into()),
-        },
+        refused = membership => refused
+            .unwrap_or_else(|_| Err(anyhow::anyhow!("the membership thread stopped"))),
     }
 }

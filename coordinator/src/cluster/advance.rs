@@ -280,6 +280,8 @@ pub async fn advance(
             remote.asks.settle(ask.ticket, result);
             walk.answer(&mut remote, ask.ticket, result);
         }
-        out = walk.run(&mut remote)?;
+        // A run may take long on a deep tree: other work of this runtime
+        // moves to another thread meanwhile.
+        out = tokio::task::block_in_place(|| walk.run(&mut remote))?;
     }
 }

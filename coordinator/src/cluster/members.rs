@@ -1,5 +1,11 @@
 //! Membership: the nodes that joined, their leases and load, and the
 //! coordinator's gRPC service (join, renew, status).
+//!
+//! A node unheard for the lease is *late*: no new task goes to it, but its
+//! pieces stay listed and its running tasks are waited for (a busy or
+//! collecting node, a node frozen for a while, a slow network). Unheard
+//! for `lost_after`, or refusing connections, it is *lost*: its pieces must
+//! be found elsewhere. A late node that renews is taken back as it was.
 
 use std::sync::atomic::{AtomicBool, AtomicU64, Ordering};
 use std::sync::{Arc, Mutex, RwLock};
@@ -11,8 +17,26 @@ use deeptime_proto::v1;
 use tokio::sync::{Notify, Semaphore};
 use tonic::{Request, Response, Status};
 
-/// Nodes renew this often; three missed renewals lose the lease.
-pub const RENEW_EVERY: Duration = Duration::from_millis(500);
+/// How long nodes may go unheard: late after `lease`, lost after
+/// `lost_after` (see the module's note); nodes renew every `renew_every`.
+#[derive(Clone, Copy, Debug)]
+pub struct Leases {
+    pub renew_every: Duration,
+    pub lease: Duration,
+    pub lost_after: Duration,
+}
+
+impl Leases {
+    /// Renewals ten times a lease (at most every 2 s, at least every 50 ms),
+    /// so a few lost or delayed ones never make a node late.
+    pub fn new(lease: Duration, lost_after: Duration) -> Leases {
+        Leases {
+            renew_every: (lease / 10).clamp(Duration::from_millis(50), Duration::from_secs(2)),
+            lease,
+            lost_after,
+        }
+    }
+}
 /// Tasks a member runs at once (one computes, the others fetch).
 pub const TASKS_PER_MEMBER: usize = 3;
 
@@ -22,13 +46,16 @@ pub struct Member {
     pub client: NodeClient,
     /// false once the member is lost
     pub live: AtomicBool,
+    /// unheard for longer than the lease: no new tasks (see the module note)
+    pub late: AtomicBool,
     /// true from its first renewal: the node has taken the job's terms and
     /// can take tasks (before, a task could reach it ahead of its join reply)
     pub ready: AtomicBool,
     pub running: AtomicU64,
     pub done: AtomicU64,
     pub permits: Semaphore,
-    pub lease_until: Mutex<Instant>,
+    /// when it last renewed
+    pub heard: Mutex<Instant>,
     pub quads: AtomicU64,
     pub bytes: AtomicU64,
     /// the most bytes its store reported (renewals and retain replies)
@@ -41,13 +68,18 @@ pub struct Member {
 }
 
 impl Member {
-    /// Holds a lease and has taken the job's terms: tasks may go to it.
+    /// Holds its lease and has taken the job's terms: tasks may go to it.
     pub fn is_live(&self) -> bool {
-        self.live.load(Ordering::Relaxed) && self.ready.load(Ordering::Relaxed)
+        self.holds_lease() && self.ready.load(Ordering::Relaxed) && !self.is_late()
     }
 
-    fn holds_lease(&self) -> bool {
+    /// Not lost (live, joining or late): what it holds can still be had.
+    pub fn holds_lease(&self) -> bool {
         self.live.load(Ordering::Relaxed)
+    }
+
+    pub fn is_late(&self) -> bool {
+        self.late.load(Ordering::Relaxed)
     }
 
     /// Takes the bytes its store reports now (keeping the peak).
@@ -78,10 +110,20 @@ pub struct Members {
     token: Token,
     tls: TlsFiles,
     pub terms: Terms,
+    pub leases: Leases,
+    /// the runtime the coordinator's calls to nodes run on (membership is
+    /// served on a runtime of its own; see `cluster::serve_membership`)
+    calls: tokio::runtime::Handle,
 }
 
 impl Members {
-    pub fn new(token: Token, tls: TlsFiles, terms: Terms) -> Members {
+    pub fn new(
+        token: Token,
+        tls: TlsFiles,
+        terms: Terms,
+        leases: Leases,
+        calls: tokio::runtime::Handle,
+    ) -> Members {
         Members {
             list: RwLock::new(Vec::new()),
             // Ids start at a random point, so a node that joined a previous
@@ -91,6 +133,8 @@ impl Members {
             token,
             tls,
             terms,
+            leases,
+            calls,
         }
     }
 
@@ -101,6 +145,11 @@ impl Members {
 
     pub fn live(&self) -> Vec<Arc<Member>> {
         self.all().into_iter().filter(|m| m.is_live()).collect()
+    }
+
+    /// Members not lost (live, joining or late).
+    pub fn joined(&self) -> Vec<Arc<Member>> {
+        self.all().into_iter().filter(|m| m.holds_lease()).collect()
     }
 
     pub fn get(&self, id: u64) -> Option<Arc<Member>> {
@@ -123,7 +172,11 @@ impl Members {
     fn join(&self, request: v1::JoinRequest) -> Result<v1::JoinReply, Status> {
         let endpoint = wire::endpoint(&request.address, &self.tls)
             .map_err(|error| Status::invalid_argument(format!("address: {error}")))?;
-        let client = wire::node_client(endpoint.connect_lazy(), &self.token);
+        // The connection's worker runs where the calls are made.
+        let client = {
+            let _calls = self.calls.enter();
+            wire::node_client(endpoint.connect_lazy(), &self.token)
+        };
         let mut list = self.list.write().expect("members");
         // A node joining again from the same address replaces its old entry.
         for old in list.iter() {
@@ -138,11 +191,12 @@ impl Members {
             address: request.address.clone(),
             client,
             live: AtomicBool::new(true),
+            late: AtomicBool::new(false),
             ready: AtomicBool::new(false),
             running: AtomicU64::new(0),
             done: AtomicU64::new(0),
             permits: Semaphore::new(TASKS_PER_MEMBER),
-            lease_until: Mutex::new(Instant::now() + 3 * RENEW_EVERY),
+            heard: Mutex::new(Instant::now()),
             quads: AtomicU64::new(0),
             bytes: AtomicU64::new(0),
             peak_bytes: AtomicU64::new(0),
@@ -158,7 +212,7 @@ impl Members {
         self.changed.notify_waiters();
         Ok(v1::JoinReply {
             member: id,
-            renew_every_ms: RENEW_EVERY.as_millis() as u64,
+            renew_every_ms: self.leases.renew_every.as_millis() as u64,
             rule: self.terms.rule.clone(),
             shard_level: self.terms.shard_level,
             job: self.terms.job.clone(),
@@ -169,7 +223,27 @@ impl Members {
         let Some(member) = self.get(request.member).filter(|m| m.holds_lease()) else {
             return v1::RenewReply { member: false };
         };
-        *member.lease_until.lock().expect("lease") = Instant::now() + 3 * RENEW_EVERY;
+        let silent = {
+            let mut heard = member.heard.lock().expect("heard");
+            let silent = heard.elapsed();
+            *heard = Instant::now();
+            silent
+        };
+        if member.late.swap(false, Ordering::Relaxed) {
+            tracing::info!(
+                member = member.id,
+                address = %member.address,
+                silent_seconds = silent.as_secs_f64(),
+                "a late node answers again; it takes tasks as before"
+            );
+            eprintln!(
+                "deeptime: node {} ({}) is back after {:.1} s; it keeps what it held",
+                member.id,
+                member.address,
+                silent.as_secs_f64()
+            );
+            self.changed.notify_waiters();
+        }
         member.quads.store(request.quads, Ordering::Relaxed);
         member.report_bytes(request.bytes);
         if !member.ready.swap(true, Ordering::Relaxed) {
@@ -178,14 +252,42 @@ impl Members {
         v1::RenewReply { member: true }
     }
 
-    /// Loses the members whose lease lapsed; runs for ever.
+    /// Marks members late or lost as they go unheard; runs for ever.
+    /// A pause of the coordinator itself (a stop, a starved thread) is not
+    /// the nodes' silence: time the watch did not run is forgiven.
     pub async fn watch_leases(self: Arc<Self>) {
+        let tick = self.leases.renew_every;
+        let mut last = Instant::now();
         loop {
-            tokio::time::sleep(RENEW_EVERY).await;
+            tokio::time::sleep(tick).await;
             let now = Instant::now();
-            for member in self.all().into_iter().filter(|m| m.holds_lease()) {
-                if *member.lease_until.lock().expect("lease") < now {
-                    self.lose(&member, "its lease lapsed");
+            let stalled = (now - last).saturating_sub(tick * 2);
+            last = now;
+            for member in self.joined() {
+                let silent = {
+                    let mut heard = member.heard.lock().expect("heard");
+                    let forgiven = stalled.min(now - *heard);
+                    *heard += forgiven;
+                    now - *heard
+                };
+                if silent > self.leases.lost_after {
+                    self.lose(
+                        &member,
+                        &format!("unheard for {:.1} s", silent.as_secs_f64()),
+                    );
+                } else if silent > self.leases.lease
+                    && member.ready.load(Ordering::Relaxed)
+                    && !member.late.swap(true, Ordering::Relaxed)
+                {
+                    eprintln!(
+                        "deeptime: node {} ({}) is late (unheard for {:.1} s): no new tasks go to it; \
+                         it counts as lost after {:.0} s",
+                        member.id,
+                        member.address,
+                        silent.as_secs_f64(),
+                        self.leases.lost_after.as_secs_f64()
+                    );
+                    self.changed.notify_waiters();
                 }
             }
         }
@@ -245,6 +347,8 @@ impl v1::coordinator_server::Coordinator for CoordinatorService {
                 address: m.address.clone(),
                 state: if m.is_live() {
                     "live"
+                } else if m.is_late() && m.holds_lease() {
+                    "late"
                 } else if m.holds_lease() {
                     "joining"
                 } else {

@@ -33,7 +33,7 @@ use crate::failure::BadInput;
 use crate::job::Job;
 use crate::report::Report;
 use crate::{input, memory};
-use members::{Board, CoordinatorService, Members, Terms};
+use members::{Board, CoordinatorService, Leases, Members, Terms};
 use tasks::Dispatcher;
 pub use tasks::NodeOutOfMemory;
 
@@ -143,6 +143,14 @@ async fn coordinate(args: CoordinatorArgs) -> anyhow::Result<()> {
         }
         None => choose_shard_level(side, args.min_nodes),
     };
+    if args.lease < std::time::Duration::from_millis(100) || args.lost_after < args.lease {
+        return Err(BadInput(format!(
+            "--lease {} and --lost-after {}: give a lease of 100ms or more and a --lost-after of at least the lease",
+            humantime::format_duration(args.lease),
+            humantime::format_duration(args.lost_after)
+        ))
+        .into());
+    }
     let token = token_for_coordinator(&args.token_file)?;
     let tls = args.tls.files();
     let job_id = format!("{pattern_digest}-{rule}");
@@ -154,6 +162,8 @@ async fn coordinate(args: CoordinatorArgs) -> anyhow::Result<()> {
             rule: rule.to_string(),
             shard_level,
         },
+        Leases::new(args.lease, args.lost_after),
+        tokio::runtime::Handle::current(),
     ));
     let empty_piece = deeptime_engine::top::Top::new(shard_level).empty(shard_level - 1);
     let tasks = Arc::new(Dispatcher::new(members.clone(), empty_piece));
@@ -171,15 +181,13 @@ async fn coordinate(args: CoordinatorArgs) -> anyhow::Result<()> {
         started: Some(started),
     });
 
-    // Serve before waiting, so nodes can join.
-    let listener = tokio::net::TcpListener::bind(args.listen)
-        .await
+    // Serve before waiting, so nodes can join; on a runtime of its own, so
+    // that no work of the run (a long walk, many task replies) delays a
+    // renewal or the watch of the leases.
+    let listener = std::net::TcpListener::bind(args.listen)
+        .and_then(|listener| listener.set_nonblocking(true).map(|()| listener))
         .map_err(|error| anyhow!("cannot listen on {}: {error}", args.listen))?;
     let bound = listener.local_addr()?;
-    let (reporter, health) = tonic_health::server::health_reporter();
-    reporter
-        .set_serving::<v1::coordinator_server::CoordinatorServer<CoordinatorService>>()
-        .await;
     let service = v1::coordinator_server::CoordinatorServer::new(CoordinatorService {
         members: members.clone(),
         board: board.clone(),
@@ -192,13 +200,30 @@ async fn coordinate(args: CoordinatorArgs) -> anyhow::Result<()> {
     if let Some(config) = tls.server()? {
         builder = builder.tls_config(config)?;
     }
-    let router = builder
-        .add_service(InterceptedService::new(service, check.clone()))
-        .add_service(InterceptedService::new(health, check));
-    let server = tokio::spawn(
-        router.serve_with_incoming(TcpIncoming::from(listener).with_nodelay(Some(true))),
-    );
-    tokio::spawn(members.clone().watch_leases());
+    let membership = tokio::runtime::Builder::new_multi_thread()
+        .worker_threads(1)
+        .thread_name("membership")
+        .enable_all()
+        .build()
+        .context("starting the membership runtime")?;
+    let server = membership.spawn({
+        let members = members.clone();
+        async move {
+            let (reporter, health) = tonic_health::server::health_reporter();
+            reporter
+                .set_serving::<v1::coordinator_server::CoordinatorServer<CoordinatorService>>()
+                .await;
+            let router = builder
+                .add_service(InterceptedService::new(service, check.clone()))
+                .add_service(InterceptedService::new(health, check));
+            tokio::spawn(members.watch_leases());
+            let listener = tokio::net::TcpListener::from_std(listener)?;
+            router
+                .serve_with_incoming(TcpIncoming::from(listener).with_nodelay(Some(true)))
+                .await
+                .map_err(anyhow::Error::from)
+        }
+    });
     eprintln!(
         "deeptime: coordinating {} on {bound} (shard level {shard_level}); waiting for {} node(s)",
         job.name, args.min_nodes
@@ -285,5 +310,6 @@ async fn coordinate(args: CoordinatorArgs) -> anyhow::Result<()> {
         let _ = tokio::signal::ctrl_c().await;
     }
     server.abort();
+    membership.shutdown_background();
     outcome
 }

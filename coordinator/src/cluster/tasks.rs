@@ -26,10 +26,12 @@ const LOAD_SLACK: u64 = 2;
 /// quarter (and this floor) more bytes than the emptiest member's.
 const MEMORY_SLACK: u64 = 4;
 const MEMORY_FLOOR: u64 = 4 << 20;
-/// How long a task is retried before its input counts as lost, and the
-/// pause between tries after a failed fetch (longer than a lease lapses).
-const RETRY_FOR: Duration = Duration::from_secs(10);
+/// The pause between tries after a failed fetch. (A task is retried until
+/// a node unheard for the whole time would be lost.)
 const RETRY_PAUSE: Duration = Duration::from_millis(200);
+/// How long a node may take to answer a probe before it counts as slow
+/// (not gone): see `Dispatcher::probe`.
+const PROBE_TIMEOUT: Duration = Duration::from_secs(2);
 
 /// A node's memory budget could not hold its share of the state.
 #[derive(Debug, thiserror::Error)]
@@ -192,7 +194,8 @@ impl Dispatcher {
         }
     }
 
-    /// The addresses of live members holding each quarter, and a score per
+    /// The addresses of the members holding each quarter (live ones first,
+    /// then late ones: a late node is slow, not gone), and a score per live
     /// member: how much of the input it already holds.
     fn sources(
         &self,
@@ -209,13 +212,11 @@ impl Dispatcher {
             let holding = directory
                 .get(kid)
                 .ok_or_else(|| PiecesLost(format!("piece {} is held by no node", kid.short())))?;
-            let mut addresses = Vec::new();
-            for holder in &holding.holders {
-                if let Some(member) = self.members.get(*holder).filter(|m| m.is_live()) {
-                    addresses.push(member.address.clone());
-                    *score.entry(member.id).or_insert(0) += holding.figures.population + 1;
-                }
+            let holders = self.holders(&directory, kid);
+            for member in holders.iter().filter(|m| m.is_live()) {
+                *score.entry(member.id).or_insert(0) += holding.figures.population + 1;
             }
+            let addresses: Vec<String> = holders.iter().map(|m| m.address.clone()).collect();
             if addresses.is_empty() {
                 return Err(PiecesLost(format!(
                     "piece {} was lost with the node that held it",
@@ -229,34 +230,67 @@ impl Dispatcher {
     }
 
     /// The member a task goes to: the one holding most of its input, unless
-    /// it is much busier than the least loaded one.
-    fn place(&self, score: &HashMap<u64, u64>) -> anyhow::Result<Arc<Member>> {
-        let live = self.members.live();
-        let load = |m: &Member| m.running.load(Ordering::Relaxed);
-        let least = live
-            .iter()
-            .min_by_key(|m| (load(m), m.id))
-            .ok_or_else(|| PiecesLost("no node is live".to_string()))?;
+    /// it is much busier than the least loaded one; None when no member is
+    /// live (all late, or joining).
+    fn place(&self, score: &HashMap<u64, u64>) -> Option<Arc<Member>> {
+        // One reading of each member's figures: renewals change them.
+        let live: Vec<(Arc<Member>, u64, u64)> = self
+            .members
+            .live()
+            .into_iter()
+            .map(|m| {
+                let (load, bytes) = (
+                    m.running.load(Ordering::Relaxed),
+                    m.bytes.load(Ordering::Relaxed),
+                );
+                (m, load, bytes)
+            })
+            .collect();
+        let least = live.iter().min_by_key(|(m, load, _)| (*load, m.id))?;
         // Locality decides among the members whose stores are not much
         // fuller than the emptiest one's, so memory spreads as nodes fill.
-        let bytes = |m: &Member| m.bytes.load(Ordering::Relaxed);
-        let emptiest = live.iter().map(|m| bytes(m)).min().unwrap_or(0);
-        let roomy = |m: &Member| bytes(m) <= emptiest + emptiest / MEMORY_SLACK + MEMORY_FLOOR;
+        let emptiest = live.iter().map(|(_, _, bytes)| *bytes).min()?;
         let best = live
             .iter()
-            .filter(|m| roomy(m))
-            .max_by_key(|m| {
+            .filter(|(_, _, bytes)| *bytes <= emptiest + emptiest / MEMORY_SLACK + MEMORY_FLOOR)
+            .max_by_key(|(m, load, _)| {
                 (
                     score.get(&m.id).copied().unwrap_or(0),
-                    std::cmp::Reverse(load(m)),
+                    std::cmp::Reverse(*load),
                 )
             })
-            .expect("a live member exists");
-        if load(best) > load(least) + LOAD_SLACK {
-            Ok(least.clone())
+            .unwrap_or(least);
+        if best.1 > least.1 + LOAD_SLACK {
+            Some(least.0.clone())
         } else {
-            Ok(best.clone())
+            Some(best.0.clone())
         }
+    }
+
+    /// Waits until a member may be live again (one renews, joins or is
+    /// lost), or a renewal interval; fails when no member is left at all.
+    async fn wait_for_a_member(&self) -> anyhow::Result<()> {
+        if self.members.joined().is_empty() {
+            return Err(PiecesLost("no node is left".to_string()).into());
+        }
+        let _ = tokio::time::timeout(
+            self.members.leases.renew_every,
+            self.members.changed.notified(),
+        )
+        .await;
+        Ok(())
+    }
+
+    /// Whether `member` is gone: its address refuses connections. A node
+    /// that does not answer within `PROBE_TIMEOUT` is slow, not gone (the
+    /// lease decides); one that answers is there.
+    async fn probe(&self, member: &Member) -> bool {
+        let mut client = member.client.clone();
+        let call = client.fetch(v1::FetchRequest { ids: Vec::new() });
+        matches!(
+            tokio::time::timeout(PROBE_TIMEOUT, call).await,
+            Ok(Err(status)) if status.code() == tonic::Code::Unavailable
+        )
     }
 
     /// Advances the level-K square made of `kids` by `stride` on a node;
@@ -269,12 +303,17 @@ impl Dispatcher {
         stride: u64,
     ) -> anyhow::Result<ContentId> {
         // Tries until a member answers; a peer that failed a member's fetch
-        // is given time to lose its lease (then its pieces count as lost).
-        let give_up = std::time::Instant::now() + RETRY_FOR;
+        // is probed, and lost if it is gone; a slow one is given the time a
+        // node has before it counts as lost.
+        let leases = self.members.leases;
+        let give_up = std::time::Instant::now() + leases.lost_after + leases.lease;
         let mut last = PiecesLost("no node is live".to_string());
         while std::time::Instant::now() < give_up {
             let (sources, score) = self.sources(&kids)?;
-            let member = self.place(&score)?;
+            let Some(member) = self.place(&score) else {
+                self.wait_for_a_member().await?;
+                continue;
+            };
             let _permit = member.permits.acquire().await.expect("never closed");
             if !member.is_live() {
                 continue;
@@ -357,6 +396,11 @@ impl Dispatcher {
                         member.address,
                         status.message()
                     ));
+                    for holder in &holders {
+                        if holder.holds_lease() && self.probe(holder).await {
+                            self.members.lose(holder, "it refuses connections");
+                        }
+                    }
                     tokio::time::sleep(RETRY_PAUSE).await;
                 }
                 Err(status) => return Err(node_error(&member, status)),
@@ -370,29 +414,32 @@ impl Dispatcher {
         self.directory.lock().expect("directory").clear();
     }
 
-    /// The live members holding a piece, by the directory.
-    fn live_holders(
+    /// The members holding a piece by the directory, live ones first, then
+    /// late ones (lost ones left out).
+    fn holders(
         &self,
         directory: &HashMap<ContentId, Holding, ahash::RandomState>,
         piece: &ContentId,
     ) -> Vec<Arc<Member>> {
-        directory
+        let mut holders: Vec<Arc<Member>> = directory
             .get(piece)
             .map(|holding| {
                 holding
                     .holders
                     .iter()
-                    .filter_map(|id| self.members.get(*id).filter(|m| m.is_live()))
+                    .filter_map(|id| self.members.get(*id).filter(|m| m.holds_lease()))
                     .collect()
             })
-            .unwrap_or_default()
+            .unwrap_or_default();
+        holders.sort_by_key(|m| !m.is_live());
+        holders
     }
 
-    /// The addresses of the live members holding a piece.
+    /// The addresses of the members holding a piece (live ones first).
     pub fn holders_of(&self, piece: &ContentId) -> anyhow::Result<Vec<String>> {
         let directory = self.directory.lock().expect("directory");
         let addresses: Vec<String> = self
-            .live_holders(&directory, piece)
+            .holders(&directory, piece)
             .iter()
             .map(|m| m.address.clone())
             .collect();
@@ -409,8 +456,13 @@ impl Dispatcher {
         level: u32,
         kids: [ContentId; 4],
     ) -> anyhow::Result<(ContentId, u32)> {
-        let (sources, score) = self.sources(&kids)?;
-        let member = self.place(&score)?;
+        let (sources, member) = loop {
+            let (sources, score) = self.sources(&kids)?;
+            match self.place(&score) {
+                Some(member) => break (sources, member),
+                None => self.wait_for_a_member().await?,
+            }
+        };
         let mut client = member.client.clone();
         let reply = client.describe(v1::DescribeRequest {
             job: job.to_string(),
@@ -561,9 +613,15 @@ impl Dispatcher {
             let directory = self.directory.lock().expect("directory");
             for piece in pieces {
                 let writer = self
-                    .live_holders(&directory, piece)
+                    .holders(&directory, piece)
                     .into_iter()
-                    .min_by_key(|m| (shares.get(&m.id).map_or(0, |(_, s)| s.len()), m.id))
+                    .min_by_key(|m| {
+                        (
+                            !m.is_live(),
+                            shares.get(&m.id).map_or(0, |(_, s)| s.len()),
+                            m.id,
+                        )
+                    })
                     .ok_or_else(|| {
                         PiecesLost(format!("piece {} is on no live node", piece.short()))
                     })?;
