@@ -186,6 +186,29 @@ impl Shard {
         Ok(())
     }
 
+    /// Takes in a task's inputs (records fetched from peers, children
+    /// first) and runs `work`: the records are kept from the collector only
+    /// until `work` ends (what they make that must stay, `work` holds), so
+    /// a task's copies of its peers' quads do not pile up until the next
+    /// `retain`.
+    pub fn with_inputs<T>(
+        &mut self,
+        records: &[(ContentId, Record)],
+        work: impl FnOnce(&mut Shard) -> Result<T, ShardError>,
+    ) -> Result<T, ShardError> {
+        let base = self.store.scratch.len();
+        let outcome = records
+            .iter()
+            .try_for_each(|(claimed, record)| {
+                let handle = self.insert(claimed, record)?;
+                self.store.scratch.push(handle);
+                Ok(())
+            })
+            .and_then(|()| work(self));
+        self.store.scratch.truncate(base);
+        outcome
+    }
+
     /// Holds a quad that is here until `retain` drops it.
     pub fn hold(&mut self, id: &ContentId) -> Result<(), ShardError> {
         let &(handle, _) = self.store.by_id.get(id).ok_or(ShardError::Missing(*id))?;

@@ -140,13 +140,14 @@ impl v1::node_server::Node for NodeService {
                             prost::Message::encoded_len(&wire::record_to_wire(id, record)) as u64
                         })
                         .sum();
-                    shard.put(&fetched.records, &[])?;
-                    let (id, figures) = shard.advance(&kids, level, stride)?;
-                    Ok((id, figures, lacked))
+                    let (id, figures) = shard.with_inputs(&fetched.records, |shard| {
+                        shard.advance(&kids, level, stride)
+                    })?;
+                    Ok((id, figures, lacked, shard.stats()))
                 })
                 .await;
             match outcome {
-                Ok((id, figures, lacked)) => {
+                Ok((id, figures, lacked, stats)) => {
                     fetched_lacked_bytes += lacked;
                     self.state.tasks_done.fetch_add(1, Ordering::Relaxed);
                     return Ok(Response::new(v1::AdvanceOutcome {
@@ -158,6 +159,8 @@ impl v1::node_server::Node for NodeService {
                         compute_us: started.elapsed().as_micros() as u64,
                         fetched_lacked_bytes,
                         fetch_calls,
+                        quads: stats.quads,
+                        bytes: stats.bytes,
                     }));
                 }
                 Err(status) if status.code() == tonic::Code::NotFound && attempt < ATTEMPTS => {
@@ -296,8 +299,7 @@ impl v1::node_server::Node for NodeService {
         let (canonical, canonical_level, figures) = self
             .state
             .with_shard(move |shard| {
-                shard.put(&fetched.records, &[])?;
-                shard.describe(&kids, level)
+                shard.with_inputs(&fetched.records, |shard| shard.describe(&kids, level))
             })
             .await?;
         Ok(Response::new(v1::DescribeReply {

@@ -53,6 +53,8 @@ pub struct Member {
     pub ready: AtomicBool,
     pub running: AtomicU64,
     pub done: AtomicU64,
+    /// pieces the directory lists it as holding
+    pub pieces: AtomicU64,
     pub permits: Semaphore,
     /// when it last renewed
     pub heard: Mutex<Instant>,
@@ -195,6 +197,7 @@ impl Members {
             ready: AtomicBool::new(false),
             running: AtomicU64::new(0),
             done: AtomicU64::new(0),
+            pieces: AtomicU64::new(0),
             permits: Semaphore::new(TASKS_PER_MEMBER),
             heard: Mutex::new(Instant::now()),
             quads: AtomicU64::new(0),
@@ -337,7 +340,6 @@ impl v1::coordinator_server::Coordinator for CoordinatorService {
         status.tasks_running = counters.running;
         status.tasks_memoised = counters.memoised;
         status.bytes_fetched = counters.bytes_fetched;
-        let holds = self.tasks.holdings();
         status.members = self
             .members
             .all()
@@ -355,7 +357,7 @@ impl v1::coordinator_server::Coordinator for CoordinatorService {
                     "lost"
                 }
                 .to_string(),
-                pieces_held: holds.get(&m.id).copied().unwrap_or(0),
+                pieces_held: m.pieces.load(Ordering::Relaxed),
                 tasks_done: m.done.load(Ordering::Relaxed),
                 tasks_running: m.running.load(Ordering::Relaxed),
                 quads: m.quads.load(Ordering::Relaxed),

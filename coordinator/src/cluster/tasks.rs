@@ -160,15 +160,18 @@ impl Dispatcher {
         }
     }
 
-    /// Pieces held per member.
-    pub fn holdings(&self) -> HashMap<u64, u64> {
-        let mut out = HashMap::new();
-        for holding in self.directory.lock().expect("directory").values() {
+    /// Counts again the pieces the directory lists per member.
+    fn count_pieces(&self, directory: &HashMap<ContentId, Holding, ahash::RandomState>) {
+        let mut counts: HashMap<u64, u64> = HashMap::new();
+        for holding in directory.values() {
             for holder in &holding.holders {
-                *out.entry(*holder).or_insert(0) += 1;
+                *counts.entry(*holder).or_insert(0) += 1;
             }
         }
-        out
+        for member in self.members.all() {
+            let count = counts.get(&member.id).copied().unwrap_or(0);
+            member.pieces.store(count, Ordering::Relaxed);
+        }
     }
 
     /// The figures of the pieces named.
@@ -191,6 +194,9 @@ impl Dispatcher {
         });
         if !holding.holders.contains(&member) {
             holding.holders.push(member);
+            if let Some(member) = self.members.get(member) {
+                member.pieces.fetch_add(1, Ordering::Relaxed);
+            }
         }
     }
 
@@ -233,7 +239,8 @@ impl Dispatcher {
     /// it is much busier than the least loaded one; None when no member is
     /// live (all late, or joining).
     fn place(&self, score: &HashMap<u64, u64>) -> Option<Arc<Member>> {
-        // One reading of each member's figures: renewals change them.
+        // One reading of each member's figures (renewals and replies change
+        // them): tasks running, and store bytes as of its latest reply.
         let live: Vec<(Arc<Member>, u64, u64)> = self
             .members
             .live()
@@ -248,7 +255,10 @@ impl Dispatcher {
             .collect();
         let least = live.iter().min_by_key(|(m, load, _)| (*load, m.id))?;
         // Locality decides among the members whose stores are not much
-        // fuller than the emptiest one's, so memory spreads as nodes fill.
+        // fuller than the emptiest one's. Locality is what keeps memory
+        // even: a result made where its input lives shares the input's
+        // quads (a centre of four pieces is nearly free there), while one
+        // made elsewhere holds copies.
         let emptiest = live.iter().map(|(_, _, bytes)| *bytes).min()?;
         let best = live
             .iter()
@@ -358,6 +368,8 @@ impl Dispatcher {
                 Ok(reply) => {
                     let reply = reply.into_inner();
                     let id = wire::id_from(&reply.id)?;
+                    member.quads.store(reply.quads, Ordering::Relaxed);
+                    member.report_bytes(reply.bytes);
                     member.done.fetch_add(1, Ordering::Relaxed);
                     self.done.fetch_add(1, Ordering::Relaxed);
                     self.bytes_fetched
@@ -411,7 +423,9 @@ impl Dispatcher {
 
     /// Forgets where every piece is (before the state is loaded again).
     pub fn forget_all(&self) {
-        self.directory.lock().expect("directory").clear();
+        let mut directory = self.directory.lock().expect("directory");
+        directory.clear();
+        self.count_pieces(&directory);
     }
 
     /// The members holding a piece by the directory, live ones first, then
@@ -553,6 +567,7 @@ impl Dispatcher {
         {
             let mut directory = self.directory.lock().expect("directory");
             directory.retain(|id, _| live.contains(id));
+            self.count_pieces(&directory);
             for (id, holding) in directory.iter() {
                 for holder in &holding.holders {
                     keep.entry(*holder).or_default().push(id.0.to_vec());
