@@ -436,7 +436,9 @@ fn long_job(dir: &Path) -> PathBuf {
 }
 
 #[test]
-fn a_node_killed_mid_run_costs_a_rollback_and_the_figures_stay_the_same() {
+fn a_node_killed_mid_run_costs_only_its_pieces_and_the_figures_stay_the_same() {
+    // Its pieces are read again from the run's packs by the nodes left;
+    // the run goes on from where it was, not from a checkpoint.
     let dir = temp_dir();
     let job = long_job(dir.path());
     let mut cluster = Cluster::start(&job, 3, &["--shard-level", "6"]);
@@ -444,8 +446,34 @@ fn a_node_killed_mid_run_costs_a_rollback_and_the_figures_stay_the_same() {
     cluster.wait_for_checkpoints(4);
     cluster.kill_node(1);
     let (report, stderr) = cluster.report();
-    assert!(stderr.contains("lost"), "{stderr}");
+    assert!(stderr.contains(") lost: "), "{stderr}");
+    assert!(
+        stderr.contains("lost pieces again from the packs"),
+        "{stderr}"
+    );
+    assert!(!stderr.contains("rolling back"), "{stderr}");
+    let single = leap_report(&dir.path().join("soup.rle"), "3000", "B3/S23");
+    assert_same_figures(&report, &single);
+    assert_checkpoints_hold(dir.path(), &report);
+}
+
+#[test]
+fn a_node_killed_where_no_node_can_read_the_packs_costs_a_roll_back_that_says_why() {
+    // Nodes without --checkpoint-dir cannot read the lost pieces again:
+    // the last resort, a roll back to the newest checkpoint, with the reason.
+    let dir = temp_dir();
+    let job = long_job(dir.path());
+    let mut cluster = Cluster::start(&job, 3, &["--shard-level", "6"]);
+    cluster.node_checkpoints = None;
+    cluster.add_nodes(3, "256MiB", &[]);
+    cluster.wait_for_checkpoints(4);
+    cluster.kill_node(1);
+    let (report, stderr) = cluster.report();
     assert!(stderr.contains("rolling back"), "{stderr}");
+    assert!(
+        stderr.contains("the nodes could not read the lost pieces"),
+        "{stderr}"
+    );
     let single = leap_report(&dir.path().join("soup.rle"), "3000", "B3/S23");
     assert_same_figures(&report, &single);
     assert_checkpoints_hold(dir.path(), &report);

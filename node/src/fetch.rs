@@ -153,9 +153,8 @@ async fn fetch_batch(
                 }
                 let complete = batch.iter().all(|(id, _)| by_id.contains_key(id));
                 if !complete {
-                    last = Status::unavailable(format!(
-                        "peer {address} lacks quads it was said to hold"
-                    ));
+                    last =
+                        Status::aborted(format!("peer {address} lacks quads it was said to hold"));
                     continue;
                 }
                 for (id, _) in batch {
@@ -163,9 +162,7 @@ async fn fetch_batch(
                 }
                 return Ok((records, size));
             }
-            Err(status) => {
-                last = Status::unavailable(format!("peer {address}: {}", status.message()))
-            }
+            Err(status) => last = Status::aborted(format!("peer {address}: {}", status.message())),
         }
     }
     Err(last)

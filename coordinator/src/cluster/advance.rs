@@ -74,6 +74,12 @@ impl Memo {
     pub fn clear(&mut self) {
         self.entries.clear();
     }
+
+    /// Keeps only the entries whose result (id, level) passes `keep`.
+    pub fn forget_unless(&mut self, mut keep: impl FnMut(ContentId, u32) -> bool) {
+        self.entries
+            .retain(|_, entry| keep(entry.result, entry.level));
+    }
 }
 
 /// A task the walker asked for: advance the level-K square `square` (of

@@ -17,6 +17,7 @@ use crate::checkpoint::{Checkpoints, Manifest};
 use crate::cluster::advance::{self, Memo};
 use crate::cluster::checkpoint::Written;
 use crate::cluster::members::{Board, Members};
+use crate::cluster::recover::Recovered;
 use crate::cluster::tasks::{Dispatcher, PiecesLost};
 use crate::job::Job;
 use crate::numbers::for_people;
@@ -54,6 +55,10 @@ pub(super) struct OnNodes {
 /// Pieces the finished sub-advances of a step may keep on the nodes for the
 /// next step, beyond the state's, however small the state.
 const MIN_CARRIED_PIECES: usize = 4096;
+
+/// Times a step may lose pieces and recover them (see `recover`) before
+/// the run rolls back.
+const MAX_RECOVERIES: u32 = 3;
 
 /// How an epoch (a run from one stored state) ended.
 enum Ended {
@@ -111,6 +116,7 @@ impl Run<'_> {
                 Ok(on_nodes) => on_nodes,
                 Err(error) if error.chain().any(|cause| cause.is::<PiecesLost>()) => {
                     eprintln!("deeptime: {error:#}; loading again");
+                    self.tasks.lose_the_gone().await;
                     self.tasks.forget_all();
                     continue;
                 }
@@ -244,6 +250,8 @@ impl Run<'_> {
         let mut pacer = job.wall_clock.map(crate::run::Pacer::new);
         let mut last_checkpoint = Instant::now();
         let mut memo = Memo::default();
+        // Recoveries in the current step (see `recover`).
+        let mut recoveries = 0;
         while state.generation < job.target {
             // As in an embedded run: stop on every multiple of `every` and
             // at the target, in steps the wall-clock pacer allows.
@@ -276,7 +284,29 @@ impl Run<'_> {
                 Ok(root) => root,
                 Err(error) => {
                     if error.chain().any(|cause| cause.is::<PiecesLost>()) {
-                        return Ok(Ended::Lost(error));
+                        recoveries += 1;
+                        if recoveries > MAX_RECOVERIES {
+                            return Ok(Ended::Lost(error.context(format!(
+                                "pieces were lost {MAX_RECOVERIES} times in one step"
+                            ))));
+                        }
+                        self.say("recovering");
+                        match self
+                            .recover(&state, previous.as_ref(), known, &mut memo)
+                            .await?
+                        {
+                            Recovered::Reloaded { pieces, sequence } => {
+                                eprintln!(
+                                    "deeptime: {error:#}; read {pieces} lost pieces again from the packs of checkpoint {sequence}, and going on from generation {}",
+                                    for_people(&state.generation.to_string())
+                                );
+                                self.say("running");
+                                continue;
+                            }
+                            Recovered::No(why) => {
+                                return Ok(Ended::Lost(error.context(why)));
+                            }
+                        }
                     }
                     return Err(error).with_context(|| {
                         format!(
@@ -288,6 +318,7 @@ impl Run<'_> {
                 }
             };
             state.generation += &step;
+            recoveries = 0;
             let took = stepping.elapsed();
             let kept = {
                 let mut top = state.top.lock().expect("top");

@@ -9,6 +9,7 @@ mod advance;
 mod checkpoint;
 mod drive;
 mod members;
+mod recover;
 mod resume;
 pub mod status;
 mod tasks;

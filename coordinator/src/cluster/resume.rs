@@ -41,6 +41,24 @@ struct StoredTop {
     root_level: u32,
 }
 
+/// The packs a checkpoint needs, as a `Load` call names them.
+pub(super) fn packs_of(manifest: &Manifest) -> anyhow::Result<Vec<v1::PackWritten>> {
+    manifest
+        .packs
+        .iter()
+        .map(|entry| -> anyhow::Result<v1::PackWritten> {
+            let name: deeptime_engine::pack::Checksum = entry.name.parse()?;
+            let table: deeptime_engine::pack::Checksum = entry.table.parse()?;
+            Ok(v1::PackWritten {
+                name: name.0.to_vec(),
+                bytes: entry.bytes,
+                records: entry.records,
+                table: table.0.to_vec(),
+            })
+        })
+        .collect()
+}
+
 /// A piece read (or found held) by a member.
 struct Placed {
     id: ContentId,
@@ -146,20 +164,7 @@ impl Run<'_> {
         let Some(top) = top else {
             return Ok(None);
         };
-        let packs: Vec<v1::PackWritten> = manifest
-            .packs
-            .iter()
-            .map(|entry| -> anyhow::Result<v1::PackWritten> {
-                let name: deeptime_engine::pack::Checksum = entry.name.parse()?;
-                let table: deeptime_engine::pack::Checksum = entry.table.parse()?;
-                Ok(v1::PackWritten {
-                    name: name.0.to_vec(),
-                    bytes: entry.bytes,
-                    records: entry.records,
-                    table: table.0.to_vec(),
-                })
-            })
-            .collect::<anyhow::Result<_>>()?;
+        let packs = packs_of(manifest)?;
         let live = self.members.live();
         if live.is_empty() {
             return Err(PiecesLost("no node is live".to_string()).into());
@@ -285,7 +290,7 @@ impl Run<'_> {
 
     /// One member's `Load` of `pieces` (in batches); per piece its id and
     /// figures, or None where `held_only` found it not held.
-    async fn load_call(
+    pub(super) async fn load_call(
         &self,
         member: &Arc<Member>,
         packs: &[v1::PackWritten],

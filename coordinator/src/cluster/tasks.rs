@@ -174,6 +174,14 @@ impl Dispatcher {
         }
     }
 
+    /// Whether a member not lost holds `piece`, by the directory.
+    pub fn is_held(&self, piece: &ContentId) -> bool {
+        *piece == self.empty_piece || {
+            let directory = self.directory.lock().expect("directory");
+            !self.holders(&directory, piece).is_empty()
+        }
+    }
+
     /// The figures of the pieces named.
     pub fn figures(&self, pieces: &HashSet<ContentId>) -> HashMap<ContentId, Figures> {
         let directory = self.directory.lock().expect("directory");
@@ -291,6 +299,16 @@ impl Dispatcher {
         Ok(())
     }
 
+    /// Loses every member whose address refuses connections (after a
+    /// call failed in a way that may mean one is gone).
+    pub async fn lose_the_gone(&self) {
+        for member in self.members.joined() {
+            if self.probe(&member).await {
+                self.members.lose(&member, "it refuses connections");
+            }
+        }
+    }
+
     /// Whether `member` is gone: its address refuses connections. A node
     /// that does not answer within `PROBE_TIMEOUT` is slow, not gone (the
     /// lease decides); one that answers is there.
@@ -387,11 +405,12 @@ impl Dispatcher {
                     return Ok(id);
                 }
                 // A node that answers it has no terms (or another job's)
-                // started again behind this member's address: what the
-                // member held is gone with it.
+                // started again behind this member's address; one whose
+                // address refuses connections is gone. A call that failed
+                // otherwise (a reset, a timeout) is tried again.
                 Err(status)
-                    if wire::is_unreachable(&status)
-                        || status.code() == tonic::Code::FailedPrecondition =>
+                    if status.code() == tonic::Code::FailedPrecondition
+                        || wire::is_unreachable(&status) && self.probe(&member).await =>
                 {
                     self.members.lose(&member, status.message());
                     last = PiecesLost(format!(
@@ -400,6 +419,15 @@ impl Dispatcher {
                         member.address,
                         status.message()
                     ));
+                }
+                Err(status) if wire::is_unreachable(&status) => {
+                    last = PiecesLost(format!(
+                        "node {} ({}): {}",
+                        member.id,
+                        member.address,
+                        status.message()
+                    ));
+                    tokio::time::sleep(RETRY_PAUSE).await;
                 }
                 Err(status) if status.code() == tonic::Code::Aborted => {
                     last = PiecesLost(format!(

@@ -1,0 +1,132 @@
+//! A lost node costs what it held, not the run: the pieces of the step's
+//! starting state that no node holds any more are read again from the
+//! run's packs (which name every piece they stored by content id), the
+//! memo forgets the results that lived only on the lost node, and the step
+//! runs again; every result still held elsewhere is found in the memo, so
+//! only the lost work is done again. A roll back to the newest checkpoint
+//! stays the last resort: for a piece no pack holds (made since the last
+//! checkpoint and lost before it was stored), or nodes that cannot read
+//! the run's storage.
+
+use std::collections::HashSet;
+
+use anyhow::Context;
+use deeptime_engine::pack::QuadAt;
+use deeptime_engine::{ContentId, KnownQuads};
+
+use crate::checkpoint::Manifest;
+use crate::cluster::advance::Memo;
+use crate::cluster::drive::{OnNodes, Run};
+use crate::cluster::resume::packs_of;
+
+/// What a recovery did.
+pub(super) enum Recovered {
+    /// the pieces read again, from which checkpoint's packs
+    Reloaded { pieces: usize, sequence: u64 },
+    /// it could not: why (the run rolls back)
+    No(String),
+}
+
+impl Run<'_> {
+    /// Puts the lost pieces of `state` back on the live nodes from the
+    /// packs of `newest`, and drops what `memo` knows only from lost nodes.
+    pub(super) async fn recover(
+        &self,
+        state: &OnNodes,
+        newest: Option<&Manifest>,
+        known: &KnownQuads,
+        memo: &mut Memo,
+    ) -> anyhow::Result<Recovered> {
+        // A node that failed a call may be gone or only slow: only the
+        // gone are counted out.
+        self.tasks.lose_the_gone().await;
+        let pieces = {
+            let mut top = state.top.lock().expect("top");
+            top.pieces(&state.root, state.level)
+        };
+        let missing: Vec<ContentId> = pieces
+            .iter()
+            .filter(|piece| !self.tasks.is_held(piece))
+            .copied()
+            .collect();
+        if missing.is_empty() {
+            return Ok(Recovered::No(
+                "every piece of the state is still listed on a node".to_string(),
+            ));
+        }
+        let Some(newest) = newest else {
+            return Ok(Recovered::No("no checkpoint is stored yet".to_string()));
+        };
+        let mut at: Vec<(ContentId, QuadAt)> = Vec::with_capacity(missing.len());
+        for piece in &missing {
+            match known.get(piece) {
+                Some(place) => at.push((*piece, *place)),
+                None => {
+                    return Ok(Recovered::No(format!(
+                        "piece {} is in no pack of the run",
+                        piece.short()
+                    )));
+                }
+            }
+        }
+        let live = self.members.live();
+        if live.is_empty() {
+            return Ok(Recovered::No("no node is live".to_string()));
+        }
+        let packs = packs_of(newest)?;
+        // Runs of neighbouring pieces (in the order the state lists them),
+        // one per live node, read by the nodes in parallel.
+        let share = at.len().div_ceil(live.len());
+        let reads = live.iter().zip(at.chunks(share)).map(|(member, run)| {
+            let packs = &packs;
+            async move {
+                let places: Vec<QuadAt> = run.iter().map(|(_, place)| *place).collect();
+                let read = self.load_call(member, packs, &places, false).await?;
+                anyhow::Ok((member.id, run, read))
+            }
+        });
+        let reads = match futures::future::try_join_all(reads).await {
+            Ok(reads) => reads,
+            Err(error) => {
+                return Ok(Recovered::No(format!(
+                    "the nodes could not read the lost pieces: {error:#}"
+                )));
+            }
+        };
+        for (member, run, read) in reads {
+            for ((expected, _), got) in run.iter().zip(read) {
+                let (id, figures) = got.with_context(|| {
+                    format!("node {member} read no piece where {} was", expected.short())
+                })?;
+                if id != *expected {
+                    anyhow::bail!(
+                        "node {member} read piece {} where the run stored {} (damaged pack)",
+                        id.short(),
+                        expected.short()
+                    );
+                }
+                self.tasks.record_holding(id, member, figures);
+            }
+        }
+        // Results whose pieces went with the lost node are forgotten; what
+        // the nodes keep is the state and the memo that is left.
+        let kept = {
+            let mut top = state.top.lock().expect("top");
+            memo.forget_unless(|result, level| {
+                top.pieces_under(&[(result, level)])
+                    .iter()
+                    .all(|piece| self.tasks.is_held(piece))
+            });
+            let mut roots = memo.results();
+            roots.push((state.root, state.level));
+            top.keep_under(&roots);
+            top.pieces_under(&roots)
+        };
+        let kept: HashSet<ContentId> = kept.into_iter().collect();
+        self.tasks.retain(self.job_id, &kept).await?;
+        Ok(Recovered::Reloaded {
+            pieces: at.len(),
+            sequence: newest.sequence,
+        })
+    }
+}
