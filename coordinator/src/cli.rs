@@ -197,7 +197,7 @@ pub struct BenchArgs {
     #[arg(long, value_name = "PATH")]
     pub python: Option<PathBuf>,
 
-    /// Run one part only: reach, stepping, chaotic, numpy, checkpoints or cluster
+    /// Run one part only: reach, stepping, chaotic, numpy, checkpoints, cluster or capacity
     #[arg(long, value_name = "PART")]
     pub only: Option<String>,
 }

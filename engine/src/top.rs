@@ -248,11 +248,6 @@ impl Top {
         out
     }
 
-    /// Forgets every quad not under `root` (the memo of the last advance).
-    pub fn keep_only(&mut self, root: &ContentId, level: u32) {
-        self.keep_under(&[(*root, level)]);
-    }
-
     /// Forgets every quad not under one of `roots`.
     pub fn keep_under(&mut self, roots: &[(ContentId, u32)]) {
         let mut keep: HashSet<ContentId, ahash::RandomState> = HashSet::default();

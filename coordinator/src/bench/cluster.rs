@@ -33,28 +33,36 @@ impl Drop for Children {
 }
 
 /// One run of a job: its `--json` report and its time.
-struct Measured {
-    report: Value,
+pub(super) struct Measured {
+    pub report: Value,
     /// wall time of the process, less the wait for nodes to join
-    seconds: f64,
+    pub seconds: f64,
     /// the wait for nodes to join (cluster runs)
     waited: f64,
     /// each node's peak resident memory (VmHWM), where the system says
     resident: Vec<u64>,
     /// the coordinator's peak resident memory (its rusage at exit)
     coordinator_resident: Option<u64>,
+    /// the coordinator's exit code, and its messages
+    pub code: Option<i32>,
+    pub said: Vec<String>,
 }
 
 impl Measured {
-    fn digest(&self) -> &str {
+    /// The last few of the coordinator's messages, for an error.
+    pub fn last_lines(&self) -> String {
+        self.said[self.said.len().saturating_sub(5)..].join("; ")
+    }
+
+    pub fn digest(&self) -> &str {
         self.report["digest"].as_str().unwrap_or("")
     }
 
-    fn cluster(&self, field: &str) -> f64 {
+    pub fn cluster(&self, field: &str) -> f64 {
         self.report["cluster"][field].as_f64().unwrap_or(0.0)
     }
 
-    fn peaks(&self) -> Vec<u64> {
+    pub fn peaks(&self) -> Vec<u64> {
         self.per_node("peak_bytes")
     }
 
@@ -77,7 +85,7 @@ fn write_job(dir: &Path, name: &str, target: &str, every: &str) -> anyhow::Resul
     Ok(path)
 }
 
-fn embedded(exe: &Path, job: &Path) -> anyhow::Result<Measured> {
+pub(super) fn embedded(exe: &Path, job: &Path) -> anyhow::Result<Measured> {
     let started = Instant::now();
     let output = Command::new(exe)
         .arg("run")
@@ -99,6 +107,8 @@ fn embedded(exe: &Path, job: &Path) -> anyhow::Result<Measured> {
         waited: 0.0,
         resident: Vec::new(),
         coordinator_resident: None,
+        code: output.status.code(),
+        said: Vec::new(),
     })
 }
 
@@ -118,6 +128,60 @@ fn on_cluster(
     dir: &Path,
     checkpoint_dir: Option<&Path>,
 ) -> anyhow::Result<Measured> {
+    let run = on_nodes(
+        exe,
+        job,
+        dir,
+        &Nodes {
+            count: nodes,
+            memory: "8G",
+            shard_level,
+            checkpoint_dir,
+            coordinator_args: &[],
+            fault: None,
+        },
+    )?;
+    ensure!(
+        run.code == Some(0),
+        "the coordinator on {nodes} node(s) failed: {}",
+        run.last_lines()
+    );
+    Ok(run)
+}
+
+/// How a cluster run is set up.
+pub(super) struct Nodes<'a> {
+    pub count: usize,
+    /// each node's --memory
+    pub memory: &'a str,
+    pub shard_level: Option<u64>,
+    /// the nodes' --checkpoint-dir (the job's folder), if any
+    pub checkpoint_dir: Option<&'a Path>,
+    /// the coordinator's arguments besides the usual ones
+    pub coordinator_args: &'a [&'a str],
+    /// what happens to the second node after the first step
+    pub fault: Option<Fault>,
+}
+
+/// A fault a cluster run meets once the coordinator reports its first step.
+#[derive(Clone, Copy)]
+pub(super) enum Fault {
+    /// SIGSTOP for this long, then SIGCONT
+    Freeze(Duration),
+    /// SIGKILL
+    Kill,
+}
+
+/// Runs `job` on a coordinator and fresh nodes as `nodes` says; the run's
+/// figures whatever its exit code.
+pub(super) fn on_nodes(
+    exe: &Path,
+    job: &Path,
+    dir: &Path,
+    nodes: &Nodes<'_>,
+) -> anyhow::Result<Measured> {
+    let (shard_level, checkpoint_dir) = (nodes.shard_level, nodes.checkpoint_dir);
+    let nodes_count = nodes.count;
     let token = dir.join(format!("token-{}", rand::random::<u64>()));
     let port = free_port()?;
     let mut command = Command::new(exe);
@@ -125,7 +189,8 @@ fn on_cluster(
         .arg("coordinator")
         .arg(job)
         .args(["--listen", &format!("127.0.0.1:{port}")])
-        .args(["--min-nodes", &nodes.to_string(), "--json"])
+        .args(["--min-nodes", &nodes_count.to_string(), "--json"])
+        .args(nodes.coordinator_args)
         .arg("--token-file")
         .arg(&token);
     if let Some(level) = shard_level {
@@ -159,10 +224,10 @@ fn on_cluster(
         }
         std::thread::sleep(Duration::from_millis(10));
     }
-    for _ in 0..nodes {
+    for _ in 0..nodes_count {
         let node = Command::new(exe)
             .args(["node", "--join", &format!("http://127.0.0.1:{port}")])
-            .args(["--listen", "127.0.0.1:0", "--memory", "8G"])
+            .args(["--listen", "127.0.0.1:0", "--memory", nodes.memory])
             .arg("--token-file")
             .arg(&token)
             .args(
@@ -176,6 +241,36 @@ fn on_cluster(
             .spawn()
             .context("cannot start deeptime node")?;
         children.0.push(node);
+    }
+    if let Some(fault) = nodes.fault {
+        // After the first step's report, to the second node.
+        let deadline = Instant::now() + Duration::from_secs(600);
+        while !lines
+            .lock()
+            .expect("lines")
+            .iter()
+            .any(|(_, line)| line.starts_with("deeptime: generation"))
+        {
+            if Instant::now() > deadline || children.0[0].try_wait()?.is_some() {
+                bail!("the run ended before its first step: {}", said(&lines));
+            }
+            std::thread::sleep(Duration::from_millis(5));
+        }
+        let pid = children.0.get(2).map(|node| node.id() as i32);
+        match (fault, pid) {
+            (Fault::Freeze(time), Some(pid)) => {
+                // SAFETY: signals to a child process this part started.
+                unsafe { libc::kill(pid, libc::SIGSTOP) };
+                std::thread::sleep(time);
+                // SAFETY: as above.
+                unsafe { libc::kill(pid, libc::SIGCONT) };
+            }
+            (Fault::Kill, Some(_)) => {
+                // Killed in place; reaped with the others when the part ends.
+                children.0[2].kill()?;
+            }
+            (_, None) => bail!("a fault needs two nodes"),
+        }
     }
     let mut text = String::new();
     stdout.read_to_string(&mut text)?;
@@ -191,11 +286,6 @@ fn on_cluster(
         .collect();
     drop(children);
     let _ = reader.join();
-    ensure!(
-        status.success(),
-        "the coordinator on {nodes} node(s) failed: {}",
-        said(&lines)
-    );
     // The wait for nodes: from the coordinator's first line (it listens) to
     // the last node's join.
     let waited = {
@@ -204,18 +294,26 @@ fn on_cluster(
         let joined = lines
             .iter()
             .filter(|(_, line)| line.contains("joined"))
-            .nth(nodes - 1);
+            .nth(nodes_count - 1);
         match (first, joined) {
             (Some((from, _)), Some((to, _))) => to.duration_since(*from).as_secs_f64(),
             _ => 0.0,
         }
     };
+    let said: Vec<String> = lines
+        .lock()
+        .expect("lines")
+        .iter()
+        .map(|(_, line)| line.clone())
+        .collect();
     Ok(Measured {
-        report: serde_json::from_str(text.trim()).context("the coordinator printed no JSON")?,
+        report: serde_json::from_str(text.trim()).unwrap_or(Value::Null),
         seconds: seconds - waited,
         waited,
         resident,
         coordinator_resident,
+        code: status.code(),
+        said,
     })
 }
 

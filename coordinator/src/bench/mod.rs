@@ -3,11 +3,13 @@
 //! written as JSON with a description of the machine.
 //!
 //! The figures themselves live in `suite.rs` (the cluster's in
-//! `cluster.rs`, with real processes on loopback; the resident memory of a
+//! `cluster.rs`, with real processes on loopback, and under tight budgets
+//! and faults in `capacity.rs`; the resident memory of a
 //! child under a budget in `resident.rs`; the child processes' plumbing in
 //! `process.rs`); this file runs them, decides whether each goal is met, and
 //! reports.
 
+mod capacity;
 mod cluster;
 mod process;
 mod resident;

@@ -46,6 +46,10 @@ pub const PARTS: &[Part] = &[
         name: "cluster",
         run: super::cluster::cluster,
     },
+    Part {
+        name: "capacity",
+        run: super::capacity::capacity,
+    },
 ];
 
 /// The Gosper glider gun (the usual RLE, from memory).

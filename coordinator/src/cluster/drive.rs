@@ -264,6 +264,9 @@ impl Run<'_> {
                 step = step.min(pacer.step.clone());
             }
             let stepping = Instant::now();
+            // Kept (its top) until the step's checkpoint is stored: pieces
+            // lost before then are read again from it.
+            let start = (state.root, state.level, state.generation.clone());
             let (root, level) =
                 state
                     .top
@@ -285,27 +288,12 @@ impl Run<'_> {
                 Err(error) => {
                     if error.chain().any(|cause| cause.is::<PiecesLost>()) {
                         recoveries += 1;
-                        if recoveries > MAX_RECOVERIES {
-                            return Ok(Ended::Lost(error.context(format!(
-                                "pieces were lost {MAX_RECOVERIES} times in one step"
-                            ))));
-                        }
-                        self.say("recovering");
                         match self
-                            .recover(&state, previous.as_ref(), known, &mut memo)
+                            .recover_or_end(error, recoveries, &state, previous, known, &mut memo)
                             .await?
                         {
-                            Recovered::Reloaded { pieces, sequence } => {
-                                eprintln!(
-                                    "deeptime: {error:#}; read {pieces} lost pieces again from the packs of checkpoint {sequence}, and going on from generation {}",
-                                    for_people(&state.generation.to_string())
-                                );
-                                self.say("running");
-                                continue;
-                            }
-                            Recovered::No(why) => {
-                                return Ok(Ended::Lost(error.context(why)));
-                            }
+                            None => continue,
+                            Some(ended) => return Ok(ended),
                         }
                     }
                     return Err(error).with_context(|| {
@@ -318,7 +306,6 @@ impl Run<'_> {
                 }
             };
             state.generation += &step;
-            recoveries = 0;
             let took = stepping.elapsed();
             let kept = {
                 let mut top = state.top.lock().expect("top");
@@ -334,14 +321,14 @@ impl Run<'_> {
                 let extra = carried_pieces.difference(&pieces).count();
                 if extra <= pieces.len().max(MIN_CARRIED_PIECES) {
                     roots.push((root, level));
-                    top.keep_under(&roots);
+                    top.keep_under(&[&roots[..], &[(start.0, start.1)]].concat());
                     pieces
                         .union(&carried_pieces)
                         .copied()
                         .collect::<HashSet<ContentId>>()
                 } else {
                     memo.clear();
-                    top.keep_only(&root, level);
+                    top.keep_under(&[(root, level), (start.0, start.1)]);
                     pieces
                 }
             };
@@ -372,17 +359,61 @@ impl Run<'_> {
                 None => false,
             };
             if state.generation != stop && !due {
+                recoveries = 0;
                 continue;
             }
             match self.checkpoint(&state, checkpoints, previous, known).await {
-                Ok(()) => last_checkpoint = Instant::now(),
+                Ok(()) => {
+                    last_checkpoint = Instant::now();
+                    recoveries = 0;
+                }
                 Err(error) if error.chain().any(|cause| cause.is::<PiecesLost>()) => {
-                    return Ok(Ended::Lost(error));
+                    // The new state's lost pieces were never stored: the
+                    // step runs again from its start (stored), with what
+                    // the memo still holds.
+                    (state.root, state.level, state.generation) = start;
+                    recoveries += 1;
+                    if let Some(ended) = self
+                        .recover_or_end(error, recoveries, &state, previous, known, &mut memo)
+                        .await?
+                    {
+                        return Ok(ended);
+                    }
                 }
                 Err(error) => return Err(error),
             }
         }
         Ok(Ended::Target(state))
+    }
+
+    /// After pieces were lost: puts the lost pieces of `state` back (see
+    /// `recover`) and says to go on (None), or how the epoch ends.
+    async fn recover_or_end(
+        &self,
+        error: anyhow::Error,
+        recoveries: u32,
+        state: &OnNodes,
+        previous: &Option<Manifest>,
+        known: &KnownQuads,
+        memo: &mut Memo,
+    ) -> anyhow::Result<Option<Ended>> {
+        if recoveries > MAX_RECOVERIES {
+            return Ok(Some(Ended::Lost(error.context(format!(
+                "pieces were lost {MAX_RECOVERIES} times in one step"
+            )))));
+        }
+        self.say("recovering");
+        match self.recover(state, previous.as_ref(), known, memo).await? {
+            Recovered::Reloaded { pieces, sequence } => {
+                eprintln!(
+                    "deeptime: {error:#}; read {pieces} lost pieces again from the packs of checkpoint {sequence}, and going on from generation {}",
+                    for_people(&state.generation.to_string())
+                );
+                self.say("running");
+                Ok(None)
+            }
+            Recovered::No(why) => Ok(Some(Ended::Lost(error.context(why)))),
+        }
     }
 
     /// The canonical root of the state (the smallest centred quad holding

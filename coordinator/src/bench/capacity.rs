@@ -1,0 +1,314 @@
+//! The cluster where it is needed: real processes on loopback under tight
+//! budgets, with more processes than cores, and with a node frozen or
+//! killed mid-run, each against `deeptime run` of the same job measured in
+//! the same part. Every cluster run's digest is checked equal to the
+//! embedded run's before a figure is reported.
+
+use std::path::{Path, PathBuf};
+use std::time::Duration;
+
+use anyhow::ensure;
+use deeptime_engine::rule::Rule;
+
+use super::cluster::{Fault, Measured, Nodes, embedded, on_nodes};
+use super::suite::{soup, write_rle};
+use super::{Figure, Goal, Settings, process};
+
+/// A job over `pattern` (in `dir`) to `target`, a checkpoint every `every`,
+/// with `memory` for the embedded run.
+fn job(
+    dir: &Path,
+    name: &str,
+    pattern: &str,
+    target: &str,
+    every: &str,
+    memory: Option<&str>,
+) -> anyhow::Result<PathBuf> {
+    let path = dir.join(format!("{name}.toml"));
+    let memory = memory
+        .map(|m| format!("memory = \"{m}\"\n"))
+        .unwrap_or_default();
+    std::fs::write(
+        &path,
+        format!(
+            "version = 1\nname = \"{name}\"\npattern = \"{pattern}\"\ntarget = \"{target}\"\n{memory}\n\
+             [checkpoint]\ndir = \"runs/{name}\"\nevery = \"{every}\"\n"
+        ),
+    )?;
+    Ok(path)
+}
+
+/// Checks a cluster run ended well with the embedded digest.
+fn same(cluster: &Measured, alone: &Measured, what: &str) -> anyhow::Result<()> {
+    ensure!(
+        cluster.code == Some(0),
+        "{what}: the coordinator failed: {}",
+        cluster.last_lines()
+    );
+    ensure!(
+        cluster.digest() == alone.digest(),
+        "{what}: digest {} against the embedded run's {}",
+        cluster.digest(),
+        alone.digest()
+    );
+    Ok(())
+}
+
+/// Checks two embedded runs agree.
+fn same_digest(one: &Measured, other: &Measured) -> anyhow::Result<()> {
+    ensure!(
+        one.digest() == other.digest(),
+        "embedded runs disagree: {} and {}",
+        one.digest(),
+        other.digest()
+    );
+    Ok(())
+}
+
+/// The bytes a node counted live when it ran out of memory ("at least
+/// 4.9 MiB of quads are live"), from the coordinator's message.
+fn live_when_out(run: &Measured) -> Option<f64> {
+    let line = run
+        .said
+        .iter()
+        .find(|line| line.contains("ran out of memory"))?;
+    let after = &line[line.find("at least ")? + "at least ".len()..];
+    let mut words = after.split_whitespace();
+    let number: f64 = words.next()?.parse().ok()?;
+    let unit = match words.next()? {
+        "B" => 1.0,
+        "KiB" => 1024.0,
+        "MiB" => 1024.0 * 1024.0,
+        "GiB" => 1024.0 * 1024.0 * 1024.0,
+        _ => return None,
+    };
+    Some(number * unit)
+}
+
+/// What a run says about faults: roll backs, pieces read again, late nodes.
+fn faults(run: &Measured) -> String {
+    let count = |text: &str| run.said.iter().filter(|l| l.contains(text)).count();
+    let why = run
+        .said
+        .iter()
+        .find(|l| l.contains("rolling back"))
+        .map(|l| format!(" (the first: {l})"))
+        .unwrap_or_default();
+    format!(
+        "{} roll backs{why}, {} recoveries from packs, {} late, {} lost",
+        count("rolling back"),
+        count("lost pieces again"),
+        count("is late"),
+        count(") lost: ")
+    )
+}
+
+pub fn capacity(settings: &Settings) -> anyhow::Result<Vec<Figure>> {
+    let (side, target) = if settings.quick {
+        (512u64, "512")
+    } else {
+        (2048, "4096")
+    };
+    let directory = tempfile::tempdir()?;
+    let dir = directory.path();
+    let exe = process::this_executable(dir)?;
+    write_rle(&soup(side, 1)?, Rule::LIFE, &dir.join("soup.rle"))?;
+    let label = format!("{side}² soup to {target}");
+    let mut figures = Vec::new();
+    let checkpoints_of = |name: &str| dir.join(format!("runs/{name}"));
+
+    // Tight budgets: 2 nodes of 32 MiB against one process of 32 MiB;
+    // 4 nodes of 64 MiB (five processes on this machine's cores) against
+    // one process without a budget.
+    let unlimited = embedded(&exe, &job(dir, "alone", "soup.rle", target, target, None)?)?;
+    for (nodes, memory, against) in [(2usize, "32MiB", Some("32MiB")), (4, "64MiB", None)] {
+        let tight;
+        let alone = match against {
+            Some(memory) => {
+                tight = embedded(
+                    &exe,
+                    &job(dir, "alone-tight", "soup.rle", target, target, Some(memory))?,
+                )?;
+                same_digest(&tight, &unlimited)?;
+                &tight
+            }
+            None => &unlimited,
+        };
+        let name = format!("tight-{nodes}");
+        let run = on_nodes(
+            &exe,
+            &job(dir, &name, "soup.rle", target, target, None)?,
+            dir,
+            &Nodes {
+                count: nodes,
+                memory,
+                shard_level: None,
+                checkpoint_dir: Some(&checkpoints_of(&name)),
+                coordinator_args: &[],
+                fault: None,
+            },
+        )?;
+        same(&run, &unlimited, &name)?;
+        let against = against.unwrap_or("unlimited");
+        figures.push(
+            Figure::new(
+                "capacity",
+                &format!("{label}, {nodes} nodes × {memory} / embedded {against}: time"),
+                run.seconds / alone.seconds,
+                "×",
+                Some(Goal::AtMost(if nodes == 2 { 1.0 } else { 1.5 })),
+            )
+            .detail(format!(
+                "cluster {:.2} s, embedded {:.2} s; store peaks {:?}; {}",
+                run.seconds,
+                alone.seconds,
+                run.peaks(),
+                faults(&run)
+            )),
+        );
+    }
+
+    // A state whose live quads are several times one node's budget (a
+    // 2048² soup, quick or not: a few seconds): one node alone must stop
+    // with exit 3, four of the same size finish.
+    let budget = "4MiB";
+    let (big_target, big_every) = ("32", "16");
+    if side != 2048 {
+        write_rle(&soup(2048, 1)?, Rule::LIFE, &dir.join("big.rle"))?;
+    }
+    let big_pattern = if side == 2048 { "soup.rle" } else { "big.rle" };
+    let big_alone = embedded(
+        &exe,
+        &job(dir, "big-alone", big_pattern, big_target, big_every, None)?,
+    )?;
+    let mut outcomes = Vec::new();
+    for nodes in [1usize, 4] {
+        let name = format!("big-{nodes}");
+        let run = on_nodes(
+            &exe,
+            &job(dir, &name, big_pattern, big_target, big_every, None)?,
+            dir,
+            &Nodes {
+                count: nodes,
+                memory: budget,
+                shard_level: Some(8),
+                checkpoint_dir: Some(&checkpoints_of(&name)),
+                coordinator_args: &[],
+                fault: None,
+            },
+        )?;
+        outcomes.push(run);
+    }
+    ensure!(
+        outcomes[0].code == Some(3),
+        "one node of {budget} should run out (exit 3), it ended with {:?}: {}",
+        outcomes[0].code,
+        outcomes[0].last_lines()
+    );
+    same(&outcomes[1], &big_alone, "four small nodes")?;
+    let live = live_when_out(&outcomes[0]).unwrap_or(0.0);
+    figures.push(
+        Figure::new(
+            "capacity",
+            &format!("2048² soup to {big_target}: live bytes / one node's {budget}"),
+            live / crate::memory::budget(Some(budget))? as f64,
+            "×",
+            Some(Goal::AtLeast(3.0)),
+        )
+        .detail(format!(
+            "live: the lone node's own count when it ran out (exit 3); four nodes: the \
+             embedded digest in {:.2} s, store peaks {:?}",
+            outcomes[1].seconds,
+            outcomes[1].peaks()
+        )),
+    );
+
+    // Deep jumps: the lighthouse to 10^1000 in 10 steps.
+    let lighthouse = Path::new(env!("CARGO_MANIFEST_DIR")).join("../demo-jobs/lighthouse.rle");
+    std::fs::copy(&lighthouse, dir.join("lighthouse.rle"))?;
+    let (far, far_every) = if settings.quick {
+        ("10^100", "10^99")
+    } else {
+        ("10^1000", "10^999")
+    };
+    let deep_alone = embedded(
+        &exe,
+        &job(dir, "deep-alone", "lighthouse.rle", far, far_every, None)?,
+    )?;
+    let deep = on_nodes(
+        &exe,
+        &job(dir, "deep", "lighthouse.rle", far, far_every, None)?,
+        dir,
+        &Nodes {
+            count: 2,
+            memory: "1GiB",
+            shard_level: None,
+            checkpoint_dir: Some(&checkpoints_of("deep")),
+            coordinator_args: &[],
+            fault: None,
+        },
+    )?;
+    same(&deep, &deep_alone, "lighthouse")?;
+    figures.push(
+        Figure::new(
+            "capacity",
+            &format!("lighthouse to {far} in 10 steps, 2 nodes / embedded: time"),
+            deep.seconds / deep_alone.seconds,
+            "×",
+            Some(Goal::AtMost(2.0)),
+        )
+        .detail(format!(
+            "cluster {:.2} s, embedded {:.2} s; {} tasks",
+            deep.seconds,
+            deep_alone.seconds,
+            deep.cluster("tasks")
+        )),
+    );
+
+    // Faults: a node frozen for 5 s, a node killed, after the first step.
+    let fault_every = if settings.quick { "64" } else { "256" };
+    let fault_alone = embedded(
+        &exe,
+        &job(dir, "fault-alone", "soup.rle", target, fault_every, None)?,
+    )?;
+    for (name, fault) in [
+        ("frozen", Fault::Freeze(Duration::from_secs(5))),
+        ("killed", Fault::Kill),
+    ] {
+        let run = on_nodes(
+            &exe,
+            &job(dir, name, "soup.rle", target, fault_every, None)?,
+            dir,
+            &Nodes {
+                count: 3,
+                memory: "1GiB",
+                shard_level: None,
+                checkpoint_dir: Some(&checkpoints_of(name)),
+                coordinator_args: &[],
+                fault: Some(fault),
+            },
+        )?;
+        same(&run, &fault_alone, name)?;
+        let rollbacks = run
+            .said
+            .iter()
+            .filter(|l| l.contains("rolling back"))
+            .count();
+        figures.push(
+            Figure::new(
+                "capacity",
+                &format!("{label}, 3 nodes, one {name} after a step: roll backs"),
+                rollbacks as f64,
+                "",
+                Some(Goal::AtMost(0.0)),
+            )
+            .detail(format!(
+                "cluster {:.2} s, embedded {:.2} s; {}",
+                run.seconds,
+                fault_alone.seconds,
+                faults(&run)
+            )),
+        );
+    }
+    Ok(figures)
+}
