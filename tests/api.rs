@@ -241,8 +241,8 @@ fn a_python_client_reads_the_same_status_as_deeptime_and_wrong_tokens_change_not
         );
     }
 
-    // Members' quads and bytes come from their lease renewals (every 500
-    // ms, members.rs), so wait until renewals have reported and nothing
+    // Members' quads and bytes come from their lease renewals (a tenth of
+    // the lease, members.rs), so wait until renewals have reported and nothing
     // moves any more; from then on a status call must see the same figures.
     let before = settled_status(url, &token);
     let client = json_of(&run_client(&[
