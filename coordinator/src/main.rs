@@ -28,16 +28,20 @@ use clap::Parser;
 use crate::cli::{Cli, Command};
 
 fn main() -> ExitCode {
+    let cli = Cli::parse();
     // Output piped into `head` and the like: end quietly when the reader
     // goes away, as command-line tools do, rather than fail on a write.
+    // Not the cluster's servers: a write to a peer that died must be an
+    // error on that connection, never the end of the process.
     #[cfg(unix)]
-    // SAFETY: restoring the default disposition of SIGPIPE at start-up,
-    // before any thread exists, is what a C program starts with.
-    unsafe {
-        libc::signal(libc::SIGPIPE, libc::SIG_DFL);
+    if !matches!(cli.command, Command::Coordinator(_) | Command::Node(_)) {
+        // SAFETY: restoring the default disposition of SIGPIPE at start-up,
+        // before any thread exists, is what a C program starts with.
+        unsafe {
+            libc::signal(libc::SIGPIPE, libc::SIG_DFL);
+        }
     }
     memory::return_large_blocks();
-    let cli = Cli::parse();
     let outcome = match cli.command {
         Command::Leap(args) => leap::run(args),
         Command::Run(args) => run::run(args),
