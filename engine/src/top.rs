@@ -6,6 +6,7 @@
 //! the figures of the whole from the pieces' figures.
 
 use std::collections::{HashMap, HashSet};
+use std::sync::Arc;
 
 use crate::content_id::ContentId;
 use crate::cut::UpperQuad;
@@ -15,20 +16,52 @@ use crate::universe::BoundingBox;
 use num_bigint::{BigInt, BigUint};
 use num_traits::{One, Zero};
 
-/// Quads of level ≥ K by id; the empty quad of every level.
+/// A quad of the top, as the walker sees it: a handle into the arena.
+/// Stable while the quad is kept (see [`Top::keep_under`]).
+#[derive(Clone, Copy, PartialEq, Eq, Hash, Debug)]
+pub struct Quad(u32);
+
+/// No child: a piece's (its quads live on the nodes), or a quad named
+/// before its children were told (see [`Top::insert`]).
+const NONE: u32 = u32::MAX;
+
+/// One quad of the arena.
+#[derive(Clone, Copy)]
+struct Slot {
+    id: ContentId,
+    level: u32,
+    kids: [u32; 4],
+}
+
+/// The quads of level ≥ K - 1 in an arena, found by content id and, for
+/// quads above the pieces, by their children's handles (hash-consing), so
+/// the walker joins and descends without hashing content; the empty quad
+/// of every level.
 pub struct Top {
     pub shard_level: u32,
-    quads: HashMap<ContentId, UpperQuad, ahash::RandomState>,
+    slots: Vec<Slot>,
+    free: Vec<u32>,
+    by_id: HashMap<ContentId, u32, ahash::RandomState>,
+    by_kids: HashMap<[u32; 4], u32, ahash::RandomState>,
     /// `empties[level]`: the id of the empty quad of that level (from 3)
     empties: Vec<ContentId>,
+    /// each quad's figures once folded (see [`Top::figures`]), by slot
+    figured: Vec<Option<Arc<Folded>>>,
 }
+
+/// A quad's population and extent (see [`Top::figures`]).
+type Folded = (BigUint, Option<[BigUint; 4]>);
 
 impl Top {
     pub fn new(shard_level: u32) -> Top {
         let mut top = Top {
             shard_level,
-            quads: HashMap::default(),
+            slots: Vec::new(),
+            free: Vec::new(),
+            by_id: HashMap::default(),
+            by_kids: HashMap::default(),
             empties: vec![ContentId([0; 16]); 3],
+            figured: Vec::new(),
         };
         top.empties.push(ContentId::of_leaf(0));
         top
@@ -40,17 +73,13 @@ impl Top {
             let at = self.empties.len() as u32;
             let below = *self.empties.last().expect("the leaf level is there");
             let id = ContentId::of_inner(at, [below; 4]);
-            if at >= self.shard_level {
-                self.quads.insert(
-                    id,
-                    UpperQuad {
-                        id,
-                        level: at,
-                        kids: [below; 4],
-                    },
-                );
-            }
             self.empties.push(id);
+            if at + 1 == self.shard_level {
+                self.piece(id);
+            } else if at >= self.shard_level {
+                let kid = self.by_id[&below];
+                self.make(id, at, [kid; 4]);
+            }
         }
         self.empties[level as usize]
     }
@@ -60,19 +89,111 @@ impl Top {
         self.empties.get(level as usize).copied()
     }
 
-    /// A quad of level ≥ K this tree knows.
-    pub fn get(&self, id: &ContentId) -> Option<UpperQuad> {
-        self.quads.get(id).copied()
+    /// The handle of the quad with this id, if the tree has it.
+    pub fn quad(&self, id: &ContentId) -> Option<Quad> {
+        self.by_id.get(id).map(|&at| Quad(at))
     }
 
+    /// The handle of a piece (a quad of level K - 1), named by its id.
+    pub fn piece(&mut self, id: ContentId) -> Quad {
+        match self.by_id.get(&id) {
+            Some(&at) => Quad(at),
+            None => self.make(id, self.shard_level - 1, [NONE; 4]),
+        }
+    }
+
+    pub fn id(&self, quad: Quad) -> ContentId {
+        self.slots[quad.0 as usize].id
+    }
+
+    pub fn level(&self, quad: Quad) -> u32 {
+        self.slots[quad.0 as usize].level
+    }
+
+    /// The children of a quad of level ≥ K.
+    pub fn kids_of(&self, quad: Quad) -> [Quad; 4] {
+        let kids = self.slots[quad.0 as usize].kids;
+        debug_assert!(
+            kids[0] != NONE,
+            "the children of a piece or of a quad named only"
+        );
+        kids.map(Quad)
+    }
+
+    /// The quad of `level` ≥ K with these children.
+    pub fn join_quads(&mut self, level: u32, kids: [Quad; 4]) -> Quad {
+        let kids = kids.map(|kid| kid.0);
+        if let Some(&at) = self.by_kids.get(&kids) {
+            return Quad(at);
+        }
+        let id = ContentId::of_inner(level, kids.map(|kid| self.slots[kid as usize].id));
+        self.make(id, level, kids)
+    }
+
+    /// A new quad in the arena (or the one with its id, given its children
+    /// now if it was named before them).
+    fn make(&mut self, id: ContentId, level: u32, kids: [u32; 4]) -> Quad {
+        if let Some(&at) = self.by_id.get(&id) {
+            let slot = &mut self.slots[at as usize];
+            if slot.kids[0] == NONE && kids[0] != NONE {
+                slot.kids = kids;
+                self.by_kids.insert(kids, at);
+            }
+            return Quad(at);
+        }
+        let slot = Slot { id, level, kids };
+        let at = match self.free.pop() {
+            Some(at) => {
+                self.slots[at as usize] = slot;
+                if let Some(figured) = self.figured.get_mut(at as usize) {
+                    *figured = None;
+                }
+                at
+            }
+            None => {
+                self.slots.push(slot);
+                (self.slots.len() - 1) as u32
+            }
+        };
+        self.by_id.insert(id, at);
+        if kids[0] != NONE {
+            self.by_kids.insert(kids, at);
+        }
+        Quad(at)
+    }
+
+    /// The handle of a quad of `level` by id, named (without children) if
+    /// the tree does not have it yet.
+    fn named(&mut self, id: ContentId, level: u32) -> u32 {
+        match self.by_id.get(&id) {
+            Some(&at) => at,
+            None => self.make(id, level, [NONE; 4]).0,
+        }
+    }
+
+    /// A quad of level ≥ K this tree knows, with its children.
+    pub fn get(&self, id: &ContentId) -> Option<UpperQuad> {
+        let slot = self.slots[*self.by_id.get(id)? as usize];
+        (slot.level >= self.shard_level && slot.kids[0] != NONE).then(|| UpperQuad {
+            id: slot.id,
+            level: slot.level,
+            kids: slot.kids.map(|kid| self.slots[kid as usize].id),
+        })
+    }
+
+    /// Adds a quad of the top (its children may come later).
     pub fn insert(&mut self, quad: UpperQuad) {
-        self.quads.insert(quad.id, quad);
+        let kids = quad.kids.map(|kid| self.named(kid, quad.level - 1));
+        self.make(quad.id, quad.level, kids);
     }
 
     /// The children of a quad of level ≥ K.
     pub fn kids(&mut self, id: &ContentId, level: u32) -> [ContentId; 4] {
-        if let Some(quad) = self.quads.get(id) {
-            return quad.kids;
+        if let Some(&at) = self.by_id.get(id) {
+            let kids = self.slots[at as usize].kids;
+            if kids[0] != NONE {
+                return kids.map(|kid| self.slots[kid as usize].id);
+            }
         }
         debug_assert_eq!(
             *id,
@@ -84,11 +205,9 @@ impl Top {
 
     /// The quad of `level` ≥ K with these children.
     pub fn join(&mut self, level: u32, kids: [ContentId; 4]) -> ContentId {
-        let id = ContentId::of_inner(level, kids);
-        self.quads
-            .entry(id)
-            .or_insert(UpperQuad { id, level, kids });
-        id
+        let kids = kids.map(|kid| Quad(self.named(kid, level - 1)));
+        let quad = self.join_quads(level, kids);
+        self.id(quad)
     }
 
     /// The centre of a quad of level ≥ K + 1.
@@ -177,21 +296,23 @@ impl Top {
     pub fn pieces_under(&mut self, roots: &[(ContentId, u32)]) -> HashSet<ContentId> {
         let piece_level = self.shard_level - 1;
         let empty = self.empty(piece_level);
-        let mut seen: HashSet<ContentId, ahash::RandomState> = HashSet::default();
+        let mut seen = vec![false; self.slots.len()];
         let mut pieces = HashSet::new();
-        let mut stack = roots.to_vec();
-        while let Some((id, level)) = stack.pop() {
-            if level == piece_level {
-                if id != empty {
-                    pieces.insert(id);
+        let mut stack: Vec<u32> = roots
+            .iter()
+            .filter_map(|(id, _)| self.by_id.get(id).copied())
+            .collect();
+        while let Some(at) = stack.pop() {
+            if std::mem::replace(&mut seen[at as usize], true) {
+                continue;
+            }
+            let slot = &self.slots[at as usize];
+            if slot.level == piece_level {
+                if slot.id != empty {
+                    pieces.insert(slot.id);
                 }
-                continue;
-            }
-            if !seen.insert(id) {
-                continue;
-            }
-            for kid in self.kids(&id, level) {
-                stack.push((kid, level - 1));
+            } else if slot.kids[0] != NONE {
+                stack.extend(slot.kids);
             }
         }
         pieces
@@ -248,103 +369,198 @@ impl Top {
         out
     }
 
-    /// Forgets every quad not under one of `roots`.
+    /// Forgets every quad not under one of `roots` (their handles may be
+    /// given to new quads), and every piece not under one.
     pub fn keep_under(&mut self, roots: &[(ContentId, u32)]) {
-        let mut keep: HashSet<ContentId, ahash::RandomState> = HashSet::default();
-        let mut stack = roots.to_vec();
-        while let Some((id, level)) = stack.pop() {
-            if level < self.shard_level || !keep.insert(id) {
+        let mut keep = vec![false; self.slots.len()];
+        let mut stack: Vec<u32> = roots
+            .iter()
+            .map(|(id, _)| id)
+            .chain(&self.empties)
+            .filter_map(|id| self.by_id.get(id).copied())
+            .collect();
+        while let Some(at) = stack.pop() {
+            if std::mem::replace(&mut keep[at as usize], true) {
                 continue;
             }
-            for kid in self.kids(&id, level) {
-                stack.push((kid, level - 1));
+            let kids = self.slots[at as usize].kids;
+            if kids[0] != NONE {
+                stack.extend(kids);
             }
         }
-        let empties: HashSet<ContentId> = self.empties.iter().copied().collect();
-        self.quads
-            .retain(|id, _| keep.contains(id) || empties.contains(id));
+        let free: HashSet<u32> = self.free.iter().copied().collect();
+        for (at, kept) in keep.iter().enumerate() {
+            let at32 = at as u32;
+            if *kept || free.contains(&at32) {
+                continue;
+            }
+            let slot = self.slots[at];
+            self.by_id.remove(&slot.id);
+            if slot.kids[0] != NONE {
+                self.by_kids.remove(&slot.kids);
+            }
+            self.free.push(at32);
+        }
     }
 
     /// Population and extent (left, top, right, bottom, as offsets from the
     /// root's corner) of the state under `root`, from the pieces' figures.
-    /// Folded level by level from the pieces up: no deep recursion, memory
-    /// linear in the distinct quads.
+    /// A quad's figures never change (its id names its content), so each is
+    /// folded once, from its children's, and kept while the quad is: a step
+    /// folds only the quads it made. (A piece missing from `pieces` counts
+    /// as empty, and is not kept.)
     pub fn figures(
         &mut self,
         root: &ContentId,
-        level: u32,
+        _level: u32,
         pieces: &HashMap<ContentId, Figures>,
     ) -> (BigUint, Option<[BigUint; 4]>) {
         let piece_level = self.shard_level - 1;
-        // The distinct quads of each level, root first.
-        let mut levels: Vec<Vec<ContentId>> = vec![vec![*root]];
-        for _ in piece_level + 1..level {
-            let mut seen = HashSet::new();
-            let mut next = Vec::new();
-            let at = level - levels.len() as u32 + 1;
-            for id in levels.last().expect("the root's level") {
-                for kid in self.kids(id, at) {
-                    if seen.insert(kid) {
-                        next.push(kid);
+        let Some(&root_at) = self.by_id.get(root) else {
+            return (BigUint::zero(), None);
+        };
+        if self.figured.len() < self.slots.len() {
+            self.figured.resize(self.slots.len(), None);
+        }
+        let mut unknown: HashMap<u32, Arc<Folded>> = HashMap::new();
+        // (quad, children pushed?)
+        let mut stack = vec![(root_at, false)];
+        while let Some((at, expanded)) = stack.pop() {
+            if self.figured[at as usize].is_some() || unknown.contains_key(&at) {
+                continue;
+            }
+            let slot = self.slots[at as usize];
+            if slot.level == piece_level || slot.kids[0] == NONE {
+                match pieces.get(&slot.id) {
+                    Some(figures) => {
+                        self.figured[at as usize] = Some(Arc::new((
+                            BigUint::from(figures.population),
+                            figures.extent.map(|e| {
+                                [e.left.into(), e.top.into(), e.right.into(), e.bottom.into()]
+                            }),
+                        )));
+                    }
+                    None => {
+                        unknown.insert(at, Arc::new((BigUint::zero(), None)));
                     }
                 }
+                continue;
             }
-            levels.push(next);
-        }
-        type Value = (BigUint, Option<[BigUint; 4]>);
-        let mut below: HashMap<ContentId, Value> = HashMap::new();
-        let lowest = level - levels.len() as u32 + 1;
-        for id in levels.last().expect("at least the root") {
-            for kid in self.kids(id, lowest) {
-                let value = match pieces.get(&kid) {
-                    Some(figures) => (
-                        BigUint::from(figures.population),
-                        figures.extent.map(|e| {
-                            [e.left.into(), e.top.into(), e.right.into(), e.bottom.into()]
-                        }),
-                    ),
-                    None => (BigUint::zero(), None),
+            if !expanded {
+                stack.push((at, true));
+                stack.extend(slot.kids.iter().map(|&kid| (kid, false)));
+                continue;
+            }
+            let half = BigUint::one() << (slot.level - 1);
+            let mut population = BigUint::zero();
+            let mut extent: Option<[BigUint; 4]> = None;
+            let mut whole = true;
+            for (quarter, &kid) in slot.kids.iter().enumerate() {
+                let value = match &self.figured[kid as usize] {
+                    Some(value) => value.clone(),
+                    None => {
+                        whole = false;
+                        unknown[&kid].clone()
+                    }
                 };
-                below.insert(kid, value);
+                let (count, kid_extent) = &*value;
+                population += count;
+                let Some([l, t, r, b]) = kid_extent else {
+                    continue;
+                };
+                let dx = if quarter % 2 == 1 {
+                    half.clone()
+                } else {
+                    BigUint::zero()
+                };
+                let dy = if quarter >= 2 {
+                    half.clone()
+                } else {
+                    BigUint::zero()
+                };
+                let moved = [l + &dx, t + &dy, r + &dx, b + &dy];
+                extent = Some(match extent {
+                    None => moved,
+                    Some([l0, t0, r0, b0]) => {
+                        let [l1, t1, r1, b1] = moved;
+                        [l0.min(l1), t0.min(t1), r0.max(r1), b0.max(b1)]
+                    }
+                });
+            }
+            let value = Arc::new((population, extent));
+            if whole {
+                self.figured[at as usize] = Some(value);
+            } else {
+                unknown.insert(at, value);
             }
         }
-        for (depth, quads) in levels.iter().enumerate().rev() {
-            let at = level - depth as u32;
-            let half = BigUint::one() << (at - 1);
-            let mut here: HashMap<ContentId, Value> = HashMap::new();
-            for id in quads {
-                let kids = self.kids(id, at);
-                let mut population = BigUint::zero();
-                let mut extent: Option<[BigUint; 4]> = None;
-                for (quarter, kid) in kids.iter().enumerate() {
-                    let (count, kid_extent) = &below[kid];
-                    population += count;
-                    let Some([l, t, r, b]) = kid_extent else {
-                        continue;
-                    };
-                    let dx = if quarter % 2 == 1 {
-                        half.clone()
-                    } else {
-                        BigUint::zero()
-                    };
-                    let dy = if quarter >= 2 {
-                        half.clone()
-                    } else {
-                        BigUint::zero()
-                    };
-                    let moved = [l + &dx, t + &dy, r + &dx, b + &dy];
-                    extent = Some(match extent {
-                        None => moved,
-                        Some([l0, t0, r0, b0]) => {
-                            let [l1, t1, r1, b1] = moved;
-                            [l0.min(l1), t0.min(t1), r0.max(r1), b0.max(b1)]
-                        }
-                    });
+        let value = match &self.figured[root_at as usize] {
+            Some(value) => value.clone(),
+            None => unknown[&root_at].clone(),
+        };
+        (*value).clone()
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::shard::Extent;
+
+    /// A piece id and its figures, from a number.
+    fn piece(n: u64) -> (ContentId, Figures) {
+        let figures = Figures {
+            population: n,
+            extent: Some(Extent {
+                left: n % 7,
+                top: n % 5,
+                right: 8 + n % 3,
+                bottom: 9,
+            }),
+        };
+        (ContentId::of_leaf(n), figures)
+    }
+
+    /// A quad of level K + 2 over 16 pieces numbered from `first`.
+    fn square(top: &mut Top, first: u64) -> ContentId {
+        let k = top.shard_level;
+        let quarters: Vec<ContentId> = (0..4)
+            .map(|q| {
+                let kids = [0, 1, 2, 3].map(|i| piece(first + 4 * q + i).0);
+                for kid in kids {
+                    top.piece(kid);
                 }
-                here.insert(*id, (population, extent));
-            }
-            below = here;
-        }
-        below.remove(root).expect("the root was folded")
+                top.join(k, kids)
+            })
+            .collect();
+        top.join(k + 1, [quarters[0], quarters[1], quarters[2], quarters[3]])
+    }
+
+    // The arena forgets what no root needs and gives its handles to new
+    // quads; ids, children and figures stay those of the content (common
+    // practice: a collected cache answers as a fresh one).
+    #[test]
+    fn kept_quads_survive_and_freed_handles_serve_new_content() {
+        let mut top = Top::new(8);
+        top.empty(12);
+        let pieces: HashMap<ContentId, Figures> = (0..64).map(piece).collect();
+        let a = square(&mut top, 0);
+        let b = square(&mut top, 16);
+        let kids_of_a = top.kids(&a, 10);
+        let figures_of_a = top.figures(&a, 10, &pieces);
+        top.keep_under(&[(a, 10)]);
+        assert!(top.quad(&b).is_none(), "b was forgotten");
+        let c = square(&mut top, 32);
+        assert_eq!(top.kids(&a, 10), kids_of_a);
+        assert_eq!(top.figures(&a, 10, &pieces), figures_of_a);
+        let mut fresh = Top::new(8);
+        fresh.empty(12);
+        let c_fresh = square(&mut fresh, 32);
+        assert_eq!(c, c_fresh);
+        assert_eq!(
+            top.figures(&c, 10, &pieces),
+            fresh.figures(&c_fresh, 10, &pieces)
+        );
+        assert_eq!(top.pieces(&c, 10).len(), 16);
     }
 }

@@ -13,7 +13,7 @@ use std::sync::atomic::Ordering;
 use anyhow::anyhow;
 use deeptime_engine::ContentId;
 use deeptime_engine::recursion::{self, Stride};
-use deeptime_engine::top::Top;
+use deeptime_engine::top::{Quad, Top};
 use deeptime_engine::walk::{Answer, Ticket, Tree, Walk};
 use futures::FutureExt;
 use futures::stream::{FuturesUnordered, StreamExt};
@@ -96,16 +96,16 @@ struct Ask {
 struct Asks {
     unsent: Vec<Ask>,
     /// tickets by (square, generations): equal tasks share one
-    tickets: HashMap<(ContentId, u64), Ticket, ahash::RandomState>,
-    by_ticket: HashMap<Ticket, (ContentId, u64), ahash::RandomState>,
+    tickets: HashMap<(Quad, u64), Ticket, ahash::RandomState>,
+    by_ticket: HashMap<Ticket, (Quad, u64), ahash::RandomState>,
     /// centres of level-K squares found by tasks in this advance (the
     /// walker memoises advances only)
-    centres: HashMap<ContentId, ContentId, ahash::RandomState>,
+    centres: HashMap<Quad, Quad, ahash::RandomState>,
     next: u64,
 }
 
 impl Asks {
-    fn ask(&mut self, square: ContentId, kids: [ContentId; 4], generations: u64) -> Ticket {
+    fn ask(&mut self, square: Quad, kids: [ContentId; 4], generations: u64) -> Ticket {
         if let Some(ticket) = self.tickets.get(&(square, generations)) {
             return *ticket;
         }
@@ -122,7 +122,7 @@ impl Asks {
     }
 
     /// A task's answer is in.
-    fn settle(&mut self, ticket: Ticket, result: ContentId) {
+    fn settle(&mut self, ticket: Ticket, result: Quad) {
         if let Some(key) = self.by_ticket.remove(&ticket) {
             self.tickets.remove(&key);
             if key.1 == 0 {
@@ -133,16 +133,26 @@ impl Asks {
 }
 
 /// The top of the tree as the walker's tree, with tasks as its base case.
+/// The walker works with the top's handles; content ids are read where a
+/// quad leaves (a task, the memo, the result).
 struct Remote<'a> {
     top: &'a mut Top,
     memo: &'a mut Memo,
     asks: &'a mut Asks,
     tasks: &'a Dispatcher,
     shard_level: u32,
+    /// the empty quads from level K - 1 up
+    empties: &'a [Quad],
+}
+
+impl Remote<'_> {
+    fn ids(&self, quads: [Quad; 4]) -> [ContentId; 4] {
+        quads.map(|quad| self.top.id(quad))
+    }
 }
 
 impl Tree for Remote<'_> {
-    type Quad = ContentId;
+    type Quad = Quad;
     type Error = anyhow::Error;
 
     fn base_level(&self) -> u32 {
@@ -153,70 +163,68 @@ impl Tree for Remote<'_> {
         true
     }
 
-    fn is_empty(&self, quad: ContentId, level: u32) -> bool {
-        self.top.known_empty(level) == Some(quad)
+    fn is_empty(&self, quad: Quad, level: u32) -> bool {
+        self.empty(level) == quad
     }
 
-    fn empty(&self, level: u32) -> ContentId {
-        self.top
-            .known_empty(level)
-            .expect("the empty quads up to the root were made before the walk")
+    /// (Below the pieces, which the walker meets only when it weighs the
+    /// parts of a frame for its progress estimate, a piece stands for each
+    /// of its quarters: the empty piece for empty ones.)
+    fn empty(&self, level: u32) -> Quad {
+        self.empties[(level + 1).saturating_sub(self.shard_level) as usize]
     }
 
-    fn kids(&mut self, quad: ContentId, level: u32) -> [ContentId; 4] {
-        self.top.kids(&quad, level)
+    fn kids(&mut self, quad: Quad, level: u32) -> [Quad; 4] {
+        if level < self.shard_level {
+            return [quad; 4];
+        }
+        self.top.kids_of(quad)
     }
 
-    fn join(&mut self, kids: [ContentId; 4], level: u32) -> anyhow::Result<ContentId> {
-        Ok(self.top.join(level, kids))
+    fn join(&mut self, kids: [Quad; 4], level: u32) -> anyhow::Result<Quad> {
+        Ok(self.top.join_quads(level, kids))
     }
 
-    fn memo(&mut self, quad: ContentId, _level: u32, stride: Stride) -> Option<ContentId> {
-        let entry = self.memo.entries.get_mut(&(quad, stride))?;
+    fn memo(&mut self, quad: Quad, _level: u32, stride: Stride) -> Option<Quad> {
+        let entry = self.memo.entries.get_mut(&(self.top.id(quad), stride))?;
+        // A result the top no longer has is as good as none.
+        let result = self.top.quad(&entry.result)?;
         entry.used = true;
         self.tasks.memoised.fetch_add(1, Ordering::Relaxed);
-        Some(entry.result)
+        Some(result)
     }
 
-    fn remember(&mut self, quad: ContentId, level: u32, stride: Stride, result: ContentId) {
+    fn remember(&mut self, quad: Quad, level: u32, stride: Stride, result: Quad) {
         self.memo.entries.insert(
-            (quad, stride),
+            (self.top.id(quad), stride),
             Entry {
-                result,
+                result: self.top.id(result),
                 level: level - 1,
                 used: true,
             },
         );
     }
 
-    fn base(
-        &mut self,
-        quad: ContentId,
-        level: u32,
-        generations: u64,
-    ) -> anyhow::Result<Answer<ContentId>> {
+    fn base(&mut self, quad: Quad, level: u32, generations: u64) -> anyhow::Result<Answer<Quad>> {
         debug_assert_eq!(level, self.shard_level, "the walk reaches tasks at level K");
-        let kids = self.top.kids(&quad, level);
+        let kids = self.ids(self.top.kids_of(quad));
         Ok(Answer::Later(self.asks.ask(quad, kids, generations)))
     }
 
     /// Above the pieces, from the top's own quads; of four pieces, a task
     /// of no generations on the level-K square they make.
-    fn centre_of_four(
-        &mut self,
-        four: [ContentId; 4],
-        level: u32,
-    ) -> anyhow::Result<Answer<ContentId>> {
+    fn centre_of_four(&mut self, four: [Quad; 4], level: u32) -> anyhow::Result<Answer<Quad>> {
         if level >= self.shard_level {
-            let grandchildren = four.map(|quad| self.top.kids(&quad, level));
+            let grandchildren = four.map(|quad| self.top.kids_of(quad));
             let centre = recursion::centre_of_four(grandchildren);
-            return Ok(Answer::Now(self.top.join(level, centre)));
+            return Ok(Answer::Now(self.top.join_quads(level, centre)));
         }
-        let square = self.top.join(level + 1, four);
+        let square = self.top.join_quads(level + 1, four);
         if let Some(centre) = self.asks.centres.get(&square) {
             return Ok(Answer::Now(*centre));
         }
-        Ok(Answer::Later(self.asks.ask(square, four, 0)))
+        let kids = self.ids(four);
+        Ok(Answer::Later(self.asks.ask(square, kids, 0)))
     }
 }
 
@@ -237,15 +245,27 @@ pub async fn advance(
     memo.begin(&words);
     let mut walk = Walk::new(&words, level);
     let mut asks = Asks::default();
+    let empties: Vec<Quad> = {
+        let mut top = top.lock().expect("top");
+        (shard_level - 1..=level)
+            .map(|at| {
+                let id = top.empty(at);
+                top.quad(&id).expect("the top has its empty quads")
+            })
+            .collect()
+    };
     let mut out = {
         let mut top = top.lock().expect("top");
-        top.empty(level);
+        let root = top
+            .quad(&root)
+            .ok_or_else(|| anyhow!("the root {} is not in the top of the tree", root.short()))?;
         let mut remote = Remote {
             top: &mut top,
             memo,
             asks: &mut asks,
             tasks,
             shard_level,
+            empties: &empties,
         };
         walk.start(&mut remote, root, Stride::Residual)?
     };
@@ -253,7 +273,7 @@ pub async fn advance(
     loop {
         if let Some(result) = out {
             memo.end();
-            return Ok(result);
+            return Ok(top.lock().expect("top").id(result));
         }
         for ask in asks.unsent.drain(..) {
             running.push(async move {
@@ -281,8 +301,10 @@ pub async fn advance(
             asks: &mut asks,
             tasks,
             shard_level,
+            empties: &empties,
         };
         for (ask, result) in answers {
+            let result = remote.top.piece(result);
             remote.asks.settle(ask.ticket, result);
             walk.answer(&mut remote, ask.ticket, result);
         }
