@@ -318,52 +318,56 @@ impl Top {
         pieces
     }
 
-    /// The distinct non-empty quads of level ≥ K under `root`, children
-    /// before parents, each with its population (from the pieces'): the
-    /// order a pack stores them in.
-    pub fn with_populations(
+    /// The distinct non-empty quads of level ≥ K under `root` that
+    /// `stored` does not know (a stored quad's descendants are stored
+    /// too, so its subtree is skipped), children before parents, each with
+    /// its population (from the pieces'): what an incremental pack of the
+    /// top adds, in the order it stores them.
+    pub fn unstored(
         &mut self,
         root: &ContentId,
         level: u32,
         pieces: &HashMap<ContentId, Figures>,
+        stored: impl Fn(&ContentId) -> bool,
     ) -> Vec<(UpperQuad, BigUint)> {
+        self.figures(root, level, pieces);
         let piece_level = self.shard_level - 1;
-        let mut population: HashMap<ContentId, BigUint, ahash::RandomState> = HashMap::default();
+        // (Every quad under the root is folded now, unless a piece's
+        // figures were missing: such a quad's population reads as 0.)
+        let empties: HashSet<ContentId> = self.empties.iter().copied().collect();
+        let Some(&root_at) = self.by_id.get(root) else {
+            return Vec::new();
+        };
+        let mut done = vec![false; self.slots.len()];
         let mut out = Vec::new();
-        // (quad, level, children done?)
-        let mut stack = vec![(*root, level, false)];
-        while let Some((id, at, expanded)) = stack.pop() {
-            if population.contains_key(&id) || id == self.empty(at) {
+        // (quad, children pushed?)
+        let mut stack = vec![(root_at, false)];
+        while let Some((at, expanded)) = stack.pop() {
+            let slot = self.slots[at as usize];
+            if done[at as usize]
+                || slot.level == piece_level
+                || slot.kids[0] == NONE
+                || empties.contains(&slot.id)
+                || stored(&slot.id)
+            {
                 continue;
             }
-            let kids = self.kids(&id, at);
             if !expanded {
-                stack.push((id, at, true));
-                if at - 1 > piece_level {
-                    for kid in kids.iter().rev() {
-                        stack.push((*kid, at - 1, false));
-                    }
-                }
+                stack.push((at, true));
+                stack.extend(slot.kids.iter().rev().map(|&kid| (kid, false)));
                 continue;
             }
-            let mut sum = BigUint::zero();
-            for kid in &kids {
-                sum += if at - 1 == piece_level {
-                    pieces
-                        .get(kid)
-                        .map_or_else(BigUint::zero, |f| BigUint::from(f.population))
-                } else {
-                    population.get(kid).cloned().unwrap_or_default()
-                };
-            }
-            population.insert(id, sum.clone());
+            done[at as usize] = true;
+            let population = self.figured[at as usize]
+                .as_ref()
+                .map_or_else(BigUint::zero, |value| value.0.clone());
             out.push((
                 UpperQuad {
-                    id,
-                    level: at,
-                    kids,
+                    id: slot.id,
+                    level: slot.level,
+                    kids: slot.kids.map(|kid| self.slots[kid as usize].id),
                 },
-                sum,
+                population,
             ));
         }
         out
@@ -416,6 +420,7 @@ impl Top {
         pieces: &HashMap<ContentId, Figures>,
     ) -> (BigUint, Option<[BigUint; 4]>) {
         let piece_level = self.shard_level - 1;
+        self.empty(piece_level);
         let Some(&root_at) = self.by_id.get(root) else {
             return (BigUint::zero(), None);
         };
@@ -431,6 +436,10 @@ impl Top {
             }
             let slot = self.slots[at as usize];
             if slot.level == piece_level || slot.kids[0] == NONE {
+                if slot.id == self.empties[piece_level as usize] {
+                    self.figured[at as usize] = Some(Arc::new((BigUint::zero(), None)));
+                    continue;
+                }
                 match pieces.get(&slot.id) {
                     Some(figures) => {
                         self.figured[at as usize] = Some(Arc::new((
@@ -562,5 +571,18 @@ mod tests {
             fresh.figures(&c_fresh, 10, &pieces)
         );
         assert_eq!(top.pieces(&c, 10).len(), 16);
+        // A square with empty quarters: folded (its population counts) and
+        // listed for a pack with it.
+        let e = top.empty(7);
+        let (one, _) = piece(5);
+        let lone = top.join(8, [one, e, e, e]);
+        let e8 = top.empty(8);
+        let root = top.join(9, [lone, e8, e8, e8]);
+        let unstored = top.unstored(&root, 9, &pieces, |_| false);
+        let populations: Vec<u64> = unstored
+            .iter()
+            .map(|(_, population)| u64::try_from(population).unwrap())
+            .collect();
+        assert_eq!(populations, [5, 5]);
     }
 }

@@ -206,9 +206,8 @@ impl Run<'_> {
             .top
             .lock()
             .expect("top")
-            .with_populations(&root, level, &figures)
+            .unstored(&root, level, &figures, |id| known.contains_key(id))
             .into_iter()
-            .filter(|(quad, _)| !known.contains_key(&quad.id))
             .map(|(quad, population)| IdQuad {
                 id: quad.id,
                 level: quad.level,
