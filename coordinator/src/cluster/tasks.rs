@@ -246,13 +246,14 @@ impl Dispatcher {
     /// The member a task goes to: the one holding most of its input, unless
     /// it is much busier than the least loaded one; None when no member is
     /// live (all late, or joining).
-    fn place(&self, score: &HashMap<u64, u64>) -> Option<Arc<Member>> {
+    fn place(&self, score: &HashMap<u64, u64>, without: &HashSet<u64>) -> Option<Arc<Member>> {
         // One reading of each member's figures (renewals and replies change
         // them): tasks running, and store bytes as of its latest reply.
         let live: Vec<(Arc<Member>, u64, u64)> = self
             .members
             .live()
             .into_iter()
+            .filter(|m| !without.contains(&m.id))
             .map(|m| {
                 let (load, bytes) = (
                     m.running.load(Ordering::Relaxed),
@@ -336,9 +337,29 @@ impl Dispatcher {
         let leases = self.members.leases;
         let give_up = std::time::Instant::now() + leases.lost_after + leases.lease;
         let mut last = PiecesLost("no node is live".to_string());
+        // Members that ran out of memory on this task, and the last refusal:
+        // the task goes to another, and fails only when every one has.
+        let mut out_of_memory: HashSet<u64> = HashSet::new();
+        let mut full: Option<NodeOutOfMemory> = None;
         while std::time::Instant::now() < give_up {
             let (sources, score) = self.sources(&kids)?;
-            let Some(member) = self.place(&score) else {
+            let Some(member) = self.place(&score, &out_of_memory) else {
+                if full.is_some()
+                    && self
+                        .members
+                        .live()
+                        .iter()
+                        .all(|m| out_of_memory.contains(&m.id))
+                {
+                    // Every live node tried this task and could not hold it.
+                    let mut full = full.take().expect("checked just now");
+                    full.message = format!(
+                        "{}; every live node ({}) ran out on the same task",
+                        full.message,
+                        out_of_memory.len()
+                    );
+                    return Err(full.into());
+                }
                 self.wait_for_a_member().await?;
                 continue;
             };
@@ -443,6 +464,18 @@ impl Dispatcher {
                     }
                     tokio::time::sleep(RETRY_PAUSE).await;
                 }
+                Err(status) if status.code() == tonic::Code::ResourceExhausted => {
+                    tracing::warn!(
+                        member = member.id,
+                        "a node ran out of memory on a task; trying another"
+                    );
+                    out_of_memory.insert(member.id);
+                    full = Some(NodeOutOfMemory {
+                        member: member.id,
+                        address: member.address.clone(),
+                        message: status.message().to_string(),
+                    });
+                }
                 Err(status) => return Err(node_error(&member, status)),
             }
         }
@@ -500,7 +533,7 @@ impl Dispatcher {
     ) -> anyhow::Result<(ContentId, u32)> {
         let (sources, member) = loop {
             let (sources, score) = self.sources(&kids)?;
-            match self.place(&score) {
+            match self.place(&score, &HashSet::new()) {
                 Some(member) => break (sources, member),
                 None => self.wait_for_a_member().await?,
             }
