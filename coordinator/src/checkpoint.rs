@@ -133,6 +133,77 @@ impl Manifest {
         format!("manifests/{sequence:010}.json")
     }
 
+    /// Parses and checks the manifest stored under `key` (its sequence
+    /// must match the key) from its bytes; `place` names it in messages.
+    pub fn parse(bytes: &[u8], key: &str, place: &str) -> anyhow::Result<Manifest> {
+        let place = place.to_string();
+        let at = |error: serde_json::Error| {
+            anyhow::anyhow!("{place}:{}:{}: {error}", error.line(), error.column())
+        };
+        // The version first: a manifest of another version is not damaged,
+        // and its fields differ.
+        let value: serde_json::Value = serde_json::from_slice(bytes).map_err(at)?;
+        let format = value.get("format").and_then(|v| v.as_str());
+        let version = value.get("version").and_then(|v| v.as_u64());
+        if format == Some(FORMAT)
+            && let Some(version) = version
+            && version != VERSION as u64
+        {
+            return Err(BadInput(format!(
+                "{place}: checkpoint format version {version}, which this build does not read \
+                 (it reads version {VERSION}): run the job into a new checkpoint.dir, or open \
+                 this one with the deeptime that wrote it"
+            ))
+            .into());
+        }
+        let manifest: Manifest = serde_json::from_slice(bytes).map_err(at)?;
+        if manifest.format != FORMAT || manifest.version != VERSION {
+            bail!(
+                "{place}: format {} version {} (this build reads {FORMAT} version {VERSION})",
+                manifest.format,
+                manifest.version
+            );
+        }
+        if Manifest::key(manifest.sequence) != key {
+            bail!("{place}: holds sequence {}", manifest.sequence);
+        }
+        decimal(&manifest.generation, "generation").with_context(|| place.clone())?;
+        decimal(&manifest.population, "population").with_context(|| place.clone())?;
+        if manifest.packs.len() > MAX_PACKS {
+            bail!(
+                "{place}: lists {} packs (at most {MAX_PACKS})",
+                manifest.packs.len()
+            );
+        }
+        let mut names = HashSet::new();
+        for pack in &manifest.packs {
+            if !names.insert(pack.name.as_str()) {
+                bail!("{place}: lists pack {} twice", pack.name);
+            }
+            hex(&pack.name, "pack name").with_context(|| place.clone())?;
+            hex(&pack.table, "pack table").with_context(|| place.clone())?;
+        }
+        hex(&manifest.root, "root").with_context(|| place.clone())?;
+        let root_pack = manifest.packs.get(manifest.root_pack as usize);
+        if root_pack.is_none_or(|pack| manifest.root_record as u64 >= pack.records) {
+            bail!(
+                "{place}: the root record {} of pack {} is not among the packs listed",
+                manifest.root_record,
+                manifest.root_pack
+            );
+        }
+        let empty = manifest.population()? == BigUint::ZERO;
+        match &manifest.bbox {
+            None if !empty => bail!("{place}: live cells but no bbox"),
+            Some(_) if empty => bail!("{place}: a bbox but no live cells"),
+            Some(bbox) => {
+                bbox.parse().with_context(|| place.clone())?;
+            }
+            None => {}
+        }
+        Ok(manifest)
+    }
+
     pub fn generation(&self) -> anyhow::Result<BigUint> {
         decimal(&self.generation, "generation")
     }
@@ -214,71 +285,7 @@ impl Checkpoints {
             .get(key, MAX_MANIFEST_BYTES)
             .with_context(|| format!("cannot read {place}"))?
             .with_context(|| format!("{place} is missing"))?;
-        let at = |error: serde_json::Error| {
-            anyhow::anyhow!("{place}:{}:{}: {error}", error.line(), error.column())
-        };
-        // The version first: a manifest of another version is not damaged,
-        // and its fields differ.
-        let value: serde_json::Value = serde_json::from_slice(&bytes).map_err(at)?;
-        let format = value.get("format").and_then(|v| v.as_str());
-        let version = value.get("version").and_then(|v| v.as_u64());
-        if format == Some(FORMAT)
-            && let Some(version) = version
-            && version != VERSION as u64
-        {
-            return Err(BadInput(format!(
-                "{place}: checkpoint format version {version}, which this build does not read \
-                 (it reads version {VERSION}): run the job into a new checkpoint.dir, or open \
-                 this one with the deeptime that wrote it"
-            ))
-            .into());
-        }
-        let manifest: Manifest = serde_json::from_slice(&bytes).map_err(at)?;
-        if manifest.format != FORMAT || manifest.version != VERSION {
-            bail!(
-                "{place}: format {} version {} (this build reads {FORMAT} version {VERSION})",
-                manifest.format,
-                manifest.version
-            );
-        }
-        if Manifest::key(manifest.sequence) != key {
-            bail!("{place}: holds sequence {}", manifest.sequence);
-        }
-        decimal(&manifest.generation, "generation").with_context(|| place.clone())?;
-        decimal(&manifest.population, "population").with_context(|| place.clone())?;
-        if manifest.packs.len() > MAX_PACKS {
-            bail!(
-                "{place}: lists {} packs (at most {MAX_PACKS})",
-                manifest.packs.len()
-            );
-        }
-        let mut names = HashSet::new();
-        for pack in &manifest.packs {
-            if !names.insert(pack.name.as_str()) {
-                bail!("{place}: lists pack {} twice", pack.name);
-            }
-            hex(&pack.name, "pack name").with_context(|| place.clone())?;
-            hex(&pack.table, "pack table").with_context(|| place.clone())?;
-        }
-        hex(&manifest.root, "root").with_context(|| place.clone())?;
-        let root_pack = manifest.packs.get(manifest.root_pack as usize);
-        if root_pack.is_none_or(|pack| manifest.root_record as u64 >= pack.records) {
-            bail!(
-                "{place}: the root record {} of pack {} is not among the packs listed",
-                manifest.root_record,
-                manifest.root_pack
-            );
-        }
-        let empty = manifest.population()? == BigUint::ZERO;
-        match &manifest.bbox {
-            None if !empty => bail!("{place}: live cells but no bbox"),
-            Some(_) if empty => bail!("{place}: a bbox but no live cells"),
-            Some(bbox) => {
-                bbox.parse().with_context(|| place.clone())?;
-            }
-            None => {}
-        }
-        Ok(manifest)
+        Manifest::parse(&bytes, key, &place)
     }
 
     /// Reads every pack of `manifest` whole, checks each against its name,

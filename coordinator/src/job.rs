@@ -56,13 +56,20 @@ pub struct Job {
 
 impl Job {
     pub fn load(path: &Path) -> Result<Job, BadInput> {
+        let text = std::fs::read_to_string(path).map_err(|error| {
+            BadInput(format!("{}: cannot read the job: {error}", path.display()))
+        })?;
+        Job::parse(&text, path)
+    }
+
+    /// A job from the text of the job file at `path` (which names it in
+    /// messages and anchors its relative paths); nothing is read.
+    pub fn parse(text: &str, path: &Path) -> Result<Job, BadInput> {
         let place = path.display();
-        let text = std::fs::read_to_string(path)
-            .map_err(|error| BadInput(format!("{place}: cannot read the job: {error}")))?;
-        let file: JobFile = toml::from_str(&text).map_err(|error| {
+        let file: JobFile = toml::from_str(text).map_err(|error| {
             let (line, column) = error
                 .span()
-                .map(|span| line_column(&text, span.start))
+                .map(|span| line_column(text, span.start))
                 .unwrap_or((1, 1));
             BadInput(format!("{place}:{line}:{column}: {}", error.message()))
         })?;

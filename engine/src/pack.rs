@@ -42,6 +42,9 @@ pub const MAX_CHUNK_BYTES: u64 = 1 << 20;
 pub const MAX_TABLE_BYTES: u64 = 256 << 20;
 /// Records per pack fit a u32 (record numbers are u32 in memory).
 pub const MAX_RECORDS: u64 = u32::MAX as u64;
+/// The fewest bytes a record takes decompressed: an inner record's tag,
+/// level, population and four one-byte references (a leaf takes 9).
+const MIN_RECORD_BYTES: u64 = 7;
 const TABLE_HEAD: usize = 24;
 const CHUNK_ENTRY: usize = 40;
 const SLOT_ENTRY: usize = 16;
@@ -668,6 +671,15 @@ impl PackTable {
             return Err(bad(
                 0,
                 format!("the chunks end at byte {next_offset}, the table starts at {offset}"),
+            ));
+        }
+        // Readers size their arrays by the record count: it must be one the
+        // chunks can hold, not anything a u32 can say.
+        let held: u64 = entries.iter().map(|entry| entry.decompressed as u64).sum();
+        if records > held / MIN_RECORD_BYTES {
+            return Err(bad(
+                16,
+                format!("record count {records} is more than chunks of {held} bytes can hold"),
             ));
         }
         let names = TABLE_HEAD + chunks * CHUNK_ENTRY;

@@ -229,6 +229,57 @@ fn damaged_packs_are_refused_never_misread() {
     );
 }
 
+/// Found by fuzzing (fuzz target `pack`): a table claiming u32::MAX records
+/// made the whole reader reserve 40 GB for them and abort. The count must
+/// fit the chunks' bytes (a record takes at least 7) and is refused with
+/// where it is, by both readers.
+#[test]
+fn a_record_count_the_chunks_cannot_hold_is_refused_before_any_allocation() {
+    let text = "x = 3, y = 3\nbob$2bo$3o!";
+    let mut state = Universe::from_pattern(
+        &read_pattern(text.as_bytes(), BUDGET).unwrap(),
+        Rule::LIFE,
+        BUDGET,
+    )
+    .unwrap();
+    let (digest, pack) = state.write_pack(&|_| None, &[]).unwrap();
+    let mut bytes = pack.unwrap().bytes;
+    let size = bytes.len();
+    let table_at = u64::from_le_bytes(bytes[size - 24..size - 16].try_into().unwrap()) as usize;
+    bytes[table_at + 16..table_at + 24].copy_from_slice(&(u32::MAX as u64).to_le_bytes());
+    let expected = format!(
+        "record count 4294967295 is more than chunks of 9 bytes can hold at byte {}",
+        table_at + 16
+    );
+    let (_, error) = Universe::from_packs(
+        [whole(&bytes)],
+        digest,
+        last(0, 1),
+        Rule::LIFE,
+        BigUint::ZERO,
+        BUDGET,
+    )
+    .err()
+    .unwrap();
+    assert_eq!(error.to_string(), expected);
+    let table = Checksum::of(&bytes[table_at..size - 24]);
+    let packs = stored_packs(&[(&bytes, table, u32::MAX as u64)]);
+    let mut fetch = Counted {
+        packs: vec![&bytes],
+        fetched: 0,
+    };
+    let error = StoredState::open(
+        &mut fetch,
+        packs,
+        last(0, 1),
+        &BigUint::from(5u32),
+        Rule::LIFE,
+    )
+    .err()
+    .unwrap();
+    assert!(error.to_string().ends_with(&expected), "{error}");
+}
+
 /// `pack` with an empty zstd frame appended to its first chunk, and its
 /// table rewritten to match (offsets, sizes, checksums): every check but
 /// the one-frame rule passes.
