@@ -268,9 +268,15 @@ fn a_record_count_the_chunks_cannot_hold_is_refused_before_any_allocation() {
         packs: vec![&bytes],
         fetched: 0,
     };
-    let error = StoredState::open(&mut fetch, packs, last(0, 1), &BigUint::from(5u32), Rule::LIFE)
-        .err()
-        .unwrap();
+    let error = StoredState::open(
+        &mut fetch,
+        packs,
+        last(0, 1),
+        &BigUint::from(5u32),
+        Rule::LIFE,
+    )
+    .err()
+    .unwrap();
     assert!(error.to_string().ends_with(&expected), "{error}");
 }
 

@@ -40,15 +40,42 @@ pub struct Target {
 
 /// Every target, in the order `fuzz/run` runs them.
 pub const TARGETS: &[Target] = &[
-    Target { name: "rle", run: rle },
-    Target { name: "plaintext", run: plaintext },
-    Target { name: "generation", run: generation },
-    Target { name: "rule", run: rule },
-    Target { name: "job", run: job },
-    Target { name: "manifest", run: manifest },
-    Target { name: "pack", run: pack },
-    Target { name: "pack_records", run: pack_records },
-    Target { name: "wire", run: wire },
+    Target {
+        name: "rle",
+        run: rle,
+    },
+    Target {
+        name: "plaintext",
+        run: plaintext,
+    },
+    Target {
+        name: "generation",
+        run: generation,
+    },
+    Target {
+        name: "rule",
+        run: rule,
+    },
+    Target {
+        name: "job",
+        run: job,
+    },
+    Target {
+        name: "manifest",
+        run: manifest,
+    },
+    Target {
+        name: "pack",
+        run: pack,
+    },
+    Target {
+        name: "pack_records",
+        run: pack_records,
+    },
+    Target {
+        name: "wire",
+        run: wire,
+    },
 ];
 
 /// RLE text, as `deeptime` reads a pattern file.
@@ -78,7 +105,10 @@ pub fn rule(data: &[u8]) {
         let canonical = rule.to_string();
         let again = Rule::parse(&canonical)
             .unwrap_or_else(|error| panic!("canonical rule {canonical:?} refused: {error}"));
-        assert_eq!(again, rule, "rule {text:?} and its canonical text {canonical:?} differ");
+        assert_eq!(
+            again, rule,
+            "rule {text:?} and its canonical text {canonical:?} differ"
+        );
     }
 }
 
@@ -198,7 +228,11 @@ fn read_packs(packs: &[&[u8]]) {
     let Some(last) = described.last() else {
         return;
     };
-    let Some(record) = last.records.checked_sub(1).filter(|&r| r <= u32::MAX as u64) else {
+    let Some(record) = last
+        .records
+        .checked_sub(1)
+        .filter(|&r| r <= u32::MAX as u64)
+    else {
         return;
     };
     let root = QuadAt {
@@ -236,9 +270,9 @@ fn describe(bytes: &[u8]) -> StoredPack {
             bytes.get(offset..offset.checked_add(len)?)
         })
         .unwrap_or(&[]);
-    let records = table
-        .get(16..24)
-        .map_or(0, |count| u64::from_le_bytes(count.try_into().expect("8 bytes")));
+    let records = table.get(16..24).map_or(0, |count| {
+        u64::from_le_bytes(count.try_into().expect("8 bytes"))
+    });
     StoredPack {
         name: pack_name(bytes),
         bytes: size as u64,

@@ -119,7 +119,10 @@ fn mutate(seed: &[u8], other: &[u8], stream: &mut Stream) -> Vec<u8> {
                 let copy = bytes[at..end].to_vec();
                 let times = 1 + stream.below(64);
                 let to = stream.below(len + 1);
-                bytes.splice(to..to, copy.iter().copied().cycle().take(copy.len() * times));
+                bytes.splice(
+                    to..to,
+                    copy.iter().copied().cycle().take(copy.len() * times),
+                );
             }
             6 if !other.is_empty() => {
                 let cut = stream.below(len + 1);
@@ -193,7 +196,11 @@ fn every_fuzz_target_survives_its_corpus_and_mutations_of_it() {
     let mut failures = Vec::new();
     for (index, target) in TARGETS.iter().enumerate() {
         let seeds = corpus(target.name);
-        assert!(!seeds.is_empty(), "fuzz/corpus/{} holds no seeds", target.name);
+        assert!(
+            !seeds.is_empty(),
+            "fuzz/corpus/{} holds no seeds",
+            target.name
+        );
         let mut stream = Stream(0x5eed_0000 + index as u64);
         let mutations = (0..MUTATIONS).map(|_| {
             let seed = &seeds[stream.below(seeds.len())];
@@ -220,7 +227,8 @@ fn every_fuzz_target_survives_its_corpus_and_mutations_of_it() {
 #[test]
 fn the_pack_records_harness_rebuilds_a_real_pack_byte_for_byte() {
     let seed = std::fs::read(
-        PathBuf::from(env!("CARGO_MANIFEST_DIR")).join("../corpus/pack_records/lighthouse-gen1e29.bin"),
+        PathBuf::from(env!("CARGO_MANIFEST_DIR"))
+            .join("../corpus/pack_records/lighthouse-gen1e29.bin"),
     )
     .unwrap();
     let real = std::fs::read(
@@ -230,5 +238,8 @@ fn the_pack_records_harness_rebuilds_a_real_pack_byte_for_byte() {
     let records = u16::from_le_bytes([seed[0], seed[1]]) as u64;
     let base = deeptime_engine::pack::pack_name(deeptime_fuzz::BASE_PACK);
     let made = deeptime_fuzz::pack_around(&seed[2..], records, &[base]);
-    assert!(made == real, "the harness's pack differs from the one deeptime wrote");
+    assert!(
+        made == real,
+        "the harness's pack differs from the one deeptime wrote"
+    );
 }
