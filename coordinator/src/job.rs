@@ -165,15 +165,35 @@ fn parse_duration(text: &str) -> Option<Duration> {
 
 /// 1-based line and column of a byte offset.
 fn line_column(text: &str, offset: usize) -> (usize, usize) {
-    let before = &text[..offset.min(text.len())];
+    // An offset inside a character counts from that character's start.
+    let mut end = offset.min(text.len());
+    while !text.is_char_boundary(end) {
+        end -= 1;
+    }
+    let before = &text[..end];
     let line = before.matches('\n').count() + 1;
-    let column = before.len() - before.rfind('\n').map_or(0, |at| at + 1) + 1;
+    let column = before[before.rfind('\n').map_or(0, |at| at + 1)..]
+        .chars()
+        .count()
+        + 1;
     (line, column)
 }
 
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    // A position inside a multi-byte character is that character's, and
+    // columns count characters (common practice for editors' columns).
+    #[test]
+    fn positions_inside_characters_do_not_panic() {
+        let text = "name = \"größe\"\nx = 1";
+        // 'ö' is bytes 10 and 11, the 11th character.
+        assert_eq!(line_column(text, 10), (1, 11));
+        assert_eq!(line_column(text, 11), (1, 11));
+        assert_eq!(line_column(text, 12), (1, 12));
+        assert_eq!(line_column(text, text.len() + 5), (2, 6));
+    }
 
     fn load(text: &str) -> Result<Job, BadInput> {
         let dir = tempfile::tempdir().unwrap();
