@@ -4,39 +4,15 @@
 //! the same part. Every cluster run's digest is checked equal to the
 //! embedded run's before a figure is reported.
 
-use std::path::{Path, PathBuf};
+use std::path::Path;
 use std::time::Duration;
 
 use anyhow::ensure;
 use deeptime_engine::rule::Rule;
 
-use super::cluster::{Fault, Measured, Nodes, embedded, on_nodes};
+use super::cluster::{Fault, Measured, Nodes, embedded, on_nodes, write_job};
 use super::suite::{soup, write_rle};
 use super::{Figure, Goal, Settings, process};
-
-/// A job over `pattern` (in `dir`) to `target`, a checkpoint every `every`,
-/// with `memory` for the embedded run.
-fn job(
-    dir: &Path,
-    name: &str,
-    pattern: &str,
-    target: &str,
-    every: &str,
-    memory: Option<&str>,
-) -> anyhow::Result<PathBuf> {
-    let path = dir.join(format!("{name}.toml"));
-    let memory = memory
-        .map(|m| format!("memory = \"{m}\"\n"))
-        .unwrap_or_default();
-    std::fs::write(
-        &path,
-        format!(
-            "version = 1\nname = \"{name}\"\npattern = \"{pattern}\"\ntarget = \"{target}\"\n{memory}\n\
-             [checkpoint]\ndir = \"runs/{name}\"\nevery = \"{every}\"\n"
-        ),
-    )?;
-    Ok(path)
-}
 
 /// Checks a cluster run ended well with the embedded digest.
 fn same(cluster: &Measured, alone: &Measured, what: &str) -> anyhow::Result<()> {
@@ -120,14 +96,17 @@ pub fn capacity(settings: &Settings) -> anyhow::Result<Vec<Figure>> {
     // Tight budgets: 2 nodes of 32 MiB against one process of 32 MiB;
     // 4 nodes of 64 MiB (five processes on this machine's cores) against
     // one process without a budget.
-    let unlimited = embedded(&exe, &job(dir, "alone", "soup.rle", target, target, None)?)?;
+    let unlimited = embedded(
+        &exe,
+        &write_job(dir, "alone", "soup.rle", target, target, None)?,
+    )?;
     for (nodes, memory, against) in [(2usize, "32MiB", Some("32MiB")), (4, "64MiB", None)] {
         let tight;
         let alone = match against {
             Some(memory) => {
                 tight = embedded(
                     &exe,
-                    &job(dir, "alone-tight", "soup.rle", target, target, Some(memory))?,
+                    &write_job(dir, "alone-tight", "soup.rle", target, target, Some(memory))?,
                 )?;
                 same_digest(&tight, &unlimited)?;
                 &tight
@@ -137,7 +116,7 @@ pub fn capacity(settings: &Settings) -> anyhow::Result<Vec<Figure>> {
         let name = format!("tight-{nodes}");
         let run = on_nodes(
             &exe,
-            &job(dir, &name, "soup.rle", target, target, None)?,
+            &write_job(dir, &name, "soup.rle", target, target, None)?,
             dir,
             &Nodes {
                 count: nodes,
@@ -179,14 +158,14 @@ pub fn capacity(settings: &Settings) -> anyhow::Result<Vec<Figure>> {
     let big_pattern = if side == 2048 { "soup.rle" } else { "big.rle" };
     let big_alone = embedded(
         &exe,
-        &job(dir, "big-alone", big_pattern, big_target, big_every, None)?,
+        &write_job(dir, "big-alone", big_pattern, big_target, big_every, None)?,
     )?;
     let mut outcomes = Vec::new();
     for nodes in [1usize, 4] {
         let name = format!("big-{nodes}");
         let run = on_nodes(
             &exe,
-            &job(dir, &name, big_pattern, big_target, big_every, None)?,
+            &write_job(dir, &name, big_pattern, big_target, big_every, None)?,
             dir,
             &Nodes {
                 count: nodes,
@@ -233,11 +212,11 @@ pub fn capacity(settings: &Settings) -> anyhow::Result<Vec<Figure>> {
     };
     let deep_alone = embedded(
         &exe,
-        &job(dir, "deep-alone", "lighthouse.rle", far, far_every, None)?,
+        &write_job(dir, "deep-alone", "lighthouse.rle", far, far_every, None)?,
     )?;
     let deep = on_nodes(
         &exe,
-        &job(dir, "deep", "lighthouse.rle", far, far_every, None)?,
+        &write_job(dir, "deep", "lighthouse.rle", far, far_every, None)?,
         dir,
         &Nodes {
             count: 2,
@@ -269,7 +248,7 @@ pub fn capacity(settings: &Settings) -> anyhow::Result<Vec<Figure>> {
     let fault_every = if settings.quick { "64" } else { "256" };
     let fault_alone = embedded(
         &exe,
-        &job(dir, "fault-alone", "soup.rle", target, fault_every, None)?,
+        &write_job(dir, "fault-alone", "soup.rle", target, fault_every, None)?,
     )?;
     for (name, fault) in [
         ("frozen", Fault::Freeze(Duration::from_secs(5))),
@@ -277,7 +256,7 @@ pub fn capacity(settings: &Settings) -> anyhow::Result<Vec<Figure>> {
     ] {
         let run = on_nodes(
             &exe,
-            &job(dir, name, "soup.rle", target, fault_every, None)?,
+            &write_job(dir, name, "soup.rle", target, fault_every, None)?,
             dir,
             &Nodes {
                 count: 3,

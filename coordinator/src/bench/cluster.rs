@@ -74,11 +74,23 @@ impl Measured {
     }
 }
 
-/// Writes a job file for the pattern in `dir`, its checkpoints in `runs`.
-fn write_job(dir: &Path, name: &str, target: &str, every: &str) -> anyhow::Result<PathBuf> {
+/// Writes a job file `NAME.toml` in `dir` over `pattern` (in `dir`) to
+/// `target`, a checkpoint every `every` into `runs/NAME`, with `memory` as
+/// the embedded run's budget if given.
+pub(super) fn write_job(
+    dir: &Path,
+    name: &str,
+    pattern: &str,
+    target: &str,
+    every: &str,
+    memory: Option<&str>,
+) -> anyhow::Result<PathBuf> {
     let path = dir.join(format!("{name}.toml"));
+    let memory = memory
+        .map(|m| format!("memory = \"{m}\"\n"))
+        .unwrap_or_default();
     let text = format!(
-        "version = 1\nname = \"{name}\"\npattern = \"soup.rle\"\ntarget = \"{target}\"\n\n\
+        "version = 1\nname = \"{name}\"\npattern = \"{pattern}\"\ntarget = \"{target}\"\n{memory}\n\
          [checkpoint]\ndir = \"runs/{name}\"\nevery = \"{every}\"\n"
     );
     std::fs::write(&path, text)?;
@@ -347,8 +359,22 @@ pub fn cluster(settings: &Settings) -> anyhow::Result<Vec<Figure>> {
     let mut shard_level = None;
     let mut costs = Vec::new();
     for (name, every) in [("once", target), ("often", every)] {
-        let embedded_job = write_job(dir, &format!("embedded-{name}"), target, every)?;
-        let cluster_job = write_job(dir, &format!("cluster-{name}"), target, every)?;
+        let embedded_job = write_job(
+            dir,
+            &format!("embedded-{name}"),
+            "soup.rle",
+            target,
+            every,
+            None,
+        )?;
+        let cluster_job = write_job(
+            dir,
+            &format!("cluster-{name}"),
+            "soup.rle",
+            target,
+            every,
+            None,
+        )?;
         let alone = embedded(&exe, &embedded_job)?;
         let folder = dir.join(format!("runs/cluster-{name}"));
         let cluster = on_cluster(&exe, &cluster_job, 2, None, dir, Some(&folder))?;
@@ -459,7 +485,16 @@ pub fn cluster(settings: &Settings) -> anyhow::Result<Vec<Figure>> {
     );
 
     // Peak store bytes per node as nodes are added, at one shard level.
-    let job = |nodes: usize| write_job(dir, &format!("memory-{nodes}"), target, target);
+    let job = |nodes: usize| {
+        write_job(
+            dir,
+            &format!("memory-{nodes}"),
+            "soup.rle",
+            target,
+            target,
+            None,
+        )
+    };
     let folder = |nodes: usize| dir.join(format!("runs/memory-{nodes}"));
     let single = on_cluster(&exe, &job(1)?, 1, shard_level, dir, Some(&folder(1)))?;
     ensure!(

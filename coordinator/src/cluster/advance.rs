@@ -245,17 +245,18 @@ pub async fn advance(
     memo.begin(&words);
     let mut walk = Walk::new(&words, level);
     let mut asks = Asks::default();
-    let empties: Vec<Quad> = {
+    // The empty quads from level K - 1 up, and the walk started, under one
+    // lock of the top.
+    let empties: Vec<Quad>;
+    let mut out;
+    {
         let mut top = top.lock().expect("top");
-        (shard_level - 1..=level)
+        empties = (shard_level - 1..=level)
             .map(|at| {
                 let id = top.empty(at);
                 top.quad(&id).expect("the top has its empty quads")
             })
-            .collect()
-    };
-    let mut out = {
-        let mut top = top.lock().expect("top");
+            .collect();
         let root = top
             .quad(&root)
             .ok_or_else(|| anyhow!("the root {} is not in the top of the tree", root.short()))?;
@@ -267,8 +268,8 @@ pub async fn advance(
             shard_level,
             empties: &empties,
         };
-        walk.start(&mut remote, root, Stride::Residual)?
-    };
+        out = walk.start(&mut remote, root, Stride::Residual)?;
+    }
     let mut running = FuturesUnordered::new();
     loop {
         if let Some(result) = out {

@@ -8,8 +8,6 @@
 //! checkpoint and lost before it was stored), or nodes that cannot read
 //! the run's storage.
 
-use std::collections::HashSet;
-
 use anyhow::Context;
 use deeptime_engine::pack::QuadAt;
 use deeptime_engine::{ContentId, KnownQuads};
@@ -122,7 +120,6 @@ impl Run<'_> {
             top.keep_under(&roots);
             top.pieces_under(&roots)
         };
-        let kept: HashSet<ContentId> = kept.into_iter().collect();
         self.tasks.retain(self.job_id, &kept).await?;
         Ok(Recovered::Reloaded {
             pieces: at.len(),

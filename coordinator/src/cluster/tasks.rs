@@ -303,9 +303,19 @@ impl Dispatcher {
     /// Loses every member whose address refuses connections (after a
     /// call failed in a way that may mean one is gone).
     pub async fn lose_the_gone(&self) {
-        for member in self.members.joined() {
-            if self.probe(&member).await {
-                self.members.lose(&member, "it refuses connections");
+        self.lose_gone_among(&self.members.joined()).await;
+    }
+
+    /// Loses those of `members` (not lost yet) whose addresses refuse
+    /// connections, all probed at once.
+    async fn lose_gone_among(&self, members: &[Arc<Member>]) {
+        let probes = members
+            .iter()
+            .filter(|member| member.holds_lease())
+            .map(|member| async move { (member, self.probe(member).await) });
+        for (member, gone) in futures::future::join_all(probes).await {
+            if gone {
+                self.members.lose(member, "it refuses connections");
             }
         }
     }
@@ -457,11 +467,7 @@ impl Dispatcher {
                         member.address,
                         status.message()
                     ));
-                    for holder in &holders {
-                        if holder.holds_lease() && self.probe(holder).await {
-                            self.members.lose(holder, "it refuses connections");
-                        }
-                    }
+                    self.lose_gone_among(&holders).await;
                     tokio::time::sleep(RETRY_PAUSE).await;
                 }
                 Err(status) if status.code() == tonic::Code::ResourceExhausted => {
