@@ -7,7 +7,7 @@ use std::path::Path;
 use deeptime_engine::pattern::{self, Pattern};
 use deeptime_engine::rule::Rule;
 
-use crate::failure::{BadInput, InputOverBudget};
+use deeptime_engine::{BadInput, InputOverBudget};
 
 /// Pattern files larger than this are refused before they are read whole.
 const MAX_PATTERN_BYTES: u64 = 1 << 30;

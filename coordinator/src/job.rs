@@ -10,7 +10,7 @@ use num_bigint::BigUint;
 use num_traits::Zero;
 use serde::Deserialize;
 
-use crate::failure::BadInput;
+use deeptime_engine::BadInput;
 
 /// The job file format version this build reads.
 pub const JOB_VERSION: u32 = 1;

@@ -1,68 +1,17 @@
-//! The `deeptime` command as a library: every subcommand's module, and
-//! `main`, which the binary (`main.rs`) calls. A library so that the fuzz
-//! targets (`fuzz/`) call the real readers of job files and manifests.
-//!
-//! `main` turns the outcome into an exit code; each subcommand lives in a
-//! module of its own and returns a `Result`.
+//! The runs of a job, as a library: `deeptime run` (the embedded mode:
+//! the engine's recursion with a local base case) and `deeptime
+//! coordinator` (the same recursion with tasks on nodes as its base case),
+//! the job file both read, and what they report. The `deeptime` binary
+//! (`cli/`) parses the command line and calls it; the fuzz targets call its
+//! job file reader.
 
-mod bench;
-pub mod checkpoint;
-mod cli;
-mod cluster;
-pub mod failure;
-mod input;
-mod inspect;
+pub mod args;
+pub mod cluster;
+pub mod input;
 pub mod job;
-mod leap;
-mod memory;
-mod node;
-mod numbers;
-mod output;
-mod progress;
-mod report;
-mod run;
-mod snapshot;
-
-use std::process::ExitCode;
-
-use clap::Parser;
-
-use crate::cli::{Cli, Command};
-
-/// The command: parses the command line, runs the subcommand and turns
-/// its outcome into an exit code.
-pub fn main() -> ExitCode {
-    let cli = Cli::parse();
-    // Output piped into `head` and the like: end quietly when the reader
-    // goes away, as command-line tools do, rather than fail on a write.
-    // Not the cluster's servers: a write to a peer that died must be an
-    // error on that connection, never the end of the process.
-    #[cfg(unix)]
-    if !matches!(cli.command, Command::Coordinator(_) | Command::Node(_)) {
-        // SAFETY: restoring the default disposition of SIGPIPE at start-up,
-        // before any thread exists, is what a C program starts with.
-        unsafe {
-            libc::signal(libc::SIGPIPE, libc::SIG_DFL);
-        }
-    }
-    memory::return_large_blocks();
-    let outcome = match cli.command {
-        Command::Leap(args) => leap::run(args),
-        Command::Run(args) => run::run(args),
-        Command::Checkpoints(args) => inspect::list(args),
-        Command::Verify(args) => inspect::verify(args),
-        Command::Snapshot(args) => snapshot::run(args),
-        Command::Prune(args) => inspect::prune(args),
-        Command::Bench(args) => bench::run(args),
-        Command::Coordinator(args) => cluster::run(args),
-        Command::Node(args) => node::run(args),
-        Command::Status(args) => cluster::status::run(args),
-    };
-    match outcome {
-        Ok(()) => ExitCode::SUCCESS,
-        Err(error) => {
-            eprintln!("deeptime: {}", failure::describe(&error));
-            ExitCode::from(failure::exit_code(&error))
-        }
-    }
-}
+pub mod memory;
+pub mod numbers;
+pub mod output;
+pub mod progress;
+pub mod report;
+pub mod run;

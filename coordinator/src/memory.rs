@@ -2,10 +2,10 @@
 
 use bytesize::ByteSize;
 
-use crate::failure::BadInput;
+use deeptime_engine::BadInput;
 
 /// The smallest budget accepted: below it nothing useful fits.
-pub(crate) const MIN_BUDGET: u64 = 1 << 20;
+pub const MIN_BUDGET: u64 = 1 << 20;
 
 /// The budget in bytes from the option's text, or the default: half of the
 /// machine's memory, so the rest of the system keeps room.

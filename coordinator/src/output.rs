@@ -5,7 +5,7 @@
 use std::io::{BufWriter, Write};
 use std::path::Path;
 
-use crate::failure::OutputFailed;
+use deeptime_engine::OutputFailed;
 
 /// The folder `out` is written in (the current one for a bare name).
 pub fn folder_of(out: &Path) -> &Path {

@@ -11,13 +11,13 @@ use deeptime_engine::{ContentId, KnownQuads, Progress, Universe};
 use num_bigint::BigUint;
 use num_traits::{One, ToPrimitive, Zero};
 
-use crate::checkpoint::{Checkpoints, Manifest};
-use crate::cli::RunArgs;
-use crate::failure::BadInput;
+use crate::args::RunArgs;
 use crate::job::Job;
 use crate::numbers::for_people;
 use crate::report::Report;
 use crate::{input, memory, progress};
+use deeptime_engine::BadInput;
+use deeptime_storage::checkpoint::{Checkpoints, Manifest};
 
 pub fn run(args: RunArgs) -> anyhow::Result<()> {
     let job = Job::load(&args.job)?;
@@ -32,7 +32,7 @@ pub fn run(args: RunArgs) -> anyhow::Result<()> {
     drop(loaded);
     let pattern_digest = fresh.digest()?;
 
-    let checkpoints = Checkpoints::new(deeptime_node::storage::open(&job.checkpoint_dir)?);
+    let checkpoints = Checkpoints::new(deeptime_storage::open(&job.checkpoint_dir)?);
     // One writer at a time: held until the run ends.
     let _lock = checkpoints.lock()?;
     let (mut universe, mut previous, mut known) =

@@ -20,7 +20,7 @@ impl ContentId {
     /// The id of a leaf with these cells (bit `y*8 + x`).
     pub fn of_leaf(bits: u64) -> ContentId {
         let mut bytes = [0u8; 12];
-        bytes[..4].copy_from_slice(&crate::store::LEAF_LEVEL.to_le_bytes());
+        bytes[..4].copy_from_slice(&crate::LEAF_LEVEL.to_le_bytes());
         bytes[4..].copy_from_slice(&bits.to_le_bytes());
         ContentId::of_bytes(&bytes)
     }

@@ -83,3 +83,21 @@ pub enum AdvanceError {
     #[error(transparent)]
     Stack(#[from] StackRefused),
 }
+
+/// Input the user can fix: a malformed pattern, rule, number, option, job
+/// file or checkpoint folder. Every deeptime crate marks such errors with
+/// it, so that the command can answer them with exit code 2.
+#[derive(Debug, thiserror::Error)]
+#[error("{0}")]
+pub struct BadInput(pub String);
+
+/// An output file that could not be written (its folder, the disk): a
+/// failure of the system, never a sign that what was read is damaged.
+#[derive(Debug, thiserror::Error)]
+#[error("{0}")]
+pub struct OutputFailed(pub String);
+
+/// Input that is sound but does not fit the memory budget.
+#[derive(Debug, thiserror::Error)]
+#[error("{0}")]
+pub struct InputOverBudget(pub String);

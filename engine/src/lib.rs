@@ -3,6 +3,9 @@
 //!
 //! Synchronous and free of network code: the cluster layers build on it.
 
+/// The level of leaves: 8×8 cells.
+pub const LEAF_LEVEL: u32 = 3;
+
 pub mod cut;
 pub mod direct;
 pub mod generation;
@@ -28,8 +31,11 @@ mod view;
 
 pub use advance::{Observer, Progress};
 pub use content_id::{BadContentId, ContentId};
-pub use error::{AdvanceError, BudgetExceeded, StackRefused, TooLargeForText, human_bytes};
-pub use store::{Handle, LEAF_LEVEL, StoreStats};
+pub use error::{
+    AdvanceError, BadInput, BudgetExceeded, InputOverBudget, OutputFailed, StackRefused,
+    TooLargeForText, human_bytes,
+};
+pub use store::{Handle, StoreStats};
 pub use universe::{
     BoundingBox, KnownQuads, MAX_TEXT_CELLS, PackInput, Region, Universe, WriteError,
 };

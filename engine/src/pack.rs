@@ -1254,3 +1254,12 @@ mod tests {
         }
     }
 }
+
+/// Damage or a failed fetch in one pack of a stored state.
+#[derive(Debug, Clone, PartialEq, Eq, thiserror::Error)]
+#[error("{place}: {error}")]
+pub struct ReadError {
+    /// the pack, as `StoredPack::place`
+    pub place: String,
+    pub error: PackError,
+}

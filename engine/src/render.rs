@@ -9,8 +9,8 @@ use std::collections::HashMap;
 use num_bigint::{BigInt, BigUint};
 use num_traits::{One, Signed, ToPrimitive};
 
+use crate::pack::ReadError;
 use crate::store::LEAF_LEVEL;
-use crate::stored::ReadError;
 use crate::universe::Universe;
 use crate::view::{QuadView, StoreView, descend};
 

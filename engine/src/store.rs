@@ -62,8 +62,7 @@ impl Handle {
     }
 }
 
-/// The level of leaves: 8×8 cells.
-pub const LEAF_LEVEL: u32 = 3;
+pub use crate::LEAF_LEVEL;
 
 const INDEX_BITS: u32 = !Handle::LEAF_BIT;
 

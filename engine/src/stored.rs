@@ -18,8 +18,8 @@ use std::io::Write;
 use num_bigint::{BigInt, BigUint};
 
 use crate::pack::{
-    Checksum, PackError, PackTable, QuadAt, RawRecord, RawRef, TRAILER_BYTES, decode_chunk,
-    read_trailer,
+    Checksum, PackError, PackTable, QuadAt, RawRecord, RawRef, ReadError, TRAILER_BYTES,
+    decode_chunk, read_trailer,
 };
 use crate::pattern::write;
 use crate::render::{Picture, RenderError, picture_of};
@@ -48,15 +48,6 @@ pub struct StoredPack {
     pub table: Checksum,
     /// where it is, for messages (a path or URL)
     pub place: String,
-}
-
-/// Damage or a failed fetch in one pack of a stored state.
-#[derive(Debug, Clone, PartialEq, Eq, thiserror::Error)]
-#[error("{place}: {error}")]
-pub struct ReadError {
-    /// the pack, as `StoredPack::place`
-    pub place: String,
-    pub error: PackError,
 }
 
 /// A quad of a stored state: a record, or an empty quad (never stored).

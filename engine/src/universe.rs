@@ -16,11 +16,11 @@ use crate::advance::{self, Advance, Observer};
 use crate::content_id::ContentId;
 use crate::error::{AdvanceError, BudgetExceeded, TooLargeForText};
 use crate::figures::{self, Side};
+use crate::pack::ReadError;
 use crate::pack::{self, Checksum, QuadAt};
 use crate::pattern::{MAX_COORDINATE, Pattern, write};
 use crate::rule::Rule;
 use crate::store::{Handle, LEAF_LEVEL, Store, StoreStats};
-use crate::stored::ReadError;
 use crate::view::{QuadView, StoreView, descend};
 
 /// The smallest root level kept while advancing (32×32 cells).

@@ -10,8 +10,8 @@ use num_bigint::BigUint;
 use num_traits::One;
 
 use crate::figures::{self, Counter};
+use crate::pack::ReadError;
 use crate::store::{Handle, Store};
-use crate::stored::ReadError;
 
 /// What the drawing code needs of a quadtree. Levels are known to the
 /// caller (the root's, minus the depth), as in the store.

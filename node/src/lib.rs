@@ -13,7 +13,6 @@ pub mod membership;
 pub mod packs;
 pub mod serve;
 pub mod service;
-pub mod storage;
 pub mod wire;
 
 pub use serve::{NodeConfig, run_node};

@@ -22,8 +22,8 @@ use deeptime_proto::v1;
 use tonic::Status;
 
 use crate::service::NodeState;
-use crate::storage::{self, Storage};
 use crate::wire;
+use deeptime_storage::{self as storage, Storage};
 
 /// The checkpoint folder a node writes to.
 pub struct Checkpoints {
@@ -393,7 +393,7 @@ fn read_subtree(
     ids: &mut HashMap<QuadAt, ContentId, ahash::RandomState>,
     visited: &mut std::collections::HashSet<QuadAt, ahash::RandomState>,
     empties: &mut Vec<ContentId>,
-) -> Result<Vec<(ContentId, Record)>, deeptime_engine::stored::ReadError> {
+) -> Result<Vec<(ContentId, Record)>, deeptime_engine::pack::ReadError> {
     let mut empty = |level: u32| -> ContentId {
         while empties.len() <= (level - LEAF_LEVEL) as usize {
             let id = match empties.last() {

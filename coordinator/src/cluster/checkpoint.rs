@@ -23,12 +23,12 @@ use deeptime_engine::pack::{Checksum, IdQuad, QuadAt, write_id_pack};
 use deeptime_engine::shard::{Record, Shard};
 use deeptime_engine::{ContentId, KnownQuads, Universe};
 
-use crate::checkpoint::{
-    BoxText, Checkpoints, FORMAT, MAX_PACKS, Manifest, PackEntry, STAND_ALONE_AFTER, VERSION,
-};
 use crate::cluster::drive::{OnNodes, Run};
 use crate::cluster::tasks::PiecesLost;
 use deeptime_node::fetch::fetch_missing;
+use deeptime_storage::checkpoint::{
+    BoxText, Checkpoints, FORMAT, MAX_PACKS, Manifest, PackEntry, STAND_ALONE_AFTER, VERSION,
+};
 
 /// How the last checkpoint was written, for the run's report.
 #[derive(Default, Clone, Copy, Debug)]
@@ -84,7 +84,7 @@ impl Run<'_> {
         if let Some(keep) = self.job.keep
             && let Err(error) = tokio::task::block_in_place(|| checkpoints.prune(keep))
         {
-            eprintln!("deeptime: warning: retention: {error:#}");
+            tracing::warn!("retention: {error:#}");
         }
         self.say("running");
         Ok(())
@@ -107,8 +107,8 @@ impl Run<'_> {
                 .said_gathering
                 .swap(true, std::sync::atomic::Ordering::Relaxed)
         {
-            eprintln!(
-                "deeptime: checkpoints pass through the coordinator ({}; the job's folder is {})",
+            tracing::info!(
+                "checkpoints pass through the coordinator ({}; the job's folder is {})",
                 others.join(", "),
                 self.checkpoint_location
             );

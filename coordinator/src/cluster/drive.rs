@@ -13,7 +13,6 @@ use anyhow::Context;
 use deeptime_engine::{ContentId, KnownQuads, Universe};
 use num_bigint::BigUint;
 
-use crate::checkpoint::{Checkpoints, Manifest};
 use crate::cluster::advance::{self, Memo};
 use crate::cluster::checkpoint::Written;
 use crate::cluster::members::{Board, Members};
@@ -24,6 +23,7 @@ use crate::numbers::for_people;
 use crate::report::{BoxReport, EngineReport, Report};
 use deeptime_engine::top::Top;
 use deeptime_node::fetch::Peers;
+use deeptime_storage::checkpoint::{Checkpoints, Manifest};
 
 /// Everything a cluster run works with.
 pub struct Run<'a> {
@@ -73,7 +73,7 @@ impl Run<'_> {
 
     pub async fn drive(&self, fresh: Universe) -> anyhow::Result<Report> {
         let started = Instant::now();
-        let checkpoints = Checkpoints::new(deeptime_node::storage::open(&self.job.checkpoint_dir)?);
+        let checkpoints = Checkpoints::new(deeptime_storage::open(&self.job.checkpoint_dir)?);
         // One writer at a time: held until the run ends.
         let _lock = checkpoints.lock()?;
         // A new run stores its pattern as checkpoint 1 and loads it from
@@ -115,7 +115,7 @@ impl Run<'_> {
             let on_nodes = match loaded {
                 Ok(on_nodes) => on_nodes,
                 Err(error) if error.chain().any(|cause| cause.is::<PiecesLost>()) => {
-                    eprintln!("deeptime: {error:#}; loading again");
+                    tracing::warn!("{error:#}; loading again");
                     self.tasks.lose_the_gone().await;
                     self.tasks.forget_all();
                     continue;
@@ -129,7 +129,7 @@ impl Run<'_> {
             {
                 Ended::Target(state) => return self.report(&state, started).await,
                 Ended::Lost(why) => {
-                    eprintln!("deeptime: {why:#}; rolling back to the newest checkpoint");
+                    tracing::warn!("{why:#}; rolling back to the newest checkpoint");
                     self.say("rolling back");
                     self.tasks.forget_all();
                 }
@@ -180,8 +180,8 @@ impl Run<'_> {
             .filter(|p| !warm.contains_key(&p.id))
             .collect();
         if !warm.is_empty() {
-            eprintln!(
-                "deeptime: {} of {} pieces are on the nodes already",
+            tracing::info!(
+                "{} of {} pieces are on the nodes already",
                 warm.len(),
                 cut.pieces.len()
             );
@@ -345,8 +345,8 @@ impl Run<'_> {
                     height: bbox.height,
                 });
             }
-            eprintln!(
-                "deeptime: generation {}, population {}, {} tasks",
+            tracing::info!(
+                "generation {}, population {}, {} tasks",
                 for_people(&state.generation.to_string()),
                 for_people(&population.to_string()),
                 self.tasks.counters().done
@@ -405,8 +405,8 @@ impl Run<'_> {
         self.say("recovering");
         match self.recover(state, previous.as_ref(), known, memo).await? {
             Recovered::Reloaded { pieces, sequence } => {
-                eprintln!(
-                    "deeptime: {error:#}; read {pieces} lost pieces again from the packs of checkpoint {sequence}, and going on from generation {}",
+                tracing::warn!(
+                    "{error:#}; read {pieces} lost pieces again from the packs of checkpoint {sequence}, and going on from generation {}",
                     for_people(&state.generation.to_string())
                 );
                 self.say("running");

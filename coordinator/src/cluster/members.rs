@@ -163,10 +163,7 @@ impl Members {
         if member.live.swap(false, Ordering::Relaxed) {
             member.ready.store(false, Ordering::Relaxed);
             member.lost.send_replace(true);
-            eprintln!(
-                "deeptime: node {} ({}) lost: {why}",
-                member.id, member.address
-            );
+            tracing::warn!("node {} ({}) lost: {why}", member.id, member.address);
             self.changed.notify_waiters();
         }
     }
@@ -208,9 +205,10 @@ impl Members {
             lost: tokio::sync::watch::channel(false).0,
         }));
         drop(list);
-        eprintln!(
-            "deeptime: node {id} joined from {} (version {})",
-            request.address, request.version
+        tracing::info!(
+            "node {id} joined from {} (version {})",
+            request.address,
+            request.version
         );
         self.changed.notify_waiters();
         Ok(v1::JoinReply {
@@ -239,8 +237,8 @@ impl Members {
                 silent_seconds = silent.as_secs_f64(),
                 "a late node answers again; it takes tasks as before"
             );
-            eprintln!(
-                "deeptime: node {} ({}) is back after {:.1} s; it keeps what it held",
+            tracing::info!(
+                "node {} ({}) is back after {:.1} s; it keeps what it held",
                 member.id,
                 member.address,
                 silent.as_secs_f64()
@@ -282,8 +280,8 @@ impl Members {
                     && member.ready.load(Ordering::Relaxed)
                     && !member.late.swap(true, Ordering::Relaxed)
                 {
-                    eprintln!(
-                        "deeptime: node {} ({}) is late (unheard for {:.1} s): no new tasks go to it; \
+                    tracing::warn!(
+                        "node {} ({}) is late (unheard for {:.1} s): no new tasks go to it; \
                          it counts as lost after {:.0} s",
                         member.id,
                         member.address,

@@ -29,11 +29,11 @@ use tonic::service::interceptor::InterceptedService;
 use tonic::transport::Server;
 use tonic::transport::server::TcpIncoming;
 
-use crate::cli::CoordinatorArgs;
-use crate::failure::BadInput;
+use crate::args::CoordinatorArgs;
 use crate::job::Job;
 use crate::report::Report;
 use crate::{input, memory};
+use deeptime_engine::BadInput;
 use members::{Board, CoordinatorService, Leases, Members, Terms};
 use tasks::Dispatcher;
 pub use tasks::NodeOutOfMemory;
@@ -68,7 +68,7 @@ pub fn token_for_coordinator(path: &Path) -> anyhow::Result<Token> {
         use std::os::unix::fs::PermissionsExt;
         std::fs::set_permissions(path, std::fs::Permissions::from_mode(0o600))?;
     }
-    eprintln!("deeptime: wrote a new cluster token to {}", path.display());
+    tracing::info!("wrote a new cluster token to {}", path.display());
     Ok(token)
 }
 
@@ -225,9 +225,10 @@ async fn coordinate(args: CoordinatorArgs) -> anyhow::Result<()> {
                 .map_err(anyhow::Error::from)
         }
     });
-    eprintln!(
-        "deeptime: coordinating {} on {bound} (shard level {shard_level}); waiting for {} node(s)",
-        job.name, args.min_nodes
+    tracing::info!(
+        "coordinating {} on {bound} (shard level {shard_level}); waiting for {} node(s)",
+        job.name,
+        args.min_nodes
     );
 
     let run = drive::Run {
@@ -241,7 +242,7 @@ async fn coordinate(args: CoordinatorArgs) -> anyhow::Result<()> {
         tasks: &tasks,
         board: &board,
         peers: deeptime_node::fetch::Peers::new(token.clone(), tls.clone()),
-        checkpoint_location: deeptime_node::storage::location(&job.checkpoint_dir)
+        checkpoint_location: deeptime_storage::location(&job.checkpoint_dir)
             .with_context(|| format!("checkpoint folder {}", job.checkpoint_dir.display()))?,
         written: Mutex::new(Default::default()),
         said_gathering: Default::default(),
@@ -307,7 +308,7 @@ async fn coordinate(args: CoordinatorArgs) -> anyhow::Result<()> {
         }
     };
     if args.stay {
-        eprintln!("deeptime: staying up for status calls (interrupt to stop)");
+        tracing::info!("staying up for status calls (interrupt to stop)");
         let _ = tokio::signal::ctrl_c().await;
     }
     server.abort();

@@ -12,10 +12,10 @@ use anyhow::Context;
 use deeptime_engine::pack::QuadAt;
 use deeptime_engine::{ContentId, KnownQuads};
 
-use crate::checkpoint::Manifest;
 use crate::cluster::advance::Memo;
 use crate::cluster::drive::{OnNodes, Run};
 use crate::cluster::resume::packs_of;
+use deeptime_storage::checkpoint::Manifest;
 
 /// What a recovery did.
 pub(super) enum Recovered {

@@ -23,13 +23,13 @@ use deeptime_engine::{BudgetExceeded, ContentId, KnownQuads};
 use deeptime_node::wire::{self, MAX_BATCH};
 use deeptime_proto::v1;
 
-use crate::checkpoint::{Checkpoints, Manifest};
 use crate::cluster::drive::{OnNodes, Run};
 use crate::cluster::members::Member;
 use crate::cluster::tasks::{NodeOutOfMemory, PiecesLost};
-use crate::failure::BadInput;
 use crate::numbers::for_people;
+use deeptime_engine::BadInput;
 use deeptime_engine::top::Top;
+use deeptime_storage::checkpoint::{Checkpoints, Manifest};
 
 /// The top of a stored state, read down to its pieces.
 struct StoredTop {
@@ -80,7 +80,7 @@ impl Run<'_> {
                 Ok(manifest) => manifest,
                 Err(error) if error.chain().any(|c| c.is::<BadInput>()) => return Err(error),
                 Err(error) => {
-                    eprintln!("deeptime: warning: skipping damaged checkpoint: {error:#}");
+                    tracing::warn!("skipping damaged checkpoint: {error:#}");
                     continue;
                 }
             };
@@ -96,8 +96,8 @@ impl Run<'_> {
                     // node that failed): read it here, whole, which tells
                     // damage from the rest as an embedded run does.
                     Err(error) if !stops_the_load(&error) => {
-                        eprintln!(
-                            "deeptime: warning: the nodes could not read checkpoint {}: {error:#}; reading it whole",
+                        tracing::warn!(
+                            "the nodes could not read checkpoint {}: {error:#}; reading it whole",
                             manifest.sequence
                         );
                         self.tasks.forget_all();
@@ -126,8 +126,8 @@ impl Run<'_> {
             };
             match outcome {
                 Ok((on_nodes, known)) => {
-                    eprintln!(
-                        "deeptime: resuming {} from checkpoint {} at generation {}",
+                    tracing::info!(
+                        "resuming {} from checkpoint {} at generation {}",
                         self.job.name,
                         manifest.sequence,
                         for_people(&manifest.generation)
@@ -136,8 +136,8 @@ impl Run<'_> {
                 }
                 Err(error) if stops_the_load(&error) => return Err(error),
                 Err(error) => {
-                    eprintln!(
-                        "deeptime: warning: skipping damaged checkpoint {}: {error:#}",
+                    tracing::warn!(
+                        "skipping damaged checkpoint {}: {error:#}",
                         manifest.sequence
                     );
                     self.tasks.forget_all();
@@ -184,8 +184,8 @@ impl Run<'_> {
             }
         }
         if !placed.is_empty() {
-            eprintln!(
-                "deeptime: {} of {} pieces are on the nodes already",
+            tracing::info!(
+                "{} of {} pieces are on the nodes already",
                 placed.len(),
                 top.pieces.len()
             );

@@ -7,7 +7,7 @@ use deeptime_proto::v1;
 use num_bigint::BigUint;
 use serde_json::json;
 
-use crate::cli::StatusArgs;
+use crate::args::StatusArgs;
 use crate::numbers::{box_for_people, for_people};
 
 /// Generations per second since the coordinator began, and the seconds

@@ -10,7 +10,6 @@
 use std::collections::HashSet;
 use std::path::Path;
 
-use deeptime_coordinator::checkpoint::Manifest;
 use deeptime_coordinator::job::Job;
 use deeptime_engine::generation::parse_generations;
 use deeptime_engine::pack::{
@@ -22,6 +21,7 @@ use deeptime_engine::stored::{Fetch, StoredNode, StoredPack, StoredState};
 use deeptime_engine::{ContentId, PackInput, Universe};
 use deeptime_node::wire;
 use deeptime_proto::v1;
+use deeptime_storage::checkpoint::Manifest;
 use num_bigint::BigUint;
 use prost::Message;
 

@@ -452,8 +452,8 @@ fn run_python(
 /// Checkpoints of a large chaotic state: bytes per quad on disk, write and
 /// resume speed, and an incremental checkpoint against a full one.
 fn checkpoints(settings: &Settings) -> anyhow::Result<Vec<Figure>> {
-    use crate::checkpoint::Checkpoints;
-    use deeptime_node::storage::LocalDir;
+    use deeptime_storage::LocalDir;
+    use deeptime_storage::checkpoint::Checkpoints;
 
     let side = if settings.quick { 512 } else { 23_200 };
     let pattern = soup(side, 3)?;
@@ -462,9 +462,9 @@ fn checkpoints(settings: &Settings) -> anyhow::Result<Vec<Figure>> {
     let (inner, leaves) = universe.live_quads();
     let quads = inner + leaves;
     let directory = tempfile::tempdir()?;
-    let counted = std::sync::Arc::new(deeptime_node::storage::Counting::new(Box::new(
-        LocalDir::new(directory.path().to_path_buf()),
-    )));
+    let counted = std::sync::Arc::new(deeptime_storage::Counting::new(Box::new(LocalDir::new(
+        directory.path().to_path_buf(),
+    ))));
     let checkpoints = Checkpoints::new(Box::new(counted.clone()));
     let digest = universe.digest()?;
     let mut known = deeptime_engine::KnownQuads::default();

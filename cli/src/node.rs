@@ -3,17 +3,10 @@
 use deeptime_node::{NodeConfig, run_node};
 
 use crate::cli::NodeArgs;
-use crate::memory;
+use deeptime_coordinator::memory;
 
 pub fn run(args: NodeArgs) -> anyhow::Result<()> {
-    tracing_subscriber::fmt()
-        .with_writer(std::io::stderr)
-        .with_ansi(std::io::IsTerminal::is_terminal(&std::io::stderr()))
-        .with_env_filter(
-            tracing_subscriber::EnvFilter::try_from_env("DEEPTIME_LOG")
-                .unwrap_or_else(|_| tracing_subscriber::EnvFilter::new("warn")),
-        )
-        .init();
+    crate::logging::init("warn");
     let config = NodeConfig {
         join: args.join,
         listen: args.listen,

@@ -190,7 +190,7 @@ pub fn capacity(settings: &Settings) -> anyhow::Result<Vec<Figure>> {
         Figure::new(
             "capacity",
             &format!("2048² soup to {big_target}: live bytes / one node's {budget}"),
-            live / crate::memory::budget(Some(budget))? as f64,
+            live / deeptime_coordinator::memory::budget(Some(budget))? as f64,
             "×",
             Some(Goal::AtLeast(3.0)),
         )

@@ -14,7 +14,9 @@ use deeptime_engine::{BoundingBox, ContentId, KnownQuads, PackInput, Universe};
 use num_bigint::{BigInt, BigUint};
 use serde::{Deserialize, Serialize};
 
-use crate::failure::BadInput;
+use deeptime_engine::BadInput;
+
+use crate::{self as storage, PackFetch, Storage, pack_key};
 
 /// The storage of a run that is there to read: its folder (or `s3://`
 /// URL). A local folder that does not exist is the user's mistake, not an
@@ -26,7 +28,6 @@ pub fn open_existing(dir: &std::path::Path) -> anyhow::Result<Box<dyn Storage>> 
     }
     Ok(storage::open(dir)?)
 }
-use deeptime_node::storage::{self, PackFetch, Storage, pack_key};
 
 /// The manifest format's name and version.
 pub const FORMAT: &str = "deeptime-checkpoint";

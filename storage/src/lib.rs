@@ -4,6 +4,7 @@
 //! `packs/<id>.pack` and `manifests/0000000003.json`; objects are written
 //! once and never changed.
 
+pub mod checkpoint;
 mod counting;
 mod local;
 mod s3;

@@ -20,13 +20,13 @@ use deeptime_engine::stored::StoredState;
 use deeptime_engine::{BoundingBox, Progress, Region, Universe};
 use num_bigint::{BigInt, BigUint};
 
-use crate::checkpoint::{Checkpoints, Manifest};
 use crate::cli::SnapshotArgs;
 use crate::failure::{BadInput, OutputFailed};
-use crate::numbers::for_people;
-use crate::report::{BoxReport, EngineReport, Report};
-use crate::{memory, output, progress};
-use deeptime_node::storage::Counting;
+use deeptime_coordinator::numbers::for_people;
+use deeptime_coordinator::report::{BoxReport, EngineReport, Report};
+use deeptime_coordinator::{memory, output, progress};
+use deeptime_storage::Counting;
+use deeptime_storage::checkpoint::{Checkpoints, Manifest};
 
 /// Pictures are at most this many pixels on their longer side by default.
 const DEFAULT_PICTURE: u64 = 1024;
@@ -41,7 +41,9 @@ pub fn run(args: SnapshotArgs) -> anyhow::Result<()> {
     let budget = memory::budget(args.memory.as_deref())?;
     let started = Instant::now();
     // Every byte read from the run's storage is counted, for the report.
-    let counted = Arc::new(Counting::new(crate::checkpoint::open_existing(&args.dir)?));
+    let counted = Arc::new(Counting::new(deeptime_storage::checkpoint::open_existing(
+        &args.dir,
+    )?));
     let checkpoints = Checkpoints::new(Box::new(counted.clone()));
     let keys = checkpoints.manifest_keys()?;
     if keys.is_empty() {

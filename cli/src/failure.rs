@@ -5,21 +5,7 @@
 
 use deeptime_engine::{AdvanceError, BudgetExceeded};
 
-/// Input the user can fix: a malformed pattern, rule, number or option.
-#[derive(Debug, thiserror::Error)]
-#[error("{0}")]
-pub struct BadInput(pub String);
-
-/// An output file that could not be written (its folder, the disk): a
-/// failure of the system, never a sign that what was read is damaged.
-#[derive(Debug, thiserror::Error)]
-#[error("{0}")]
-pub struct OutputFailed(pub String);
-
-/// Input that is sound but does not fit the memory budget.
-#[derive(Debug, thiserror::Error)]
-#[error("{0}")]
-pub struct InputOverBudget(pub String);
+pub use deeptime_engine::{BadInput, InputOverBudget, OutputFailed};
 
 pub const EXIT_FAILURE: u8 = 1;
 pub const EXIT_BAD_INPUT: u8 = 2;
@@ -47,10 +33,9 @@ pub fn describe(error: &anyhow::Error) -> String {
         }
         text.push_str(&cause.to_string());
     }
-    if error
-        .chain()
-        .any(|cause| is_budget(cause) && !cause.is::<crate::cluster::NodeOutOfMemory>())
-    {
+    if error.chain().any(|cause| {
+        is_budget(cause) && !cause.is::<deeptime_coordinator::cluster::NodeOutOfMemory>()
+    }) {
         text.push_str(" (--memory)");
     }
     text
@@ -59,7 +44,7 @@ pub fn describe(error: &anyhow::Error) -> String {
 fn is_budget(cause: &(dyn std::error::Error + 'static)) -> bool {
     cause.is::<BudgetExceeded>()
         || cause.is::<InputOverBudget>()
-        || cause.is::<crate::cluster::NodeOutOfMemory>()
+        || cause.is::<deeptime_coordinator::cluster::NodeOutOfMemory>()
         || matches!(
             cause.downcast_ref::<AdvanceError>(),
             Some(AdvanceError::Budget(_))

@@ -6,12 +6,14 @@ use std::path::Path;
 use anyhow::bail;
 use serde::Serialize;
 
-use crate::checkpoint::Checkpoints;
 use crate::cli::DirArgs;
-use crate::numbers::{box_for_people, for_people};
+use deeptime_coordinator::numbers::{box_for_people, for_people};
+use deeptime_storage::checkpoint::Checkpoints;
 
 fn open(dir: &Path) -> anyhow::Result<Checkpoints> {
-    Ok(Checkpoints::new(crate::checkpoint::open_existing(dir)?))
+    Ok(Checkpoints::new(
+        deeptime_storage::checkpoint::open_existing(dir)?,
+    ))
 }
 
 /// One checkpoint as `verify --json` reports it.
@@ -35,7 +37,7 @@ struct Row {
     generation: String,
     population: String,
     /// the extent of the live cells, null when none live
-    bbox: Option<crate::checkpoint::BoxText>,
+    bbox: Option<deeptime_storage::checkpoint::BoxText>,
     digest: String,
     /// bytes of every pack the checkpoint needs (its own and earlier ones)
     pack_bytes: u64,
@@ -119,9 +121,9 @@ pub fn verify(args: DirArgs) -> anyhow::Result<()> {
     let mut damaged = Vec::new();
     let mut report = Vec::new();
     for key in &keys {
-        let checked = checkpoints
-            .manifest(key)
-            .and_then(|manifest| checkpoints.load(manifest, crate::memory::budget(None)?));
+        let checked = checkpoints.manifest(key).and_then(|manifest| {
+            checkpoints.load(manifest, deeptime_coordinator::memory::budget(None)?)
+        });
         let row = match checked {
             Ok(loaded) => Checked {
                 manifest: key.clone(),

@@ -16,7 +16,7 @@ use tempfile::TempDir;
 
 use super::suite::write_rle;
 use super::{Figure, Goal, process};
-use crate::memory::MIN_BUDGET;
+use deeptime_coordinator::memory::MIN_BUDGET;
 
 /// A glider: the smallest run that goes through all of `leap`.
 const GLIDER: &str = "x = 3, y = 3, rule = B3/S23\nbo$2bo$3o!\n";

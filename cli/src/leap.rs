@@ -10,9 +10,9 @@ use deeptime_engine::{Progress, Universe, WriteError};
 
 use crate::cli::LeapArgs;
 use crate::failure::BadInput;
-use crate::progress;
-use crate::report::Report;
-use crate::{input, memory, output};
+use deeptime_coordinator::progress;
+use deeptime_coordinator::report::Report;
+use deeptime_coordinator::{input, memory, output};
 
 pub fn run(args: LeapArgs) -> anyhow::Result<()> {
     // Validate everything the user typed before any work starts.
