@@ -261,7 +261,7 @@ pub(super) fn on_nodes(
             .lock()
             .expect("lines")
             .iter()
-            .any(|(_, line)| line.starts_with("deeptime: generation"))
+            .any(|(_, line)| line.contains(" generation ") && line.contains(" tasks"))
         {
             if Instant::now() > deadline || children.0[0].try_wait()?.is_some() {
                 bail!("the run ended before its first step: {}", said(&lines));
