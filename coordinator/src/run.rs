@@ -19,8 +19,15 @@ use crate::{input, memory, progress};
 use deeptime_engine::BadInput;
 use deeptime_storage::checkpoint::{Checkpoints, Manifest};
 
+/// `deeptime run`: runs the job and prints its figures.
 pub fn run(args: RunArgs) -> anyhow::Result<()> {
-    let job = Job::load(&args.job)?;
+    run_job(&args.job)?.print(args.json)
+}
+
+/// Runs the job file at `path` to its target in this process, resuming
+/// from its newest valid checkpoint; the figures of the state it reached.
+pub fn run_job(path: &std::path::Path) -> anyhow::Result<Report> {
+    let job = Job::load(path)?;
     let budget = memory::budget(job.memory.as_deref())?;
     let loaded = input::read(&job.pattern, budget)?;
     let rule = input::rule(job.rule.as_deref(), &loaded)?;
@@ -106,7 +113,7 @@ pub fn run(args: RunArgs) -> anyhow::Result<()> {
         }
     }
     line.finish();
-    Report::of(&mut universe, started.elapsed())?.print(args.json)
+    Report::of(&mut universe, started.elapsed())
 }
 
 /// The run's state to go on from: the newest checkpoint that reads back

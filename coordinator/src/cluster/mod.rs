@@ -42,12 +42,15 @@ pub use tasks::NodeOutOfMemory;
 const MIN_AUTO_SHARD_LEVEL: u32 = 8;
 const MAX_AUTO_SHARD_LEVEL: u32 = 24;
 
+/// `deeptime coordinator`: runs the job and prints its figures (a table,
+/// or one JSON object with `--json`).
 pub fn run(args: CoordinatorArgs) -> anyhow::Result<()> {
     let runtime = tokio::runtime::Builder::new_multi_thread()
         .enable_all()
         .build()
         .context("starting the runtime")?;
-    runtime.block_on(coordinate(args))
+    let json = args.json;
+    runtime.block_on(coordinate(args, |finished| finished.print(json)))
 }
 
 /// The cluster token: read from the file, or made and written there when
@@ -81,43 +84,70 @@ fn choose_shard_level(side: u64, nodes: usize) -> u32 {
     level.clamp(MIN_AUTO_SHARD_LEVEL, MAX_AUTO_SHARD_LEVEL)
 }
 
+/// What a finished cluster run reports: the state's figures, as an
+/// embedded run gives them, and the cluster's.
 #[derive(Serialize)]
-struct ClusterReport {
+pub struct Finished {
     #[serde(flatten)]
-    report: Report,
-    cluster: ClusterFigures,
+    pub report: Report,
+    pub cluster: ClusterFigures,
+}
+
+impl Finished {
+    /// Prints the figures: a table, or one JSON object.
+    pub fn print(&self, json: bool) -> anyhow::Result<()> {
+        if json {
+            println!("{}", serde_json::to_string(self)?);
+            return Ok(());
+        }
+        self.report.print(false)?;
+        println!(
+            "cluster       {} nodes, shard level {}, {} tasks ({} memoised), {} fetched between nodes",
+            self.cluster.nodes,
+            self.cluster.shard_level,
+            self.cluster.tasks,
+            self.cluster.tasks_memoised,
+            deeptime_engine::human_bytes(self.cluster.bytes_fetched)
+        );
+        Ok(())
+    }
 }
 
 #[derive(Serialize)]
-struct ClusterFigures {
-    nodes: usize,
-    shard_level: u32,
-    tasks: u64,
-    tasks_memoised: u64,
-    records_fetched: u64,
+pub struct ClusterFigures {
+    pub nodes: usize,
+    pub shard_level: u32,
+    pub tasks: u64,
+    pub tasks_memoised: u64,
+    pub records_fetched: u64,
     /// bytes of the fetch replies nodes received from peers for tasks, and
     /// of those the encoded size of the records the receiver still lacked
-    bytes_fetched: u64,
-    bytes_fetched_lacked: u64,
+    pub bytes_fetched: u64,
+    pub bytes_fetched_lacked: u64,
     /// fetch calls tasks made to peers (each a round trip)
-    fetch_calls: u64,
+    pub fetch_calls: u64,
     /// per node in join order, the most bytes its store reported, and the
     /// tasks it ran
-    peak_bytes: Vec<u64>,
-    node_tasks: Vec<u64>,
+    pub peak_bytes: Vec<u64>,
+    pub node_tasks: Vec<u64>,
     /// seconds nodes spent computing tasks, and tasks took end to end
-    compute_seconds: f64,
-    task_seconds: f64,
+    pub compute_seconds: f64,
+    pub task_seconds: f64,
     /// checkpoints whose pieces the nodes wrote themselves, and those the
     /// coordinator gathered; bytes of the packs nodes wrote and of the
     /// coordinator's
-    checkpoints_by_nodes: u64,
-    checkpoints_gathered: u64,
-    node_pack_bytes: u64,
-    coordinator_pack_bytes: u64,
+    pub checkpoints_by_nodes: u64,
+    pub checkpoints_gathered: u64,
+    pub node_pack_bytes: u64,
+    pub coordinator_pack_bytes: u64,
 }
 
-async fn coordinate(args: CoordinatorArgs) -> anyhow::Result<()> {
+/// Runs the job on the nodes that join, hands its figures to `finished`
+/// (before staying up, with `--stay`), and stops serving.
+pub async fn coordinate(
+    args: CoordinatorArgs,
+    finished: impl FnOnce(&Finished) -> anyhow::Result<()>,
+) -> anyhow::Result<()> {
     let started = Instant::now();
     let job = Job::load(&args.job)?;
     let budget = memory::budget(job.memory.as_deref())?;
@@ -279,26 +309,10 @@ async fn coordinate(args: CoordinatorArgs) -> anyhow::Result<()> {
                 node_pack_bytes: written.node_pack_bytes,
                 coordinator_pack_bytes: written.coordinator_pack_bytes,
             };
-            if args.json {
-                println!(
-                    "{}",
-                    serde_json::to_string(&ClusterReport {
-                        report,
-                        cluster: figures
-                    })?
-                );
-            } else {
-                report.print(false)?;
-                println!(
-                    "cluster       {} nodes, shard level {}, {} tasks ({} memoised), {} fetched between nodes",
-                    figures.nodes,
-                    figures.shard_level,
-                    figures.tasks,
-                    figures.tasks_memoised,
-                    deeptime_engine::human_bytes(figures.bytes_fetched)
-                );
-            }
-            Ok(())
+            finished(&Finished {
+                report,
+                cluster: figures,
+            })
         }
         Err(error) => {
             let mut status = board.status.lock().expect("board");
