@@ -25,6 +25,10 @@ pub struct Quad(u32);
 /// before its children were told (see [`Top::insert`]).
 const NONE: u32 = u32::MAX;
 
+/// The id a freed slot carries until it is used again, so that a handle
+/// kept past a collection is found out (see [`Top::holds`]).
+const FREED: ContentId = ContentId([0xff; 16]);
+
 /// One quad of the arena.
 #[derive(Clone, Copy)]
 struct Slot {
@@ -100,6 +104,14 @@ impl Top {
             Some(&at) => Quad(at),
             None => self.make(id, self.shard_level - 1, [NONE; 4]),
         }
+    }
+
+    /// Whether `quad` is still the quad `id` (a handle kept across a
+    /// collection may have been freed, or reused for another quad).
+    pub fn holds(&self, quad: Quad, id: &ContentId) -> bool {
+        self.slots
+            .get(quad.0 as usize)
+            .is_some_and(|slot| slot.id == *id)
     }
 
     pub fn id(&self, quad: Quad) -> ContentId {
@@ -294,14 +306,17 @@ impl Top {
     /// The distinct level-(K-1) pieces under any of `roots` (each of level
     /// K-1 or more; empty ones left out).
     pub fn pieces_under(&mut self, roots: &[(ContentId, u32)]) -> HashSet<ContentId> {
+        let roots = self.quads_of(roots);
+        self.pieces_under_quads(&roots)
+    }
+
+    /// The pieces under these quads (as [`Top::pieces_under`]).
+    pub fn pieces_under_quads(&mut self, roots: &[Quad]) -> HashSet<ContentId> {
         let piece_level = self.shard_level - 1;
         let empty = self.empty(piece_level);
         let mut seen = vec![false; self.slots.len()];
         let mut pieces = HashSet::new();
-        let mut stack: Vec<u32> = roots
-            .iter()
-            .filter_map(|(id, _)| self.by_id.get(id).copied())
-            .collect();
+        let mut stack: Vec<u32> = roots.iter().map(|quad| quad.0).collect();
         while let Some(at) = stack.pop() {
             if std::mem::replace(&mut seen[at as usize], true) {
                 continue;
@@ -316,6 +331,11 @@ impl Top {
             }
         }
         pieces
+    }
+
+    /// The handles of those of these quads the top has.
+    fn quads_of(&self, roots: &[(ContentId, u32)]) -> Vec<Quad> {
+        roots.iter().filter_map(|(id, _)| self.quad(id)).collect()
     }
 
     /// The distinct non-empty quads of level ≥ K under `root` that
@@ -376,12 +396,21 @@ impl Top {
     /// Forgets every quad not under one of `roots` (their handles may be
     /// given to new quads), and every piece not under one.
     pub fn keep_under(&mut self, roots: &[(ContentId, u32)]) {
+        let roots = self.quads_of(roots);
+        self.keep_under_quads(&roots);
+    }
+
+    /// Keeps what is under these quads (as [`Top::keep_under`]).
+    pub fn keep_under_quads(&mut self, roots: &[Quad]) {
         let mut keep = vec![false; self.slots.len()];
         let mut stack: Vec<u32> = roots
             .iter()
-            .map(|(id, _)| id)
-            .chain(&self.empties)
-            .filter_map(|id| self.by_id.get(id).copied())
+            .map(|quad| quad.0)
+            .chain(
+                self.empties
+                    .iter()
+                    .filter_map(|id| self.by_id.get(id).copied()),
+            )
             .collect();
         while let Some(at) = stack.pop() {
             if std::mem::replace(&mut keep[at as usize], true) {
@@ -403,6 +432,7 @@ impl Top {
             if slot.kids[0] != NONE {
                 self.by_kids.remove(&slot.kids);
             }
+            self.slots[at].id = FREED;
             self.free.push(at32);
         }
     }
@@ -557,9 +587,13 @@ mod tests {
         let b = square(&mut top, 16);
         let kids_of_a = top.kids(&a, 10);
         let figures_of_a = top.figures(&a, 10, &pieces);
+        let (a_at, b_at) = (top.quad(&a).unwrap(), top.quad(&b).unwrap());
         top.keep_under(&[(a, 10)]);
         assert!(top.quad(&b).is_none(), "b was forgotten");
+        assert!(top.holds(a_at, &a), "a kept its handle");
+        assert!(!top.holds(b_at, &b), "b's handle no longer names b");
         let c = square(&mut top, 32);
+        assert!(!top.holds(b_at, &b), "nor once its slot serves again");
         assert_eq!(top.kids(&a, 10), kids_of_a);
         assert_eq!(top.figures(&a, 10, &pieces), figures_of_a);
         let mut fresh = Top::new(8);

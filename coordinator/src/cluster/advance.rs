@@ -37,6 +37,9 @@ pub struct Memo {
 
 struct Entry {
     result: ContentId,
+    /// the result's handle in the top when it was found or made: read
+    /// without a lookup while the top still holds it there
+    at: Quad,
     /// the result's level
     level: u32,
     /// found or made by the latest advance
@@ -63,11 +66,17 @@ impl Memo {
         }
     }
 
-    /// The results (each with its level), for keeping what they need.
-    pub fn results(&self) -> Vec<(ContentId, u32)> {
+    /// The results the top still has, for keeping what they need.
+    pub fn results(&self, top: &Top) -> Vec<Quad> {
         self.entries
             .values()
-            .map(|entry| (entry.result, entry.level))
+            .filter_map(|entry| {
+                if top.holds(entry.at, &entry.result) {
+                    Some(entry.at)
+                } else {
+                    top.quad(&entry.result)
+                }
+            })
             .collect()
     }
 
@@ -188,7 +197,13 @@ impl Tree for Remote<'_> {
     fn memo(&mut self, quad: Quad, _level: u32, stride: Stride) -> Option<Quad> {
         let entry = self.memo.entries.get_mut(&(self.top.id(quad), stride))?;
         // A result the top no longer has is as good as none.
-        let result = self.top.quad(&entry.result)?;
+        let result = if self.top.holds(entry.at, &entry.result) {
+            entry.at
+        } else {
+            let at = self.top.quad(&entry.result)?;
+            entry.at = at;
+            at
+        };
         entry.used = true;
         self.tasks.memoised.fetch_add(1, Ordering::Relaxed);
         Some(result)
@@ -199,6 +214,7 @@ impl Tree for Remote<'_> {
             (self.top.id(quad), stride),
             Entry {
                 result: self.top.id(result),
+                at: result,
                 level: level - 1,
                 used: true,
             },

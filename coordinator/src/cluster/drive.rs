@@ -316,12 +316,13 @@ impl Run<'_> {
                 // The memo goes on to the next step (with the quads and
                 // pieces its results need), unless its pieces would more
                 // than double what the nodes hold (and are more than a few).
-                let mut roots = memo.results();
-                let carried_pieces = top.pieces_under(&roots);
+                let mut roots = memo.results(&top);
+                let carried_pieces = top.pieces_under_quads(&roots);
                 let extra = carried_pieces.difference(&pieces).count();
                 if extra <= pieces.len().max(MIN_CARRIED_PIECES) {
-                    roots.push((root, level));
-                    top.keep_under(&[&roots[..], &[(start.0, start.1)]].concat());
+                    roots.extend(top.quad(&root));
+                    roots.extend(top.quad(&start.0));
+                    top.keep_under_quads(&roots);
                     pieces
                         .union(&carried_pieces)
                         .copied()

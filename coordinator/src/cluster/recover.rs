@@ -115,10 +115,10 @@ impl Run<'_> {
                     .iter()
                     .all(|piece| self.tasks.is_held(piece))
             });
-            let mut roots = memo.results();
-            roots.push((state.root, state.level));
-            top.keep_under(&roots);
-            top.pieces_under(&roots)
+            let mut roots = memo.results(&top);
+            roots.extend(top.quad(&state.root));
+            top.keep_under_quads(&roots);
+            top.pieces_under_quads(&roots)
         };
         self.tasks.retain(self.job_id, &kept).await?;
         Ok(Recovered::Reloaded {
