@@ -3,14 +3,16 @@
 //! pieces kept elsewhere. A cluster's coordinator advances it with the one
 //! walker ([`crate::walk`]); here is what a state's root needs besides:
 //! growing it for an advance, shrinking it after, the pieces under it, and
-//! the figures of the whole from the pieces' figures.
+//! the figures of the whole from the pieces' figures. The walker's memo
+//! lives in the quads, as in the engine's store: a lookup is a slot read,
+//! and what a memoised result needs is kept with it.
 
 use std::collections::{HashMap, HashSet};
 use std::sync::Arc;
 
 use crate::content_id::ContentId;
 use crate::cut::UpperQuad;
-use crate::recursion;
+use crate::recursion::{self, Stride};
 use crate::shard::Figures;
 use crate::universe::BoundingBox;
 use num_bigint::{BigInt, BigUint};
@@ -29,12 +31,25 @@ const NONE: u32 = u32::MAX;
 /// kept past a collection is found out (see [`Top::holds`]).
 const FREED: ContentId = ContentId([0xff; 16]);
 
+/// Where a stride's result sits in a slot's memo.
+fn stride_bit(stride: Stride) -> usize {
+    match stride {
+        Stride::Full => 0,
+        Stride::Residual => 1,
+    }
+}
+
 /// One quad of the arena.
 #[derive(Clone, Copy)]
 struct Slot {
     id: ContentId,
     level: u32,
     kids: [u32; 4],
+    /// the walker's memo, as the engine's store keeps it: the results of
+    /// advancing this quad by a full and by the residual stride (NONE:
+    /// none), and which of the two the latest advance used (bits 0, 1)
+    memo: [u32; 2],
+    used: u8,
 }
 
 /// The quads of level ≥ K - 1 in an arena, found by content id and, for
@@ -153,7 +168,13 @@ impl Top {
             }
             return Quad(at);
         }
-        let slot = Slot { id, level, kids };
+        let slot = Slot {
+            id,
+            level,
+            kids,
+            memo: [NONE; 2],
+            used: 0,
+        };
         let at = match self.free.pop() {
             Some(at) => {
                 self.slots[at as usize] = slot;
@@ -393,8 +414,90 @@ impl Top {
         out
     }
 
-    /// Forgets every quad not under one of `roots` (their handles may be
-    /// given to new quads), and every piece not under one.
+    /// The result memoised for advancing `quad` by `stride`, marked used.
+    pub fn memo(&mut self, quad: Quad, stride: Stride) -> Option<Quad> {
+        let bit = stride_bit(stride);
+        let slot = &mut self.slots[quad.0 as usize];
+        let result = slot.memo[bit];
+        (result != NONE).then(|| {
+            slot.used |= 1 << bit;
+            Quad(result)
+        })
+    }
+
+    /// Memoises the result of advancing `quad` by `stride`.
+    pub fn remember(&mut self, quad: Quad, stride: Stride, result: Quad) {
+        let bit = stride_bit(stride);
+        let slot = &mut self.slots[quad.0 as usize];
+        slot.memo[bit] = result.0;
+        slot.used |= 1 << bit;
+    }
+
+    /// Before an advance: every entry unused so far, and the residual ones
+    /// forgotten when `residual_changed` (they hold for one N only).
+    pub fn memo_begin(&mut self, residual_changed: bool) {
+        for slot in &mut self.slots {
+            slot.used = 0;
+            if residual_changed {
+                slot.memo[stride_bit(Stride::Residual)] = NONE;
+            }
+        }
+    }
+
+    /// After an advance: past `max` entries only the ones it used stay.
+    pub fn memo_end(&mut self, max: usize) {
+        let entries: usize = self
+            .slots
+            .iter()
+            .map(|slot| slot.memo.iter().filter(|&&result| result != NONE).count())
+            .sum();
+        if entries > max {
+            for slot in &mut self.slots {
+                for bit in 0..2 {
+                    if slot.used & (1 << bit) == 0 {
+                        slot.memo[bit] = NONE;
+                    }
+                }
+            }
+        }
+    }
+
+    /// Forgets every memoised result.
+    pub fn memo_clear(&mut self) {
+        for slot in &mut self.slots {
+            slot.memo = [NONE; 2];
+        }
+    }
+
+    /// The memoised results.
+    pub fn memo_results(&self) -> Vec<Quad> {
+        self.slots
+            .iter()
+            .flat_map(|slot| slot.memo)
+            .filter(|&result| result != NONE)
+            .map(Quad)
+            .collect()
+    }
+
+    /// Forgets the memoised results that `keep` refuses.
+    pub fn memo_forget_unless(&mut self, mut keep: impl FnMut(&mut Top, Quad) -> bool) {
+        for at in 0..self.slots.len() {
+            for bit in 0..2 {
+                let result = self.slots[at].memo[bit];
+                if result != NONE && !keep(self, Quad(result)) {
+                    self.slots[at].memo[bit] = NONE;
+                }
+            }
+        }
+    }
+
+    /// The quads that have a memoised result.
+    fn memo_holders(&self) -> impl Iterator<Item = u32> + '_ {
+        (0..self.slots.len() as u32).filter(|&at| self.slots[at as usize].memo != [NONE; 2])
+    }
+
+    /// Forgets every quad not under one of `roots`, a memoised quad or a
+    /// memoised result (their handles may be given to new quads).
     pub fn keep_under(&mut self, roots: &[(ContentId, u32)]) {
         let roots = self.quads_of(roots);
         self.keep_under_quads(&roots);
@@ -411,15 +514,17 @@ impl Top {
                     .iter()
                     .filter_map(|id| self.by_id.get(id).copied()),
             )
+            .chain(self.memo_holders())
             .collect();
         while let Some(at) = stack.pop() {
             if std::mem::replace(&mut keep[at as usize], true) {
                 continue;
             }
-            let kids = self.slots[at as usize].kids;
-            if kids[0] != NONE {
-                stack.extend(kids);
+            let slot = &self.slots[at as usize];
+            if slot.kids[0] != NONE {
+                stack.extend(slot.kids);
             }
+            stack.extend(slot.memo.iter().filter(|&&result| result != NONE));
         }
         let free: HashSet<u32> = self.free.iter().copied().collect();
         for (at, kept) in keep.iter().enumerate() {
@@ -433,6 +538,7 @@ impl Top {
                 self.by_kids.remove(&slot.kids);
             }
             self.slots[at].id = FREED;
+            self.slots[at].memo = [NONE; 2];
             self.free.push(at32);
         }
     }
@@ -618,5 +724,43 @@ mod tests {
             .map(|(_, population)| u64::try_from(population).unwrap())
             .collect();
         assert_eq!(populations, [5, 5]);
+    }
+
+    // The memo lives in the quads: a memoised quad and its result are kept
+    // with it, residual results go when N changes, unused ones go past the
+    // limit, and a freed quad takes its memo with it.
+    #[test]
+    fn memoised_quads_and_results_are_kept_and_forgotten_as_told() {
+        let mut top = Top::new(8);
+        top.empty(12);
+        let (a, b, c) = (
+            square(&mut top, 0),
+            square(&mut top, 16),
+            square(&mut top, 32),
+        );
+        let [a, b, c] = [a, b, c].map(|id| top.quad(&id).unwrap());
+        top.remember(a, Stride::Full, b);
+        top.remember(a, Stride::Residual, c);
+        top.keep_under_quads(&[]);
+        assert_eq!(top.memo(a, Stride::Full), Some(b));
+        assert_eq!(top.memo(a, Stride::Residual), Some(c));
+        let mut results = top.memo_results();
+        results.sort_by_key(|quad| quad.0);
+        let mut expected = vec![b, c];
+        expected.sort_by_key(|quad| quad.0);
+        assert_eq!(results, expected);
+
+        top.memo_begin(true);
+        assert_eq!(top.memo(a, Stride::Residual), None, "a new N");
+        top.memo_begin(false);
+        top.memo_end(0);
+        assert_eq!(top.memo(a, Stride::Full), None, "unused past the limit");
+
+        let a_id = top.id(a);
+        top.remember(b, Stride::Full, c);
+        top.memo_forget_unless(|_, result| result != c);
+        assert_eq!(top.memo(b, Stride::Full), None);
+        top.keep_under_quads(&[]);
+        assert!(!top.holds(a, &a_id), "nothing keeps a now");
     }
 }

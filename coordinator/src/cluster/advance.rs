@@ -22,72 +22,28 @@ use num_bigint::BigUint;
 use crate::cluster::tasks::Dispatcher;
 
 /// Finished sub-advances a step hands on whole; beyond this, only the ones
-/// it used (an entry is about 80 bytes).
+/// it used.
 const MAX_CARRIED: usize = 1 << 20;
 
 /// The results of sub-advances above and at the shard level, kept from one
-/// step to the next as the local engine keeps results in its quads, so
-/// what recurs (the regular parts of a pattern) is not computed again.
+/// step to the next in the top's quads as the local engine keeps results
+/// in its store, so what recurs (the regular parts of a pattern) is not
+/// computed again. What is left here is which N the residual results are
+/// for.
 #[derive(Default)]
 pub struct Memo {
-    entries: HashMap<(ContentId, Stride), Entry, ahash::RandomState>,
     /// the N (little-endian words) the residual entries are for
     residual_for: Vec<u64>,
 }
 
-struct Entry {
-    result: ContentId,
-    /// the result's handle in the top when it was found or made: read
-    /// without a lookup while the top still holds it there
-    at: Quad,
-    /// the result's level
-    level: u32,
-    /// found or made by the latest advance
-    used: bool,
-}
-
 impl Memo {
     /// Before an advance by N: residual results hold only for the same N.
-    fn begin(&mut self, words: &[u64]) {
-        if words != self.residual_for {
-            self.entries
-                .retain(|(_, stride), _| *stride != Stride::Residual);
+    fn begin(&mut self, top: &mut Top, words: &[u64]) {
+        let changed = words != self.residual_for;
+        if changed {
             self.residual_for = words.to_vec();
         }
-        for entry in self.entries.values_mut() {
-            entry.used = false;
-        }
-    }
-
-    /// After an advance: past `MAX_CARRIED` entries only the used ones stay.
-    fn end(&mut self) {
-        if self.entries.len() > MAX_CARRIED {
-            self.entries.retain(|_, entry| entry.used);
-        }
-    }
-
-    /// The results the top still has, for keeping what they need.
-    pub fn results(&self, top: &Top) -> Vec<Quad> {
-        self.entries
-            .values()
-            .filter_map(|entry| {
-                if top.holds(entry.at, &entry.result) {
-                    Some(entry.at)
-                } else {
-                    top.quad(&entry.result)
-                }
-            })
-            .collect()
-    }
-
-    pub fn clear(&mut self) {
-        self.entries.clear();
-    }
-
-    /// Keeps only the entries whose result (id, level) passes `keep`.
-    pub fn forget_unless(&mut self, mut keep: impl FnMut(ContentId, u32) -> bool) {
-        self.entries
-            .retain(|_, entry| keep(entry.result, entry.level));
+        top.memo_begin(changed);
     }
 }
 
@@ -146,7 +102,6 @@ impl Asks {
 /// quad leaves (a task, the memo, the result).
 struct Remote<'a> {
     top: &'a mut Top,
-    memo: &'a mut Memo,
     asks: &'a mut Asks,
     tasks: &'a Dispatcher,
     shard_level: u32,
@@ -195,30 +150,13 @@ impl Tree for Remote<'_> {
     }
 
     fn memo(&mut self, quad: Quad, _level: u32, stride: Stride) -> Option<Quad> {
-        let entry = self.memo.entries.get_mut(&(self.top.id(quad), stride))?;
-        // A result the top no longer has is as good as none.
-        let result = if self.top.holds(entry.at, &entry.result) {
-            entry.at
-        } else {
-            let at = self.top.quad(&entry.result)?;
-            entry.at = at;
-            at
-        };
-        entry.used = true;
+        let result = self.top.memo(quad, stride)?;
         self.tasks.memoised.fetch_add(1, Ordering::Relaxed);
         Some(result)
     }
 
-    fn remember(&mut self, quad: Quad, level: u32, stride: Stride, result: Quad) {
-        self.memo.entries.insert(
-            (self.top.id(quad), stride),
-            Entry {
-                result: self.top.id(result),
-                at: result,
-                level: level - 1,
-                used: true,
-            },
-        );
+    fn remember(&mut self, quad: Quad, _level: u32, stride: Stride, result: Quad) {
+        self.top.remember(quad, stride, result);
     }
 
     fn base(&mut self, quad: Quad, level: u32, generations: u64) -> anyhow::Result<Answer<Quad>> {
@@ -258,7 +196,6 @@ pub async fn advance(
 ) -> anyhow::Result<ContentId> {
     let shard_level = top.lock().expect("top").shard_level;
     let words = steps.to_u64_digits();
-    memo.begin(&words);
     let mut walk = Walk::new(&words, level);
     let mut asks = Asks::default();
     // The empty quads from level K - 1 up, and the walk started, under one
@@ -267,6 +204,7 @@ pub async fn advance(
     let mut out;
     {
         let mut top = top.lock().expect("top");
+        memo.begin(&mut top, &words);
         empties = (shard_level - 1..=level)
             .map(|at| {
                 let id = top.empty(at);
@@ -278,7 +216,6 @@ pub async fn advance(
             .ok_or_else(|| anyhow!("the root {} is not in the top of the tree", root.short()))?;
         let mut remote = Remote {
             top: &mut top,
-            memo,
             asks: &mut asks,
             tasks,
             shard_level,
@@ -289,8 +226,9 @@ pub async fn advance(
     let mut running = FuturesUnordered::new();
     loop {
         if let Some(result) = out {
-            memo.end();
-            return Ok(top.lock().expect("top").id(result));
+            let mut top = top.lock().expect("top");
+            top.memo_end(MAX_CARRIED);
+            return Ok(top.id(result));
         }
         for ask in asks.unsent.drain(..) {
             running.push(async move {
@@ -314,7 +252,6 @@ pub async fn advance(
         let mut top = top.lock().expect("top");
         let mut remote = Remote {
             top: &mut top,
-            memo,
             asks: &mut asks,
             tasks,
             shard_level,

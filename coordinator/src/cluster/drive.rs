@@ -289,7 +289,7 @@ impl Run<'_> {
                     if error.chain().any(|cause| cause.is::<PiecesLost>()) {
                         recoveries += 1;
                         match self
-                            .recover_or_end(error, recoveries, &state, previous, known, &mut memo)
+                            .recover_or_end(error, recoveries, &state, previous, known)
                             .await?
                         {
                             None => continue,
@@ -316,20 +316,20 @@ impl Run<'_> {
                 // The memo goes on to the next step (with the quads and
                 // pieces its results need), unless its pieces would more
                 // than double what the nodes hold (and are more than a few).
-                let mut roots = memo.results(&top);
-                let carried_pieces = top.pieces_under_quads(&roots);
+                let results = top.memo_results();
+                let carried_pieces = top.pieces_under_quads(&results);
                 let extra = carried_pieces.difference(&pieces).count();
-                if extra <= pieces.len().max(MIN_CARRIED_PIECES) {
-                    roots.extend(top.quad(&root));
-                    roots.extend(top.quad(&start.0));
-                    top.keep_under_quads(&roots);
+                let carried = extra <= pieces.len().max(MIN_CARRIED_PIECES);
+                if !carried {
+                    top.memo_clear();
+                }
+                top.keep_under(&[(root, level), (start.0, start.1)]);
+                if carried {
                     pieces
                         .union(&carried_pieces)
                         .copied()
                         .collect::<HashSet<ContentId>>()
                 } else {
-                    memo.clear();
-                    top.keep_under(&[(root, level), (start.0, start.1)]);
                     pieces
                 }
             };
@@ -375,7 +375,7 @@ impl Run<'_> {
                     (state.root, state.level, state.generation) = start;
                     recoveries += 1;
                     if let Some(ended) = self
-                        .recover_or_end(error, recoveries, &state, previous, known, &mut memo)
+                        .recover_or_end(error, recoveries, &state, previous, known)
                         .await?
                     {
                         return Ok(ended);
@@ -396,7 +396,6 @@ impl Run<'_> {
         state: &OnNodes,
         previous: &Option<Manifest>,
         known: &KnownQuads,
-        memo: &mut Memo,
     ) -> anyhow::Result<Option<Ended>> {
         if recoveries > MAX_RECOVERIES {
             return Ok(Some(Ended::Lost(error.context(format!(
@@ -404,7 +403,7 @@ impl Run<'_> {
             )))));
         }
         self.say("recovering");
-        match self.recover(state, previous.as_ref(), known, memo).await? {
+        match self.recover(state, previous.as_ref(), known).await? {
             Recovered::Reloaded { pieces, sequence } => {
                 tracing::warn!(
                     "{error:#}; read {pieces} lost pieces again from the packs of checkpoint {sequence}, and going on from generation {}",

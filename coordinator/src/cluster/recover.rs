@@ -12,7 +12,6 @@ use anyhow::Context;
 use deeptime_engine::pack::QuadAt;
 use deeptime_engine::{ContentId, KnownQuads};
 
-use crate::cluster::advance::Memo;
 use crate::cluster::drive::{OnNodes, Run};
 use crate::cluster::resume::packs_of;
 use deeptime_storage::checkpoint::Manifest;
@@ -27,13 +26,13 @@ pub(super) enum Recovered {
 
 impl Run<'_> {
     /// Puts the lost pieces of `state` back on the live nodes from the
-    /// packs of `newest`, and drops what `memo` knows only from lost nodes.
+    /// packs of `newest`, and drops the memoised results that lived only on
+    /// lost nodes.
     pub(super) async fn recover(
         &self,
         state: &OnNodes,
         newest: Option<&Manifest>,
         known: &KnownQuads,
-        memo: &mut Memo,
     ) -> anyhow::Result<Recovered> {
         // A node that failed a call may be gone or only slow: only the
         // gone are counted out.
@@ -110,14 +109,14 @@ impl Run<'_> {
         // the nodes keep is the state and the memo that is left.
         let kept = {
             let mut top = state.top.lock().expect("top");
-            memo.forget_unless(|result, level| {
-                top.pieces_under(&[(result, level)])
+            top.memo_forget_unless(|top, result| {
+                top.pieces_under_quads(&[result])
                     .iter()
                     .all(|piece| self.tasks.is_held(piece))
             });
-            let mut roots = memo.results(&top);
+            top.keep_under(&[(state.root, state.level)]);
+            let mut roots = top.memo_results();
             roots.extend(top.quad(&state.root));
-            top.keep_under_quads(&roots);
             top.pieces_under_quads(&roots)
         };
         self.tasks.retain(self.job_id, &kept).await?;
