@@ -343,6 +343,24 @@ fn three_nodes_give_the_embedded_run_figures_on_the_tide_pool_demo_job() {
 }
 
 #[test]
+fn one_node_process_with_two_slots_serves_as_two_nodes_and_gives_the_single_process_figures() {
+    // Each slot is a member with a store of its own on a port of its own:
+    // two tasks at once, quads fetched between the slots.
+    let dir = temp_dir();
+    std::fs::write(dir.path().join("soup.rle"), soup(96)).unwrap();
+    let job = write_job(dir.path(), "soup.rle", "B3/S23", "200", "100");
+    let mut cluster = Cluster::start(&job, 2, &["--shard-level", "6"]);
+    cluster.add_nodes(1, "128MiB", &["--slots", "2"]);
+    let (cluster, _) = cluster.report();
+    // Against leap on the same soup, itself checked against the reference
+    // simulator in tests/reference.rs.
+    let single = leap_report(&dir.path().join("soup.rle"), "200", "B3/S23");
+    assert_same_figures(&cluster, &single);
+    assert_eq!(cluster["cluster"]["nodes"], 2, "{cluster}");
+    assert_checkpoints_hold(dir.path(), &cluster);
+}
+
+#[test]
 fn three_nodes_give_the_single_process_figures_on_a_soup_that_spans_many_pieces() {
     // Shard level 6: pieces of 32×32 cells, so a 96×96 soup spans many and
     // tasks must fetch quads from other nodes.

@@ -60,6 +60,12 @@ pub struct NodeArgs {
     #[arg(long)]
     pub memory: Option<String>,
 
+    /// Tasks this node runs at once: N slots, each a member of the cluster
+    /// with a store of its own and 1/N of --memory, on N ports from
+    /// --listen's (and --advertise's)
+    #[arg(long, value_name = "N", default_value_t = 1, value_parser = clap::builder::RangedU64ValueParser::<usize>::new().range(1..=1024))]
+    pub slots: usize,
+
     /// The cluster token file (one line), the coordinator's
     #[arg(long)]
     pub token_file: PathBuf,

@@ -120,6 +120,7 @@ pub fn capacity(settings: &Settings) -> anyhow::Result<Vec<Figure>> {
             dir,
             &Nodes {
                 count: nodes,
+                slots: 1,
                 memory,
                 shard_level: None,
                 checkpoint_dir: Some(&checkpoints_of(&name)),
@@ -169,6 +170,7 @@ pub fn capacity(settings: &Settings) -> anyhow::Result<Vec<Figure>> {
             dir,
             &Nodes {
                 count: nodes,
+                slots: 1,
                 memory: budget,
                 shard_level: Some(8),
                 checkpoint_dir: Some(&checkpoints_of(&name)),
@@ -202,6 +204,45 @@ pub fn capacity(settings: &Settings) -> anyhow::Result<Vec<Figure>> {
         )),
     );
 
+    // Every core of a node: one node process with a slot per core against
+    // the same process with one slot (each slot a store of its own).
+    let cores = std::thread::available_parallelism().map_or(1, |n| n.get());
+    if cores > 1 {
+        let mut by_slots = Vec::new();
+        for slots in [1, cores] {
+            let name = format!("slots-{slots}");
+            let run = on_nodes(
+                &exe,
+                &write_job(dir, &name, "soup.rle", target, target, None)?,
+                dir,
+                &Nodes {
+                    count: 1,
+                    slots,
+                    memory: "1GiB",
+                    shard_level: None,
+                    checkpoint_dir: Some(&checkpoints_of(&name)),
+                    coordinator_args: &[],
+                    fault: None,
+                },
+            )?;
+            same(&run, &unlimited, &name)?;
+            by_slots.push(run);
+        }
+        figures.push(
+            Figure::new(
+                "capacity",
+                &format!("{label}, 1 node × {cores} slots / 1 slot: time"),
+                by_slots[1].seconds / by_slots[0].seconds,
+                "×",
+                None,
+            )
+            .detail(format!(
+                "{cores} slots {:.2} s, 1 slot {:.2} s, embedded {:.2} s",
+                by_slots[1].seconds, by_slots[0].seconds, unlimited.seconds
+            )),
+        );
+    }
+
     // Deep jumps: the lighthouse to 10^1000 in 10 steps.
     let lighthouse = Path::new(env!("CARGO_MANIFEST_DIR")).join("../demo-jobs/lighthouse.rle");
     std::fs::copy(&lighthouse, dir.join("lighthouse.rle"))?;
@@ -220,6 +261,7 @@ pub fn capacity(settings: &Settings) -> anyhow::Result<Vec<Figure>> {
         dir,
         &Nodes {
             count: 2,
+            slots: 1,
             memory: "1GiB",
             shard_level: None,
             checkpoint_dir: Some(&checkpoints_of("deep")),
@@ -260,6 +302,7 @@ pub fn capacity(settings: &Settings) -> anyhow::Result<Vec<Figure>> {
             dir,
             &Nodes {
                 count: 3,
+                slots: 1,
                 memory: "1GiB",
                 shard_level: None,
                 checkpoint_dir: Some(&checkpoints_of(name)),

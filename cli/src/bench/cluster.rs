@@ -146,6 +146,7 @@ fn on_cluster(
         dir,
         &Nodes {
             count: nodes,
+            slots: 1,
             memory: "8G",
             shard_level,
             checkpoint_dir,
@@ -163,7 +164,9 @@ fn on_cluster(
 
 /// How a cluster run is set up.
 pub(super) struct Nodes<'a> {
+    /// node processes, and each one's --slots
     pub count: usize,
+    pub slots: usize,
     /// each node's --memory
     pub memory: &'a str,
     pub shard_level: Option<u64>,
@@ -240,6 +243,7 @@ pub(super) fn on_nodes(
         let node = Command::new(exe)
             .args(["node", "--join", &format!("http://127.0.0.1:{port}")])
             .args(["--listen", "127.0.0.1:0", "--memory", nodes.memory])
+            .args(["--slots", &nodes.slots.to_string()])
             .arg("--token-file")
             .arg(&token)
             .args(
