@@ -14,7 +14,7 @@ use crate::cli::NodeArgs;
 use deeptime_coordinator::memory;
 
 pub fn run(args: NodeArgs) -> anyhow::Result<()> {
-    crate::logging::init("warn");
+    crate::logging::init("info");
     let budget = memory::budget(args.memory.as_deref())?;
     let slots = args.slots;
     let share = budget / slots as u64;

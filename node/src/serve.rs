@@ -82,10 +82,7 @@ pub async fn run_node(config: NodeConfig) -> anyhow::Result<()> {
     let router = builder
         .add_service(InterceptedService::new(service, check.clone()))
         .add_service(InterceptedService::new(health, check));
-    eprintln!(
-        "deeptime: node listening on {bound}, joining {}",
-        config.join
-    );
+    tracing::info!("listening on {bound}, joining {}", config.join);
     let serving = router.serve_with_incoming_shutdown(
         TcpIncoming::from(listener).with_nodelay(Some(true)),
         async {
