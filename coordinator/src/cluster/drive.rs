@@ -56,6 +56,30 @@ pub(super) struct OnNodes {
 /// next step, beyond the state's, however small the state.
 const MIN_CARRIED_PIECES: usize = 4096;
 
+/// Keeps in the top what the next step needs: the state `(root, level)`,
+/// `also` (quads only, no pieces), and the memo with what its results
+/// need, unless the memo's pieces would more than double the state's (and
+/// are more than `MIN_CARRIED_PIECES`): then the memo is forgotten. Returns
+/// the pieces the nodes are to keep: the state's and the memo's.
+pub(super) fn keep_for_next(
+    top: &mut Top,
+    state: (ContentId, u32),
+    also: &[(ContentId, u32)],
+) -> HashSet<ContentId> {
+    let pieces = top.pieces(&state.0, state.1);
+    let results = top.memo_results();
+    let carried = top.pieces_under_quads(&results);
+    let extra = carried.difference(&pieces).count();
+    let roots: Vec<(ContentId, u32)> = std::iter::once(state).chain(also.iter().copied()).collect();
+    if extra > pieces.len().max(MIN_CARRIED_PIECES) {
+        top.memo_clear();
+        top.keep_under(&roots);
+        return pieces;
+    }
+    top.keep_under(&roots);
+    pieces.union(&carried).copied().collect()
+}
+
 /// Times a step may lose pieces and recover them (see `recover`) before
 /// the run rolls back.
 const MAX_RECOVERIES: u32 = 3;
@@ -312,26 +336,9 @@ impl Run<'_> {
                 let (root, level) = top.shrunk(root, level - 1, shard_level + 1);
                 state.root = root;
                 state.level = level;
-                let pieces = top.pieces(&root, level);
-                // The memo goes on to the next step (with the quads and
-                // pieces its results need), unless its pieces would more
-                // than double what the nodes hold (and are more than a few).
-                let results = top.memo_results();
-                let carried_pieces = top.pieces_under_quads(&results);
-                let extra = carried_pieces.difference(&pieces).count();
-                let carried = extra <= pieces.len().max(MIN_CARRIED_PIECES);
-                if !carried {
-                    top.memo_clear();
-                }
-                top.keep_under(&[(root, level), (start.0, start.1)]);
-                if carried {
-                    pieces
-                        .union(&carried_pieces)
-                        .copied()
-                        .collect::<HashSet<ContentId>>()
-                } else {
-                    pieces
-                }
+                // The step's start stays in the top until the checkpoint is
+                // stored (pieces lost meanwhile are read again from it).
+                keep_for_next(&mut top, (root, level), &[(start.0, start.1)])
             };
             self.tasks.retain(self.job_id, &kept).await?;
             let (population, bbox) = self.figures(&state);

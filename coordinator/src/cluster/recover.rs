@@ -12,7 +12,7 @@ use anyhow::Context;
 use deeptime_engine::pack::QuadAt;
 use deeptime_engine::{ContentId, KnownQuads};
 
-use crate::cluster::drive::{OnNodes, Run};
+use crate::cluster::drive::{OnNodes, Run, keep_for_next};
 use crate::cluster::resume::packs_of;
 use deeptime_storage::checkpoint::Manifest;
 
@@ -114,10 +114,7 @@ impl Run<'_> {
                     .iter()
                     .all(|piece| self.tasks.is_held(piece))
             });
-            top.keep_under(&[(state.root, state.level)]);
-            let mut roots = top.memo_results();
-            roots.extend(top.quad(&state.root));
-            top.pieces_under_quads(&roots)
+            keep_for_next(&mut top, (state.root, state.level), &[])
         };
         self.tasks.retain(self.job_id, &kept).await?;
         Ok(Recovered::Reloaded {
