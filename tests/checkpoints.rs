@@ -217,6 +217,41 @@ fn a_damaged_newest_checkpoint_is_reported_and_the_previous_one_used() {
 }
 
 #[test]
+fn a_budget_too_small_for_the_newest_checkpoint_is_no_damage() {
+    // A 32×32 soup under B2/S spreads into a wide chaotic state: the
+    // checkpoint at 1536 holds many times the quads of generation 0. Resumed
+    // with 1 MiB, the run must stop with exit 3 (the budget), not skip the
+    // newer checkpoints as damaged and go on from an older one (common
+    // practice: a failure to hold data is not a failure of the data).
+    let dir = temp_dir();
+    let job_path = job_of(dir.path(), 32, 1536, 512, "B2/S");
+    run_deeptime(["run", job_path.to_str().unwrap()]).assert_success();
+    assert_eq!(stored_generations(dir.path()), [0, 512, 1024, 1536]);
+    let text = std::fs::read_to_string(&job_path).unwrap();
+    std::fs::write(
+        &job_path,
+        format!(
+            "memory = \"1MiB\"\n{}",
+            text.replace("\"1536\"", "\"2048\"")
+        ),
+    )
+    .unwrap();
+    let resumed = run_deeptime(["run", job_path.to_str().unwrap()]);
+    assert_eq!(resumed.code, Some(3), "{}", resumed.describe());
+    assert!(
+        !resumed.stderr.contains("damaged"),
+        "{}",
+        resumed.describe()
+    );
+    assert!(
+        resumed.stderr.contains("too small"),
+        "{}",
+        resumed.describe()
+    );
+    assert_eq!(stored_generations(dir.path()), [0, 512, 1024, 1536]);
+}
+
+#[test]
 fn a_job_that_no_longer_matches_its_run_is_refused() {
     let dir = temp_dir();
     let job_path = job(dir.path(), 50, 25, "B3/S23");

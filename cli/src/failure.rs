@@ -4,6 +4,7 @@
 //! pattern, rule, number); 3 a memory budget too small for the live state.
 
 use deeptime_engine::{AdvanceError, BudgetExceeded};
+use deeptime_storage::checkpoint::CheckpointError;
 
 pub use deeptime_engine::{BadInput, InputOverBudget, OutputFailed};
 
@@ -14,7 +15,13 @@ pub const EXIT_BUDGET: u8 = 3;
 /// The exit code for an error, from the kind at the root of its chain.
 pub fn exit_code(error: &anyhow::Error) -> u8 {
     for cause in error.chain() {
-        if cause.is::<BadInput>() || cause.is::<deeptime_node::auth::BadTokenFile>() {
+        if cause.is::<BadInput>()
+            || cause.is::<deeptime_node::auth::BadTokenFile>()
+            || matches!(
+                cause.downcast_ref::<CheckpointError>(),
+                Some(CheckpointError::BadInput(_))
+            )
+        {
             return EXIT_BAD_INPUT;
         }
         if is_budget(cause) {
@@ -48,5 +55,9 @@ fn is_budget(cause: &(dyn std::error::Error + 'static)) -> bool {
         || matches!(
             cause.downcast_ref::<AdvanceError>(),
             Some(AdvanceError::Budget(_))
+        )
+        || matches!(
+            cause.downcast_ref::<CheckpointError>(),
+            Some(CheckpointError::Budget(_))
         )
 }

@@ -51,16 +51,11 @@ pub fn list(args: DirArgs) -> anyhow::Result<()> {
     for key in checkpoints.manifest_keys()? {
         let manifest = match checkpoints.manifest(&key) {
             Ok(manifest) => manifest,
-            // Another format version is no damage: say so and stop.
-            Err(error)
-                if error
-                    .chain()
-                    .any(|cause| cause.is::<crate::failure::BadInput>()) =>
-            {
-                return Err(error);
-            }
+            // Another format version, or a storage that fails, is no
+            // damage: say so and stop.
+            Err(error) if !error.is_damage() => return Err(error.into()),
             Err(error) => {
-                eprintln!("deeptime: warning: skipping damaged checkpoint: {error:#}");
+                eprintln!("deeptime: warning: skipping damaged checkpoint: {error}");
                 continue;
             }
         };
@@ -118,12 +113,13 @@ pub fn verify(args: DirArgs) -> anyhow::Result<()> {
     if keys.is_empty() {
         bail!("{}: no checkpoints to verify", args.dir.display());
     }
+    let budget = deeptime_coordinator::memory::budget(None)?;
     let mut damaged = Vec::new();
     let mut report = Vec::new();
     for key in &keys {
-        let checked = checkpoints.manifest(key).and_then(|manifest| {
-            checkpoints.load(manifest, deeptime_coordinator::memory::budget(None)?)
-        });
+        let checked = checkpoints
+            .manifest(key)
+            .and_then(|manifest| checkpoints.load(manifest, budget));
         let row = match checked {
             Ok(loaded) => Checked {
                 manifest: key.clone(),
@@ -133,6 +129,9 @@ pub fn verify(args: DirArgs) -> anyhow::Result<()> {
                 digest: Some(loaded.manifest.root),
                 error: None,
             },
+            // A storage that fails, or a budget too small, says nothing
+            // of the checkpoint: stop and say so.
+            Err(error) if !error.is_damage() => return Err(error.into()),
             Err(error) => {
                 damaged.push(key.clone());
                 Checked {
@@ -141,7 +140,7 @@ pub fn verify(args: DirArgs) -> anyhow::Result<()> {
                     sequence: None,
                     generation: None,
                     digest: None,
-                    error: Some(format!("{error:#}")),
+                    error: Some(error.to_string()),
                 }
             }
         };

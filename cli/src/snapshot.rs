@@ -26,7 +26,7 @@ use deeptime_coordinator::numbers::for_people;
 use deeptime_coordinator::report::{BoxReport, EngineReport, Report};
 use deeptime_coordinator::{memory, output, progress};
 use deeptime_storage::Counting;
-use deeptime_storage::checkpoint::{Checkpoints, Manifest};
+use deeptime_storage::checkpoint::{CheckpointError, Checkpoints, Manifest};
 
 /// Pictures are at most this many pixels on their longer side by default.
 const DEFAULT_PICTURE: u64 = 1024;
@@ -61,9 +61,9 @@ pub fn run(args: SnapshotArgs) -> anyhow::Result<()> {
                 Ok(stored) => (stored <= generation).then_some(Ok((stored, manifest))),
                 Err(error) => Some(Err(error)),
             },
-            Err(error) if stops(&error) => Some(Err(error)),
+            Err(error) if !error.is_damage() => Some(Err(error)),
             Err(error) => {
-                eprintln!("deeptime: warning: skipping damaged checkpoint: {error:#}");
+                eprintln!("deeptime: warning: skipping damaged checkpoint: {error}");
                 None
             }
         });
@@ -95,12 +95,8 @@ pub fn run(args: SnapshotArgs) -> anyhow::Result<()> {
                 opened = Some((stored, loaded.universe, pack_bytes));
                 break;
             }
-            Err(error) => {
-                if stops(&error) {
-                    return Err(error);
-                }
-                eprintln!("deeptime: warning: skipping damaged checkpoint: {error:#}");
-            }
+            Err(error) if !error.is_damage() => return Err(error.into()),
+            Err(error) => eprintln!("deeptime: warning: skipping damaged checkpoint: {error}"),
         }
     }
     drop(candidates);
@@ -162,7 +158,7 @@ fn last_at_or_before(
         let middle = low + (high - low) / 2;
         let stored = match checkpoints.manifest(&keys[middle]) {
             Ok(manifest) => manifest.generation()?,
-            Err(error) if stops(&error) => return Err(error),
+            Err(error) if !error.is_damage() => return Err(error.into()),
             Err(_) => return Ok(Some(high)), // damaged: walk down from here
         };
         if &stored <= generation {
@@ -182,14 +178,11 @@ fn earliest_generation(checkpoints: &Checkpoints, keys: &[String]) -> Option<Big
 }
 
 /// Errors that end the snapshot rather than send it to an earlier
-/// checkpoint: a budget too small, a checkpoint of another version, bad
-/// options, an output that cannot be written.
+/// checkpoint: all but damage of what was read (a budget too small, a
+/// checkpoint of another version, bad options, an output that cannot be
+/// written, a storage that fails).
 fn stops(error: &anyhow::Error) -> bool {
-    error.chain().any(|cause| {
-        cause.is::<deeptime_engine::BudgetExceeded>()
-            || cause.is::<BadInput>()
-            || cause.is::<OutputFailed>()
-    })
+    !CheckpointError::is_damage_in(error)
 }
 
 /// What can be known of `--out` before any work: its kind, its folder and,

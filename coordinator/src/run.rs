@@ -127,8 +127,14 @@ pub fn resume_or_start(
     budget: u64,
 ) -> anyhow::Result<(Universe, Option<Manifest>, KnownQuads)> {
     let rule = fresh.rule();
-    let resumed =
-        checkpoints.latest_valid(budget, |warning| eprintln!("deeptime: warning: {warning}"))?;
+    let resumed = checkpoints
+        .latest_valid(budget, |warning| eprintln!("deeptime: warning: {warning}"))
+        .with_context(|| {
+            format!(
+                "{}: reading the newest checkpoint",
+                job.checkpoint_dir.display()
+            )
+        })?;
     Ok(match resumed {
         Some(stored) => {
             let manifest = stored.manifest;

@@ -66,9 +66,13 @@ pub enum PackError {
     /// the bytes break the format at this offset of the pack file
     #[error("{what} at byte {offset}")]
     Malformed { offset: u64, what: String },
-    /// the bytes could not be fetched
+    /// the bytes are not there (a pack, a record or a range missing)
     #[error("{0}")]
     Fetch(String),
+    /// the storage failed while the bytes were fetched (a disk, the
+    /// network): nothing is known of the pack
+    #[error("{0}")]
+    Unreadable(String),
     /// the store could not hold the quads
     #[error(transparent)]
     Budget(#[from] BudgetExceeded),

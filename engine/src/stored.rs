@@ -31,8 +31,17 @@ use crate::view::QuadView;
 /// Byte ranges of a checkpoint's packs.
 pub trait Fetch {
     /// Exactly `len` bytes from `offset` of pack `pack` (its index in the
-    /// checkpoint's list); an error (as a message) when they cannot be had.
-    fn fetch(&mut self, pack: usize, offset: u64, len: u64) -> Result<Vec<u8>, String>;
+    /// checkpoint's list); why not, when they cannot be had.
+    fn fetch(&mut self, pack: usize, offset: u64, len: u64) -> Result<Vec<u8>, FetchError>;
+}
+
+/// Why bytes of a pack could not be had.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub enum FetchError {
+    /// the pack, or the range, is not there: the checkpoint is damaged
+    Missing(String),
+    /// the storage failed (a disk, the network): nothing is known of it
+    Failed(String),
 }
 
 /// A pack as its checkpoint's manifest describes it.
@@ -279,10 +288,13 @@ impl<'f> StoredState<'f> {
     }
 
     fn fetch(&mut self, pack: usize, offset: u64, len: u64) -> Result<Vec<u8>, ReadError> {
-        let bytes = self
-            .fetch
-            .fetch(pack, offset, len)
-            .map_err(|message| self.fail(pack, PackError::Fetch(message)))?;
+        let bytes = self.fetch.fetch(pack, offset, len).map_err(|error| {
+            let error = match error {
+                FetchError::Missing(message) => PackError::Fetch(message),
+                FetchError::Failed(message) => PackError::Unreadable(message),
+            };
+            self.fail(pack, error)
+        })?;
         if bytes.len() as u64 != len {
             return Err(self.fail(
                 pack,

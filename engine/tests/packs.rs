@@ -6,7 +6,7 @@
 use deeptime_engine::pack::{Checksum, QuadAt, pack_name};
 use deeptime_engine::pattern::read_pattern;
 use deeptime_engine::rule::Rule;
-use deeptime_engine::stored::{Fetch, StoredPack, StoredState};
+use deeptime_engine::stored::{Fetch, FetchError, StoredPack, StoredState};
 use deeptime_engine::{KnownQuads, PackInput, Region, Universe};
 use num_bigint::{BigInt, BigUint};
 
@@ -340,12 +340,14 @@ struct Counted<'a> {
 }
 
 impl Fetch for Counted<'_> {
-    fn fetch(&mut self, pack: usize, offset: u64, len: u64) -> Result<Vec<u8>, String> {
+    fn fetch(&mut self, pack: usize, offset: u64, len: u64) -> Result<Vec<u8>, FetchError> {
         let bytes = self.packs[pack];
         let end = offset
             .checked_add(len)
             .filter(|&end| end <= bytes.len() as u64);
-        let end = end.ok_or_else(|| format!("{len} bytes at {offset} are past the end"))?;
+        let end = end.ok_or_else(|| {
+            FetchError::Missing(format!("{len} bytes at {offset} are past the end"))
+        })?;
         self.fetched += len;
         Ok(bytes[offset as usize..end as usize].to_vec())
     }

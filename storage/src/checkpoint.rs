@@ -6,27 +6,99 @@
 
 use std::collections::HashSet;
 
-use anyhow::{Context, bail};
-use deeptime_engine::pack::{Checksum, QuadAt, WrittenPack, pack_name};
+use deeptime_engine::pack::{Checksum, PackError, QuadAt, WrittenPack, pack_name};
 use deeptime_engine::rule::Rule;
 use deeptime_engine::stored::{StoredPack, StoredState};
 use deeptime_engine::{BoundingBox, ContentId, KnownQuads, PackInput, Universe};
 use num_bigint::{BigInt, BigUint};
 use serde::{Deserialize, Serialize};
 
-use deeptime_engine::BadInput;
+use deeptime_engine::{BadInput, BudgetExceeded};
 
 use crate::{self as storage, PackFetch, Storage, pack_key};
+
+/// What reading or writing a run's checkpoints fails with. Only `Damaged`
+/// sends a reader to an earlier checkpoint; the rest stop it, so that a
+/// storage that fails for a moment or a budget too small never passes for
+/// damage (and a run never goes back for them).
+#[derive(Debug, thiserror::Error)]
+pub enum CheckpointError {
+    /// Something the user can fix: a folder that does not exist, a
+    /// checkpoint of another format version, `keep` 0.
+    #[error(transparent)]
+    BadInput(#[from] BadInput),
+    /// A stored object that is missing or does not read back as written:
+    /// this checkpoint is damaged, an earlier one may do.
+    #[error("{0}")]
+    Damaged(String),
+    /// The state does not fit the memory budget.
+    #[error(transparent)]
+    Budget(#[from] BudgetExceeded),
+    /// The storage failed (a disk, the network): nothing is known of the
+    /// checkpoint.
+    #[error("{0}")]
+    Storage(String),
+}
+
+impl CheckpointError {
+    /// Whether the checkpoint read is damaged (an earlier one may do).
+    pub fn is_damage(&self) -> bool {
+        matches!(self, CheckpointError::Damaged(_))
+    }
+
+    /// Whether an error is, at its root, damage of a stored checkpoint:
+    /// the checkpoint's own, or of a stored quad read on demand (directly,
+    /// or while a state was written as text or drawn).
+    pub fn is_damage_in(error: &anyhow::Error) -> bool {
+        use deeptime_engine::WriteError;
+        use deeptime_engine::pack::ReadError;
+        use deeptime_engine::render::RenderError;
+        error.chain().any(|cause| {
+            if let Some(error) = cause.downcast_ref::<CheckpointError>() {
+                return error.is_damage();
+            }
+            let read = cause.downcast_ref::<ReadError>().or_else(|| {
+                match (
+                    cause.downcast_ref::<WriteError>(),
+                    cause.downcast_ref::<RenderError>(),
+                ) {
+                    (Some(WriteError::Read(read)), _) | (_, Some(RenderError::Read(read))) => {
+                        Some(read)
+                    }
+                    _ => None,
+                }
+            });
+            read.is_some_and(|read| {
+                matches!(
+                    read.error,
+                    PackError::Malformed { .. } | PackError::Fetch(_)
+                )
+            })
+        })
+    }
+}
+
+type Result<T> = std::result::Result<T, CheckpointError>;
+
+/// A damaged object, as an error.
+fn damaged(text: impl Into<String>) -> CheckpointError {
+    CheckpointError::Damaged(text.into())
+}
+
+/// A failed storage call on `place`, as an error.
+fn unreadable(what: &str, place: &str, error: impl std::fmt::Display) -> CheckpointError {
+    CheckpointError::Storage(format!("cannot {what} {place}: {error}"))
+}
 
 /// The storage of a run that is there to read: its folder (or `s3://`
 /// URL). A local folder that does not exist is the user's mistake, not an
 /// empty run, and is not made.
-pub fn open_existing(dir: &std::path::Path) -> anyhow::Result<Box<dyn Storage>> {
+pub fn open_existing(dir: &std::path::Path) -> Result<Box<dyn Storage>> {
     let is_url = dir.to_string_lossy().contains("s3://");
     if !is_url && !dir.is_dir() {
         return Err(BadInput(format!("{}: no such folder", dir.display())).into());
     }
-    Ok(storage::open(dir)?)
+    storage::open(dir).map_err(|error| unreadable("open", &dir.display().to_string(), error))
 }
 
 /// The manifest format's name and version.
@@ -110,8 +182,8 @@ impl BoxText {
     }
 
     /// The box, checked: integers, width and height at least 1.
-    pub fn parse(&self) -> anyhow::Result<BoundingBox> {
-        let signed = |text: &str, what: &str| -> anyhow::Result<BigInt> {
+    pub fn parse(&self) -> Result<BoundingBox> {
+        let signed = |text: &str, what: &str| -> Result<BigInt> {
             let digits = text.strip_prefix('-').unwrap_or(text);
             decimal(digits, what)?;
             Ok(text.parse().expect("digits parse"))
@@ -123,7 +195,7 @@ impl BoxText {
             height: decimal(&self.height, "bbox.height")?,
         };
         if bbox.width == BigUint::ZERO || bbox.height == BigUint::ZERO {
-            bail!("bbox is empty");
+            return Err(damaged("bbox is empty"));
         }
         Ok(bbox)
     }
@@ -136,10 +208,14 @@ impl Manifest {
 
     /// Parses and checks the manifest stored under `key` (its sequence
     /// must match the key) from its bytes; `place` names it in messages.
-    pub fn parse(bytes: &[u8], key: &str, place: &str) -> anyhow::Result<Manifest> {
+    pub fn parse(bytes: &[u8], key: &str, place: &str) -> Result<Manifest> {
         let place = place.to_string();
         let at = |error: serde_json::Error| {
-            anyhow::anyhow!("{place}:{}:{}: {error}", error.line(), error.column())
+            damaged(format!(
+                "{place}:{}:{}: {error}",
+                error.line(),
+                error.column()
+            ))
         };
         // The version first: a manifest of another version is not damaged,
         // and its fields differ.
@@ -159,57 +235,61 @@ impl Manifest {
         }
         let manifest: Manifest = serde_json::from_slice(bytes).map_err(at)?;
         if manifest.format != FORMAT || manifest.version != VERSION {
-            bail!(
+            return Err(damaged(format!(
                 "{place}: format {} version {} (this build reads {FORMAT} version {VERSION})",
-                manifest.format,
-                manifest.version
-            );
+                manifest.format, manifest.version
+            )));
         }
         if Manifest::key(manifest.sequence) != key {
-            bail!("{place}: holds sequence {}", manifest.sequence);
+            return Err(damaged(format!(
+                "{place}: holds sequence {}",
+                manifest.sequence
+            )));
         }
-        decimal(&manifest.generation, "generation").with_context(|| place.clone())?;
-        decimal(&manifest.population, "population").with_context(|| place.clone())?;
+        decimal(&manifest.generation, "generation")
+            .map_err(|error| damaged(format!("{place}: {error}")))?;
+        decimal(&manifest.population, "population")
+            .map_err(|error| damaged(format!("{place}: {error}")))?;
         if manifest.packs.len() > MAX_PACKS {
-            bail!(
+            return Err(damaged(format!(
                 "{place}: lists {} packs (at most {MAX_PACKS})",
                 manifest.packs.len()
-            );
+            )));
         }
         let mut names = HashSet::new();
         for pack in &manifest.packs {
             if !names.insert(pack.name.as_str()) {
-                bail!("{place}: lists pack {} twice", pack.name);
+                return Err(damaged(format!("{place}: lists pack {} twice", pack.name)));
             }
-            hex(&pack.name, "pack name").with_context(|| place.clone())?;
-            hex(&pack.table, "pack table").with_context(|| place.clone())?;
+            hex(&pack.name, "pack name").map_err(|error| damaged(format!("{place}: {error}")))?;
+            hex(&pack.table, "pack table").map_err(|error| damaged(format!("{place}: {error}")))?;
         }
-        hex(&manifest.root, "root").with_context(|| place.clone())?;
+        hex(&manifest.root, "root").map_err(|error| damaged(format!("{place}: {error}")))?;
         let root_pack = manifest.packs.get(manifest.root_pack as usize);
         if root_pack.is_none_or(|pack| manifest.root_record as u64 >= pack.records) {
-            bail!(
+            return Err(damaged(format!(
                 "{place}: the root record {} of pack {} is not among the packs listed",
-                manifest.root_record,
-                manifest.root_pack
-            );
+                manifest.root_record, manifest.root_pack
+            )));
         }
         let empty = manifest.population()? == BigUint::ZERO;
         match &manifest.bbox {
-            None if !empty => bail!("{place}: live cells but no bbox"),
-            Some(_) if empty => bail!("{place}: a bbox but no live cells"),
+            None if !empty => return Err(damaged(format!("{place}: live cells but no bbox"))),
+            Some(_) if empty => return Err(damaged(format!("{place}: a bbox but no live cells"))),
             Some(bbox) => {
-                bbox.parse().with_context(|| place.clone())?;
+                bbox.parse()
+                    .map_err(|error| damaged(format!("{place}: {error}")))?;
             }
             None => {}
         }
         Ok(manifest)
     }
 
-    pub fn generation(&self) -> anyhow::Result<BigUint> {
+    pub fn generation(&self) -> Result<BigUint> {
         decimal(&self.generation, "generation")
     }
 
-    pub fn population(&self) -> anyhow::Result<BigUint> {
+    pub fn population(&self) -> Result<BigUint> {
         decimal(&self.population, "population")
     }
 
@@ -228,18 +308,17 @@ impl Manifest {
 }
 
 /// A decimal string as written by deeptime: digits only.
-fn decimal(text: &str, what: &str) -> anyhow::Result<BigUint> {
+fn decimal(text: &str, what: &str) -> Result<BigUint> {
     if text.is_empty() || !text.bytes().all(|b| b.is_ascii_digit()) {
-        bail!("{what} {text:?} is not a decimal number");
+        return Err(damaged(format!("{what} {text:?} is not a decimal number")));
     }
     Ok(text.parse().expect("digits parse"))
 }
 
 /// A checksum or content id as written by deeptime: 32 lowercase hex digits.
-fn hex(text: &str, what: &str) -> anyhow::Result<Checksum> {
+fn hex(text: &str, what: &str) -> Result<Checksum> {
     text.parse()
-        .ok()
-        .with_context(|| format!("{what} {text:?} is not 32 lowercase hex digits"))
+        .map_err(|_| damaged(format!("{what} {text:?} is not 32 lowercase hex digits")))
 }
 
 /// A state loaded from a checkpoint, with the content ids its packs hold.
@@ -260,18 +339,18 @@ impl Checkpoints {
     }
 
     /// Takes the store's writer lock (see `Storage::lock`).
-    pub fn lock(&self) -> anyhow::Result<Option<std::fs::File>> {
+    pub fn lock(&self) -> Result<Option<std::fs::File>> {
         self.storage
             .lock()
-            .with_context(|| format!("cannot lock {}", self.storage.locate(".lock")))
+            .map_err(|error| unreadable("lock", &self.storage.locate(".lock"), error))
     }
 
     /// The manifest keys, oldest first.
-    pub fn manifest_keys(&self) -> anyhow::Result<Vec<String>> {
+    pub fn manifest_keys(&self) -> Result<Vec<String>> {
         let keys = self
             .storage
             .list("manifests/")
-            .with_context(|| format!("cannot list {}", self.storage.locate("manifests")))?;
+            .map_err(|error| unreadable("list", &self.storage.locate("manifests"), error))?;
         Ok(keys
             .into_iter()
             .filter(|key| key.ends_with(".json"))
@@ -279,13 +358,13 @@ impl Checkpoints {
     }
 
     /// Reads and checks one manifest.
-    pub fn manifest(&self, key: &str) -> anyhow::Result<Manifest> {
+    pub fn manifest(&self, key: &str) -> Result<Manifest> {
         let place = self.storage.locate(key);
         let bytes = self
             .storage
             .get(key, MAX_MANIFEST_BYTES)
-            .with_context(|| format!("cannot read {place}"))?
-            .with_context(|| format!("{place} is missing"))?;
+            .map_err(|error| unreadable("read", &place, error))?
+            .ok_or_else(|| damaged(format!("{place} is missing")))?;
         Manifest::parse(&bytes, key, &place)
     }
 
@@ -293,7 +372,7 @@ impl Checkpoints {
     /// size and table checksum, rebuilds the state and checks its digest,
     /// population and bounding box against the manifest's. Errors name the
     /// damaged file.
-    pub fn load(&self, manifest: Manifest, budget: u64) -> anyhow::Result<Loaded> {
+    pub fn load(&self, manifest: Manifest, budget: u64) -> Result<Loaded> {
         let mut packs = Vec::with_capacity(manifest.packs.len());
         for entry in &manifest.packs {
             let key = pack_key(&entry.name);
@@ -301,28 +380,30 @@ impl Checkpoints {
             let bytes = self
                 .storage
                 .get(&key, entry.bytes)
-                .with_context(|| format!("cannot read {place}"))?
-                .with_context(|| format!("{place} is missing"))?;
+                .map_err(|error| unreadable("read", &place, error))?
+                .ok_or_else(|| damaged(format!("{place} is missing")))?;
             if bytes.len() as u64 != entry.bytes {
-                bail!(
+                return Err(damaged(format!(
                     "{place}: {} bytes, the manifest says {}",
                     bytes.len(),
                     entry.bytes
-                );
+                )));
             }
             if pack_name(&bytes).to_string() != entry.name {
-                bail!("{place}: content does not match its checksum (damaged)");
+                return Err(damaged(format!(
+                    "{place}: content does not match its checksum (damaged)"
+                )));
             }
             packs.push(bytes);
         }
-        let root: ContentId = manifest.root.parse().with_context(|| {
-            format!(
+        let root: ContentId = manifest.root.parse().map_err(|_| {
+            damaged(format!(
                 "manifest {}: root {:?} is not 32 lowercase hex digits",
                 manifest.sequence, manifest.root
-            )
+            ))
         })?;
         let rule = Rule::parse(&manifest.rule)
-            .with_context(|| format!("manifest {}: bad rule", manifest.sequence))?;
+            .map_err(|error| damaged(format!("manifest {}: {error}", manifest.sequence)))?;
         let generation = manifest.generation()?;
         let mut inputs = Vec::with_capacity(packs.len());
         for (bytes, entry) in packs.iter().zip(&manifest.packs) {
@@ -340,26 +421,26 @@ impl Checkpoints {
                         .get(index)
                         .map(|entry| self.storage.locate(&pack_key(&entry.name)))
                         .unwrap_or_else(|| "the packs".to_string());
-                    anyhow::anyhow!("{place}: {error}")
+                    from_pack_error(&place, error)
                 })?;
         let digest = universe.digest()?;
         if digest != root {
-            bail!(
+            return Err(damaged(format!(
                 "checkpoint {}: state has digest {digest}, the manifest says {root}",
                 manifest.sequence
-            );
+            )));
         }
         if universe.population().to_string() != manifest.population {
-            bail!(
+            return Err(damaged(format!(
                 "checkpoint {}: population differs from the manifest",
                 manifest.sequence
-            );
+            )));
         }
         if universe.bounding_box().as_ref().map(BoxText::of) != manifest.bbox {
-            bail!(
+            return Err(damaged(format!(
                 "checkpoint {}: bounding box differs from the manifest",
                 manifest.sequence
-            );
+            )));
         }
         Ok(Loaded {
             manifest,
@@ -371,7 +452,7 @@ impl Checkpoints {
     /// Opens the state of `manifest` for reading on demand: only its root
     /// record now, then whatever a region or picture walks to. Each chunk
     /// read is checked against its table, each table against the manifest.
-    pub fn open_stored(&self, manifest: &Manifest) -> anyhow::Result<StoredParts<'_>> {
+    pub fn open_stored(&self, manifest: &Manifest) -> Result<StoredParts<'_>> {
         let mut packs = Vec::with_capacity(manifest.packs.len());
         for entry in &manifest.packs {
             packs.push(StoredPack {
@@ -396,7 +477,7 @@ impl Checkpoints {
             root: manifest.root_at(),
             population: manifest.population()?,
             rule: Rule::parse(&manifest.rule)
-                .with_context(|| format!("manifest {}: bad rule", manifest.sequence))?,
+                .map_err(|error| damaged(format!("manifest {}: {error}", manifest.sequence)))?,
         })
     }
 
@@ -406,23 +487,17 @@ impl Checkpoints {
         &self,
         budget: u64,
         mut warn: impl FnMut(String),
-    ) -> anyhow::Result<Option<Loaded>> {
+    ) -> Result<Option<Loaded>> {
         for key in self.manifest_keys()?.iter().rev() {
             let loaded = self
                 .manifest(key)
                 .and_then(|manifest| self.load(manifest, budget));
             match loaded {
                 Ok(loaded) => return Ok(Some(loaded)),
-                Err(error) => {
-                    // A budget too small, or a checkpoint of another
-                    // version, is no damage: stop rather than skip it.
-                    if error.chain().any(|cause| {
-                        cause.is::<deeptime_engine::BudgetExceeded>() || cause.is::<BadInput>()
-                    }) {
-                        return Err(error);
-                    }
-                    warn(format!("skipping damaged checkpoint: {error:#}"));
-                }
+                // A budget too small, a checkpoint of another version or a
+                // storage that fails is no damage: stop rather than skip.
+                Err(error) if !error.is_damage() => return Err(error),
+                Err(error) => warn(format!("skipping damaged checkpoint: {error}")),
             }
         }
         Ok(None)
@@ -432,7 +507,7 @@ impl Checkpoints {
     /// a bad-input error) and deletes the rest: manifests first, oldest first, then every pack no kept
     /// manifest needs. Returns (manifests, packs) deleted. A crash part way
     /// leaves only unneeded packs behind, which the next prune removes.
-    pub fn prune(&self, keep: usize) -> anyhow::Result<(usize, usize)> {
+    pub fn prune(&self, keep: usize) -> Result<(usize, usize)> {
         if keep == 0 {
             return Err(BadInput("keep at least 1 checkpoint".to_string()).into());
         }
@@ -442,10 +517,9 @@ impl Checkpoints {
         for key in self.manifest_keys()? {
             match self.manifest(&key) {
                 Ok(manifest) => readable.push((key, manifest)),
-                // Packs of checkpoints of another version are not ours to judge.
-                Err(error) if error.chain().any(|cause| cause.is::<BadInput>()) => {
-                    return Err(error);
-                }
+                // Packs of checkpoints of another version are not ours to
+                // judge, nor those of a folder that cannot be read.
+                Err(error) if !error.is_damage() => return Err(error),
                 Err(_) => {}
             }
         }
@@ -463,14 +537,18 @@ impl Checkpoints {
         for key in &old {
             self.storage
                 .delete(key)
-                .with_context(|| format!("cannot delete {}", self.storage.locate(key)))?;
+                .map_err(|error| unreadable("delete", &self.storage.locate(key), error))?;
         }
         let mut packs = 0;
-        for key in self.storage.list("packs/")? {
+        let listed = self
+            .storage
+            .list("packs/")
+            .map_err(|error| unreadable("list", &self.storage.locate("packs"), error))?;
+        for key in listed {
             if key.ends_with(".pack") && !needed.contains(&key) {
                 self.storage
                     .delete(&key)
-                    .with_context(|| format!("cannot delete {}", self.storage.locate(&key)))?;
+                    .map_err(|error| unreadable("delete", &self.storage.locate(&key), error))?;
                 packs += 1;
             }
         }
@@ -487,7 +565,7 @@ impl Checkpoints {
         known: &mut KnownQuads,
         name: &str,
         pattern: &ContentId,
-    ) -> anyhow::Result<Manifest> {
+    ) -> Result<Manifest> {
         let mut packs = previous.map(|m| m.packs.clone()).unwrap_or_default();
         if packs.len() >= STAND_ALONE_AFTER {
             // Consolidate: this checkpoint stands on one pack of its own.
@@ -506,7 +584,7 @@ impl Checkpoints {
                 ids,
                 table,
             }) => {
-                let name = storage::put_pack(self.storage.as_ref(), &bytes)?;
+                let name = self.put_pack(&bytes)?;
                 let index = packs.len() as u32;
                 packs.push(PackEntry {
                     name,
@@ -529,7 +607,7 @@ impl Checkpoints {
             }
             None => *known
                 .get(&digest)
-                .context("the state's root is in no pack of the run")?,
+                .ok_or_else(|| damaged("the state's root is in no pack of the run"))?,
         };
         self.commit(
             previous,
@@ -554,18 +632,15 @@ impl Checkpoints {
 
     /// Stores a pack (named by its content) for a checkpoint about to be
     /// committed; returns its name in hex.
-    pub fn put_pack(&self, bytes: &[u8]) -> anyhow::Result<String> {
+    pub fn put_pack(&self, bytes: &[u8]) -> Result<String> {
         storage::put_pack(self.storage.as_ref(), bytes)
+            .map_err(|error| CheckpointError::Storage(format!("{error:#}")))
     }
 
     /// Makes a checkpoint exist: gives `manifest` the next sequence number
     /// and the time, and writes it, last and atomically. Every pack it
     /// lists must be stored already.
-    pub fn commit(
-        &self,
-        previous: Option<&Manifest>,
-        mut manifest: Manifest,
-    ) -> anyhow::Result<Manifest> {
+    pub fn commit(&self, previous: Option<&Manifest>, mut manifest: Manifest) -> Result<Manifest> {
         manifest.sequence = match self.manifest_keys()?.last() {
             Some(last) => {
                 last.trim_start_matches("manifests/")
@@ -581,16 +656,16 @@ impl Checkpoints {
             .duration_since(std::time::UNIX_EPOCH)
             .map_or(0, |elapsed| elapsed.as_secs());
         let key = Manifest::key(manifest.sequence);
-        let text = serde_json::to_vec_pretty(&manifest)?;
+        let text = serde_json::to_vec_pretty(&manifest).expect("a manifest serialises");
         let wrote = self
             .storage
             .put_new(&key, &text)
-            .with_context(|| format!("cannot write {}", self.storage.locate(&key)))?;
+            .map_err(|error| unreadable("write", &self.storage.locate(&key), error))?;
         if !wrote {
-            bail!(
+            return Err(damaged(format!(
                 "{} appeared while writing it: is another run using this folder?",
                 self.storage.locate(&key)
-            );
+            )));
         }
         Ok(manifest)
     }
@@ -608,13 +683,26 @@ pub struct StoredParts<'s> {
 
 impl StoredParts<'_> {
     /// The state, its root record read and checked.
-    pub fn state(&mut self) -> anyhow::Result<StoredState<'_>> {
-        Ok(StoredState::open(
+    pub fn state(&mut self) -> Result<StoredState<'_>> {
+        StoredState::open(
             &mut self.fetch,
             self.packs.clone(),
             self.root,
             &self.population,
             self.rule,
-        )?)
+        )
+        .map_err(|error| from_pack_error(&error.place, error.error))
+    }
+}
+
+/// A pack's error, as the checkpoint's: malformed or missing bytes are
+/// damage, a storage that failed is not, a full store is the budget's.
+pub fn from_pack_error(place: &str, error: PackError) -> CheckpointError {
+    match error {
+        PackError::Budget(budget) => CheckpointError::Budget(budget),
+        PackError::Unreadable(text) => CheckpointError::Storage(format!("{place}: {text}")),
+        damage @ (PackError::Malformed { .. } | PackError::Fetch(_)) => {
+            damaged(format!("{place}: {damage}"))
+        }
     }
 }

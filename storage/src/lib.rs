@@ -159,13 +159,18 @@ pub struct PackFetch<'s> {
     pub keys: Vec<String>,
 }
 
+use deeptime_engine::stored::FetchError;
+
 impl deeptime_engine::stored::Fetch for PackFetch<'_> {
-    fn fetch(&mut self, pack: usize, offset: u64, len: u64) -> Result<Vec<u8>, String> {
-        let key = self.keys.get(pack).ok_or("no such pack")?;
+    fn fetch(&mut self, pack: usize, offset: u64, len: u64) -> Result<Vec<u8>, FetchError> {
+        let key = self
+            .keys
+            .get(pack)
+            .ok_or_else(|| FetchError::Missing("no such pack".to_string()))?;
         match self.storage.get_range(key, offset, len) {
             Ok(Some(bytes)) => Ok(bytes),
-            Ok(None) => Err("missing".to_string()),
-            Err(error) => Err(format!("cannot read: {error}")),
+            Ok(None) => Err(FetchError::Missing("missing".to_string())),
+            Err(error) => Err(FetchError::Failed(format!("cannot read: {error}"))),
         }
     }
 }

@@ -469,10 +469,10 @@ fn checkpoints(settings: &Settings) -> anyhow::Result<Vec<Figure>> {
     let digest = universe.digest()?;
     let mut known = deeptime_engine::KnownQuads::default();
     let (full, full_time) =
-        timed(|| checkpoints.write(&mut universe, None, &mut known, "bench", &digest))?;
+        timed(|| Ok(checkpoints.write(&mut universe, None, &mut known, "bench", &digest)?))?;
     let full_bytes = full.pack_bytes();
     let before = counted.bytes_read();
-    let (mut loaded, resume_time) = timed(|| checkpoints.load(full.clone(), BUDGET))?;
+    let (mut loaded, resume_time) = timed(|| Ok(checkpoints.load(full.clone(), BUDGET)?))?;
     let load_read = counted.bytes_read() - before;
     ensure!(
         loaded.manifest.root == digest.to_string(),
@@ -504,8 +504,9 @@ fn checkpoints(settings: &Settings) -> anyhow::Result<Vec<Figure>> {
     );
     // Incremental: a few generations on, only what changed is written.
     universe.advance(&BigUint::from(16u32), None)?;
-    let (incremental, incremental_time) =
-        timed(|| checkpoints.write(&mut universe, Some(&full), &mut known, "bench", &digest))?;
+    let (incremental, incremental_time) = timed(|| {
+        Ok(checkpoints.write(&mut universe, Some(&full), &mut known, "bench", &digest)?)
+    })?;
     let new_bytes = incremental.pack_bytes() - full_bytes;
     let label = format!("{side}² soup ({} quads)", super::compact(quads as f64));
     Ok(vec![

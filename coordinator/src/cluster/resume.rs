@@ -29,7 +29,7 @@ use crate::cluster::tasks::{NodeOutOfMemory, PiecesLost};
 use crate::numbers::for_people;
 use deeptime_engine::BadInput;
 use deeptime_engine::top::Top;
-use deeptime_storage::checkpoint::{Checkpoints, Manifest};
+use deeptime_storage::checkpoint::{CheckpointError, Checkpoints, Manifest};
 
 /// The top of a stored state, read down to its pieces.
 struct StoredTop {
@@ -78,9 +78,9 @@ impl Run<'_> {
         for key in keys.iter().rev() {
             let manifest = match tokio::task::block_in_place(|| checkpoints.manifest(key)) {
                 Ok(manifest) => manifest,
-                Err(error) if error.chain().any(|c| c.is::<BadInput>()) => return Err(error),
+                Err(error) if !error.is_damage() => return Err(error.into()),
                 Err(error) => {
-                    tracing::warn!("skipping damaged checkpoint: {error:#}");
+                    tracing::warn!("skipping damaged checkpoint: {error}");
                     continue;
                 }
             };
@@ -119,7 +119,7 @@ impl Run<'_> {
                             .load(&mut loaded.universe)
                             .await
                             .map(|on_nodes| (on_nodes, loaded.known)),
-                        Err(error) => Err(error),
+                        Err(error) => Err(error.into()),
                     }
                 }
                 Err(error) => Err(error),
@@ -134,7 +134,8 @@ impl Run<'_> {
                     );
                     return Ok((on_nodes, manifest, known));
                 }
-                Err(error) if stops_the_load(&error) => return Err(error),
+                // Only damage sends the load to an earlier checkpoint.
+                Err(error) if !CheckpointError::is_damage_in(&error) => return Err(error),
                 Err(error) => {
                     tracing::warn!(
                         "skipping damaged checkpoint {}: {error:#}",

@@ -17,7 +17,7 @@ use deeptime_engine::pack::{
 };
 use deeptime_engine::pattern::{plaintext, rle};
 use deeptime_engine::rule::Rule;
-use deeptime_engine::stored::{Fetch, StoredNode, StoredPack, StoredState};
+use deeptime_engine::stored::{Fetch, FetchError, StoredNode, StoredPack, StoredState};
 use deeptime_engine::{ContentId, PackInput, Universe};
 use deeptime_node::wire;
 use deeptime_proto::v1;
@@ -186,13 +186,24 @@ pub fn pack_around(body: &[u8], records: u64, slots: &[Checksum]) -> Vec<u8> {
 struct InMemory<'p>(&'p [&'p [u8]]);
 
 impl Fetch for InMemory<'_> {
-    fn fetch(&mut self, pack: usize, offset: u64, len: u64) -> Result<Vec<u8>, String> {
-        let bytes = self.0.get(pack).ok_or("no such pack")?;
-        let end = offset.checked_add(len).ok_or("range overflows")?;
+    fn fetch(&mut self, pack: usize, offset: u64, len: u64) -> Result<Vec<u8>, FetchError> {
+        let missing = |text: String| FetchError::Missing(text);
+        let bytes = self
+            .0
+            .get(pack)
+            .ok_or_else(|| missing("no such pack".to_string()))?;
+        let end = offset
+            .checked_add(len)
+            .ok_or_else(|| missing("range overflows".to_string()))?;
         bytes
             .get(offset as usize..end as usize)
             .map(<[u8]>::to_vec)
-            .ok_or_else(|| format!("bytes {offset}..{end} of a pack of {}", bytes.len()))
+            .ok_or_else(|| {
+                missing(format!(
+                    "bytes {offset}..{end} of a pack of {}",
+                    bytes.len()
+                ))
+            })
     }
 }
 
