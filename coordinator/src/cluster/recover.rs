@@ -8,6 +8,8 @@
 //! checkpoint and lost before it was stored), or nodes that cannot read
 //! the run's storage.
 
+use std::collections::HashSet;
+
 use anyhow::Context;
 use deeptime_engine::pack::QuadAt;
 use deeptime_engine::{ContentId, KnownQuads};
@@ -15,6 +17,10 @@ use deeptime_engine::{ContentId, KnownQuads};
 use crate::cluster::drive::{OnNodes, Run, keep_for_next};
 use crate::cluster::resume::packs_of;
 use deeptime_storage::checkpoint::Manifest;
+
+/// Rounds of reading lost pieces: a node that fails its read is left out
+/// and its run goes to the others in the next round.
+const READ_ATTEMPTS: usize = 3;
 
 /// What a recovery did.
 pub(super) enum Recovered {
@@ -66,30 +72,58 @@ impl Run<'_> {
                 }
             }
         }
-        let live = self.members.live();
-        if live.is_empty() {
-            return Ok(Recovered::No("no node is live".to_string()));
-        }
         let packs = packs_of(newest)?;
         // Runs of neighbouring pieces (in the order the state lists them),
-        // one per live node, read by the nodes in parallel.
-        let share = at.len().div_ceil(live.len());
-        let reads = live.iter().zip(at.chunks(share)).map(|(member, run)| {
-            let packs = &packs;
-            async move {
-                let places: Vec<QuadAt> = run.iter().map(|(_, place)| *place).collect();
-                let read = self.load_call(member, packs, &places, false).await?;
-                anyhow::Ok((member.id, run, read))
+        // one per live node, read by the nodes in parallel. A node that
+        // fails its read (gone since the probe, or failing) is left out and
+        // its run shared among the others, a few times over.
+        let mut reads = Vec::new();
+        let mut left: Vec<(ContentId, QuadAt)> = at.clone();
+        let mut failed: HashSet<u64> = HashSet::new();
+        let mut last_error = None;
+        for _ in 0..READ_ATTEMPTS {
+            if left.is_empty() {
+                break;
             }
-        });
-        let reads = match futures::future::try_join_all(reads).await {
-            Ok(reads) => reads,
-            Err(error) => {
-                return Ok(Recovered::No(format!(
-                    "the nodes could not read the lost pieces: {error:#}"
-                )));
+            let live: Vec<_> = self
+                .members
+                .live()
+                .into_iter()
+                .filter(|member| !failed.contains(&member.id))
+                .collect();
+            if live.is_empty() {
+                break;
             }
-        };
+            let share = left.len().div_ceil(live.len());
+            let attempts = live.iter().zip(left.chunks(share)).map(|(member, run)| {
+                let packs = &packs;
+                async move {
+                    let places: Vec<QuadAt> = run.iter().map(|(_, place)| *place).collect();
+                    let read = self.load_call(member, packs, &places, false).await;
+                    (member.id, run.to_vec(), read)
+                }
+            });
+            let mut unread = Vec::new();
+            for (member, run, read) in futures::future::join_all(attempts).await {
+                match read {
+                    Ok(read) => reads.push((member, run, read)),
+                    Err(error) => {
+                        failed.insert(member);
+                        last_error = Some(error);
+                        unread.extend(run);
+                    }
+                }
+            }
+            left = unread;
+            self.tasks.lose_the_gone().await;
+        }
+        if !left.is_empty() {
+            let why = match last_error {
+                Some(error) => format!("the nodes could not read the lost pieces: {error:#}"),
+                None => "no node is live".to_string(),
+            };
+            return Ok(Recovered::No(why));
+        }
         for (member, run, read) in reads {
             for ((expected, _), got) in run.iter().zip(read) {
                 let (id, figures) = got.with_context(|| {
