@@ -155,7 +155,15 @@ pub const BASE_PACK: &[u8] = include_bytes!("../../corpus/pack/lighthouse-gen0.p
 /// claiming `records` records, with `slots` as its pack names; header,
 /// table and trailer as CHECKPOINTS.md specifies, checksums correct.
 pub fn pack_around(body: &[u8], records: u64, slots: &[Checksum]) -> Vec<u8> {
-    let chunk = zstd::bulk::compress(body, 3).expect("zstd compresses any bytes");
+    // One compressor for every input: making a context per call (megabytes
+    // of tables) was most of this harness's time.
+    thread_local! {
+        static COMPRESSOR: std::cell::RefCell<zstd::bulk::Compressor<'static>> =
+            std::cell::RefCell::new(zstd::bulk::Compressor::new(3).expect("a zstd context"));
+    }
+    let chunk = COMPRESSOR
+        .with(|compressor| compressor.borrow_mut().compress(body))
+        .expect("zstd compresses any bytes");
     let mut out = Vec::with_capacity(chunk.len() + 128);
     out.extend_from_slice(PACK_MAGIC);
     out.extend_from_slice(&PACK_VERSION.to_le_bytes());
