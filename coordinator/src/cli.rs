@@ -39,6 +39,8 @@ pub enum Command {
     Node(NodeArgs),
     /// Show a running cluster job's live status
     Status(StatusArgs),
+    /// Tell what a pattern becomes: when it settles, its period, its census
+    Fate(FateArgs),
 }
 
 #[derive(Args, Debug)]
@@ -184,6 +186,28 @@ pub struct LeapArgs {
 }
 
 #[derive(Args, Debug)]
+pub struct FateArgs {
+    /// Pattern file, RLE or plaintext (recognised by content); `-` reads standard input
+    pub pattern: PathBuf,
+
+    /// Rule in B/S notation (B3/S23, or the older 23/3); overrides the pattern's header
+    #[arg(long, value_name = "RULE")]
+    pub rule: Option<String>,
+
+    /// Look no further than this generation, as for --gens [default: 2^20]
+    #[arg(long, value_name = "N", allow_hyphen_values = true)]
+    pub limit: Option<String>,
+
+    /// Print exactly one JSON object on standard output
+    #[arg(long)]
+    pub json: bool,
+
+    /// Memory budget for quads, e.g. 2GiB or 512MiB (default: half of this machine's memory)
+    #[arg(long, value_name = "SIZE")]
+    pub memory: Option<String>,
+}
+
+#[derive(Args, Debug)]
 pub struct BenchArgs {
     /// Small sizes for a smoke run (seconds, not minutes); figures are not comparable
     #[arg(long)]
@@ -197,7 +221,7 @@ pub struct BenchArgs {
     #[arg(long, value_name = "PATH")]
     pub python: Option<PathBuf>,
 
-    /// Run one part only: reach, stepping, chaotic, numpy, checkpoints, cluster or capacity
+    /// Run one part only: reach, stepping, chaotic, numpy, checkpoints, cluster, capacity or fate
     #[arg(long, value_name = "PART")]
     pub only: Option<String>,
 }

@@ -10,6 +10,7 @@ pub mod checkpoint;
 mod cli;
 mod cluster;
 pub mod failure;
+mod fate;
 mod input;
 mod inspect;
 pub mod job;
@@ -57,6 +58,7 @@ pub fn main() -> ExitCode {
         Command::Coordinator(args) => cluster::run(args),
         Command::Node(args) => node::run(args),
         Command::Status(args) => cluster::status::run(args),
+        Command::Fate(args) => fate::run(args),
     };
     match outcome {
         Ok(()) => ExitCode::SUCCESS,

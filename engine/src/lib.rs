@@ -5,6 +5,7 @@
 
 pub mod cut;
 pub mod direct;
+pub mod fate;
 pub mod generation;
 pub mod pack;
 pub mod pattern;
