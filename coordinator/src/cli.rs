@@ -41,6 +41,8 @@ pub enum Command {
     Status(StatusArgs),
     /// Tell what a pattern becomes: when it settles, its period, its census
     Fate(FateArgs),
+    /// A pattern's population, bounding box and digest every K generations
+    Timeline(TimelineArgs),
 }
 
 #[derive(Args, Debug)]
@@ -197,6 +199,40 @@ pub struct FateArgs {
     /// Look no further than this generation, as for --gens [default: 2^20]
     #[arg(long, value_name = "N", allow_hyphen_values = true)]
     pub limit: Option<String>,
+
+    /// Print exactly one JSON object on standard output
+    #[arg(long)]
+    pub json: bool,
+
+    /// Memory budget for quads, e.g. 2GiB or 512MiB (default: half of this machine's memory)
+    #[arg(long, value_name = "SIZE")]
+    pub memory: Option<String>,
+}
+
+#[derive(Args, Debug)]
+pub struct TimelineArgs {
+    /// Pattern file, RLE or plaintext (recognised by content); `-` reads standard input
+    pub pattern: PathBuf,
+
+    /// The last generation sampled, as for leap (e.g. 3000, 10^100)
+    #[arg(long, value_name = "N", allow_hyphen_values = true)]
+    pub gens: String,
+
+    /// Sample every K generations, as for --gens (e.g. 30, 10^97)
+    #[arg(long, value_name = "K", allow_hyphen_values = true)]
+    pub every: String,
+
+    /// Rule in B/S notation; overrides the pattern's header
+    #[arg(long, value_name = "RULE")]
+    pub rule: Option<String>,
+
+    /// Write the samples as CSV (generation,population,left,top,width,height,digest)
+    #[arg(long, value_name = "FILE.csv")]
+    pub csv: Option<PathBuf>,
+
+    /// Draw the population by generation as a PNG plot
+    #[arg(long, value_name = "FILE.png")]
+    pub png: Option<PathBuf>,
 
     /// Print exactly one JSON object on standard output
     #[arg(long)]

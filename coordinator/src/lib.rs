@@ -23,6 +23,8 @@ mod progress;
 mod report;
 mod run;
 mod snapshot;
+mod timeline;
+mod timeline_plot;
 
 use std::process::ExitCode;
 
@@ -59,6 +61,7 @@ pub fn main() -> ExitCode {
         Command::Node(args) => node::run(args),
         Command::Status(args) => cluster::status::run(args),
         Command::Fate(args) => fate::run(args),
+        Command::Timeline(args) => timeline::run(args),
     };
     match outcome {
         Ok(()) => ExitCode::SUCCESS,

@@ -1,0 +1,231 @@
+//! `deeptime timeline`: a pattern's figures (population, bounding box,
+//! digest) at generations 0, K, 2K, … N, as a table for people, CSV, JSON,
+//! and a plot of the population (`timeline_plot.rs`). K may be
+//! astronomically large: each sample is one HashLife jump of K, and the
+//! jumps all share one memo, since they advance by the same K.
+
+use std::io::Write;
+use std::path::{Path, PathBuf};
+use std::time::Instant;
+
+use anyhow::Context;
+use deeptime_engine::generation::parse_generations;
+use deeptime_engine::{Universe, human_bytes};
+use num_bigint::BigUint;
+use num_traits::{ToPrimitive, Zero};
+use serde::Serialize;
+
+use crate::cli::TimelineArgs;
+use crate::failure::{BadInput, OutputFailed};
+use crate::numbers::{box_for_people, for_people};
+use crate::report::{BoxReport, EngineReport};
+use crate::{input, memory, output, progress};
+
+/// At most this many samples in one timeline.
+pub const MAX_SAMPLES: u64 = 100_000;
+
+/// The CSV header, one line per sample after it.
+pub const CSV_HEADER: &str = "generation,population,left,top,width,height,digest";
+
+/// The figures of one sampled generation.
+#[derive(Serialize, Debug)]
+pub struct Sample {
+    pub generation: String,
+    pub population: String,
+    pub bbox: Option<BoxReport>,
+    pub digest: String,
+}
+
+#[derive(Serialize, Debug)]
+struct TimelineReport {
+    rule: String,
+    gens: String,
+    every: String,
+    samples: Vec<Sample>,
+    engine: EngineReport,
+}
+
+pub fn run(args: TimelineArgs) -> anyhow::Result<()> {
+    let gens =
+        parse_generations(&args.gens).map_err(|error| BadInput(format!("--gens: {error}")))?;
+    let every =
+        parse_generations(&args.every).map_err(|error| BadInput(format!("--every: {error}")))?;
+    if every.is_zero() {
+        return Err(BadInput("--every: must be at least 1".into()).into());
+    }
+    let count = &gens / &every + if (&gens % &every).is_zero() { 1u32 } else { 2 };
+    if count > BigUint::from(MAX_SAMPLES) {
+        return Err(BadInput(format!(
+            "--every {}: gives {} samples up to --gens {} (at most {MAX_SAMPLES})",
+            args.every,
+            for_people(&count.to_string()),
+            args.gens
+        ))
+        .into());
+    }
+    for (option, path, extension) in [("--csv", &args.csv, "csv"), ("--png", &args.png, "png")] {
+        if let Some(path) = path {
+            check_extension(option, path, extension)?;
+        }
+    }
+    let budget = memory::budget(args.memory.as_deref())?;
+    let loaded = input::read(&args.pattern, budget)?;
+    let rule = input::rule(args.rule.as_deref(), &loaded)?;
+
+    let started = Instant::now();
+    let mut universe = Universe::from_pattern(&loaded.pattern, rule, budget)
+        .with_context(|| format!("{}: building the pattern", loaded.name))?;
+    drop(loaded);
+    let line = progress::Line::start("sampling");
+    let sampled = sample(&mut universe, &gens, &every);
+    line.finish();
+    let samples = sampled?;
+    let elapsed = started.elapsed();
+
+    if let Some(path) = &args.csv {
+        output::write_whole(path, |writer| {
+            write_csv(writer, &samples).map_err(|error| {
+                OutputFailed(format!("cannot write {}: {error}", path.display()))
+            })?;
+            Ok(())
+        })?;
+    }
+    if let Some(path) = &args.png {
+        let bytes = crate::timeline_plot::population_png(&samples, &rule.to_string())
+            .with_context(|| format!("--png {}", path.display()))?;
+        output::write_whole(path, |writer| {
+            writer.write_all(&bytes).map_err(|error| {
+                OutputFailed(format!("cannot write {}: {error}", path.display()))
+            })?;
+            Ok(())
+        })?;
+    }
+    let stats = universe.store_stats();
+    let report = TimelineReport {
+        rule: rule.to_string(),
+        gens: gens.to_string(),
+        every: every.to_string(),
+        samples,
+        engine: EngineReport {
+            quads: stats.quads,
+            leaves: stats.leaves,
+            quads_created: stats.created,
+            bytes: stats.bytes,
+            budget: stats.budget,
+            collections: stats.collections,
+            root_level: universe.root_level(),
+            seconds: elapsed.as_secs_f64(),
+        },
+    };
+    if args.json {
+        println!("{}", serde_json::to_string(&report)?);
+        return Ok(());
+    }
+    print_table(&report, &args.csv, &args.png);
+    Ok(())
+}
+
+fn check_extension(option: &str, path: &Path, extension: &str) -> Result<(), BadInput> {
+    let given = path.extension().and_then(|e| e.to_str()).unwrap_or("");
+    if !given.eq_ignore_ascii_case(extension) {
+        return Err(BadInput(format!(
+            "{option} {}: the file name must end in .{extension}",
+            path.display()
+        )));
+    }
+    Ok(())
+}
+
+/// The figures at 0, every, 2·every, … and `gens` (the last sample even
+/// when `gens` is not a multiple of `every`).
+pub fn sample(
+    universe: &mut Universe,
+    gens: &BigUint,
+    every: &BigUint,
+) -> anyhow::Result<Vec<Sample>> {
+    let start = universe.generation().clone();
+    let end = &start + gens;
+    let mut samples = Vec::new();
+    loop {
+        samples.push(Sample {
+            generation: (universe.generation() - &start).to_string(),
+            population: universe.population().to_string(),
+            bbox: universe.bounding_box().as_ref().map(BoxReport::from),
+            digest: universe.digest()?.to_string(),
+        });
+        let left = &end - universe.generation();
+        if left.is_zero() {
+            return Ok(samples);
+        }
+        let step = std::cmp::min(left, every.clone());
+        universe.advance(&step, None).with_context(|| {
+            format!("advancing to generation {}", universe.generation() + &step)
+        })?;
+    }
+}
+
+/// The samples as CSV under [`CSV_HEADER`]; a state with no live cell has
+/// its four bounding-box fields empty.
+pub fn write_csv(out: &mut impl Write, samples: &[Sample]) -> std::io::Result<()> {
+    writeln!(out, "{CSV_HEADER}")?;
+    for sample in samples {
+        let (left, top, width, height) = match &sample.bbox {
+            Some(b) => (&*b.left, &*b.top, &*b.width, &*b.height),
+            None => ("", "", "", ""),
+        };
+        writeln!(
+            out,
+            "{},{},{left},{top},{width},{height},{}",
+            sample.generation, sample.population, sample.digest
+        )?;
+    }
+    Ok(())
+}
+
+fn print_table(report: &TimelineReport, csv: &Option<PathBuf>, png: &Option<PathBuf>) {
+    let shown = |decimal: &str| for_people(decimal);
+    let width = report
+        .samples
+        .iter()
+        .map(|s| shown(&s.generation).chars().count())
+        .max()
+        .unwrap_or(10)
+        .max(10);
+    println!(
+        "{:<width$}  {:>12}  {:<32}  bounding box",
+        "generation", "population", "digest"
+    );
+    for sample in &report.samples {
+        let bbox = match &sample.bbox {
+            Some(b) => box_for_people(&b.left, &b.top, &b.width, &b.height),
+            None => "none".to_string(),
+        };
+        println!(
+            "{:<width$}  {:>12}  {:<32}  {bbox}",
+            shown(&sample.generation),
+            shown(&sample.population),
+            sample.digest
+        );
+    }
+    let engine = &report.engine;
+    println!(
+        "{} samples, rule {}; engine {:.3} s, {} quads created, {} live in {}",
+        report.samples.len(),
+        report.rule,
+        engine.seconds,
+        engine.quads_created,
+        engine.quads,
+        human_bytes(engine.bytes)
+    );
+    for (what, path) in [("CSV", csv), ("plot", png)] {
+        if let Some(path) = path {
+            println!("{what} written to {}", path.display());
+        }
+    }
+}
+
+/// A decimal's value as f64 when it is finite, for plotting.
+pub fn as_f64(decimal: &str) -> Option<f64> {
+    let value: BigUint = decimal.parse().ok()?;
+    value.to_f64().filter(|v| v.is_finite())
+}
