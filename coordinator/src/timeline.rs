@@ -191,8 +191,15 @@ fn print_table(report: &TimelineReport, csv: &Option<PathBuf>, png: &Option<Path
         .max()
         .unwrap_or(10)
         .max(10);
+    let counts = report
+        .samples
+        .iter()
+        .map(|s| shown(&s.population).chars().count())
+        .max()
+        .unwrap_or(10)
+        .max(10);
     println!(
-        "{:<width$}  {:>12}  {:<32}  bounding box",
+        "{:<width$}  {:>counts$}  {:<32}  bounding box",
         "generation", "population", "digest"
     );
     for sample in &report.samples {
@@ -201,7 +208,7 @@ fn print_table(report: &TimelineReport, csv: &Option<PathBuf>, png: &Option<Path
             None => "none".to_string(),
         };
         println!(
-            "{:<width$}  {:>12}  {:<32}  {bbox}",
+            "{:<width$}  {:>counts$}  {:<32}  {bbox}",
             shown(&sample.generation),
             shown(&sample.population),
             sample.digest
