@@ -200,8 +200,8 @@ fn turned_rle(rle_rows: &[&str], dx: usize) -> String {
     let mut rows = Vec::new();
     for x in 0..width {
         let mut row = ".".repeat(dx);
-        for y in 0..height {
-            row.push(rle_rows[y].as_bytes()[x] as char);
+        for line in rle_rows {
+            row.push(line.as_bytes()[x] as char);
         }
         rows.push(row);
     }
