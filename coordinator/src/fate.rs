@@ -113,6 +113,7 @@ fn reason_text(reason: NotYet) -> &'static str {
         NotYet::Changing => "an object is still changing",
         NotYet::Meeting => "moving objects may still meet others",
         NotYet::TooMuchWork => "the state is too busy to take apart",
+        NotYet::TooLarge => "the state has more live cells than are taken apart (2^23)",
     }
 }
 

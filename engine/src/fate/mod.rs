@@ -5,9 +5,10 @@
 //! HashLife jumps) until it can be taken apart into objects that each
 //! repeat on their own and never meet (`objects.rs`). Taking a busy state
 //! apart costs far more than a jump, so before the limit a horizon is
-//! examined only when its population comes back after 720,720 generations
-//! (a multiple of every period up to 16), as a settled state's does; at
-//! the limit it is examined whatever its population. From the objects at
+//! examined only when its population comes back after a common multiple
+//! of the periods up to 6 (at horizon 64), up to 8 (from 1024), … up to 16
+//! (from 720,720), as a settled state's does; at the limit it is examined
+//! whatever its population. From the objects at
 //! that horizon, where every one of them stood at any earlier generation
 //! follows (a phase and a whole number of displacements back); the settle
 //! generation is the first at which the state is exactly those objects,
@@ -37,10 +38,12 @@ pub use shape::{digest_of, shape_digest_of};
 
 use objects::{Classes, Object};
 
-/// Every period up to 16 divides this (the least common multiple of 1 to
-/// 16): a settled state whose objects have such periods has the same
-/// population this many generations on.
-const QUIET: u64 = 720_720;
+/// The least common multiples of 1 to n, for n = 6, 8, 10, 12, 16: a
+/// settled state whose objects' periods are at most n has the same
+/// population that many generations on. A horizon h uses the largest that
+/// is at most h (at least the first), so that on a busy state the check
+/// costs no more than the jump to the next horizon.
+const QUIET: [u64; 5] = [60, 840, 2_520, 27_720, 720_720];
 /// The first horizon at which the state is taken apart.
 const FIRST_HORIZON: u64 = 64;
 /// States with more live cells than this are not taken apart.
@@ -146,10 +149,15 @@ pub fn fate(universe: &mut Universe, limit: &BigUint) -> Result<Fate, FateError>
         states.goto(&horizon)?;
         states.save();
         // Before the limit, take the state apart only when its population
-        // is back after QUIET generations (as a settled state's is, when
-        // every period divides QUIET): a busy state fails this at the cost
+        // is back a common multiple of small periods later (QUIET), as a
+        // settled state's is: a busy state fails this at the cost
         // of a jump, not of an analysis. At the limit, always.
-        if horizon < limit && !states.quiet(&horizon)? {
+        if states.universe.population() > BigUint::from(MAX_CELLS) {
+            // Not taken apart here, and a state this busy is seldom about
+            // to settle: stop rather than go on to the limit.
+            break Err(NotYet::TooLarge);
+        }
+        if horizon < limit && !states.quiet(&horizon, &start)? {
             horizon = next_horizon(&horizon, &start, &limit);
             continue;
         }
@@ -327,7 +335,14 @@ fn unsettled(states: &mut States<'_>, reason: NotYet) -> Result<Unsettled, FateE
     let bbox = universe.bounding_box();
     let digest = universe.digest().map_err(AdvanceError::from)?;
     let mut populations = vec![BigInt::from(population.clone())];
-    for _ in 1..GROWTH_WINDOW {
+    // A state too large to take apart is too large to step one generation
+    // at a time for long, too.
+    let window = if reason == NotYet::TooLarge {
+        1
+    } else {
+        GROWTH_WINDOW
+    };
+    for _ in 1..window {
         universe.advance(&BigUint::one(), None)?;
         populations.push(BigInt::from(universe.population()));
     }
@@ -411,10 +426,18 @@ impl<'u> States<'u> {
     }
 
     /// Whether the population at `at` (the current generation, kept) is
-    /// the same QUIET generations on; leaves the universe at `at`.
-    fn quiet(&mut self, at: &BigUint) -> Result<bool, AdvanceError> {
+    /// the same a while later (see QUIET; `from` is the start); leaves the
+    /// universe at `at`.
+    fn quiet(&mut self, at: &BigUint, from: &BigUint) -> Result<bool, AdvanceError> {
         let now = self.universe.population();
-        self.goto(&(at + QUIET))?;
+        let reach = at - from;
+        let quiet = QUIET
+            .iter()
+            .copied()
+            .filter(|&q| BigUint::from(q) <= reach)
+            .max()
+            .unwrap_or(QUIET[0]);
+        self.goto(&(at + quiet))?;
         let later = self.universe.population();
         self.goto(at)?;
         Ok(now == later)

@@ -95,6 +95,8 @@ pub enum NotYet {
     Meeting,
     /// taking the state apart cost more than the analysis allows
     TooMuchWork,
+    /// the state has more live cells than are ever taken apart
+    TooLarge,
 }
 
 /// Classifications of normalised cell lists, shared across analyses.
