@@ -4,7 +4,7 @@
 
 use std::path::Path;
 
-use deeptime_tests::{leap_report, run_deeptime, temp_dir};
+use deeptime_tests::{leap_report, run_deeptime, temp_dir, write_job};
 use num_bigint::BigUint;
 use serde_json::Value;
 
@@ -114,6 +114,46 @@ fn every_sample_is_what_leap_reports() {
             assert_eq!(sample[key], leap[key], "{key} at {generation}");
         }
     }
+}
+
+#[test]
+fn a_runs_timeline_is_its_stored_generations() {
+    // A run checkpointing every 300 generations to 1200 gives the same
+    // samples, read from its manifests, as the pattern sampled every 300.
+    let dir = temp_dir();
+    write(dir.path(), "gun.rle", GOSPER_GUN);
+    let job = write_job(
+        dir.path(),
+        "gun.toml",
+        "gun",
+        "gun.rle",
+        "B3/S23",
+        "1200",
+        "300",
+    );
+    run_deeptime(["run", job.to_str().unwrap()]).assert_success();
+    let runs = dir.path().join("runs");
+    let stored = run_deeptime(["timeline", runs.to_str().unwrap(), "--json"]);
+    stored.assert_success();
+    let stored: Value = serde_json::from_str(&stored.stdout).unwrap();
+    let sampled = run_deeptime([
+        "timeline",
+        dir.path().join("gun.rle").to_str().unwrap(),
+        "--gens",
+        "1200",
+        "--every",
+        "300",
+        "--json",
+    ]);
+    sampled.assert_success();
+    let sampled: Value = serde_json::from_str(&sampled.stdout).unwrap();
+    assert_eq!(stored["samples"], sampled["samples"]);
+    assert_eq!(stored["samples"].as_array().unwrap().len(), 5);
+    assert_eq!(stored["every"], Value::Null);
+    // The options of a pattern are refused for a run, in one line.
+    let run = run_deeptime(["timeline", runs.to_str().unwrap(), "--every", "3"]);
+    assert_eq!(run.code, Some(2), "{}", run.describe());
+    assert_eq!(run.stderr.trim().lines().count(), 1, "{}", run.describe());
 }
 
 #[test]

@@ -211,16 +211,17 @@ pub struct FateArgs {
 
 #[derive(Args, Debug)]
 pub struct TimelineArgs {
-    /// Pattern file, RLE or plaintext (recognised by content); `-` reads standard input
+    /// Pattern file (RLE or plaintext; `-` reads standard input), or a run's
+    /// checkpoint folder or s3:// URL, whose stored generations are listed
     pub pattern: PathBuf,
 
-    /// The last generation sampled, as for leap (e.g. 3000, 10^100)
+    /// The last generation sampled, as for leap (e.g. 3000, 10^100); for a pattern
     #[arg(long, value_name = "N", allow_hyphen_values = true)]
-    pub gens: String,
+    pub gens: Option<String>,
 
-    /// Sample every K generations, as for --gens (e.g. 30, 10^97)
+    /// Sample every K generations, as for --gens (e.g. 30, 10^97); for a pattern
     #[arg(long, value_name = "K", allow_hyphen_values = true)]
-    pub every: String,
+    pub every: Option<String>,
 
     /// Rule in B/S notation; overrides the pattern's header
     #[arg(long, value_name = "RULE")]

@@ -2,7 +2,9 @@
 //! digest) at generations 0, K, 2K, … N, as a table for people, CSV, JSON,
 //! and a plot of the population (`timeline_plot.rs`). K may be
 //! astronomically large: each sample is one HashLife jump of K, and the
-//! jumps all share one memo, since they advance by the same K.
+//! jumps all share one memo, since they advance by the same K. Given a
+//! run's checkpoint folder instead, the samples are its stored
+//! generations, read from their manifests alone.
 
 use std::io::Write;
 use std::path::{Path, PathBuf};
@@ -15,6 +17,7 @@ use num_bigint::BigUint;
 use num_traits::{ToPrimitive, Zero};
 use serde::Serialize;
 
+use crate::checkpoint::Checkpoints;
 use crate::cli::TimelineArgs;
 use crate::failure::{BadInput, OutputFailed};
 use crate::numbers::{box_for_people, for_people};
@@ -39,35 +42,43 @@ pub struct Sample {
 #[derive(Serialize, Debug)]
 struct TimelineReport {
     rule: String,
+    /// the last generation sampled
     gens: String,
-    every: String,
+    /// null for a run's checkpoints
+    every: Option<String>,
     samples: Vec<Sample>,
-    engine: EngineReport,
+    /// null for a run's checkpoints
+    engine: Option<EngineReport>,
 }
 
 pub fn run(args: TimelineArgs) -> anyhow::Result<()> {
+    let is_run = args.pattern.to_string_lossy().contains("s3://") || args.pattern.is_dir();
+    if is_run {
+        return from_run(&args);
+    }
+    let (Some(gens_text), Some(every_text)) = (&args.gens, &args.every) else {
+        return Err(BadInput(format!(
+            "{}: a pattern needs --gens N and --every K",
+            args.pattern.display()
+        ))
+        .into());
+    };
     let gens =
-        parse_generations(&args.gens).map_err(|error| BadInput(format!("--gens: {error}")))?;
+        parse_generations(gens_text).map_err(|error| BadInput(format!("--gens: {error}")))?;
     let every =
-        parse_generations(&args.every).map_err(|error| BadInput(format!("--every: {error}")))?;
+        parse_generations(every_text).map_err(|error| BadInput(format!("--every: {error}")))?;
     if every.is_zero() {
         return Err(BadInput("--every: must be at least 1".into()).into());
     }
     let count = &gens / &every + if (&gens % &every).is_zero() { 1u32 } else { 2 };
     if count > BigUint::from(MAX_SAMPLES) {
         return Err(BadInput(format!(
-            "--every {}: gives {} samples up to --gens {} (at most {MAX_SAMPLES})",
-            args.every,
+            "--every {every_text}: gives {} samples up to --gens {gens_text} (at most {MAX_SAMPLES})",
             for_people(&count.to_string()),
-            args.gens
         ))
         .into());
     }
-    for (option, path, extension) in [("--csv", &args.csv, "csv"), ("--png", &args.png, "png")] {
-        if let Some(path) = path {
-            check_extension(option, path, extension)?;
-        }
-    }
+    check_outputs(&args)?;
     let budget = memory::budget(args.memory.as_deref())?;
     let loaded = input::read(&args.pattern, budget)?;
     let rule = input::rule(args.rule.as_deref(), &loaded)?;
@@ -82,31 +93,13 @@ pub fn run(args: TimelineArgs) -> anyhow::Result<()> {
     let samples = sampled?;
     let elapsed = started.elapsed();
 
-    if let Some(path) = &args.csv {
-        output::write_whole(path, |writer| {
-            write_csv(writer, &samples).map_err(|error| {
-                OutputFailed(format!("cannot write {}: {error}", path.display()))
-            })?;
-            Ok(())
-        })?;
-    }
-    if let Some(path) = &args.png {
-        let bytes = crate::timeline_plot::population_png(&samples, &rule.to_string())
-            .with_context(|| format!("--png {}", path.display()))?;
-        output::write_whole(path, |writer| {
-            writer.write_all(&bytes).map_err(|error| {
-                OutputFailed(format!("cannot write {}: {error}", path.display()))
-            })?;
-            Ok(())
-        })?;
-    }
     let stats = universe.store_stats();
     let report = TimelineReport {
         rule: rule.to_string(),
         gens: gens.to_string(),
-        every: every.to_string(),
+        every: Some(every.to_string()),
         samples,
-        engine: EngineReport {
+        engine: Some(EngineReport {
             quads: stats.quads,
             leaves: stats.leaves,
             quads_created: stats.created,
@@ -115,8 +108,97 @@ pub fn run(args: TimelineArgs) -> anyhow::Result<()> {
             collections: stats.collections,
             root_level: universe.root_level(),
             seconds: elapsed.as_secs_f64(),
-        },
+        }),
     };
+    finish(report, &args)
+}
+
+/// The stored generations of a run, from their manifests.
+fn from_run(args: &TimelineArgs) -> anyhow::Result<()> {
+    if args.gens.is_some() || args.every.is_some() {
+        return Err(BadInput(format!(
+            "{}: a run's timeline is its stored generations; --gens and --every are for a pattern",
+            args.pattern.display()
+        ))
+        .into());
+    }
+    check_outputs(args)?;
+    let checkpoints = Checkpoints::new(crate::checkpoint::open_existing(&args.pattern)?);
+    let mut stored = Vec::new();
+    let mut rule = None;
+    for key in checkpoints.manifest_keys()? {
+        let manifest = match checkpoints.manifest(&key) {
+            Ok(manifest) => manifest,
+            // Another format version is no damage: say so and stop.
+            Err(error) if error.chain().any(|cause| cause.is::<BadInput>()) => return Err(error),
+            Err(error) => {
+                eprintln!("deeptime: warning: skipping damaged checkpoint: {error:#}");
+                continue;
+            }
+        };
+        rule.get_or_insert_with(|| manifest.rule.clone());
+        let generation = manifest.generation()?;
+        stored.push((
+            generation,
+            Sample {
+                generation: manifest.generation.clone(),
+                population: manifest.population.clone(),
+                bbox: manifest.bbox.as_ref().map(|b| BoxReport {
+                    left: b.left.clone(),
+                    top: b.top.clone(),
+                    width: b.width.clone(),
+                    height: b.height.clone(),
+                }),
+                digest: manifest.root.clone(),
+            },
+        ));
+    }
+    stored.sort_by(|a, b| a.0.cmp(&b.0));
+    stored.dedup_by(|a, b| a.0 == b.0);
+    let Some(rule) = rule else {
+        return Err(BadInput(format!("{}: no checkpoints", args.pattern.display())).into());
+    };
+    let gens = stored.last().map(|s| s.0.to_string()).unwrap_or_default();
+    let report = TimelineReport {
+        rule,
+        gens,
+        every: None,
+        samples: stored.into_iter().map(|(_, sample)| sample).collect(),
+        engine: None,
+    };
+    finish(report, args)
+}
+
+fn check_outputs(args: &TimelineArgs) -> Result<(), BadInput> {
+    for (option, path, extension) in [("--csv", &args.csv, "csv"), ("--png", &args.png, "png")] {
+        if let Some(path) = path {
+            check_extension(option, path, extension)?;
+        }
+    }
+    Ok(())
+}
+
+/// Writes the files asked for and prints the report.
+fn finish(report: TimelineReport, args: &TimelineArgs) -> anyhow::Result<()> {
+    let samples = &report.samples;
+    if let Some(path) = &args.csv {
+        output::write_whole(path, |writer| {
+            write_csv(writer, samples).map_err(|error| {
+                OutputFailed(format!("cannot write {}: {error}", path.display()))
+            })?;
+            Ok(())
+        })?;
+    }
+    if let Some(path) = &args.png {
+        let bytes = crate::timeline_plot::population_png(samples, &report.rule)
+            .with_context(|| format!("--png {}", path.display()))?;
+        output::write_whole(path, |writer| {
+            writer.write_all(&bytes).map_err(|error| {
+                OutputFailed(format!("cannot write {}: {error}", path.display()))
+            })?;
+            Ok(())
+        })?;
+    }
     if args.json {
         println!("{}", serde_json::to_string(&report)?);
         return Ok(());
@@ -214,16 +296,22 @@ fn print_table(report: &TimelineReport, csv: &Option<PathBuf>, png: &Option<Path
             sample.digest
         );
     }
-    let engine = &report.engine;
-    println!(
-        "{} samples, rule {}; engine {:.3} s, {} quads created, {} live in {}",
-        report.samples.len(),
-        report.rule,
-        engine.seconds,
-        engine.quads_created,
-        engine.quads,
-        human_bytes(engine.bytes)
-    );
+    match &report.engine {
+        Some(engine) => println!(
+            "{} samples, rule {}; engine {:.3} s, {} quads created, {} live in {}",
+            report.samples.len(),
+            report.rule,
+            engine.seconds,
+            engine.quads_created,
+            engine.quads,
+            human_bytes(engine.bytes)
+        ),
+        None => println!(
+            "{} stored generations, rule {}",
+            report.samples.len(),
+            report.rule
+        ),
+    }
     for (what, path) in [("CSV", csv), ("plot", png)] {
         if let Some(path) = path {
             println!("{what} written to {}", path.display());
