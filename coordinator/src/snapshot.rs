@@ -131,9 +131,12 @@ pub fn run(args: SnapshotArgs) -> anyhow::Result<()> {
     }
     if let Some(out) = &args.out {
         let bbox = universe.bounding_box();
+        let digest = universe.digest()?;
+        let note = format!("generation {}, digest {digest}", universe.generation());
         write_out(
             &mut Source::Memory(&mut universe),
             bbox,
+            note,
             out,
             region.as_ref(),
             args.scale,
@@ -292,9 +295,14 @@ fn from_stored(
     }
     let bbox = manifest.bbox.as_ref().map(|b| b.parse()).transpose()?;
     if let Some(out) = &args.out {
+        let note = format!(
+            "generation {}, digest {}",
+            manifest.generation, manifest.root
+        );
         write_out(
             &mut Source::Stored(&mut state),
             bbox,
+            note,
             out,
             region,
             args.scale,
@@ -341,10 +349,15 @@ impl Source<'_, '_> {
         }
     }
 
-    fn write_rle_region(&mut self, out: &mut impl Write, region: &Region) -> anyhow::Result<()> {
+    fn write_rle_region(
+        &mut self,
+        out: &mut impl Write,
+        region: &Region,
+        note: &str,
+    ) -> anyhow::Result<()> {
         match self {
-            Source::Memory(universe) => universe.write_rle_region(out, region)?,
-            Source::Stored(state) => state.write_rle_region(out, region)?,
+            Source::Memory(universe) => universe.write_rle_noted(out, region, Some(note))?,
+            Source::Stored(state) => state.write_rle_noted(out, region, Some(note))?,
         }
         Ok(())
     }
@@ -385,6 +398,8 @@ fn parse_region(text: &str) -> Result<Region, BadInput> {
 fn write_out(
     source: &mut Source,
     bbox: Option<BoundingBox>,
+    // "generation G, digest D" of the whole state, for the RLE's comment
+    note: String,
     out: &Path,
     region: Option<&Region>,
     scale: Option<u32>,
@@ -392,10 +407,12 @@ fn write_out(
     let kind = out_kind(out)?;
     let written = output::write_whole(out, |writer| match kind {
         OutKind::Rle => match region {
-            Some(region) => source.write_rle_region(writer, region),
+            Some(region) => {
+                source.write_rle_region(writer, region, &format!("{note} (of the whole state)"))
+            }
             // The whole state: the region of its bounding box.
             None => match &bbox {
-                Some(bbox) => source.write_rle_region(writer, &Region::of_box(bbox)?),
+                Some(bbox) => source.write_rle_region(writer, &Region::of_box(bbox)?, &note),
                 None => {
                     deeptime_engine::pattern::write::write_rle(writer, 0, 0, &source.rule(), [])?;
                     Ok(())
