@@ -22,6 +22,36 @@ pub struct Report {
     /// bytes of all packs the checkpoint read from needs (snapshots only)
     #[serde(skip_serializing_if = "Option::is_none")]
     pub pack_bytes: Option<u64>,
+    /// the figures of `--region`'s rectangle (snapshots with --region only)
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub region: Option<RegionReport>,
+}
+
+/// The rectangle asked for and the live cells inside it.
+#[derive(Serialize, Debug)]
+pub struct RegionReport {
+    pub left: String,
+    pub top: String,
+    pub width: String,
+    pub height: String,
+    pub population: String,
+    pub bbox: Option<BoxReport>,
+}
+
+impl RegionReport {
+    pub fn of(
+        region: &deeptime_engine::Region,
+        (population, bbox): (u64, Option<deeptime_engine::BoundingBox>),
+    ) -> RegionReport {
+        RegionReport {
+            left: region.left.to_string(),
+            top: region.top.to_string(),
+            width: region.width.to_string(),
+            height: region.height.to_string(),
+            population: population.to_string(),
+            bbox: bbox.as_ref().map(BoxReport::from),
+        }
+    }
 }
 
 #[derive(Serialize, Debug)]
@@ -86,6 +116,7 @@ impl Report {
             },
             bytes_read: None,
             pack_bytes: None,
+            region: None,
         })
     }
 
@@ -114,6 +145,17 @@ impl Report {
             human_bytes(engine.bytes),
             engine.collections
         );
+        if let Some(region) = &self.region {
+            let inside = match &region.bbox {
+                Some(b) => box_for_people(&b.left, &b.top, &b.width, &b.height),
+                None => "none".to_string(),
+            };
+            println!(
+                "region        {}: {} live cells, bounding box {inside}",
+                box_for_people(&region.left, &region.top, &region.width, &region.height),
+                for_people(&region.population)
+            );
+        }
         if let (Some(read), Some(packs)) = (self.bytes_read, self.pack_bytes) {
             println!(
                 "storage       {} read; the checkpoint's packs hold {}",

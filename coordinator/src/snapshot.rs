@@ -24,7 +24,7 @@ use crate::checkpoint::{Checkpoints, Manifest};
 use crate::cli::SnapshotArgs;
 use crate::failure::{BadInput, OutputFailed};
 use crate::numbers::for_people;
-use crate::report::{BoxReport, EngineReport, Report};
+use crate::report::{BoxReport, EngineReport, RegionReport, Report};
 use crate::{memory, output, progress};
 use deeptime_node::storage::Counting;
 
@@ -143,6 +143,12 @@ pub fn run(args: SnapshotArgs) -> anyhow::Result<()> {
         )?;
     }
     let mut report = Report::of(&mut universe, started.elapsed())?;
+    if let Some(region) = &region {
+        let figures = universe
+            .region_figures(region)
+            .with_context(|| format!("--region {}", args.region.as_deref().unwrap_or("")))?;
+        report.region = Some(RegionReport::of(region, figures));
+    }
     report.bytes_read = Some(counted.bytes_read());
     report.pack_bytes = Some(pack_bytes);
     report.print(args.json)
@@ -308,6 +314,10 @@ fn from_stored(
             args.scale,
         )?;
     }
+    let region_report = match region {
+        Some(region) => Some(RegionReport::of(region, state.region_figures(region)?)),
+        None => None,
+    };
     Ok(Some(Report {
         generation: manifest.generation.clone(),
         population: manifest.population.clone(),
@@ -331,6 +341,7 @@ fn from_stored(
         },
         bytes_read: None,
         pack_bytes: None,
+        region: region_report,
     }))
 }
 

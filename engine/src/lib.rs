@@ -22,6 +22,7 @@ mod content_id;
 mod error;
 mod figures;
 mod kernel;
+mod region;
 mod stack;
 mod store;
 mod universe;

@@ -468,6 +468,7 @@ impl Run<'_> {
             },
             bytes_read: None,
             pack_bytes: None,
+            region: None,
         })
     }
 }
