@@ -284,6 +284,11 @@ pub struct SnapshotArgs {
     #[arg(long, value_name = "SCALE")]
     pub scale: Option<u32>,
 
+    /// For pictures: log (grey by the log of the live cells, one cell mid-grey),
+    /// any (black where any cell lives) or share (grey by the share of live cells)
+    #[arg(long, value_name = "MODE", default_value = "log")]
+    pub shade: String,
+
     /// Print exactly one JSON object on standard output
     #[arg(long)]
     pub json: bool,

@@ -25,6 +25,21 @@ pub struct Report {
     /// the figures of `--region`'s rectangle (snapshots with --region only)
     #[serde(skip_serializing_if = "Option::is_none")]
     pub region: Option<RegionReport>,
+    /// the pixel grid of a picture written (snapshots with --out x.png)
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub picture: Option<PictureReport>,
+}
+
+/// Where a picture's pixels lie: pixel (c, r) is the square of 2^scale
+/// cells a side whose top-left cell is (left + c·2^scale, top + r·2^scale).
+#[derive(Serialize, Debug, Clone)]
+pub struct PictureReport {
+    pub left: String,
+    pub top: String,
+    pub scale: u32,
+    pub columns: u32,
+    pub rows: u32,
+    pub shade: &'static str,
 }
 
 /// The rectangle asked for and the live cells inside it.
@@ -117,6 +132,7 @@ impl Report {
             bytes_read: None,
             pack_bytes: None,
             region: None,
+            picture: None,
         })
     }
 

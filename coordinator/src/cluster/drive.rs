@@ -469,6 +469,7 @@ impl Run<'_> {
             bytes_read: None,
             pack_bytes: None,
             region: None,
+            picture: None,
         })
     }
 }
