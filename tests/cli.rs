@@ -343,9 +343,9 @@ const MALFORMED: &[(&[u8], &[&str], i32, &str)] = &[
     ),
     (
         b"x = 1, y = 1\no!",
-        &["--out", "picture.png"],
+        &["--out", "picture.gif"],
         2,
-        "--out picture.png: only .rle output is supported",
+        "--out picture.gif: write .rle or .png",
     ),
 ];
 

@@ -87,3 +87,31 @@ fn a_sparse_wide_state_is_visible_and_says_where_it_lies() {
     // The same pixels are lit in every shade.
     assert!(lit.windows(2).all(|w| w[0] == w[1]), "{lit:?}");
 }
+
+#[test]
+fn leap_draws_a_picture_too() {
+    // The one-shot command: the R-pentomino at 1103 (LifeWiki: 116 cells)
+    // drawn at one cell a pixel, black where a cell lives.
+    let dir = temp_dir();
+    let pattern = dir.path().join("r.rle");
+    std::fs::write(&pattern, "x = 3, y = 3\nb2o$2o$bo!").unwrap();
+    let out = dir.path().join("r.png");
+    let run = run_deeptime([
+        "leap",
+        pattern.to_str().unwrap(),
+        "--gens",
+        "1103",
+        "--out",
+        out.to_str().unwrap(),
+        "--scale",
+        "0",
+        "--json",
+    ]);
+    run.assert_success();
+    let report: Value = serde_json::from_str(&run.stdout).unwrap();
+    assert_eq!(report["picture"]["scale"], 0);
+    assert_eq!(report["picture"]["left"], report["bbox"]["left"]);
+    let (pixels, _) = read_png(&out);
+    assert_eq!(pixels.iter().filter(|&&g| g == 0).count(), 116);
+    assert_eq!(pixels.iter().filter(|&&g| g != 0 && g != 255).count(), 0);
+}

@@ -178,9 +178,17 @@ pub struct LeapArgs {
     #[arg(long)]
     pub json: bool,
 
-    /// Write the final pattern as RLE, positioned at its bounding box
-    #[arg(long, value_name = "FILE.rle")]
+    /// Write the final pattern as RLE (.rle, positioned at its bounding box) or a picture (.png)
+    #[arg(long, value_name = "FILE")]
     pub out: Option<PathBuf>,
+
+    /// For pictures: each pixel is 2^SCALE × 2^SCALE cells (default: fit 1024 pixels)
+    #[arg(long, value_name = "SCALE")]
+    pub scale: Option<u32>,
+
+    /// For pictures: log, any or share (see snapshot --shade)
+    #[arg(long, value_name = "MODE", default_value = "log")]
+    pub shade: String,
 
     /// Memory budget for quads, e.g. 2GiB or 512MiB (default: half of this machine's memory)
     #[arg(long, value_name = "SIZE")]

@@ -446,6 +446,36 @@ fn write_out(
     Ok(picture)
 }
 
+/// Writes the picture of a state in memory (its bounding box) to `out`,
+/// for `deeptime leap --out x.png`; returns where its pixels lie.
+pub(crate) fn picture_of_universe(
+    universe: &mut Universe,
+    out: &Path,
+    scale: Option<u32>,
+    shade: &str,
+) -> anyhow::Result<PictureReport> {
+    let shade = Shade::parse(shade)?;
+    check_out(out, None, scale)?;
+    let bbox = universe.bounding_box();
+    let mut grid = None;
+    let written = output::write_whole(out, |writer| {
+        grid = Some(
+            draw(
+                &mut Source::Memory(universe),
+                bbox,
+                writer,
+                None,
+                scale,
+                shade,
+            )
+            .with_context(|| format!("--out {}", out.display()))?,
+        );
+        Ok(())
+    });
+    written.map_err(|error| as_output_error(error, out))?;
+    Ok(grid.expect("drawn when written"))
+}
+
 /// How a picture's pixels are shaded.
 #[derive(Clone, Copy, Debug, PartialEq, Eq)]
 pub enum Shade {
