@@ -237,16 +237,37 @@ fn settle_generation(
     }
     // Invariant: not yet at `low`, settled at `high`.
     let (mut low, mut high) = (start.clone(), horizon.clone());
-    while &high - &low > BigUint::one() {
-        let middle: BigUint = (&low + &high) / 2u32;
-        if is_objects(states, &middle)? {
-            high = middle;
-        } else {
-            low = middle;
+    loop {
+        while &high - &low > BigUint::one() {
+            let middle: BigUint = (&low + &high) / 2u32;
+            if is_objects(states, &middle)? {
+                high = middle;
+            } else {
+                low = middle;
+            }
+            states.save();
         }
-        states.save();
+        // Bisection takes "the state is its objects" to hold from the first
+        // generation it holds on. Probe the generation after and seven more
+        // spread up to the horizon: one that fails (two objects that touched
+        // and parted unchanged) moves the search past it.
+        let span = horizon - &high;
+        let mut probes = vec![&high + 1u32];
+        probes.extend((1..8u32).map(|j| &high + &span * j / 8u32));
+        let mut failed = None;
+        for probe in probes {
+            if probe < *horizon && probe > high && !is_objects(states, &probe)? {
+                failed = Some(probe);
+            }
+        }
+        match failed {
+            Some(probe) => {
+                low = probe;
+                high = horizon.clone();
+            }
+            None => return Ok(high),
+        }
     }
-    Ok(high)
 }
 
 /// The period and displacement of the whole pattern when all its objects
