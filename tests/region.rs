@@ -112,3 +112,40 @@ fn a_region_reports_its_own_figures() {
         );
     }
 }
+
+#[test]
+fn leap_reports_a_region_too() {
+    // The R-pentomino at 1103 (LifeWiki: 116 cells); a rectangle holding
+    // every cell reports them all, one beside it reports none.
+    let dir = temp_dir();
+    let pattern = dir.path().join("r.rle");
+    std::fs::write(&pattern, "x = 3, y = 3\nb2o$2o$bo!").unwrap();
+    let leap = |region: &str| -> Value {
+        let run = run_deeptime([
+            "leap",
+            pattern.to_str().unwrap(),
+            "--gens",
+            "1103",
+            "--region",
+            region,
+            "--json",
+        ]);
+        run.assert_success();
+        serde_json::from_str(&run.stdout).unwrap()
+    };
+    let all = leap("-1000,-1000,2000,2000");
+    assert_eq!(all["region"]["population"], "116");
+    assert_eq!(all["region"]["bbox"], all["bbox"]);
+    let none = leap("5000,5000,10,10");
+    assert_eq!(none["region"]["population"], "0");
+    assert_eq!(none["region"]["bbox"], Value::Null);
+    let run = run_deeptime([
+        "leap",
+        pattern.to_str().unwrap(),
+        "--gens",
+        "1",
+        "--region",
+        "1,2,3",
+    ]);
+    assert_eq!(run.code, Some(2), "{}", run.describe());
+}

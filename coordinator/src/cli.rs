@@ -190,6 +190,10 @@ pub struct LeapArgs {
     #[arg(long, value_name = "MODE", default_value = "log")]
     pub shade: String,
 
+    /// Also report this rectangle's population and bounding box: LEFT,TOP,WIDTH,HEIGHT
+    #[arg(long, value_name = "L,T,W,H", allow_hyphen_values = true)]
+    pub region: Option<String>,
+
     /// Memory budget for quads, e.g. 2GiB or 512MiB (default: half of this machine's memory)
     #[arg(long, value_name = "SIZE")]
     pub memory: Option<String>,

@@ -24,6 +24,11 @@ pub fn run(args: LeapArgs) -> anyhow::Result<()> {
     if let Some(out) = &args.out {
         check_output_path(out)?;
     }
+    let region = args
+        .region
+        .as_deref()
+        .map(crate::snapshot::parse_region)
+        .transpose()?;
 
     let started = Instant::now();
     let mut universe = Universe::from_pattern(&loaded.pattern, rule, budget)
@@ -53,6 +58,12 @@ pub fn run(args: LeapArgs) -> anyhow::Result<()> {
     }
     let mut report = Report::of(&mut universe, elapsed)?;
     report.picture = picture;
+    if let Some(region) = &region {
+        let figures = universe
+            .region_figures(region)
+            .with_context(|| format!("--region {}", args.region.as_deref().unwrap_or("")))?;
+        report.region = Some(crate::report::RegionReport::of(region, figures));
+    }
     report.print(args.json)
 }
 

@@ -394,7 +394,7 @@ impl Source<'_, '_> {
     }
 }
 
-fn parse_region(text: &str) -> Result<Region, BadInput> {
+pub(crate) fn parse_region(text: &str) -> Result<Region, BadInput> {
     let bad = || {
         BadInput(format!(
             "--region {text:?}: expected LEFT,TOP,WIDTH,HEIGHT (integers, width and height ≥ 0)"
