@@ -103,10 +103,20 @@ fn reads_standard_input_and_writes_rle_at_the_bounding_box() {
     );
     let two = json(&run);
     let text = std::fs::read_to_string(&out).unwrap();
-    assert!(text.starts_with("x = 3, y = 3, rule = B3/S23\n"), "{text}");
+    // The box's corner in a `#position` comment, generation and digest in
+    // a `#C` one, then the header.
+    let digest = two["digest"].as_str().unwrap();
+    assert!(
+        text.starts_with(&format!(
+            "#position {} {}\n#C generation 2, digest {digest}\nx = 3, y = 3, rule = B3/S23\n",
+            two["bbox"]["left"].as_str().unwrap(),
+            two["bbox"]["top"].as_str().unwrap()
+        )),
+        "{text}"
+    );
     assert!(text.lines().all(|line| line.len() <= 70));
-    // The written pattern, advanced 2 more, is the glider of generation 4
-    // (moved by (1, 1) from the start) less the offset of the box written.
+    // The written pattern, advanced 2 more, is the glider of generation 4,
+    // where it stands: the position comment put it back in place.
     let four = json(&run_deeptime([
         "leap",
         out.to_str().unwrap(),
@@ -123,10 +133,11 @@ fn reads_standard_input_and_writes_rle_at_the_bounding_box() {
     for axis in ["left", "top"] {
         assert_eq!(
             number(&four["bbox"][axis]),
-            number(&start["bbox"][axis]) - number(&two["bbox"][axis]),
+            number(&start["bbox"][axis]),
             "{axis}"
         );
     }
+    assert_eq!(four["digest"], start["digest"]);
     assert_eq!(four["population"], "5");
     assert_eq!(two["population"], "5");
 }
@@ -332,9 +343,9 @@ const MALFORMED: &[(&[u8], &[&str], i32, &str)] = &[
     ),
     (
         b"x = 1, y = 1\no!",
-        &["--out", "picture.png"],
+        &["--out", "picture.gif"],
         2,
-        "--out picture.png: only .rle output is supported",
+        "--out picture.gif: write .rle or .png",
     ),
 ];
 

@@ -40,6 +40,10 @@ pub enum Command {
     Node(NodeArgs),
     /// Show a running cluster job's live status
     Status(StatusArgs),
+    /// Tell what a pattern becomes: when it settles, its period, its census
+    Fate(FateArgs),
+    /// A pattern's population, bounding box and digest every K generations
+    Timeline(TimelineArgs),
 }
 
 #[derive(Args, Debug)]
@@ -107,9 +111,78 @@ pub struct LeapArgs {
     #[arg(long)]
     pub json: bool,
 
-    /// Write the final pattern as RLE, positioned at its bounding box
-    #[arg(long, value_name = "FILE.rle")]
+    /// Write the final pattern as RLE (.rle, positioned at its bounding box) or a picture (.png)
+    #[arg(long, value_name = "FILE")]
     pub out: Option<PathBuf>,
+
+    /// For pictures: each pixel is 2^SCALE × 2^SCALE cells (default: fit 1024 pixels)
+    #[arg(long, value_name = "SCALE")]
+    pub scale: Option<u32>,
+
+    /// For pictures: log, any or share (see snapshot --shade)
+    #[arg(long, value_name = "MODE", default_value = "log")]
+    pub shade: String,
+
+    /// Also report this rectangle's population and bounding box: LEFT,TOP,WIDTH,HEIGHT
+    #[arg(long, value_name = "L,T,W,H", allow_hyphen_values = true)]
+    pub region: Option<String>,
+
+    /// Memory budget for quads, e.g. 2GiB or 512MiB (default: half of this machine's memory)
+    #[arg(long, value_name = "SIZE")]
+    pub memory: Option<String>,
+}
+
+#[derive(Args, Debug)]
+pub struct FateArgs {
+    /// Pattern file, RLE or plaintext (recognised by content); `-` reads standard input
+    pub pattern: PathBuf,
+
+    /// Rule in B/S notation (B3/S23, or the older 23/3); overrides the pattern's header
+    #[arg(long, value_name = "RULE")]
+    pub rule: Option<String>,
+
+    /// Look no further than this generation, as for --gens [default: 2^20]
+    #[arg(long, value_name = "N", allow_hyphen_values = true)]
+    pub limit: Option<String>,
+
+    /// Print exactly one JSON object on standard output
+    #[arg(long)]
+    pub json: bool,
+
+    /// Memory budget for quads, e.g. 2GiB or 512MiB (default: half of this machine's memory)
+    #[arg(long, value_name = "SIZE")]
+    pub memory: Option<String>,
+}
+
+#[derive(Args, Debug)]
+pub struct TimelineArgs {
+    /// Pattern file (RLE or plaintext; `-` reads standard input), or a run's
+    /// checkpoint folder or s3:// URL, whose stored generations are listed
+    pub pattern: PathBuf,
+
+    /// The last generation sampled, as for leap (e.g. 3000, 10^100); for a pattern
+    #[arg(long, value_name = "N", allow_hyphen_values = true)]
+    pub gens: Option<String>,
+
+    /// Sample every K generations, as for --gens (e.g. 30, 10^97); for a pattern
+    #[arg(long, value_name = "K", allow_hyphen_values = true)]
+    pub every: Option<String>,
+
+    /// Rule in B/S notation; overrides the pattern's header
+    #[arg(long, value_name = "RULE")]
+    pub rule: Option<String>,
+
+    /// Write the samples as CSV (generation,population,left,top,width,height,digest)
+    #[arg(long, value_name = "FILE.csv")]
+    pub csv: Option<PathBuf>,
+
+    /// Draw the population by generation as a PNG plot
+    #[arg(long, value_name = "FILE.png")]
+    pub png: Option<PathBuf>,
+
+    /// Print exactly one JSON object on standard output
+    #[arg(long)]
+    pub json: bool,
 
     /// Memory budget for quads, e.g. 2GiB or 512MiB (default: half of this machine's memory)
     #[arg(long, value_name = "SIZE")]
@@ -130,7 +203,7 @@ pub struct BenchArgs {
     #[arg(long, value_name = "PATH")]
     pub python: Option<PathBuf>,
 
-    /// Run one part only: reach, stepping, chaotic, numpy, checkpoints, cluster or capacity
+    /// Run one part only: reach, stepping, chaotic, numpy, checkpoints, cluster, capacity or fate
     #[arg(long, value_name = "PART")]
     pub only: Option<String>,
 }
@@ -155,6 +228,11 @@ pub struct SnapshotArgs {
     /// For pictures: each pixel is 2^SCALE × 2^SCALE cells (default: fit 1024 pixels)
     #[arg(long, value_name = "SCALE")]
     pub scale: Option<u32>,
+
+    /// For pictures: log (grey by the log of the live cells, one cell mid-grey),
+    /// any (black where any cell lives) or share (grey by the share of live cells)
+    #[arg(long, value_name = "MODE", default_value = "log")]
+    pub shade: String,
 
     /// Print exactly one JSON object on standard output
     #[arg(long)]

@@ -24,6 +24,11 @@ pub fn run(args: LeapArgs) -> anyhow::Result<()> {
     if let Some(out) = &args.out {
         check_output_path(out)?;
     }
+    let region = args
+        .region
+        .as_deref()
+        .map(crate::snapshot::parse_region)
+        .transpose()?;
 
     let started = Instant::now();
     let mut universe = Universe::from_pattern(&loaded.pattern, rule, budget)
@@ -38,17 +43,42 @@ pub fn run(args: LeapArgs) -> anyhow::Result<()> {
     advanced.with_context(|| format!("advancing {} generations", args.gens))?;
     let elapsed = started.elapsed();
 
+    let mut picture = None;
     if let Some(out) = &args.out {
-        write_rle(&mut universe, out)?;
+        if is_png(out) {
+            picture = Some(crate::snapshot::picture_of_universe(
+                &mut universe,
+                out,
+                args.scale,
+                &args.shade,
+            )?);
+        } else {
+            write_rle(&mut universe, out)?;
+        }
     }
-    Report::of(&mut universe, elapsed)?.print(args.json)
+    let mut report = Report::of(&mut universe, elapsed)?;
+    report.picture = picture;
+    if let Some(region) = &region {
+        let figures = universe
+            .region_figures(region)
+            .with_context(|| format!("--region {}", args.region.as_deref().unwrap_or("")))?;
+        report.region = Some(deeptime_coordinator::report::RegionReport::of(
+            region, figures,
+        ));
+    }
+    report.print(args.json)
+}
+
+fn is_png(out: &Path) -> bool {
+    let extension = out.extension().and_then(|e| e.to_str()).unwrap_or("");
+    extension.eq_ignore_ascii_case("png")
 }
 
 fn check_output_path(out: &Path) -> Result<(), BadInput> {
     let extension = out.extension().and_then(|e| e.to_str()).unwrap_or("");
-    if !extension.eq_ignore_ascii_case("rle") {
+    if !extension.eq_ignore_ascii_case("rle") && !is_png(out) {
         return Err(BadInput(format!(
-            "--out {}: only .rle output is supported",
+            "--out {}: write .rle or .png",
             out.display()
         )));
     }

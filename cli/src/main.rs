@@ -7,11 +7,14 @@
 mod bench;
 mod cli;
 mod failure;
+mod fate;
 mod inspect;
 mod leap;
 mod logging;
 mod node;
 mod snapshot;
+mod timeline;
+mod timeline_plot;
 
 use std::process::ExitCode;
 
@@ -52,6 +55,8 @@ fn main() -> ExitCode {
         }
         Command::Node(args) => node::run(args),
         Command::Status(args) => cluster::status::run(args),
+        Command::Fate(args) => fate::run(args),
+        Command::Timeline(args) => timeline::run(args),
     };
     match outcome {
         Ok(()) => ExitCode::SUCCESS,

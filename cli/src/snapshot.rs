@@ -23,7 +23,7 @@ use num_bigint::{BigInt, BigUint};
 use crate::cli::SnapshotArgs;
 use crate::failure::{BadInput, OutputFailed};
 use deeptime_coordinator::numbers::for_people;
-use deeptime_coordinator::report::{BoxReport, EngineReport, Report};
+use deeptime_coordinator::report::{BoxReport, EngineReport, PictureReport, RegionReport, Report};
 use deeptime_coordinator::{memory, output, progress};
 use deeptime_storage::Counting;
 use deeptime_storage::checkpoint::{CheckpointError, Checkpoints, Manifest};
@@ -35,6 +35,7 @@ pub fn run(args: SnapshotArgs) -> anyhow::Result<()> {
     let generation =
         parse_generations(&args.generation).map_err(|error| BadInput(format!("--gen: {error}")))?;
     let region = args.region.as_deref().map(parse_region).transpose()?;
+    let shade = Shade::parse(&args.shade)?;
     if let Some(out) = &args.out {
         check_out(out, region.as_ref(), args.scale)?;
     }
@@ -127,17 +128,28 @@ pub fn run(args: SnapshotArgs) -> anyhow::Result<()> {
         line.finish();
         advanced.with_context(|| format!("advancing {steps} generations"))?;
     }
+    let mut picture = None;
     if let Some(out) = &args.out {
         let bbox = universe.bounding_box();
-        write_out(
+        let digest = universe.digest()?;
+        let note = format!("generation {}, digest {digest}", universe.generation());
+        picture = write_out(
             &mut Source::Memory(&mut universe),
             bbox,
+            note,
             out,
             region.as_ref(),
-            args.scale,
+            (args.scale, shade),
         )?;
     }
     let mut report = Report::of(&mut universe, started.elapsed())?;
+    report.picture = picture;
+    if let Some(region) = &region {
+        let figures = universe
+            .region_figures(region)
+            .with_context(|| format!("--region {}", args.region.as_deref().unwrap_or("")))?;
+        report.region = Some(RegionReport::of(region, figures));
+    }
     report.bytes_read = Some(counted.bytes_read());
     report.pack_bytes = Some(pack_bytes);
     report.print(args.json)
@@ -286,15 +298,26 @@ fn from_stored(
         return Ok(None);
     }
     let bbox = manifest.bbox.as_ref().map(|b| b.parse()).transpose()?;
+    let shade = Shade::parse(&args.shade)?;
+    let mut picture = None;
     if let Some(out) = &args.out {
-        write_out(
+        let note = format!(
+            "generation {}, digest {}",
+            manifest.generation, manifest.root
+        );
+        picture = write_out(
             &mut Source::Stored(&mut state),
             bbox,
+            note,
             out,
             region,
-            args.scale,
+            (args.scale, shade),
         )?;
     }
+    let region_report = match region {
+        Some(region) => Some(RegionReport::of(region, state.region_figures(region)?)),
+        None => None,
+    };
     Ok(Some(Report {
         generation: manifest.generation.clone(),
         population: manifest.population.clone(),
@@ -318,6 +341,8 @@ fn from_stored(
         },
         bytes_read: None,
         pack_bytes: None,
+        region: region_report,
+        picture,
     }))
 }
 
@@ -336,10 +361,15 @@ impl Source<'_, '_> {
         }
     }
 
-    fn write_rle_region(&mut self, out: &mut impl Write, region: &Region) -> anyhow::Result<()> {
+    fn write_rle_region(
+        &mut self,
+        out: &mut impl Write,
+        region: &Region,
+        note: &str,
+    ) -> anyhow::Result<()> {
         match self {
-            Source::Memory(universe) => universe.write_rle_region(out, region)?,
-            Source::Stored(state) => state.write_rle_region(out, region)?,
+            Source::Memory(universe) => universe.write_rle_noted(out, region, Some(note))?,
+            Source::Stored(state) => state.write_rle_noted(out, region, Some(note))?,
         }
         Ok(())
     }
@@ -359,7 +389,7 @@ impl Source<'_, '_> {
     }
 }
 
-fn parse_region(text: &str) -> Result<Region, BadInput> {
+pub(crate) fn parse_region(text: &str) -> Result<Region, BadInput> {
     let bad = || {
         BadInput(format!(
             "--region {text:?}: expected LEFT,TOP,WIDTH,HEIGHT (integers, width and height ≥ 0)"
@@ -380,17 +410,22 @@ fn parse_region(text: &str) -> Result<Region, BadInput> {
 fn write_out(
     source: &mut Source,
     bbox: Option<BoundingBox>,
+    // "generation G, digest D" of the whole state, for the RLE's comment
+    note: String,
     out: &Path,
     region: Option<&Region>,
-    scale: Option<u32>,
-) -> anyhow::Result<()> {
+    (scale, shade): (Option<u32>, Shade),
+) -> anyhow::Result<Option<PictureReport>> {
     let kind = out_kind(out)?;
+    let mut picture = None;
     let written = output::write_whole(out, |writer| match kind {
         OutKind::Rle => match region {
-            Some(region) => source.write_rle_region(writer, region),
+            Some(region) => {
+                source.write_rle_region(writer, region, &format!("{note} (of the whole state)"))
+            }
             // The whole state: the region of its bounding box.
             None => match &bbox {
-                Some(bbox) => source.write_rle_region(writer, &Region::of_box(bbox)?),
+                Some(bbox) => source.write_rle_region(writer, &Region::of_box(bbox)?, &note),
                 None => {
                     deeptime_engine::pattern::write::write_rle(writer, 0, 0, &source.rule(), [])?;
                     Ok(())
@@ -398,10 +433,99 @@ fn write_out(
             },
         }
         .with_context(|| format!("--out {}", out.display())),
-        OutKind::Png => draw(source, bbox, writer, region, scale)
+        OutKind::Png => draw(source, bbox, writer, region, scale, shade)
+            .map(|grid| picture = Some(grid))
             .with_context(|| format!("--out {}", out.display())),
     });
-    written.map_err(|error| as_output_error(error, out))
+    written.map_err(|error| as_output_error(error, out))?;
+    Ok(picture)
+}
+
+/// Writes the picture of a state in memory (its bounding box) to `out`,
+/// for `deeptime leap --out x.png`; returns where its pixels lie.
+pub(crate) fn picture_of_universe(
+    universe: &mut Universe,
+    out: &Path,
+    scale: Option<u32>,
+    shade: &str,
+) -> anyhow::Result<PictureReport> {
+    let shade = Shade::parse(shade)?;
+    check_out(out, None, scale)?;
+    let bbox = universe.bounding_box();
+    let mut grid = None;
+    let written = output::write_whole(out, |writer| {
+        grid = Some(
+            draw(
+                &mut Source::Memory(universe),
+                bbox,
+                writer,
+                None,
+                scale,
+                shade,
+            )
+            .with_context(|| format!("--out {}", out.display()))?,
+        );
+        Ok(())
+    });
+    written.map_err(|error| as_output_error(error, out))?;
+    Ok(grid.expect("drawn when written"))
+}
+
+/// How a picture's pixels are shaded.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub enum Shade {
+    /// grey by the logarithm of the live cells in the pixel: one cell is
+    /// mid-grey, a full pixel black, so a lone glider in a wide state shows
+    Log,
+    /// black wherever any cell lives
+    Any,
+    /// grey by the share of live cells (a lone cell in a large pixel is
+    /// nearly white)
+    Share,
+}
+
+impl Shade {
+    fn parse(text: &str) -> Result<Shade, BadInput> {
+        match text {
+            "log" => Ok(Shade::Log),
+            "any" => Ok(Shade::Any),
+            "share" => Ok(Shade::Share),
+            _ => Err(BadInput(format!(
+                "--shade {text:?}: expected log, any or share"
+            ))),
+        }
+    }
+
+    fn word(self) -> &'static str {
+        match self {
+            Shade::Log => "log",
+            Shade::Any => "any",
+            Shade::Share => "share",
+        }
+    }
+
+    /// The grey (255 white) of a pixel of 4^scale cells, `share` of them live.
+    fn grey(self, share: f32, scale: u32) -> u8 {
+        if share <= 0.0 {
+            return 255;
+        }
+        let share = share.min(1.0);
+        match self {
+            Shade::Any => 0,
+            Shade::Share => (223.0 - 223.0 * share) as u8,
+            Shade::Log => {
+                // live cells from 1 to 4^scale, on a log scale from 160 to 0
+                let cells = 4f64.powi(scale as i32);
+                if cells <= 1.0 {
+                    return 0;
+                }
+                let live = (f64::from(share) * cells).max(1.0);
+                (160.0 - 160.0 * live.ln() / cells.ln())
+                    .round()
+                    .clamp(0.0, 160.0) as u8
+            }
+        }
+    }
 }
 
 /// An error met while writing `--out`, told apart from damage of what was
@@ -440,7 +564,8 @@ fn draw(
     writer: &mut impl Write,
     region: Option<&Region>,
     scale: Option<u32>,
-) -> anyhow::Result<()> {
+    shade: Shade,
+) -> anyhow::Result<PictureReport> {
     let (left, top, width, height) = match region {
         Some(region) => (
             region.left.clone(),
@@ -474,9 +599,27 @@ fn draw(
         return Err(BadInput("the region to draw is empty".to_string()).into());
     }
     let picture = source.picture(&left, &top, columns, rows, scale)?;
-    let mut encoder = png::Encoder::new(writer, picture.columns.max(1), picture.rows.max(1));
+    // Pixels start at multiples of 2^scale (BigInt shifts round down).
+    let grid = PictureReport {
+        left: ((&left >> scale) << scale).to_string(),
+        top: ((&top >> scale) << scale).to_string(),
+        scale,
+        columns: picture.columns.max(1),
+        rows: picture.rows.max(1),
+        shade: shade.word(),
+    };
+    let mut encoder = png::Encoder::new(writer, grid.columns, grid.rows);
     encoder.set_color(png::ColorType::Grayscale);
     encoder.set_depth(png::BitDepth::Eight);
+    // The grid in text chunks, so the picture says where it lies.
+    for (key, value) in [
+        ("deeptime-left", grid.left.clone()),
+        ("deeptime-top", grid.top.clone()),
+        ("deeptime-scale", grid.scale.to_string()),
+        ("deeptime-shade", grid.shade.to_string()),
+    ] {
+        encoder.add_text_chunk(key.to_string(), value)?;
+    }
     let mut png = encoder.write_header()?;
     let grey: Vec<u8> = if picture.shares.is_empty() {
         vec![255]
@@ -484,16 +627,10 @@ fn draw(
         picture
             .shares
             .iter()
-            .map(|&share| {
-                if share <= 0.0 {
-                    255
-                } else {
-                    (223.0 - 223.0 * share.min(1.0)) as u8
-                }
-            })
+            .map(|&share| shade.grey(share, scale))
             .collect()
     };
     png.write_image_data(&grey)?;
     png.finish()?;
-    Ok(())
+    Ok(grid)
 }

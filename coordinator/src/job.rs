@@ -25,6 +25,13 @@ struct JobFile {
     target: String,
     memory: Option<String>,
     checkpoint: CheckpointFile,
+    timeline: Option<TimelineFile>,
+}
+
+#[derive(Deserialize, Debug)]
+#[serde(deny_unknown_fields)]
+struct TimelineFile {
+    every: String,
 }
 
 #[derive(Deserialize, Debug)]
@@ -52,6 +59,9 @@ pub struct Job {
     pub wall_clock: Option<Duration>,
     /// how many of the newest checkpoints to keep (None: all)
     pub keep: Option<usize>,
+    /// timeline samples at the multiples of this generation count between
+    /// the checkpoints (None: the checkpoints' figures only)
+    pub timeline_every: Option<BigUint>,
 }
 
 impl Job {
@@ -90,6 +100,19 @@ impl Job {
                 if every.is_zero() {
                     return Err(BadInput(format!(
                         "{place}: checkpoint.every must be at least 1"
+                    )));
+                }
+                Some(every)
+            }
+        };
+        let timeline_every = match &file.timeline {
+            None => None,
+            Some(timeline) => {
+                let every = parse_generations(&timeline.every)
+                    .map_err(|error| BadInput(format!("{place}: timeline.every: {error}")))?;
+                if every.is_zero() {
+                    return Err(BadInput(format!(
+                        "{place}: timeline.every must be at least 1"
                     )));
                 }
                 Some(every)
@@ -140,6 +163,7 @@ impl Job {
             every,
             wall_clock,
             keep: file.checkpoint.keep,
+            timeline_every,
         })
     }
 }
@@ -214,7 +238,12 @@ mod tests {
         assert_eq!(job.target, BigUint::from(10u32).pow(12));
         assert_eq!(job.every, Some(BigUint::from(1u32 << 16)));
         assert_eq!(job.wall_clock, None);
+        assert_eq!(job.timeline_every, None);
         assert!(job.pattern.ends_with("a.rle"));
+        let job = load(&format!("{GOOD}[timeline]\nevery = \"10^3\"\n")).unwrap();
+        assert_eq!(job.timeline_every, Some(BigUint::from(1000u32)));
+        let error = load(&format!("{GOOD}[timeline]\nevery = \"0\"\n")).unwrap_err();
+        assert_eq!(error.0, "JOB: timeline.every must be at least 1");
         assert!(job.checkpoint_dir.ends_with("runs/a"));
     }
 

@@ -22,6 +22,51 @@ pub struct Report {
     /// bytes of all packs the checkpoint read from needs (snapshots only)
     #[serde(skip_serializing_if = "Option::is_none")]
     pub pack_bytes: Option<u64>,
+    /// the figures of `--region`'s rectangle (snapshots with --region only)
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub region: Option<RegionReport>,
+    /// the pixel grid of a picture written (snapshots with --out x.png)
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub picture: Option<PictureReport>,
+}
+
+/// Where a picture's pixels lie: pixel (c, r) is the square of 2^scale
+/// cells a side whose top-left cell is (left + c·2^scale, top + r·2^scale).
+#[derive(Serialize, Debug, Clone)]
+pub struct PictureReport {
+    pub left: String,
+    pub top: String,
+    pub scale: u32,
+    pub columns: u32,
+    pub rows: u32,
+    pub shade: &'static str,
+}
+
+/// The rectangle asked for and the live cells inside it.
+#[derive(Serialize, Debug)]
+pub struct RegionReport {
+    pub left: String,
+    pub top: String,
+    pub width: String,
+    pub height: String,
+    pub population: String,
+    pub bbox: Option<BoxReport>,
+}
+
+impl RegionReport {
+    pub fn of(
+        region: &deeptime_engine::Region,
+        (population, bbox): (u64, Option<deeptime_engine::BoundingBox>),
+    ) -> RegionReport {
+        RegionReport {
+            left: region.left.to_string(),
+            top: region.top.to_string(),
+            width: region.width.to_string(),
+            height: region.height.to_string(),
+            population: population.to_string(),
+            bbox: bbox.as_ref().map(BoxReport::from),
+        }
+    }
 }
 
 #[derive(Serialize, Debug)]
@@ -86,6 +131,8 @@ impl Report {
             },
             bytes_read: None,
             pack_bytes: None,
+            region: None,
+            picture: None,
         })
     }
 
@@ -114,6 +161,17 @@ impl Report {
             human_bytes(engine.bytes),
             engine.collections
         );
+        if let Some(region) = &self.region {
+            let inside = match &region.bbox {
+                Some(b) => box_for_people(&b.left, &b.top, &b.width, &b.height),
+                None => "none".to_string(),
+            };
+            println!(
+                "region        {}: {} live cells, bounding box {inside}",
+                box_for_people(&region.left, &region.top, &region.width, &region.height),
+                for_people(&region.population)
+            );
+        }
         if let (Some(read), Some(packs)) = (self.bytes_read, self.pack_bytes) {
             println!(
                 "storage       {} read; the checkpoint's packs hold {}",

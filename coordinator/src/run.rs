@@ -17,7 +17,7 @@ use crate::numbers::for_people;
 use crate::report::Report;
 use crate::{input, memory, progress};
 use deeptime_engine::BadInput;
-use deeptime_storage::checkpoint::{Checkpoints, Manifest};
+use deeptime_storage::checkpoint::{Checkpoints, Manifest, TimelineSample};
 
 /// `deeptime run`: runs the job and prints its figures.
 pub fn run(args: RunArgs) -> anyhow::Result<()> {
@@ -59,6 +59,9 @@ pub fn run_job(path: &std::path::Path) -> anyhow::Result<Report> {
     let advancing = Instant::now();
     let mut pacer = job.wall_clock.map(Pacer::new);
     let mut last_checkpoint = Instant::now();
+    // Timeline samples taken since the last checkpoint, stored beside the
+    // next one.
+    let mut samples = Vec::new();
     while universe.generation() < &job.target {
         // The next generation that must be stored: a multiple of `every`,
         // or the target.
@@ -66,7 +69,13 @@ pub fn run_job(path: &std::path::Path) -> anyhow::Result<Report> {
             Some(every) => ((universe.generation() / every + 1u32) * every).min(job.target.clone()),
             None => job.target.clone(),
         };
-        let mut step: BigUint = &stop - universe.generation();
+        // And the next timeline sample, if one comes first.
+        let sample_at = job
+            .timeline_every
+            .as_ref()
+            .map(|every| (universe.generation() / every + 1u32) * every)
+            .filter(|at| at < &stop);
+        let mut step: BigUint = sample_at.as_ref().unwrap_or(&stop) - universe.generation();
         if let Some(pacer) = &pacer {
             step = step.min(pacer.step.clone());
         }
@@ -94,6 +103,9 @@ pub fn run_job(path: &std::path::Path) -> anyhow::Result<Report> {
             }
             None => false,
         };
+        if sample_at.as_ref() == Some(universe.generation()) {
+            samples.push(TimelineSample::of(&mut universe)?);
+        }
         if universe.generation() != &stop && !due {
             continue;
         }
@@ -104,6 +116,8 @@ pub fn run_job(path: &std::path::Path) -> anyhow::Result<Report> {
             &job.name,
             &pattern_digest,
         )?;
+        checkpoints.put_samples(&manifest, &samples)?;
+        samples.clear();
         last_checkpoint = Instant::now();
         previous = Some(manifest);
         if let Some(keep) = job.keep

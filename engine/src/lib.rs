@@ -8,6 +8,7 @@ pub const LEAF_LEVEL: u32 = 3;
 
 pub mod cut;
 pub mod direct;
+pub mod fate;
 pub mod generation;
 pub mod pack;
 pub mod pattern;
@@ -24,6 +25,7 @@ mod content_id;
 mod error;
 mod figures;
 mod kernel;
+mod region;
 mod stack;
 mod store;
 mod universe;

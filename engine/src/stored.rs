@@ -415,9 +415,27 @@ impl<'f> StoredState<'f> {
         out: &mut impl Write,
         region: &Region,
     ) -> Result<(), WriteError> {
+        self.write_rle_noted(out, region, None)
+    }
+
+    /// As `write_rle_region`, with a `#C` comment line holding `note`.
+    pub fn write_rle_noted(
+        &mut self,
+        out: &mut impl Write,
+        region: &Region,
+        note: Option<&str>,
+    ) -> Result<(), WriteError> {
         let rule = self.rule.to_string();
         let rows = rows_in(self, region)?;
-        write::write_rle(out, region.width, region.height, &rule, rows)?;
+        write::write_rle_at(
+            out,
+            (&region.left, &region.top),
+            note,
+            region.width,
+            region.height,
+            &rule,
+            rows,
+        )?;
         Ok(())
     }
 

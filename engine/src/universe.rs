@@ -143,6 +143,9 @@ impl Universe {
         rule: Rule,
         budget: u64,
     ) -> Result<Universe, BudgetExceeded> {
+        if let Some((x, y)) = pattern.origin.filter(|&origin| origin != (0, 0)) {
+            return Universe::from_pattern_at(pattern, x, y, rule, budget);
+        }
         let mut universe = Universe::new(rule, budget)?;
         // Nothing here is garbage, and the builder's rows hold handles the
         // collector cannot see: collection stays off until the root is pinned.
@@ -158,6 +161,63 @@ impl Universe {
         store.set_held_outside(0);
         store.set_collect_allowed(true);
         let (root, level) = built?;
+        universe.set_root(root, level);
+        Ok(universe)
+    }
+
+    /// The plane holding `pattern` with its top-left cell at (x, y) (each
+    /// at most `MAX_POSITION` from 0, the far corner too, as the RLE
+    /// reader checks): the pattern moved into the corner square of a root
+    /// centred on the origin, then built as `from_pattern` builds it.
+    fn from_pattern_at(
+        pattern: &Pattern,
+        x: i64,
+        y: i64,
+        rule: Rule,
+        budget: u64,
+    ) -> Result<Universe, BudgetExceeded> {
+        let (width, height) = pattern.extent();
+        let reach = [x, y, x + width as i64, y + height as i64]
+            .iter()
+            .map(|c| c.unsigned_abs())
+            .max()
+            .unwrap_or(0);
+        let mut level = MIN_ROOT_LEVEL;
+        while (1u64 << (level - 1)) < reach {
+            level += 1;
+        }
+        let half = 1i64 << (level - 1);
+        let mut moved = crate::pattern::Builder::new(budget);
+        for run in pattern.runs() {
+            let at_x = (run.x as i64 + x + half) as u64;
+            let at_y = (run.y as i64 + y + half) as u64;
+            moved
+                .push_run(at_y, at_x, run.len)
+                .map_err(|_| BudgetExceeded {
+                    budget,
+                    in_use: pattern.heap_bytes(),
+                    thrashing: false,
+                })?;
+        }
+        let moved = moved.finish(None);
+        let mut universe = Universe::new(rule, budget)?;
+        let store = &mut universe.store;
+        store.set_collect_allowed(false);
+        store.set_held_outside(moved.heap_bytes());
+        let built = build_tree(store, &moved).and_then(|(mut quad, mut at)| {
+            // The moved pattern's (0, 0) is the root's corner: nest it as
+            // the north-west quarter up to the root's level.
+            while at < level {
+                let empty = store.empty(at)?;
+                quad = store.join([quad, empty, empty, empty])?;
+                at += 1;
+            }
+            store.empty(level + 1)?;
+            Ok(quad)
+        });
+        store.set_held_outside(0);
+        store.set_collect_allowed(true);
+        let root = built?;
         universe.set_root(root, level);
         Ok(universe)
     }
@@ -453,7 +513,9 @@ impl Universe {
         Ok(cells)
     }
 
-    /// Writes the state as RLE text positioned at its bounding box.
+    /// Writes the state as RLE text positioned at its bounding box: a
+    /// `#position` comment gives the box's corner, and a `#C` comment the
+    /// generation and the digest.
     pub fn write_rle(&mut self, out: &mut impl Write) -> Result<(), WriteError> {
         let rule = self.rule.to_string();
         let Some(bbox) = self.bounding_box() else {
@@ -461,22 +523,42 @@ impl Universe {
             return Ok(());
         };
         let region = Region::of_box(&bbox)?;
-        self.write_rle_region(out, &region)
+        let digest = self.digest()?;
+        let note = format!("generation {}, digest {digest}", self.generation);
+        self.write_rle_noted(out, &region, Some(&note))
     }
 
     /// Writes the cells of `region` as RLE text whose (0, 0) is the
-    /// region's top-left corner.
+    /// region's top-left corner, which a `#position` comment gives.
     pub fn write_rle_region(
         &mut self,
         out: &mut impl Write,
         region: &Region,
+    ) -> Result<(), WriteError> {
+        self.write_rle_noted(out, region, None)
+    }
+
+    /// As `write_rle_region`, with a `#C` comment line holding `note`.
+    pub fn write_rle_noted(
+        &mut self,
+        out: &mut impl Write,
+        region: &Region,
+        note: Option<&str>,
     ) -> Result<(), WriteError> {
         let rule = self.rule.to_string();
         let rows = rows_in(
             &mut StoreView::new(&self.store, self.root, self.level),
             region,
         )?;
-        write::write_rle(out, region.width, region.height, &rule, rows)?;
+        write::write_rle_at(
+            out,
+            (&region.left, &region.top),
+            note,
+            region.width,
+            region.height,
+            &rule,
+            rows,
+        )?;
         Ok(())
     }
 }

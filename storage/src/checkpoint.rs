@@ -321,6 +321,38 @@ fn hex(text: &str, what: &str) -> Result<Checksum> {
         .map_err(|_| damaged(format!("{what} {text:?} is not 32 lowercase hex digits")))
 }
 
+/// A sample of a run's timeline taken between its checkpoints (a
+/// checkpoint's own figures are in its manifest).
+#[derive(Serialize, Deserialize, Debug, Clone, PartialEq, Eq)]
+#[serde(deny_unknown_fields)]
+pub struct TimelineSample {
+    /// the generation, decimal
+    pub generation: String,
+    /// live cells, decimal
+    pub population: String,
+    /// the extent of the live cells, null when none live
+    pub bbox: Option<BoxText>,
+    /// the state's digest
+    pub digest: String,
+}
+
+impl TimelineSample {
+    /// The figures of `universe` now.
+    pub fn of(universe: &mut Universe) -> Result<TimelineSample> {
+        Ok(TimelineSample {
+            generation: universe.generation().to_string(),
+            population: universe.population().to_string(),
+            bbox: universe.bounding_box().as_ref().map(BoxText::of),
+            digest: universe.digest()?.to_string(),
+        })
+    }
+}
+
+/// Where the samples taken before the checkpoint of `sequence` are kept.
+fn samples_key(sequence: u64) -> String {
+    format!("timeline/{sequence:010}.json")
+}
+
 /// A state loaded from a checkpoint, with the content ids its packs hold.
 pub struct Loaded {
     pub manifest: Manifest,
@@ -628,6 +660,50 @@ impl Checkpoints {
                 written: 0,
             },
         )
+    }
+
+    /// Stores the timeline samples taken since the checkpoint before
+    /// `manifest`'s, beside it: written once, and left by `prune` (they are
+    /// small, and the history is what they are for).
+    pub fn put_samples(&self, manifest: &Manifest, samples: &[TimelineSample]) -> Result<()> {
+        if samples.is_empty() {
+            return Ok(());
+        }
+        let key = samples_key(manifest.sequence);
+        let text = serde_json::to_vec(samples).expect("samples serialise");
+        self.storage
+            .put_new(&key, &text)
+            .map_err(|error| unreadable("write", &self.storage.locate(&key), error))?;
+        Ok(())
+    }
+
+    /// Every timeline sample stored between checkpoints; a file that does
+    /// not parse is reported through `warn` and skipped.
+    pub fn samples(&self, mut warn: impl FnMut(String)) -> Result<Vec<TimelineSample>> {
+        let keys = self
+            .storage
+            .list("timeline/")
+            .map_err(|error| unreadable("list", &self.storage.locate("timeline"), error))?;
+        let mut samples = Vec::new();
+        for key in keys.iter().filter(|key| key.ends_with(".json")) {
+            let place = self.storage.locate(key);
+            let Some(bytes) = self
+                .storage
+                .get(key, MAX_MANIFEST_BYTES)
+                .map_err(|error| unreadable("read", &place, error))?
+            else {
+                continue;
+            };
+            match serde_json::from_slice::<Vec<TimelineSample>>(&bytes) {
+                Ok(read) => samples.extend(read),
+                Err(error) => warn(format!(
+                    "skipping damaged timeline {place}:{}:{}: {error}",
+                    error.line(),
+                    error.column()
+                )),
+            }
+        }
+        Ok(samples)
     }
 
     /// Stores a pack (named by its content) for a checkpoint about to be

@@ -12,6 +12,7 @@ computation of the state digest from the grid. tests/reference.rs drives it:
            population, bounding box, digest and live cells
   compare  check deeptime's --json report and --out RLE against those records;
            on any mismatch print a diff and exit 1
+  census   take a settled state apart into named objects (the fate census)
   selftest check this file's digest, RLE and step code on cases reasoned by hand
 
 Every check names its source in a comment: "independent reference:
@@ -27,6 +28,7 @@ import sys
 
 import blake3
 import numpy as np
+import scipy.ndimage
 import scipy.signal
 
 # ---------------------------------------------------------------- rules
@@ -505,6 +507,216 @@ def cmd_compare(args):
     sys.exit(1 if failed else 0)
 
 
+# ---------------------------------------------------------------- census
+
+
+# B3/S23 objects with names in the trade, one phase each (from memory; the
+# same list the trade's pattern pages give: LifeWiki, each object's page).
+NAMED_OBJECTS = {
+    "block": ["OO", "OO"],
+    "beehive": [".OO.", "O..O", ".OO."],
+    "loaf": [".OO.", "O..O", ".O.O", "..O."],
+    "boat": ["OO.", "O.O", ".O."],
+    "ship": ["OO.", "O.O", ".OO"],
+    "tub": [".O.", "O.O", ".O."],
+    "pond": [".OO.", "O..O", "O..O", ".OO."],
+    "long boat": ["OO..", "O.O.", ".O.O", "..O."],
+    "barge": [".O..", "O.O.", ".O.O", "..O."],
+    "mango": [".OO..", "O..O.", ".O..O", "..OO."],
+    "eater": ["OO..", "O.O.", "..O.", "..OO"],
+    "blinker": ["OOO"],
+    "toad": [".OOO", "OOO."],
+    "beacon": ["OO..", "OO..", "..OO", "..OO"],
+    "pulsar": ["..OOO...OOO..", ".............", "O....O.O....O", "O....O.O....O",
+               "O....O.O....O", "..OOO...OOO..", ".............", "..OOO...OOO..",
+               "O....O.O....O", "O....O.O....O", "O....O.O....O", ".............",
+               "..OOO...OOO.."],
+    "pentadecathlon": ["..O....O..", "OO.OOOO.OO", "..O....O.."],
+    "glider": [".O.", "..O", "OOO"],
+    "lightweight spaceship": [".O..O", "O....", "O...O", "OOOO."],
+    "middleweight spaceship": ["...O..", ".O...O", "O.....", "O....O", "OOOOO."],
+    "heavyweight spaceship": ["...OO..", ".O....O", "O......", "O.....O", "OOOOOO."],
+}
+
+MAX_ALONE = 600
+
+
+def cells_of_rows(rows):
+    return {(x, y) for y, row in enumerate(rows) for x, c in enumerate(row) if c == "O"}
+
+
+def array_of(cells):
+    """The cells as a bool array of their bounding box, and its corner."""
+    left = min(x for x, _ in cells)
+    top = min(y for _, y in cells)
+    width = max(x for x, _ in cells) - left + 1
+    height = max(y for _, y in cells) - top + 1
+    grid = np.zeros((height, width), dtype=bool)
+    for x, y in cells:
+        grid[y - top, x - left] = True
+    return grid, (left, top)
+
+
+def shape_digest(cells):
+    """Smallest digest of the eight orientations, each with its bounding
+    box's corner at (0, 0) (README, "Shape digest"); numpy turns them."""
+    grid, _ = array_of(cells)
+    best = None
+    for flipped in (grid, np.fliplr(grid)):
+        for k in range(4):
+            turned = np.rot90(flipped, k)
+            ys, xs = np.nonzero(turned)
+            d = digest_of_cells({(int(x), int(y)) for x, y in zip(xs, ys)})
+            if best is None or d < best:
+                best = d
+    return best
+
+
+def run_alone(cells, rule):
+    """(period, dx, dy, phases) of cells run alone until they repeat up to
+    a shift, or None. Numpy/scipy steps on a padded grid."""
+    start, corner = array_of(cells)
+    plane = Plane.from_cells(cells, MAX_ALONE + 2)
+    phases = [set(cells)]
+    for t in range(1, MAX_ALONE + 1):
+        step(plane, rule)
+        now = plane.cells()
+        if not now:
+            return None
+        grid, at = array_of(now)
+        if grid.shape == start.shape and np.array_equal(grid, start):
+            return t, at[0] - corner[0], at[1] - corner[1], phases
+        phases.append(now)
+    return None
+
+
+def object_name(cells, rule, named):
+    """(name, kind, period, dx, dy) of an object; None if it does not repeat."""
+    found = run_alone(cells, rule)
+    if found is None:
+        return None
+    period, dx, dy, phases = found
+    ident = min(shape_digest(phase) for phase in phases)
+    if dx or dy:
+        kind = "spaceship"
+    elif period == 1:
+        kind = "still-life"
+    else:
+        kind = "oscillator"
+    smallest = min(len(phase) for phase in phases)
+    if ident in named:
+        name = named[ident]
+    elif kind == "still-life":
+        name = f"{kind}-{smallest}-{ident[:8]}"
+    else:
+        name = f"{kind}-p{period}-{smallest}-{ident[:8]}"
+    return name, kind, period, dx, dy, phases
+
+
+def direction(dx, dy):
+    """Compass direction, y down (common practice: north is up)."""
+    if dx == 0 and dy == 0:
+        return None
+    v = "north" if dy < 0 else "south" if dy > 0 else ""
+    h = "east" if dx > 0 else "west" if dx < 0 else ""
+    if dx == 0:
+        return v
+    if dy == 0:
+        return h
+    if abs(dx) != abs(dy):
+        return None
+    return f"{v}-{h}"
+
+
+def census(cells, rule):
+    """Take a settled state apart: 8-connected components from
+    scipy.ndimage.label, each run alone; components that do not repeat are
+    joined to the components within two cells (a 5x5 dilation); then the
+    whole is run for the common period and compared with the sum of the
+    objects run alone, joining the objects near any cell where they differ.
+    Independent reference: numpy/scipy."""
+    named = {}
+    if rule.canonical() == "B3/S23":
+        for name, rows in NAMED_OBJECTS.items():
+            found = object_name(cells_of_rows(rows), rule, {})
+            assert found is not None, name
+            named[min(shape_digest(p) for p in found[5])] = name
+    if not cells:
+        return []
+    plane = Plane.from_cells(cells, 3)
+    labels, count = scipy.ndimage.label(plane.grid, structure=np.ones((3, 3), dtype=int))
+    # groups: label -> set of cells (plane coordinates)
+    groups = {}
+    ys, xs = np.nonzero(labels)
+    for x, y in zip(xs, ys):
+        groups.setdefault(int(labels[y, x]), set()).add((int(x) + plane.x0, int(y) + plane.y0))
+
+    def join(ids):
+        ids = sorted(set(ids))
+        keep = ids[0]
+        for other in ids[1:]:
+            groups[keep] |= groups.pop(other)
+            labels[labels == other] = keep
+
+    ball = np.ones((5, 5), dtype=bool)
+    while True:
+        classified = {g: object_name(c, rule, named) for g, c in groups.items()}
+        changing = [g for g, found in classified.items() if found is None]
+        if changing:
+            joined = False
+            for g in changing:
+                if g not in groups:
+                    continue
+                near = scipy.ndimage.binary_dilation(labels == g, structure=ball)
+                ids = set(np.unique(labels[near])) - {0}
+                if len(ids) > 1:
+                    join(ids)
+                    joined = True
+            if not joined:
+                raise RuntimeError("the state is not settled: an object keeps changing")
+            continue
+        # The whole against the sum of its objects over the common period.
+        period = 1
+        for found in classified.values():
+            period = period * found[2] // np.gcd(period, found[2])
+        whole = Plane.from_cells(cells, period + 3)
+        mismatch = set()
+        for t in range(1, period + 1):
+            step(whole, rule)
+            total = set()
+            for g, found in classified.items():
+                _, _, p, dx, dy, phases = found
+                turns, phase = divmod(t, p)
+                total |= {(x + turns * dx, y + turns * dy) for x, y in phases[phase]}
+            mismatch = whole.cells() ^ total
+            if mismatch:
+                break
+        if not mismatch:
+            break
+        ids = set()
+        for x, y in mismatch:
+            for g, c in groups.items():
+                if any(abs(x - cx) <= 3 and abs(y - cy) <= 3 for cx, cy in c):
+                    ids.add(g)
+        if len(ids) < 2:
+            raise RuntimeError("the state is not settled: the whole differs from its objects")
+        join(ids)
+    counts = {}
+    for found in classified.values():
+        name, kind, period, dx, dy, _ = found
+        key = (name, kind, direction(dx, dy))
+        counts[key] = counts.get(key, 0) + 1
+    return [{"name": n, "kind": k, "direction": d, "count": c} for (n, k, d), c in sorted(counts.items(), key=str)]
+
+
+def cmd_census(args):
+    with open(args.pattern) as f:
+        _, _, rule_text, cells = read_rle(f.read())
+    rule = Rule(args.rule or rule_text or "B3/S23")
+    json.dump({"population": len(cells), "census": census(cells, rule)}, sys.stdout)
+    sys.stdout.write("\n")
+
+
 def cmd_selftest(_args):
     checks = 0
 
@@ -649,6 +861,11 @@ def main():
     p.add_argument("--got", action="append", required=True, help="deeptime's --out RLE")
     p.add_argument("--got-json", action="append", required=True, help="deeptime's --json output")
     p.set_defaults(func=cmd_compare)
+
+    p = sub.add_parser("census", help="take a settled state apart into named objects")
+    p.add_argument("--pattern", required=True)
+    p.add_argument("--rule", help="default: the pattern's header, else B3/S23")
+    p.set_defaults(func=cmd_census)
 
     p = sub.add_parser("selftest", help="check the reference itself on cases reasoned by hand")
     p.set_defaults(func=cmd_selftest)

@@ -11,6 +11,7 @@
 
 mod capacity;
 mod cluster;
+mod fate;
 mod process;
 mod resident;
 mod suite;

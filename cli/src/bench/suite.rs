@@ -50,6 +50,10 @@ pub const PARTS: &[Part] = &[
         name: "capacity",
         run: super::capacity::capacity,
     },
+    Part {
+        name: "fate",
+        run: super::fate::fate,
+    },
 ];
 
 /// The Gosper glider gun (the usual RLE, from memory).
@@ -65,7 +69,7 @@ const SPILL: &str = "x = 7, y = 5, rule = B12345678/S012345678\nbo3bo$2obob2o$3b
 /// Plenty: the suite measures speed, not budgets (except where it says so).
 const BUDGET: u64 = 16 << 30;
 
-fn pattern(text: &str) -> anyhow::Result<(Pattern, Rule)> {
+pub fn pattern_of(text: &str) -> anyhow::Result<(Pattern, Rule)> {
     let pattern =
         read_pattern(text.as_bytes(), BUDGET).map_err(|error| anyhow::anyhow!("{error}"))?;
     let rule = match &pattern.rule {
@@ -102,7 +106,7 @@ pub fn write_rle(pattern: &Pattern, rule: Rule, path: &Path) -> anyhow::Result<(
     std::fs::write(path, text).with_context(|| format!("cannot write {}", path.display()))
 }
 
-fn timed<T>(work: impl FnOnce() -> anyhow::Result<T>) -> anyhow::Result<(T, Duration)> {
+pub fn timed<T>(work: impl FnOnce() -> anyhow::Result<T>) -> anyhow::Result<(T, Duration)> {
     let started = Instant::now();
     let value = work()?;
     Ok((value, started.elapsed()))
@@ -124,7 +128,7 @@ fn timed_jump(
 }
 
 /// The pattern stepped `generations` times by the direct stepper, timed.
-fn timed_direct(pattern: &Pattern, rule: Rule, generations: u64) -> (Grid, Duration) {
+pub fn timed_direct(pattern: &Pattern, rule: Rule, generations: u64) -> (Grid, Duration) {
     let started = Instant::now();
     let mut grid = Grid::from_pattern(pattern, rule);
     grid.advance(generations);
@@ -141,7 +145,7 @@ fn reach(settings: &Settings) -> anyhow::Result<Vec<Figure>> {
     };
     let mut figures = Vec::new();
     for (name, text) in [("Gosper glider gun", GUN), ("quadratic spill", SPILL)] {
-        let (pattern, rule) = pattern(text)?;
+        let (pattern, rule) = pattern_of(text)?;
         let mut digits = 10u32;
         loop {
             let generations = BigUint::from(10u32).pow(digits);
@@ -178,7 +182,7 @@ fn reach(settings: &Settings) -> anyhow::Result<Vec<Figure>> {
 /// per call vs the direct stepper, on the gun (a growing regular pattern).
 fn stepping(settings: &Settings) -> anyhow::Result<Vec<Figure>> {
     let generations = if settings.quick { 256 } else { 16_384 };
-    let (pattern, rule) = pattern(GUN)?;
+    let (pattern, rule) = pattern_of(GUN)?;
     let one = BigUint::from(1u32);
     let (mut memoised, hashlife) = timed(|| {
         let mut universe = Universe::from_pattern(&pattern, rule, BUDGET)?;

@@ -475,6 +475,8 @@ impl Run<'_> {
             },
             bytes_read: None,
             pack_bytes: None,
+            region: None,
+            picture: None,
         })
     }
 }

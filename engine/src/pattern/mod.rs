@@ -18,6 +18,10 @@ pub mod write;
 /// `x < MAX_COORDINATE` and `y < MAX_COORDINATE`.
 pub const MAX_COORDINATE: u64 = 1 << 40;
 
+/// A `#position` comment may place a pattern at most this far from the
+/// plane's (0, 0), its far corner included.
+pub const MAX_POSITION: i64 = 1 << 38;
+
 /// A pattern with more live cells than this is refused.
 pub const MAX_LIVE_CELLS: u64 = 1 << 32;
 
@@ -48,6 +52,9 @@ pub struct Pattern {
     /// The rule text of an RLE header, unparsed, with its position (so a bad
     /// rule can be reported at file:line:column).
     pub rule: Option<(String, Position)>,
+    /// Where the pattern's (0, 0) stands on the plane, from an RLE
+    /// `#position X Y` comment; None puts it at the plane's (0, 0).
+    pub origin: Option<(i64, i64)>,
     /// The non-empty leaves, sorted by (leaf row, leaf column): each leaf's
     /// column and cells (bit `8*y + x`, as in the quad store); the rows are
     /// in `rows`.

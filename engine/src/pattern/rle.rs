@@ -8,8 +8,8 @@
 //! limits of the module and the budget before it is applied.
 
 use super::{
-    Builder, Line, MAX_COORDINATE, MAX_LIVE_CELLS, Pattern, PatternError, Position, Source,
-    shorten, unexpected_character,
+    Builder, Line, MAX_COORDINATE, MAX_LIVE_CELLS, MAX_POSITION, Pattern, PatternError, Position,
+    Source, shorten, unexpected_character,
 };
 
 /// Reads an RLE pattern.
@@ -28,8 +28,18 @@ pub fn read_rle(bytes: &[u8], budget: u64) -> Result<Pattern, PatternError> {
     let mut started = false;
     // Where a missing '!' is reported: just after the last thing read.
     let mut end = Position { line: 1, column: 1 };
+    // The `#position X Y` comment's place and value, if there is one.
+    let mut origin: Option<(Position, (i64, i64))> = None;
     while let Some(line) = source.next_line()? {
         let trimmed = line.text.trim_start();
+        if let Some(rest) = trimmed.strip_prefix("#position") {
+            let at = Position {
+                line: line.number,
+                column: line.column(line.text.len() - trimmed.len()),
+            };
+            origin = Some((at, read_position(rest, at)?));
+            continue;
+        }
         if trimmed.is_empty() || trimmed.starts_with('#') {
             continue;
         }
@@ -45,7 +55,24 @@ pub fn read_rle(bytes: &[u8], budget: u64) -> Result<Pattern, PatternError> {
             }
         }
         if body.read_line(&line)? {
-            return Ok(body.cells.finish(rule));
+            let mut pattern = body.cells.finish(rule);
+            if let Some((at, (x, y))) = origin {
+                let (width, height) = pattern.extent();
+                let far =
+                    |c: i64, side: u64| c.unsigned_abs().max((c + side as i64).unsigned_abs());
+                if far(x, width) > MAX_POSITION as u64 || far(y, height) > MAX_POSITION as u64 {
+                    return Err(PatternError::new(
+                        at.line,
+                        at.column,
+                        format!(
+                            "#position {x} {y}: the pattern would reach beyond 2^38 cells from \
+                             (0, 0); delete the line to read the cells with their corner at (0, 0)"
+                        ),
+                    ));
+                }
+                pattern.origin = Some((x, y));
+            }
+            return Ok(pattern);
         }
         if let Some(last) = body.last_end {
             end = last;
@@ -62,6 +89,35 @@ pub fn read_rle(bytes: &[u8], budget: u64) -> Result<Pattern, PatternError> {
         end.column,
         "pattern ends without '!'",
     ))
+}
+
+/// The two integers of a `#position X Y` comment (after its keyword),
+/// each at most [`MAX_POSITION`] from 0.
+fn read_position(rest: &str, at: Position) -> Result<(i64, i64), PatternError> {
+    let bad = || {
+        PatternError::new(
+            at.line,
+            at.column,
+            format!(
+                "#position{}: expected two integers of at most 2^38, the column and row of the \
+                 top-left cell (delete the line to read the cells with their corner at (0, 0))",
+                shorten(rest)
+            ),
+        )
+    };
+    let mut parts = rest.split_whitespace();
+    let mut next = || -> Result<i64, PatternError> {
+        let value: i64 = parts.next().ok_or_else(bad)?.parse().map_err(|_| bad())?;
+        if value.unsigned_abs() > MAX_POSITION as u64 {
+            return Err(bad());
+        }
+        Ok(value)
+    };
+    let position = (next()?, next()?);
+    if parts.next().is_some() {
+        return Err(bad());
+    }
+    Ok(position)
 }
 
 /// A header line starts with `x =` (or `y =`, `rule =`, in any case); no
@@ -361,6 +417,30 @@ mod tests {
             ))
         );
         assert_eq!(pattern.population(), 5);
+    }
+
+    #[test]
+    fn a_position_comment_places_the_pattern() {
+        // Ours: `#position X Y` gives the plane coordinates of (0, 0).
+        let pattern = read_rle(b"#position -5 12\nx = 1, y = 1\no!", 1 << 20).unwrap();
+        assert_eq!(pattern.origin, Some((-5, 12)));
+        let plain = read_rle(b"#C no position\nx = 1, y = 1\no!", 1 << 20).unwrap();
+        assert_eq!(plain.origin, None);
+        for bad in [
+            &b"#position 1\no!"[..],
+            b"#position a b\no!",
+            b"#position 1 2 3\no!",
+            b"#position 274877906945 0\no!",
+            b"#position 274877906940 0\n10o!",
+        ] {
+            let error = read_rle(bad, 1 << 20).unwrap_err();
+            assert_eq!(
+                (error.position.line, error.position.column),
+                (1, 1),
+                "{error}"
+            );
+            assert!(error.to_string().contains("#position"), "{error}");
+        }
     }
 
     #[test]

@@ -10,6 +10,29 @@ use std::io::{self, Write};
 /// Body lines are at most this long (common practice for RLE).
 const MAX_LINE: usize = 70;
 
+/// RLE text as [`write_rle`] writes it, after a `#position X Y` comment
+/// giving the plane coordinates of the text's (0, 0) (which the reader
+/// puts back) and, when given, a `#C` comment line with `note`.
+#[allow(clippy::too_many_arguments)]
+pub fn write_rle_at<W: Write>(
+    out: &mut W,
+    (left, top): (&num_bigint::BigInt, &num_bigint::BigInt),
+    note: Option<&str>,
+    width: u64,
+    height: u64,
+    rule: &str,
+    rows: impl IntoIterator<Item = (u64, Vec<(u64, u64)>)>,
+) -> io::Result<()> {
+    writeln!(out, "#position {left} {top}")?;
+    if let Some(note) = note {
+        if note.chars().any(|c| c.is_control()) {
+            return Err(invalid(format!("note {note:?} cannot stand in a comment")));
+        }
+        writeln!(out, "#C {note}")?;
+    }
+    write_rle(out, width, height, rule, rows)
+}
+
 /// Writes RLE text: header `x = W, y = H, rule = R`, body lines at most 70
 /// characters, ending with `!`.
 ///
