@@ -4,10 +4,9 @@
 
 use std::time::Instant;
 
-use anyhow::Context;
 use deeptime_engine::fate::{self, CensusEntry, Fate, FateError, Growth, NotYet};
 use deeptime_engine::generation::parse_generations;
-use deeptime_engine::{Universe, human_bytes};
+use deeptime_engine::human_bytes;
 use serde::Serialize;
 
 use crate::cli::FateArgs;
@@ -126,9 +125,7 @@ pub fn run(args: FateArgs) -> anyhow::Result<()> {
     let rule = input::rule(args.rule.as_deref(), &loaded)?;
 
     let started = Instant::now();
-    let mut universe = Universe::from_pattern(&loaded.pattern, rule, budget)
-        .with_context(|| format!("{}: building the pattern", loaded.name))?;
-    drop(loaded);
+    let mut universe = input::build(loaded, rule, budget)?;
     let fate = match fate::fate(&mut universe, &limit) {
         Ok(fate) => fate,
         // The advance's own error, so that its kind gives the exit code.
@@ -140,17 +137,7 @@ pub fn run(args: FateArgs) -> anyhow::Result<()> {
         }
     };
     let elapsed = started.elapsed();
-    let stats = universe.store_stats();
-    let engine = EngineReport {
-        quads: stats.quads,
-        leaves: stats.leaves,
-        quads_created: stats.created,
-        bytes: stats.bytes,
-        budget: stats.budget,
-        collections: stats.collections,
-        root_level: universe.root_level(),
-        seconds: elapsed.as_secs_f64(),
-    };
+    let engine = EngineReport::of(&universe, elapsed);
     let mut report = FateReport {
         rule: rule.to_string(),
         limit: limit.to_string(),

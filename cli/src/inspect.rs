@@ -48,17 +48,10 @@ struct Row {
 pub fn list(args: DirArgs) -> anyhow::Result<()> {
     let checkpoints = open(&args.dir)?;
     let mut rows = Vec::new();
-    for key in checkpoints.manifest_keys()? {
-        let manifest = match checkpoints.manifest(&key) {
-            Ok(manifest) => manifest,
-            // Another format version, or a storage that fails, is no
-            // damage: say so and stop.
-            Err(error) if !error.is_damage() => return Err(error.into()),
-            Err(error) => {
-                eprintln!("deeptime: warning: skipping damaged checkpoint: {error}");
-                continue;
-            }
-        };
+    let readable = checkpoints.readable_manifests(|error| {
+        eprintln!("deeptime: warning: skipping damaged checkpoint: {error}");
+    })?;
+    for (_, manifest) in readable {
         let written = std::time::UNIX_EPOCH + std::time::Duration::from_secs(manifest.written);
         rows.push(Row {
             sequence: manifest.sequence,

@@ -31,11 +31,7 @@ pub fn run(args: LeapArgs) -> anyhow::Result<()> {
         .transpose()?;
 
     let started = Instant::now();
-    let mut universe = Universe::from_pattern(&loaded.pattern, rule, budget)
-        .with_context(|| format!("{}: building the pattern", loaded.name))?;
-    // The pattern counts against the budget only while its quads are
-    // made: give it back before they fill the budget.
-    drop(loaded);
+    let mut universe = input::build(loaded, rule, budget)?;
     let line = progress::Line::start("advancing");
     let mut observe = |progress: &Progress| line.update(progress);
     let advanced = universe.advance(&generations, Some(&mut observe));

@@ -84,31 +84,19 @@ pub fn run(args: TimelineArgs) -> anyhow::Result<()> {
     let rule = input::rule(args.rule.as_deref(), &loaded)?;
 
     let started = Instant::now();
-    let mut universe = Universe::from_pattern(&loaded.pattern, rule, budget)
-        .with_context(|| format!("{}: building the pattern", loaded.name))?;
-    drop(loaded);
+    let mut universe = input::build(loaded, rule, budget)?;
     let line = progress::Line::start("sampling");
     let sampled = sample(&mut universe, &gens, &every);
     line.finish();
     let samples = sampled?;
     let elapsed = started.elapsed();
 
-    let stats = universe.store_stats();
     let report = TimelineReport {
         rule: rule.to_string(),
         gens: gens.to_string(),
         every: Some(every.to_string()),
         samples,
-        engine: Some(EngineReport {
-            quads: stats.quads,
-            leaves: stats.leaves,
-            quads_created: stats.created,
-            bytes: stats.bytes,
-            budget: stats.budget,
-            collections: stats.collections,
-            root_level: universe.root_level(),
-            seconds: elapsed.as_secs_f64(),
-        }),
+        engine: Some(EngineReport::of(&universe, elapsed)),
     };
     finish(report, &args)
 }
@@ -126,17 +114,10 @@ fn from_run(args: &TimelineArgs) -> anyhow::Result<()> {
     let checkpoints = Checkpoints::new(deeptime_storage::checkpoint::open_existing(&args.pattern)?);
     let mut stored = Vec::new();
     let mut rule = None;
-    for key in checkpoints.manifest_keys()? {
-        let manifest = match checkpoints.manifest(&key) {
-            Ok(manifest) => manifest,
-            // Another format version, or a storage that fails, is no
-            // damage: say so and stop.
-            Err(error) if !error.is_damage() => return Err(error.into()),
-            Err(error) => {
-                eprintln!("deeptime: warning: skipping damaged checkpoint: {error}");
-                continue;
-            }
-        };
+    let readable = checkpoints.readable_manifests(|error| {
+        eprintln!("deeptime: warning: skipping damaged checkpoint: {error}");
+    })?;
+    for (_, manifest) in readable {
         rule.get_or_insert_with(|| manifest.rule.clone());
         let generation = manifest.generation()?;
         stored.push((

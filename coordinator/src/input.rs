@@ -7,7 +7,7 @@ use std::path::Path;
 use deeptime_engine::pattern::{self, Pattern};
 use deeptime_engine::rule::Rule;
 
-use deeptime_engine::{BadInput, InputOverBudget};
+use deeptime_engine::{BadInput, InputOverBudget, Universe};
 
 /// Pattern files larger than this are refused before they are read whole.
 const MAX_PATTERN_BYTES: u64 = 1 << 30;
@@ -50,6 +50,14 @@ pub fn read(path: &Path, budget: u64) -> anyhow::Result<Loaded> {
         }
     })?;
     Ok(Loaded { name, pattern })
+}
+
+/// The state of a pattern as read. The pattern counts against the budget
+/// only while its quads are made: it is let go before they fill it.
+pub fn build(loaded: Loaded, rule: Rule, budget: u64) -> anyhow::Result<Universe> {
+    use anyhow::Context;
+    Universe::from_pattern(&loaded.pattern, rule, budget)
+        .with_context(|| format!("{}: building the pattern", loaded.name))
 }
 
 /// The rule: the option if given, else the pattern's header, else B3/S23.

@@ -109,26 +109,34 @@ pub struct EngineReport {
     pub seconds: f64,
 }
 
+impl EngineReport {
+    /// What `universe`'s store holds and did, after `elapsed` of work.
+    pub fn of(universe: &Universe, elapsed: Duration) -> EngineReport {
+        let stats = universe.store_stats();
+        EngineReport {
+            quads: stats.quads,
+            leaves: stats.leaves,
+            quads_created: stats.created,
+            bytes: stats.bytes,
+            budget: stats.budget,
+            collections: stats.collections,
+            root_level: universe.root_level(),
+            seconds: elapsed.as_secs_f64(),
+        }
+    }
+}
+
 impl Report {
     pub fn of(universe: &mut Universe, elapsed: Duration) -> anyhow::Result<Report> {
         let digest = universe.digest()?;
-        let stats = universe.store_stats();
+        let engine = EngineReport::of(universe, elapsed);
         Ok(Report {
             generation: universe.generation().to_string(),
             population: universe.population().to_string(),
             bbox: universe.bounding_box().as_ref().map(BoxReport::from),
             rule: universe.rule().to_string(),
             digest: digest.to_string(),
-            engine: EngineReport {
-                quads: stats.quads,
-                leaves: stats.leaves,
-                quads_created: stats.created,
-                bytes: stats.bytes,
-                budget: stats.budget,
-                collections: stats.collections,
-                root_level: universe.root_level(),
-                seconds: elapsed.as_secs_f64(),
-            },
+            engine,
             bytes_read: None,
             pack_bytes: None,
             region: None,

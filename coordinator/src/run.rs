@@ -32,11 +32,7 @@ pub fn run_job(path: &std::path::Path) -> anyhow::Result<Report> {
     let loaded = input::read(&job.pattern, budget)?;
     let rule = input::rule(job.rule.as_deref(), &loaded)?;
     let started = Instant::now();
-    let mut fresh = Universe::from_pattern(&loaded.pattern, rule, budget)
-        .with_context(|| format!("{}: building the pattern", loaded.name))?;
-    // The pattern counts against the budget only while its quads are
-    // made: give it back before they fill the budget.
-    drop(loaded);
+    let mut fresh = input::build(loaded, rule, budget)?;
     let pattern_digest = fresh.digest()?;
 
     let checkpoints = Checkpoints::new(deeptime_storage::open(&job.checkpoint_dir)?);

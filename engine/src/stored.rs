@@ -21,11 +21,10 @@ use crate::pack::{
     Checksum, PackError, PackTable, QuadAt, RawRecord, RawRef, ReadError, TRAILER_BYTES,
     decode_chunk, read_trailer,
 };
-use crate::pattern::write;
 use crate::render::{Picture, RenderError, picture_of};
 use crate::rule::Rule;
 use crate::store::LEAF_LEVEL;
-use crate::universe::{Region, WriteError, rows_in};
+use crate::universe::{Region, WriteError, write_region_rle};
 use crate::view::QuadView;
 
 /// Byte ranges of a checkpoint's packs.
@@ -425,18 +424,8 @@ impl<'f> StoredState<'f> {
         region: &Region,
         note: Option<&str>,
     ) -> Result<(), WriteError> {
-        let rule = self.rule.to_string();
-        let rows = rows_in(self, region)?;
-        write::write_rle_at(
-            out,
-            (&region.left, &region.top),
-            note,
-            region.width,
-            region.height,
-            &rule,
-            rows,
-        )?;
-        Ok(())
+        let rule = self.rule;
+        write_region_rle(self, rule, out, region, note)
     }
 
     /// The picture of the cells from (`left`, `top`), as

@@ -526,10 +526,10 @@ impl Top {
             }
             stack.extend(slot.memo.iter().filter(|&&result| result != NONE));
         }
-        let free: HashSet<u32> = self.free.iter().copied().collect();
         for (at, kept) in keep.iter().enumerate() {
             let at32 = at as u32;
-            if *kept || free.contains(&at32) {
+            // Freed before: free already.
+            if *kept || self.slots[at].id == FREED {
                 continue;
             }
             let slot = self.slots[at];

@@ -545,22 +545,33 @@ impl Universe {
         region: &Region,
         note: Option<&str>,
     ) -> Result<(), WriteError> {
-        let rule = self.rule.to_string();
-        let rows = rows_in(
-            &mut StoreView::new(&self.store, self.root, self.level),
-            region,
-        )?;
-        write::write_rle_at(
-            out,
-            (&region.left, &region.top),
-            note,
-            region.width,
-            region.height,
-            &rule,
-            rows,
-        )?;
-        Ok(())
+        let rule = self.rule;
+        let mut view = StoreView::new(&self.store, self.root, self.level);
+        write_region_rle(&mut view, rule, out, region, note)
     }
+}
+
+/// The cells of `region` of a quadtree as RLE text, its (0, 0) the
+/// region's corner (the `#position` comment gives it), with a `#C` comment
+/// holding `note`: what a state in memory and a stored one both write.
+pub(crate) fn write_region_rle<V: QuadView>(
+    view: &mut V,
+    rule: Rule,
+    out: &mut impl Write,
+    region: &Region,
+    note: Option<&str>,
+) -> Result<(), WriteError> {
+    let rows = rows_in(view, region)?;
+    write::write_rle_at(
+        out,
+        (&region.left, &region.top),
+        note,
+        region.width,
+        region.height,
+        &rule.to_string(),
+        rows,
+    )?;
+    Ok(())
 }
 
 /// The non-empty rows of `region` with their runs of live cells

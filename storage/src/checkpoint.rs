@@ -400,6 +400,24 @@ impl Checkpoints {
         Manifest::parse(&bytes, key, &place)
     }
 
+    /// Every manifest that reads, oldest first, with its key. A damaged one
+    /// is told to `skipped` and left out; anything else (another format
+    /// version, a storage that fails) stops the listing.
+    pub fn readable_manifests(
+        &self,
+        mut skipped: impl FnMut(CheckpointError),
+    ) -> Result<Vec<(String, Manifest)>> {
+        let mut readable = Vec::new();
+        for key in self.manifest_keys()? {
+            match self.manifest(&key) {
+                Ok(manifest) => readable.push((key, manifest)),
+                Err(error) if !error.is_damage() => return Err(error),
+                Err(error) => skipped(error),
+            }
+        }
+        Ok(readable)
+    }
+
     /// Reads every pack of `manifest` whole, checks each against its name,
     /// size and table checksum, rebuilds the state and checks its digest,
     /// population and bounding box against the manifest's. Errors name the
@@ -545,16 +563,9 @@ impl Checkpoints {
         }
         // Only checkpoints that can be read count towards `keep`; damaged
         // manifests are left alone (verify reports them).
-        let mut readable = Vec::new();
-        for key in self.manifest_keys()? {
-            match self.manifest(&key) {
-                Ok(manifest) => readable.push((key, manifest)),
-                // Packs of checkpoints of another version are not ours to
-                // judge, nor those of a folder that cannot be read.
-                Err(error) if !error.is_damage() => return Err(error),
-                Err(_) => {}
-            }
-        }
+        // Packs of checkpoints of another version are not ours to judge,
+        // nor those of a folder that cannot be read.
+        let readable = self.readable_manifests(|_| {})?;
         // The first checkpoint stays too: the generations before the kept
         // ones can only be reached from it.
         let cut = readable.len().saturating_sub(keep);

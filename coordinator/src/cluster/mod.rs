@@ -19,7 +19,6 @@ use std::sync::{Arc, Mutex};
 use std::time::Instant;
 
 use anyhow::{Context, anyhow};
-use deeptime_engine::Universe;
 use deeptime_engine::shard::MAX_SHARD_LEVEL;
 use deeptime_node::auth::{CheckToken, Token};
 use deeptime_node::wire::MAX_MESSAGE_BYTES;
@@ -162,11 +161,7 @@ pub async fn coordinate(
     let budget = memory::budget(job.memory.as_deref())?;
     let loaded = input::read(&job.pattern, budget)?;
     let rule = input::rule(job.rule.as_deref(), &loaded)?;
-    let mut universe = Universe::from_pattern(&loaded.pattern, rule, budget)
-        .with_context(|| format!("{}: building the pattern", loaded.name))?;
-    // The pattern counts against the budget only while its quads are made;
-    // the run does not need it again.
-    drop(loaded);
+    let mut universe = input::build(loaded, rule, budget)?;
     let pattern_digest = universe.digest()?;
     let side = universe
         .bounding_box()

@@ -115,7 +115,10 @@ impl Run<'_> {
                 }
             }
             left = unread;
-            self.tasks.lose_the_gone().await;
+            if !left.is_empty() {
+                // Those that failed and are gone are lost, not only skipped.
+                self.tasks.lose_the_gone().await;
+            }
         }
         if !left.is_empty() {
             let why = match last_error {

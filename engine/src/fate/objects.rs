@@ -237,20 +237,9 @@ pub fn analyse(cells: &[Cell], rule: Rule, classes: &mut Classes) -> Result<Vec<
         for (i, j) in cells::near_pairs(&boxes, 2) {
             close |= sets.join(still[i], still[j]);
         }
-        if close {
-            let mut joined = false;
-            let mut apart = Sets::new(groups.len());
-            for members in sets.groups(groups.len()) {
-                if members.len() > 1 && !independent(&objects, &members, rule) {
-                    for &other in &members[1..] {
-                        joined |= apart.join(members[0], other);
-                    }
-                }
-            }
-            if joined {
-                groups = regroup(groups, &mut apart);
-                continue;
-            }
+        if close && let Some(mut apart) = dependent(&mut sets, &objects, rule) {
+            groups = regroup(groups, &mut apart);
+            continue;
         }
         // Moving objects: never within reach of anything again. Those that
         // travel together and touch become one object (a flotilla).
@@ -271,23 +260,27 @@ pub fn analyse(cells: &[Cell], rule: Rule, classes: &mut Classes) -> Result<Vec<
                 }
             }
         }
-        if close {
-            let mut joined = false;
-            let mut apart = Sets::new(groups.len());
-            for members in together.groups(groups.len()) {
-                if members.len() > 1 && !independent(&objects, &members, rule) {
-                    for &other in &members[1..] {
-                        joined |= apart.join(members[0], other);
-                    }
-                }
-            }
-            if joined {
-                groups = regroup(groups, &mut apart);
-                continue;
-            }
+        if close && let Some(mut apart) = dependent(&mut together, &objects, rule) {
+            groups = regroup(groups, &mut apart);
+            continue;
         }
         return Ok(objects);
     }
+}
+
+/// Of the objects `sets` puts together, those of each set that do not run
+/// as they do alone, joined into one; None when every set's do.
+fn dependent(sets: &mut Sets, objects: &[Object], rule: Rule) -> Option<Sets> {
+    let mut joined = false;
+    let mut apart = Sets::new(objects.len());
+    for members in sets.groups(objects.len()) {
+        if members.len() > 1 && !independent(objects, &members, rule) {
+            for &other in &members[1..] {
+                joined |= apart.join(members[0], other);
+            }
+        }
+    }
+    joined.then_some(apart)
 }
 
 /// The groups with those in one set joined (classes of joined ones
