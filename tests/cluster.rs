@@ -426,12 +426,15 @@ fn a_node_with_a_wrong_token_is_refused_and_exits_non_zero() {
 #[test]
 fn a_state_too_big_for_one_node_runs_on_four_nodes_of_the_same_size() {
     // A 2048² soup: about 4.7 MiB of live quads at the first step (measured
-    // on one node). One node of 4 MiB cannot hold it and says so; four nodes
-    // of 4 MiB each hold a quarter apiece and finish with leap's figures.
+    // on one node). One node of 4 MiB that may not spill cannot hold it and
+    // says so; four nodes of 4 MiB each hold a quarter apiece and finish
+    // with leap's figures.
     let dir = temp_dir();
     std::fs::write(dir.path().join("soup.rle"), soup(2048)).unwrap();
     let job = write_job(dir.path(), "soup.rle", "B3/S23", "32", "16");
-    let alone = run_cluster_with(&job, 1, "4MiB", &["--shard-level", "8"]);
+    let mut cluster = Cluster::start(&job, 1, &["--shard-level", "8"]);
+    cluster.add_nodes(1, "4MiB", &["--spill-limit", "0"]);
+    let alone = cluster.finish();
     assert_eq!(alone.code, Some(3), "{}", alone.stderr);
     assert!(
         alone.stderr.contains("ran out of memory"),
@@ -444,6 +447,47 @@ fn a_state_too_big_for_one_node_runs_on_four_nodes_of_the_same_size() {
     let cluster: serde_json::Value = serde_json::from_str(&four.stdout).unwrap();
     let single = leap_report(&dir.path().join("soup.rle"), "32", "B3/S23");
     assert_same_figures(&cluster, &single);
+}
+
+#[test]
+fn a_node_whose_memory_fills_spills_to_the_storage_and_reads_back() {
+    // The soup above on one node of 4 MiB that may spill: it writes the
+    // pieces it has held longest to the run's storage and reads them back
+    // when tasks need them; the figures are leap's, the checkpoints (which
+    // take in spilled pieces as copies of their spill packs) read back
+    // whole, and no spill pack is left once the run is done.
+    let dir = temp_dir();
+    std::fs::write(dir.path().join("soup.rle"), soup(2048)).unwrap();
+    let job = write_job(dir.path(), "soup.rle", "B3/S23", "32", "16");
+    let mut cluster = Cluster::start(&job, 1, &["--shard-level", "8"]);
+    cluster.add_nodes(1, "4MiB", &[]);
+    let (report, stderr) = cluster.report();
+    let node_log = std::fs::read_to_string(dir.path().join("node-0.log")).unwrap();
+    assert!(node_log.contains("store full: spilled"), "{node_log}");
+    let single = leap_report(&dir.path().join("soup.rle"), "32", "B3/S23");
+    assert_same_figures(&report, &single);
+    assert_checkpoints_hold(dir.path(), &report);
+    let spill = dir.path().join("runs/spill");
+    let left: Vec<_> = std::fs::read_dir(&spill)
+        .map(|entries| entries.map(|e| e.unwrap().path()).collect())
+        .unwrap_or_default();
+    assert!(left.is_empty(), "{left:?}\n{stderr}");
+
+    // With a limit it cannot keep within, it stops as a full node does,
+    // and says which limit.
+    let job = write_job(dir.path(), "soup.rle", "B3/S23", "32", "16");
+    std::fs::remove_dir_all(dir.path().join("runs")).unwrap();
+    let mut cluster = Cluster::start(&job, 1, &["--shard-level", "8"]);
+    cluster.add_nodes(1, "4MiB", &["--spill-limit", "200KiB"]);
+    let limited = cluster.finish();
+    assert_eq!(limited.code, Some(3), "{}", limited.stderr);
+    assert!(
+        limited
+            .stderr
+            .contains("its --spill-limit of 200.0 KiB is reached"),
+        "{}",
+        limited.stderr
+    );
 }
 
 /// A job long enough to kill things in: a 256² soup to generation 3000,

@@ -80,6 +80,13 @@ pub struct NodeArgs {
     #[arg(long)]
     pub checkpoint_dir: Option<PathBuf>,
 
+    /// When its memory is full, the node writes the pieces it has held
+    /// longest to --checkpoint-dir and reads them back when needed: at
+    /// most this many bytes at once (0: never; the run then stops when a
+    /// node is full) [default: no limit]
+    #[arg(long, value_name = "SIZE")]
+    pub spill_limit: Option<String>,
+
     #[command(flatten)]
     pub tls: TlsArgs,
 }

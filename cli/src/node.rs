@@ -26,6 +26,11 @@ pub fn run(args: NodeArgs) -> anyhow::Result<()> {
         ))
         .into());
     }
+    // Each slot spills on its own, up to its share of the limit.
+    let spill_limit = match args.spill_limit.as_deref() {
+        Some(text) => memory::size("--spill-limit", text)? / slots as u64,
+        None => u64::MAX,
+    };
     let configs = (0..slots)
         .map(|slot| {
             Ok(NodeConfig {
@@ -40,6 +45,7 @@ pub fn run(args: NodeArgs) -> anyhow::Result<()> {
                 token_file: args.token_file.clone(),
                 tls: args.tls.files(),
                 checkpoint_dir: args.checkpoint_dir.clone(),
+                spill_limit,
             })
         })
         .collect::<anyhow::Result<Vec<_>>>()?;

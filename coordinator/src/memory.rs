@@ -19,16 +19,22 @@ pub fn budget(option: Option<&str>) -> Result<u64, BadInput> {
         system.refresh_memory();
         return Ok((system.total_memory() / 2).max(MIN_BUDGET));
     };
-    let size: ByteSize = text.trim().parse().map_err(|error| {
-        BadInput(format!(
-            "--memory {text:?} is not a size ({error}); write e.g. 2GiB or 512MiB"
-        ))
-    })?;
-    if size.as_u64() < MIN_BUDGET {
+    let size = size("--memory", text)?;
+    if size < MIN_BUDGET {
         return Err(BadInput(format!(
             "--memory {text} is below the smallest budget of 1 MiB"
         )));
     }
+    Ok(size)
+}
+
+/// The bytes of a size option's text (`option` names it in the error).
+pub fn size(option: &str, text: &str) -> Result<u64, BadInput> {
+    let size: ByteSize = text.trim().parse().map_err(|error| {
+        BadInput(format!(
+            "{option} {text:?} is not a size ({error}); write e.g. 2GiB or 512MiB"
+        ))
+    })?;
     Ok(size.as_u64())
 }
 

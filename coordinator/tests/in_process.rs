@@ -62,6 +62,7 @@ fn a_coordinator_and_two_nodes_in_one_process_give_the_embedded_figures() {
             token_file: token_file.clone(),
             tls: TlsFiles::default(),
             checkpoint_dir: Some(dir.path().join("runs/cluster")),
+            spill_limit: u64::MAX,
         }));
     }
     let args = CoordinatorArgs {

@@ -103,8 +103,11 @@ pub enum ShardError {
 pub struct Shard {
     store: Store,
     rule: Rule,
-    /// held quads: pinned until `retain` lets them go
-    held: ahash::HashMap<ContentId, Handle>,
+    /// held quads: pinned until `retain` (or `release`) lets them go, with
+    /// the order they were held in (oldest first is what `oldest_held` gives)
+    held: ahash::HashMap<ContentId, (Handle, u64)>,
+    /// the order number the next held quad gets
+    next_held: u64,
     /// quads handed over and not yet named held (pinned until `retain`)
     staged: Vec<Handle>,
     /// the stride the store's residual memo was filled for
@@ -124,6 +127,7 @@ impl Shard {
             store,
             rule,
             held: Default::default(),
+            next_held: 0,
             staged: Vec::new(),
             residual_for: 0,
         })
@@ -167,9 +171,12 @@ impl Shard {
 
     /// Takes records (children before parents: each record's children are
     /// earlier in `records` or here already) and holds the quads named in
-    /// `hold`. Until the next `retain`, everything taken stays (so records
-    /// may arrive over several calls). Nothing is taken unless every record
-    /// checks out up to the failing one.
+    /// `hold`. What is taken stays until a call holds something (so the
+    /// records of one quad may arrive over several calls, the last of them
+    /// holding it) or until `retain`; a call that holds lets go of what
+    /// earlier calls took, which must be under what is held by then.
+    /// Nothing is taken unless every record checks out up to the failing
+    /// one.
     pub fn put(
         &mut self,
         records: &[(ContentId, Record)],
@@ -182,6 +189,10 @@ impl Shard {
         }
         for id in hold {
             self.hold(id)?;
+        }
+        if !hold.is_empty() {
+            self.staged.clear();
+            self.repin();
         }
         Ok(())
     }
@@ -209,13 +220,61 @@ impl Shard {
         outcome
     }
 
+    /// Takes the records of one quad's subtree (children first) and holds
+    /// the quad; unlike `put`, nothing else stays pinned (a node reading
+    /// back a piece it spilled).
+    pub fn take(
+        &mut self,
+        records: &[(ContentId, Record)],
+        id: &ContentId,
+    ) -> Result<(), ShardError> {
+        self.with_inputs(records, |shard| shard.hold(id))
+    }
+
     /// Holds a quad that is here until `retain` drops it.
     pub fn hold(&mut self, id: &ContentId) -> Result<(), ShardError> {
         let &(handle, _) = self.store.by_id.get(id).ok_or(ShardError::Missing(*id))?;
-        if self.held.insert(*id, handle).is_none() {
+        if let std::collections::hash_map::Entry::Vacant(slot) = self.held.entry(*id) {
+            slot.insert((handle, self.next_held));
+            self.next_held += 1;
             self.store.pin(handle);
         }
         Ok(())
+    }
+
+    /// Up to `count` held quads outside `spare`, the longest held first
+    /// (a spilling node writes these out: a step's start pieces are held
+    /// before its results, and are done with first). Empty quads, which
+    /// cost nothing, are left out.
+    pub fn oldest_held(&self, count: usize, spare: &HashSet<ContentId>) -> Vec<ContentId> {
+        let mut held: Vec<(u64, ContentId)> = self
+            .held
+            .iter()
+            .filter(|(id, (handle, _))| {
+                !spare.contains(id) && *handle != self.store.known_empty(self.store.by_id[*id].1)
+            })
+            .map(|(id, &(_, order))| (order, *id))
+            .collect();
+        held.sort_unstable();
+        held.into_iter().take(count).map(|(_, id)| id).collect()
+    }
+
+    /// Stops holding `ids`: the collector may take them from now on (what
+    /// is staged stays until `retain`).
+    pub fn release(&mut self, ids: &[ContentId]) {
+        for id in ids {
+            self.held.remove(id);
+        }
+        self.repin();
+    }
+
+    /// Pins exactly what is held and staged.
+    fn repin(&mut self) {
+        self.store.pinned.clear();
+        self.store
+            .pinned
+            .extend(self.held.values().map(|&(handle, _)| handle));
+        self.store.pinned.extend(self.staged.iter().copied());
     }
 
     /// Keeps holding only the quads named in `keep` (of those held) and
@@ -223,8 +282,7 @@ impl Shard {
     pub fn retain(&mut self, keep: &HashSet<ContentId>) -> usize {
         self.held.retain(|id, _| keep.contains(id));
         self.staged.clear();
-        self.store.pinned.clear();
-        self.store.pinned.extend(self.held.values().copied());
+        self.repin();
         self.held.len()
     }
 

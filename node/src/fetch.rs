@@ -54,9 +54,26 @@ pub struct Fetched {
     pub calls: u64,
 }
 
-/// Fetches the subtrees of `wanted` (id, level, sources) that `shard` lacks.
+/// Where a fetch looks before it asks the peers.
+pub trait Here: Send + Sync + 'static {
+    /// Which of `ids` are not here (called on a blocking thread).
+    fn lacking(&self, ids: &[ContentId]) -> Result<Vec<bool>, Status>;
+}
+
+impl Here for Mutex<Option<Shard>> {
+    fn lacking(&self, ids: &[ContentId]) -> Result<Vec<bool>, Status> {
+        let guard = self.lock().expect("shard");
+        let shard = guard
+            .as_ref()
+            .ok_or_else(|| Status::failed_precondition("this node has not joined a job"))?;
+        Ok(ids.iter().map(|id| !shard.has(id)).collect())
+    }
+}
+
+/// Fetches the subtrees of `wanted` (id, level, sources) that are not
+/// `here`.
 pub async fn fetch_missing(
-    shard: &Arc<Mutex<Option<Shard>>>,
+    here: Arc<dyn Here>,
     peers: &Peers,
     wanted: Vec<(ContentId, u32, Vec<String>)>,
 ) -> Result<Fetched, Status> {
@@ -66,16 +83,16 @@ pub async fn fetch_missing(
     // On a blocking thread: a task may hold the shard for long, and an
     // async worker waiting on it could not run the lease renewals.
     let lacks = |ids: Vec<(ContentId, u32, Vec<String>)>| {
-        let shard = shard.clone();
+        let here = here.clone();
         async move {
             tokio::task::spawn_blocking(move || -> Result<Vec<_>, Status> {
-                let guard = shard.lock().expect("shard");
-                let shard = guard
-                    .as_ref()
-                    .ok_or_else(|| Status::failed_precondition("this node has not joined a job"))?;
+                let just: Vec<ContentId> = ids.iter().map(|(id, _, _)| *id).collect();
+                let lacking = here.lacking(&just)?;
                 Ok(ids
                     .into_iter()
-                    .filter(|(id, _, _)| !shard.has(id))
+                    .zip(lacking)
+                    .filter(|(_, lacks)| *lacks)
+                    .map(|(wanted, _)| wanted)
                     .collect())
             })
             .await

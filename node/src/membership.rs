@@ -103,7 +103,13 @@ fn take_terms(state: &NodeState, reply: &v1::JoinReply) -> Result<(), String> {
         .parse()
         .map_err(|error| format!("rule {:?}: {error}", reply.rule))?;
     let shard = Shard::new(rule, state.budget).map_err(|error| error.to_string())?;
-    *state.shard.lock().expect("shard") = Some(shard);
+    let mut guard = state.shard.lock().expect("shard");
+    *guard = Some(shard);
+    *state.spill.lock().expect("spill") = state
+        .spill_to
+        .as_ref()
+        .map(|(storage, limit)| crate::spill::Spill::new(storage.clone(), *limit));
+    drop(guard);
     *state.written.lock().expect("written") = Default::default();
     *current = Some(terms);
     Ok(())

@@ -29,7 +29,7 @@ use deeptime_storage::{self as storage, Storage};
 pub struct Checkpoints {
     /// its identity (`storage::location`), compared with the job's
     pub location: String,
-    storage: Arc<dyn Storage>,
+    pub(crate) storage: Arc<dyn Storage>,
 }
 
 impl Checkpoints {
@@ -167,11 +167,32 @@ pub async fn write_pieces(
                 .as_mut()
                 .ok_or_else(|| Status::failed_precondition("this node has not joined a job"))?;
             known.prune(&index, |id| shard.has(id));
+            // Pieces spilled (and collected since) are in their spill
+            // packs already: those are copied in as they are.
+            let spill = state.spill.lock().expect("spill");
+            let (copied, spilled) = match spill.as_ref() {
+                Some(spill) => {
+                    let away: Vec<ContentId> = pieces
+                        .iter()
+                        .filter(|id| spill.holds(id) && !shard.has(id))
+                        .copied()
+                        .collect();
+                    spill.copy_into_packs(&away)?
+                }
+                None => Default::default(),
+            };
+            let here: Vec<ContentId> = pieces
+                .iter()
+                .filter(|id| !spilled.contains_key(id))
+                .copied()
+                .collect();
             let locate = |id: &ContentId| known.locate(id, &index).map(|(_, at)| at);
-            shard
-                .write_pack(&pieces, &locate, &base)
-                .map_err(wire::shard_status)?
+            let written = shard
+                .write_pack(&here, &locate, &base)
+                .map_err(wire::shard_status)?;
+            (written, copied, spilled)
         };
+        let (written, copied, spilled) = written;
         let mut new_records: HashMap<ContentId, u32> = HashMap::new();
         let mut pack = None;
         let mut name = None;
@@ -203,6 +224,7 @@ pub async fn write_pieces(
         for piece in &pieces {
             let (name, record) = match (new_records.get(piece), name) {
                 (Some(&record), Some(name)) => (name, record),
+                _ if spilled.contains_key(piece) => spilled[piece],
                 _ => {
                     let (name, at) = known.locate(piece, &index).ok_or_else(|| {
                         Status::internal(format!("piece {} is in no pack", piece.short()))
@@ -218,6 +240,7 @@ pub async fn write_pieces(
         }
         Ok(v1::WritePackReply {
             pack,
+            copied,
             places,
             write_us: started.elapsed().as_micros() as u64,
         })
@@ -310,19 +333,15 @@ pub async fn load_pieces(
             )
             .map_err(|error| Status::data_loss(error.to_string()))?;
             let id = ids[piece];
-            {
-                let mut guard = state.shard.lock().expect("shard");
-                let shard = guard
-                    .as_mut()
-                    .ok_or_else(|| Status::failed_precondition("this node has not joined a job"))?;
-                shard.put(&records, &[id]).map_err(wire::shard_status)?;
-                let figures = shard.figures(&id).expect("held just now");
-                out.push(v1::LoadedPiece {
-                    id: id.0.to_vec(),
-                    population: figures.population,
-                    extent: wire::extent_to_wire(&figures.extent),
-                });
-            }
+            let figures = state.on_shard(&[id], |shard, _| {
+                shard.put(&records, &[id])?;
+                Ok(shard.figures(&id).expect("held just now"))
+            })?;
+            out.push(v1::LoadedPiece {
+                id: id.0.to_vec(),
+                population: figures.population,
+                extent: wire::extent_to_wire(&figures.extent),
+            });
             if stored.chunks_held() > CHUNKS_KEPT {
                 stored.forget_chunks();
             }
@@ -386,7 +405,7 @@ fn held(
 /// The records under the stored quad at `root` (of `level`) that `ids`
 /// does not have yet, children before parents, with their content ids
 /// computed from the cells; `ids` learns each one's id.
-fn read_subtree(
+pub(crate) fn read_subtree(
     stored: &mut StoredState<'_>,
     root: QuadAt,
     level: u32,

@@ -33,6 +33,9 @@ pub struct NodeConfig {
     pub tls: TlsFiles,
     /// where this node writes checkpoint packs (the jobs' checkpoint folder)
     pub checkpoint_dir: Option<PathBuf>,
+    /// the most bytes of pieces it may spill to that folder when its
+    /// memory is full (0: never spill)
+    pub spill_limit: u64,
 }
 
 /// Runs a node until it is refused (an error) or interrupted (Ok).
@@ -62,6 +65,11 @@ pub async fn run_node(config: NodeConfig) -> anyhow::Result<()> {
         peers: Peers::new(token.clone(), config.tls.clone()),
         budget: config.budget,
         tasks_done: AtomicU64::new(0),
+        spill_to: checkpoints
+            .as_ref()
+            .filter(|_| config.spill_limit > 0)
+            .map(|checkpoints| (checkpoints.storage.clone(), config.spill_limit)),
+        spill: Mutex::new(None),
         checkpoints,
         written: Mutex::new(Written::default()),
     });
@@ -85,12 +93,11 @@ pub async fn run_node(config: NodeConfig) -> anyhow::Result<()> {
     tracing::info!("listening on {bound}, joining {}", config.join);
     let serving = router.serve_with_incoming_shutdown(
         TcpIncoming::from(listener).with_nodelay(Some(true)),
-        async {
-            let _ = tokio::signal::ctrl_c().await;
-        },
+        stopped(),
     );
     // Renewals on a thread and runtime of their own: no task, collection
     // or lock of this node's work can delay one.
+    let kept = state.clone();
     let (ended, membership) = tokio::sync::oneshot::channel();
     let join = config.join.clone();
     let tls = config.tls.clone();
@@ -108,9 +115,31 @@ pub async fn run_node(config: NodeConfig) -> anyhow::Result<()> {
             };
             let _ = ended.send(outcome);
         })?;
-    tokio::select! {
+    let outcome = tokio::select! {
         served = serving => served.map_err(|error| anyhow::anyhow!("serving: {error}")),
         refused = membership => refused
             .unwrap_or_else(|_| Err(anyhow::anyhow!("the membership thread stopped"))),
+    };
+    // Its spill packs go with it.
+    kept.spill.lock().expect("spill").take();
+    outcome
+}
+
+/// Interrupted or asked to terminate.
+async fn stopped() {
+    #[cfg(unix)]
+    {
+        let Ok(mut terminate) =
+            tokio::signal::unix::signal(tokio::signal::unix::SignalKind::terminate())
+        else {
+            let _ = tokio::signal::ctrl_c().await;
+            return;
+        };
+        tokio::select! {
+            _ = tokio::signal::ctrl_c() => {}
+            _ = terminate.recv() => {}
+        }
     }
+    #[cfg(not(unix))]
+    let _ = tokio::signal::ctrl_c().await;
 }

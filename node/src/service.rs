@@ -13,7 +13,8 @@ use deeptime_engine::shard::{Record, Shard, ShardError};
 use deeptime_proto::v1;
 use tonic::{Request, Response, Status};
 
-use crate::fetch::{Fetched, Peers, fetch_missing};
+use crate::fetch::{Fetched, Here, Peers, fetch_missing};
+use crate::spill::{Failure, Spill};
 use crate::wire::{self, MAX_BATCH};
 
 /// The job a node works for, as the coordinator described it at join.
@@ -34,6 +35,12 @@ pub struct NodeState {
     pub checkpoints: Option<crate::packs::Checkpoints>,
     /// the quads of the packs this node wrote, for incremental packs
     pub written: Mutex<crate::packs::Written>,
+    /// where and how much this node may spill when its store is full
+    /// (None: it never spills)
+    pub spill_to: Option<(Arc<dyn deeptime_storage::Storage>, u64)>,
+    /// the pieces it spilled for the job it works for (locked after the
+    /// shard, never before)
+    pub spill: Mutex<Option<Spill>>,
 }
 
 impl NodeState {
@@ -50,27 +57,65 @@ impl NodeState {
         }
     }
 
-    /// Runs `work` on the shard on a blocking thread.
-    async fn with_shard<T: Send + 'static>(
+    /// Runs `work` on the shard (on a blocking thread: it may take long).
+    /// When the store is full and the node may spill, it writes out pieces
+    /// it holds outside `spare` and runs `work` again, until it fits or
+    /// nothing more can go.
+    pub(crate) fn on_shard<T>(
         &self,
-        work: impl FnOnce(&mut Shard) -> Result<T, ShardError> + Send + 'static,
+        spare: &[ContentId],
+        mut work: impl FnMut(&mut Shard, Option<&mut Spill>) -> Result<T, Failure>,
     ) -> Result<T, Status> {
-        let shard = self.shard.clone();
-        tokio::task::spawn_blocking(move || {
-            let mut guard = shard.lock().expect("shard");
-            let shard = guard
-                .as_mut()
-                .ok_or_else(|| Status::failed_precondition("this node has not joined a job"))?;
-            work(shard).map_err(wire::shard_status)
-        })
-        .await
-        .map_err(|error| Status::internal(format!("a task failed: {error}")))?
+        let mut guard = self.shard.lock().expect("shard");
+        let shard = guard
+            .as_mut()
+            .ok_or_else(|| Status::failed_precondition("this node has not joined a job"))?;
+        let mut spill = self.spill.lock().expect("spill");
+        let spare: HashSet<ContentId> = spare.iter().copied().collect();
+        let failed = |failure| match failure {
+            Failure::Shard(error) => wire::shard_status(error),
+            Failure::Storage(status) => status,
+        };
+        loop {
+            match work(shard, spill.as_mut()) {
+                Ok(value) => return Ok(value),
+                Err(Failure::Shard(ShardError::Budget(budget))) => {
+                    let spilled = match spill.as_mut() {
+                        Some(spill) => spill.spill(shard, &spare).map_err(failed)?,
+                        None => 0,
+                    };
+                    if spilled == 0 {
+                        let status = wire::shard_status(ShardError::Budget(budget));
+                        return Err(match spill.as_ref().and_then(|spill| spill.refusal()) {
+                            Some(why) => Status::resource_exhausted(format!(
+                                "{}, and {why}",
+                                status.message()
+                            )),
+                            None => status,
+                        });
+                    }
+                }
+                Err(failure) => return Err(failed(failure)),
+            }
+        }
+    }
+
+    /// `on_shard` from async code.
+    async fn with_shard<T: Send + 'static>(
+        self: &Arc<Self>,
+        spare: Vec<ContentId>,
+        work: impl FnMut(&mut Shard, Option<&mut Spill>) -> Result<T, Failure> + Send + 'static,
+    ) -> Result<T, Status> {
+        let state = self.clone();
+        tokio::task::spawn_blocking(move || state.on_shard(&spare, work))
+            .await
+            .map_err(|error| Status::internal(format!("a task failed: {error}")))?
     }
 
     /// Makes sure the four quarters of a square are here, fetching the
     /// missing ones from their sources.
     async fn gather(
-        &self,
+        self: &Arc<Self>,
         square: &v1::Square,
         level: u32,
     ) -> Result<([ContentId; 4], Fetched), Status> {
@@ -87,8 +132,23 @@ impl NodeState {
                 .unwrap_or_default();
             wanted.push((*kid, level - 1, sources));
         }
-        let fetched = fetch_missing(&self.shard, &self.peers, wanted).await?;
+        let fetched = fetch_missing(self.clone(), &self.peers, wanted).await?;
         Ok((kids, fetched))
+    }
+}
+
+/// A node's own quads, and those it spilled, which it reads back rather
+/// than fetch.
+impl Here for NodeState {
+    fn lacking(&self, ids: &[ContentId]) -> Result<Vec<bool>, Status> {
+        self.on_shard(ids, |shard, spill| {
+            if let Some(spill) = spill {
+                for id in ids {
+                    spill.reload(shard, id)?;
+                }
+            }
+            Ok(ids.iter().map(|id| !shard.has(id)).collect())
+        })
     }
 }
 
@@ -129,7 +189,14 @@ impl v1::node_server::Node for NodeService {
             let started = Instant::now();
             let outcome = self
                 .state
-                .with_shard(move |shard| {
+                .with_shard(kids.to_vec(), move |shard, spill| {
+                    // A quarter spilled since the fetch found it here is
+                    // read back.
+                    if let Some(spill) = spill {
+                        for kid in &kids {
+                            spill.reload(shard, kid)?;
+                        }
+                    }
                     // What the fetch brought that is still lacking here (another
                     // task on this node may have brought some of it meanwhile).
                     let lacked: u64 = fetched
@@ -189,9 +256,16 @@ impl v1::node_server::Node for NodeService {
         // On a blocking thread, as every use of the shard: a task may hold
         // it for long, and a fetch waiting on an async worker would keep
         // that worker (and the lease renewals it runs) from anything else.
+        // Spilled pieces asked for are read back first (a peer asks for a
+        // piece before the quads under it).
         let records = self
             .state
-            .with_shard(move |shard| {
+            .with_shard(ids.clone(), move |shard, spill| {
+                if let Some(spill) = spill {
+                    for id in &ids {
+                        spill.reload(shard, id)?;
+                    }
+                }
                 Ok(ids
                     .iter()
                     .filter_map(|id| {
@@ -228,7 +302,7 @@ impl v1::node_server::Node for NodeService {
             .collect::<Result<Vec<_>, _>>()?;
         let held = self
             .state
-            .with_shard(move |shard| {
+            .with_shard(hold.clone(), move |shard, _| {
                 shard.put(&records, &hold)?;
                 Ok(shard.held() as u64)
             })
@@ -249,7 +323,10 @@ impl v1::node_server::Node for NodeService {
             .collect::<Result<HashSet<_>, _>>()?;
         let (held, quads, bytes) = self
             .state
-            .with_shard(move |shard| {
+            .with_shard(Vec::new(), move |shard, spill| {
+                if let Some(spill) = spill {
+                    spill.forget_unless(&keep);
+                }
                 let held = shard.retain(&keep) as u64;
                 let stats = shard.stats();
                 Ok((held, stats.quads, stats.bytes))
@@ -298,8 +375,13 @@ impl v1::node_server::Node for NodeService {
         let level = describe.level;
         let (canonical, canonical_level, figures) = self
             .state
-            .with_shard(move |shard| {
-                shard.with_inputs(&fetched.records, |shard| shard.describe(&kids, level))
+            .with_shard(kids.to_vec(), move |shard, spill| {
+                if let Some(spill) = spill {
+                    for kid in &kids {
+                        spill.reload(shard, kid)?;
+                    }
+                }
+                Ok(shard.with_inputs(&fetched.records, |shard| shard.describe(&kids, level))?)
             })
             .await?;
         Ok(Response::new(v1::DescribeReply {

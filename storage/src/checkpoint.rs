@@ -598,6 +598,23 @@ impl Checkpoints {
         Ok((old.len(), packs))
     }
 
+    /// Deletes what nodes spilled (`spill/`, CHECKPOINTS.md): called when
+    /// a run has finished, when no node needs it any more (a node that
+    /// stops in time deletes its own; a killed one leaves them behind).
+    /// Returns how many objects went.
+    pub fn sweep_spills(&self) -> Result<usize> {
+        let listed = self
+            .storage
+            .list("spill/")
+            .map_err(|error| unreadable("list", &self.storage.locate("spill"), error))?;
+        for key in &listed {
+            self.storage
+                .delete(key)
+                .map_err(|error| unreadable("delete", &self.storage.locate(key), error))?;
+        }
+        Ok(listed.len())
+    }
+
     /// Writes a checkpoint of `universe`: the pack of quads no earlier pack
     /// holds, then the manifest, last. `previous` is the checkpoint it
     /// follows (its packs are needed too); `known` grows with the new ids.

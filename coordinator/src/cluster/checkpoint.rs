@@ -167,7 +167,7 @@ impl Run<'_> {
             .collect();
         let mut node_bytes = 0;
         for (member, reply, share) in replies {
-            if let Some(pack) = &reply.pack {
+            for pack in reply.pack.iter().chain(&reply.copied) {
                 let name = deeptime_node::wire::checksum_from(&pack.name)?;
                 let table = deeptime_node::wire::checksum_from(&pack.table)?;
                 if let std::collections::hash_map::Entry::Vacant(slot) = index.entry(name) {
@@ -294,7 +294,7 @@ impl Run<'_> {
         for piece in &pieces {
             wanted.push((*piece, self.shard_level - 1, self.tasks.holders_of(piece)?));
         }
-        let fetched = fetch_missing(&shard, &self.peers, wanted)
+        let fetched = fetch_missing(shard.clone(), &self.peers, wanted)
             .await
             .map_err(|status| {
                 PiecesLost(format!("gathering a checkpoint: {}", status.message()))

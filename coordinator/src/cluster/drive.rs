@@ -10,6 +10,7 @@ use std::sync::{Arc, Mutex};
 use std::time::{Duration, Instant};
 
 use anyhow::Context;
+use deeptime_engine::cut::Piece;
 use deeptime_engine::{ContentId, KnownQuads, Universe};
 use num_bigint::BigUint;
 
@@ -17,7 +18,7 @@ use crate::cluster::advance::{self, Memo};
 use crate::cluster::checkpoint::Written;
 use crate::cluster::members::{Board, Members};
 use crate::cluster::recover::Recovered;
-use crate::cluster::tasks::{Dispatcher, PiecesLost};
+use crate::cluster::tasks::{Dispatcher, HandOver, PiecesLost};
 use crate::job::Job;
 use crate::numbers::for_people;
 use crate::report::{BoxReport, EngineReport, Report};
@@ -214,24 +215,23 @@ impl Run<'_> {
         let mut chunks = cold.chunks(share);
         for (at, member) in live.iter().enumerate() {
             let pieces = chunks.next().unwrap_or(&[]);
-            let mut sent = std::collections::HashSet::new();
-            let mut records = Vec::new();
-            for piece in pieces {
-                records.extend(universe.records(piece.handle, shard_level - 1, &mut sent));
+            let mut batches = hand_over_batches(universe, pieces, shard_level - 1);
+            let warm: Vec<_> = cut
+                .pieces
+                .iter()
+                .filter(|p| warm.get(&p.id) == Some(&at))
+                .map(|p| (p.id, p.figures))
+                .collect();
+            if !warm.is_empty() {
+                batches.push(HandOver {
+                    records: Vec::new(),
+                    pieces: warm,
+                });
             }
-            let mut held: Vec<_> = pieces.iter().map(|p| (p.id, p.figures)).collect();
-            held.extend(
-                cut.pieces
-                    .iter()
-                    .filter(|p| warm.get(&p.id) == Some(&at))
-                    .map(|p| (p.id, p.figures)),
-            );
-            if held.is_empty() {
+            if batches.is_empty() {
                 continue;
             }
-            self.tasks
-                .hand_over(self.job_id, member, records, &held)
-                .await?;
+            self.tasks.hand_over(self.job_id, member, batches).await?;
         }
         let (root, level) = (cut.root, cut.root_level);
         let pieces = top.pieces(&root, level);
@@ -479,4 +479,38 @@ impl Run<'_> {
             picture: None,
         })
     }
+}
+
+/// Records (after children, each batch standing alone) that hand whole
+/// pieces to a node in batches of about a quarter of MAX_BATCH records: a
+/// batch holds its pieces as it ends, so a node whose memory fills while it
+/// takes its share can spill the pieces of earlier batches.
+fn hand_over_batches(universe: &mut Universe, pieces: &[&Piece], level: u32) -> Vec<HandOver> {
+    let limit = deeptime_node::wire::MAX_BATCH / 4;
+    let mut batches = Vec::new();
+    let mut batch = HandOver {
+        records: Vec::new(),
+        pieces: Vec::new(),
+    };
+    let mut sent = std::collections::HashSet::new();
+    for piece in pieces {
+        let mut records = universe.records(piece.handle, level, &mut sent);
+        if !batch.pieces.is_empty() && batch.records.len() + records.len() > limit {
+            batches.push(std::mem::replace(
+                &mut batch,
+                HandOver {
+                    records: Vec::new(),
+                    pieces: Vec::new(),
+                },
+            ));
+            sent.clear();
+            records = universe.records(piece.handle, level, &mut sent);
+        }
+        batch.records.extend(records);
+        batch.pieces.push((piece.id, piece.figures));
+    }
+    if !batch.pieces.is_empty() {
+        batches.push(batch);
+    }
+    batches
 }

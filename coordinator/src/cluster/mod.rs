@@ -286,6 +286,7 @@ pub async fn coordinate(
     let outcome = match outcome {
         Ok(report) => {
             board.status.lock().expect("board").state = "done".to_string();
+            sweep_spills(&job.checkpoint_dir);
             let counters = tasks.counters();
             let figures = ClusterFigures {
                 nodes: members.all().len(),
@@ -332,4 +333,23 @@ pub async fn coordinate(
     server.abort();
     membership.shutdown_background();
     outcome
+}
+
+/// Deletes the nodes' spill packs once the run is done (a failure to is
+/// only said: the run's outcome stands).
+fn sweep_spills(dir: &std::path::Path) {
+    let swept = deeptime_storage::open(dir)
+        .map_err(anyhow::Error::from)
+        .and_then(|storage| {
+            tokio::task::block_in_place(|| {
+                deeptime_storage::checkpoint::Checkpoints::new(storage)
+                    .sweep_spills()
+                    .map_err(anyhow::Error::from)
+            })
+        });
+    match swept {
+        Ok(0) => {}
+        Ok(count) => tracing::info!("deleted {count} spill packs the nodes left"),
+        Err(error) => tracing::warn!("cannot delete the nodes' spill packs: {error:#}"),
+    }
 }

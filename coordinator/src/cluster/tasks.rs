@@ -33,6 +33,13 @@ const RETRY_PAUSE: Duration = Duration::from_millis(200);
 /// (not gone): see `Dispatcher::probe`.
 const PROBE_TIMEOUT: Duration = Duration::from_secs(2);
 
+/// Pieces handed to a member together: their records (children first)
+/// and the pieces they complete.
+pub struct HandOver {
+    pub records: Vec<(ContentId, Record)>,
+    pub pieces: Vec<(ContentId, Figures)>,
+}
+
 /// A node's memory budget could not hold its share of the state.
 #[derive(Debug, thiserror::Error)]
 #[error(
@@ -560,48 +567,49 @@ impl Dispatcher {
         Ok((wire::id_from(&reply.canonical)?, reply.canonical_level))
     }
 
-    /// Hands records to a member (children first, in batches) and records it
-    /// as the holder of `pieces`.
+    /// Hands pieces to a member and records it as their holder: each batch
+    /// is the records of whole pieces (children first; those already at
+    /// the member may be left out) and the pieces it completes, sent in
+    /// calls of at most a quarter of MAX_BATCH records, the last of them
+    /// holding the pieces (so that a node whose memory fills may spill what
+    /// it holds already).
     pub async fn hand_over(
         &self,
         job: &str,
         member: &Member,
-        records: Vec<(ContentId, Record)>,
-        pieces: &[(ContentId, Figures)],
+        batches: Vec<HandOver>,
     ) -> anyhow::Result<()> {
         let mut client = member.client.clone();
-        let batches: Vec<&[(ContentId, Record)]> = records.chunks(MAX_BATCH / 4).collect();
-        let last = batches.len();
-        for (at, batch) in batches.into_iter().enumerate() {
-            let hold = if at + 1 == last {
-                pieces.iter().map(|(id, _)| id.0.to_vec()).collect()
+        for batch in &batches {
+            let calls: Vec<&[(ContentId, Record)]> = if batch.records.is_empty() {
+                vec![&[]]
             } else {
-                Vec::new()
+                batch.records.chunks(MAX_BATCH / 4).collect()
             };
-            let put = client.put(v1::PutRequest {
-                job: job.to_string(),
-                records: batch
-                    .iter()
-                    .map(|(id, r)| wire::record_to_wire(id, r))
-                    .collect(),
-                hold,
-            });
-            until_lost(member, put)
-                .await
-                .map_err(|status| node_error(member, status))?;
+            let last = calls.len();
+            for (at, records) in calls.into_iter().enumerate() {
+                let hold = if at + 1 == last {
+                    batch.pieces.iter().map(|(id, _)| id.0.to_vec()).collect()
+                } else {
+                    Vec::new()
+                };
+                let put = client.put(v1::PutRequest {
+                    job: job.to_string(),
+                    records: records
+                        .iter()
+                        .map(|(id, r)| wire::record_to_wire(id, r))
+                        .collect(),
+                    hold,
+                });
+                until_lost(member, put)
+                    .await
+                    .map_err(|status| node_error(member, status))?;
+            }
         }
-        if last == 0 && !pieces.is_empty() {
-            let put = client.put(v1::PutRequest {
-                job: job.to_string(),
-                records: Vec::new(),
-                hold: pieces.iter().map(|(id, _)| id.0.to_vec()).collect(),
-            });
-            until_lost(member, put)
-                .await
-                .map_err(|status| node_error(member, status))?;
-        }
-        for (id, figures) in pieces {
-            self.record_holding(*id, member.id, *figures);
+        for batch in &batches {
+            for (id, figures) in &batch.pieces {
+                self.record_holding(*id, member.id, *figures);
+            }
         }
         Ok(())
     }

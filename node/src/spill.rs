@@ -1,0 +1,305 @@
+//! Spilling: a node whose store is full writes the pieces it has held
+//! longest to the run's storage (one pack per spill, under `spill/`) and
+//! lets them go; a task or a peer that needs one again has it read back.
+//! The coordinator's directory stays true: the node still answers for
+//! every piece it was said to hold, from memory or from its spill packs.
+//! A checkpoint that names a spilled piece gets a copy of its spill pack
+//! among the checkpoint's packs (a pack is self-contained, so the copy is
+//! a plain byte copy that needs none of the store's memory).
+
+use std::collections::{HashMap, HashSet};
+use std::sync::Arc;
+
+use deeptime_engine::ContentId;
+use deeptime_engine::pack::{Checksum, QuadAt};
+use deeptime_engine::shard::{Shard, ShardError};
+use deeptime_engine::stored::{StoredPack, StoredState};
+use deeptime_proto::v1;
+use deeptime_storage::{self as storage, Storage};
+use tonic::Status;
+
+/// What a shard's work on a node fails with: the shard's refusal, which a
+/// spill may cure when it is a full store, or the storage's.
+pub(crate) enum Failure {
+    Shard(ShardError),
+    Storage(Status),
+}
+
+impl From<ShardError> for Failure {
+    fn from(error: ShardError) -> Failure {
+        Failure::Shard(error)
+    }
+}
+
+impl From<Status> for Failure {
+    fn from(status: Status) -> Failure {
+        Failure::Storage(status)
+    }
+}
+
+/// Where pieces are: pack and record.
+pub(crate) type Places = HashMap<ContentId, (Checksum, u32)>;
+
+/// One spill pack: what a manifest would list of it, and how many of its
+/// pieces are still spilled (at none, it is deleted).
+struct SpillPack {
+    bytes: u64,
+    records: u64,
+    table: Checksum,
+    spilled: usize,
+}
+
+/// A node's spilled pieces and their packs.
+pub struct Spill {
+    storage: Arc<dyn Storage>,
+    /// `spill/<this node's random tag>-`: apart from the checkpoints'
+    /// packs (which pruning deletes unless a manifest lists them) and from
+    /// other nodes' spills, in one folder (storages list one level)
+    prefix: String,
+    /// the most bytes of spill packs kept at once
+    limit: u64,
+    /// bytes of the spill packs kept now
+    bytes: u64,
+    /// whether the last spill was refused for the limit
+    refused: bool,
+    packs: HashMap<Checksum, SpillPack>,
+    /// spilled pieces: their pack, record and level
+    pieces: HashMap<ContentId, (Checksum, u32, u32)>,
+}
+
+impl Spill {
+    /// Spills into `storage`, keeping at most `limit` bytes there at once.
+    pub fn new(storage: Arc<dyn Storage>, limit: u64) -> Spill {
+        Spill {
+            storage,
+            prefix: format!("spill/{:016x}-", rand::random::<u64>()),
+            limit,
+            bytes: 0,
+            refused: false,
+            packs: HashMap::new(),
+            pieces: HashMap::new(),
+        }
+    }
+
+    fn key(&self, name: &Checksum) -> String {
+        format!("{}{name}.pack", self.prefix)
+    }
+
+    /// Whether `id` is spilled (and not in memory any more).
+    pub fn holds(&self, id: &ContentId) -> bool {
+        self.pieces.contains_key(id)
+    }
+
+    /// Writes out half of the pieces `shard` holds outside `spare`, the
+    /// longest held first, and lets them go. Returns how many; 0 when
+    /// there is nothing to spill or the spill limit would be passed.
+    pub(crate) fn spill(
+        &mut self,
+        shard: &mut Shard,
+        spare: &HashSet<ContentId>,
+    ) -> Result<usize, Failure> {
+        let spillable = shard.held().saturating_sub(spare.len());
+        let chosen = shard.oldest_held(spillable.div_ceil(2).max(1), spare);
+        if chosen.is_empty() {
+            return Ok(0);
+        }
+        let Some(written) = shard.write_pack(&chosen, &|_| None, &[])? else {
+            return Ok(0);
+        };
+        let size = written.bytes.len() as u64;
+        self.refused = self.bytes + size > self.limit;
+        if self.refused {
+            return Ok(0);
+        }
+        // A piece spilled before and held again since (a result equal to
+        // it) is found in the new pack only (forgotten before the write: an
+        // old pack of the same pieces has the new one's name).
+        for id in &chosen {
+            self.unspill(id);
+        }
+        let name = deeptime_engine::pack::pack_name(&written.bytes);
+        let key = self.key(&name);
+        self.storage
+            .replace(&key, &written.bytes)
+            .map_err(|error| {
+                Status::internal(format!(
+                    "cannot spill to {}: {error}",
+                    self.storage.locate(&key)
+                ))
+            })?;
+        let records: HashMap<ContentId, u32> = written
+            .ids
+            .iter()
+            .enumerate()
+            .map(|(record, id)| (*id, record as u32))
+            .collect();
+        let pack = self.packs.entry(name).or_insert(SpillPack {
+            bytes: size,
+            records: written.records,
+            table: written.table,
+            spilled: 0,
+        });
+        if pack.spilled == 0 {
+            self.bytes += size;
+        }
+        for id in &chosen {
+            let level = shard.level_of(id).expect("a held piece is here");
+            self.pieces.insert(*id, (name, records[id], level));
+            pack.spilled += 1;
+        }
+        shard.release(&chosen);
+        tracing::info!(
+            "store full: spilled {} pieces ({}) to storage, {} spilled now",
+            chosen.len(),
+            deeptime_engine::human_bytes(size),
+            deeptime_engine::human_bytes(self.bytes)
+        );
+        Ok(chosen.len())
+    }
+
+    /// Why the last spill wrote nothing, when it was the limit: for the
+    /// out-of-memory message.
+    pub fn refusal(&self) -> Option<String> {
+        self.refused.then(|| {
+            format!(
+                "its --spill-limit of {} is reached",
+                deeptime_engine::human_bytes(self.limit)
+            )
+        })
+    }
+
+    /// Makes a spilled piece held in `shard` again: at once when the
+    /// collector has not taken it yet, else read back from its pack.
+    /// False when `id` was not spilled.
+    pub(crate) fn reload(&mut self, shard: &mut Shard, id: &ContentId) -> Result<bool, Failure> {
+        let Some(&(name, record, level)) = self.pieces.get(id) else {
+            return Ok(false);
+        };
+        if !shard.has(id) {
+            let key = self.key(&name);
+            let pack = &self.packs[&name];
+            let mut fetch = storage::PackFetch {
+                storage: self.storage.as_ref(),
+                keys: vec![key.clone()],
+            };
+            let packs = vec![StoredPack {
+                name,
+                bytes: pack.bytes,
+                records: pack.records,
+                table: pack.table,
+                place: self.storage.locate(&key),
+            }];
+            let mut stored = StoredState::over(&mut fetch, packs, shard.rule());
+            let records = crate::packs::read_subtree(
+                &mut stored,
+                QuadAt { pack: 0, record },
+                level,
+                &mut HashMap::default(),
+                &mut HashSet::default(),
+                &mut Vec::new(),
+            )
+            .map_err(|error| Status::data_loss(format!("reading back a spilled piece: {error}")))?;
+            shard.take(&records, id)?;
+            tracing::debug!(piece = %id.short(), "read back a spilled piece");
+        } else {
+            shard.hold(id)?;
+        }
+        self.unspill(id);
+        Ok(true)
+    }
+
+    /// Forgets a spilled piece; a pack none of whose pieces is spilled any
+    /// more is deleted.
+    fn unspill(&mut self, id: &ContentId) {
+        let Some((name, _, _)) = self.pieces.remove(id) else {
+            return;
+        };
+        let pack = self.packs.get_mut(&name).expect("a spilled piece's pack");
+        pack.spilled -= 1;
+        if pack.spilled == 0 {
+            self.bytes -= pack.bytes;
+            self.packs.remove(&name);
+            let key = self.key(&name);
+            if let Err(error) = self.storage.delete(&key) {
+                tracing::warn!(
+                    "cannot delete spill pack {}: {error}",
+                    self.storage.locate(&key)
+                );
+            }
+        }
+    }
+
+    /// Forgets the spilled pieces outside `keep` (the coordinator's
+    /// retain).
+    pub fn forget_unless(&mut self, keep: &HashSet<ContentId>) {
+        let gone: Vec<ContentId> = self
+            .pieces
+            .keys()
+            .filter(|id| !keep.contains(id))
+            .copied()
+            .collect();
+        for id in &gone {
+            self.unspill(id);
+        }
+    }
+
+    /// For a checkpoint: stores a copy of the spill pack of each spilled
+    /// piece among `pieces` as a checkpoint pack; returns the packs copied
+    /// and where each of those pieces is.
+    pub(crate) fn copy_into_packs(
+        &self,
+        pieces: &[ContentId],
+    ) -> Result<(Vec<v1::PackWritten>, Places), Status> {
+        let mut copied = Vec::new();
+        let mut places = HashMap::new();
+        let mut done = HashSet::new();
+        for id in pieces {
+            let Some(&(name, record, _)) = self.pieces.get(id) else {
+                continue;
+            };
+            places.insert(*id, (name, record));
+            if !done.insert(name) {
+                continue;
+            }
+            let pack = &self.packs[&name];
+            let key = self.key(&name);
+            let bytes = self
+                .storage
+                .get(&key, pack.bytes)
+                .map_err(|error| {
+                    Status::internal(format!(
+                        "cannot read {}: {error}",
+                        self.storage.locate(&key)
+                    ))
+                })?
+                .ok_or_else(|| {
+                    Status::data_loss(format!("spill pack {} is gone", self.storage.locate(&key)))
+                })?;
+            storage::put_pack(self.storage.as_ref(), &bytes)
+                .map_err(|error| Status::internal(format!("{error:#}")))?;
+            copied.push(v1::PackWritten {
+                name: name.0.to_vec(),
+                bytes: pack.bytes,
+                records: pack.records,
+                table: pack.table.0.to_vec(),
+            });
+        }
+        if !places.is_empty() {
+            tracing::info!(
+                "a checkpoint takes {} spilled pieces in copies of {} spill packs",
+                places.len(),
+                copied.len()
+            );
+        }
+        Ok((copied, places))
+    }
+}
+
+impl Drop for Spill {
+    /// A node that stops (or leaves the job) takes its spill packs along.
+    fn drop(&mut self) {
+        for name in self.packs.keys() {
+            let _ = self.storage.delete(&self.key(name));
+        }
+    }
+}
