@@ -108,6 +108,9 @@ pub struct Shard {
     held: ahash::HashMap<ContentId, (Handle, u64)>,
     /// the order number the next held quad gets
     next_held: u64,
+    /// quads a task counts on while it runs (found here when it fetched
+    /// what it lacked), pinned until given back, with how many times
+    borrowed: ahash::HashMap<ContentId, (Handle, u32)>,
     /// quads handed over and not yet named held (pinned until `retain`)
     staged: Vec<Handle>,
     /// the stride the store's residual memo was filled for
@@ -128,6 +131,7 @@ impl Shard {
             rule,
             held: Default::default(),
             next_held: 0,
+            borrowed: Default::default(),
             staged: Vec::new(),
             residual_for: 0,
         })
@@ -268,13 +272,57 @@ impl Shard {
         self.repin();
     }
 
-    /// Pins exactly what is held and staged.
+    /// Pins exactly what is held, borrowed and staged.
     fn repin(&mut self) {
         self.store.pinned.clear();
         self.store
             .pinned
             .extend(self.held.values().map(|&(handle, _)| handle));
+        self.store
+            .pinned
+            .extend(self.borrowed.values().map(|&(handle, _)| handle));
         self.store.pinned.extend(self.staged.iter().copied());
+    }
+
+    /// Keeps a quad that is here from the collector until it is given
+    /// back (a task that found it here need not fetch it, and must still
+    /// find it when it runs). False when it is not here.
+    pub fn borrow(&mut self, id: &ContentId) -> bool {
+        let Some(&(handle, _)) = self.store.by_id.get(id) else {
+            return false;
+        };
+        let entry = self.borrowed.entry(*id).or_insert((handle, 0));
+        if entry.1 == 0 {
+            self.store.pin(handle);
+        }
+        entry.1 += 1;
+        true
+    }
+
+    /// Gives back what `borrow` kept (once per borrow).
+    pub fn give_back(&mut self, ids: &[ContentId]) {
+        let mut freed = false;
+        for id in ids {
+            if let Some(entry) = self.borrowed.get_mut(id) {
+                entry.1 -= 1;
+                if entry.1 == 0 {
+                    self.borrowed.remove(id);
+                    freed = true;
+                }
+            }
+        }
+        if freed {
+            self.repin();
+        }
+    }
+
+    /// Counts a held quad as held just now (a peer is reading it: it is
+    /// the last a spilling node should write out).
+    pub fn touch(&mut self, id: &ContentId) {
+        if let Some(entry) = self.held.get_mut(id) {
+            entry.1 = self.next_held;
+            self.next_held += 1;
+        }
     }
 
     /// Keeps holding only the quads named in `keep` (of those held) and
@@ -549,6 +597,46 @@ mod tests {
             shard.describe(&kids, level).unwrap()
         };
         assert_eq!(digest, universe.digest().unwrap());
+    }
+
+    #[test]
+    fn released_pieces_go_at_the_next_collection_and_borrowed_ones_stay_until_given_back() {
+        // Common practice for pinning collectors. A 64² field of our own
+        // (cells on where a fixed bit mixer says), cut into 16² pieces.
+        let mut rle = String::from("x = 64, y = 64\n");
+        for y in 0..64u64 {
+            for x in 0..64u64 {
+                let mixed = (y * 64 + x).wrapping_mul(0x9e37_79b9_7f4a_7c15) >> 61;
+                rle.push(if mixed < 3 { 'o' } else { 'b' });
+            }
+            rle.push_str(if y == 63 { "!\n" } else { "$\n" });
+        }
+        let pattern = crate::pattern::read_pattern(rle.as_bytes(), 1 << 28).unwrap();
+        let rule: Rule = "B3/S23".parse().unwrap();
+        let mut universe = Universe::from_pattern(&pattern, rule, 1 << 28).unwrap();
+        let (mut shard, _) = shard_of(&mut universe, 5);
+        let held = shard.oldest_held(usize::MAX, &HashSet::new());
+        assert!(held.len() >= 4, "{} pieces", held.len());
+        // Held longest first: the order they were held in.
+        let spare: HashSet<ContentId> = [held[0]].into();
+        assert_eq!(shard.oldest_held(2, &spare), held[1..3].to_vec());
+        // Read by a peer just now: the last to go.
+        shard.touch(&held[1]);
+        assert_eq!(
+            shard.oldest_held(usize::MAX, &HashSet::new()).last(),
+            Some(&held[1])
+        );
+
+        assert!(shard.borrow(&held[2]));
+        shard.release(&held[..3]);
+        shard.store.collect_now();
+        assert!(!shard.has(&held[0]) && !shard.has(&held[1]));
+        assert!(shard.has(&held[2]), "borrowed");
+        assert!(shard.has(&held[3]), "still held");
+        shard.give_back(&held[2..3]);
+        shard.store.collect_now();
+        assert!(!shard.has(&held[2]));
+        assert!(!shard.borrow(&held[2]), "nothing to borrow once gone");
     }
 
     #[test]

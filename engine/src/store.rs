@@ -879,6 +879,13 @@ impl Store {
     /// results and what lies under both stay too: the working memo of the
     /// advance in progress. Results that pointed at freed quads are
     /// forgotten; the memo maps keep only live entries.
+    /// A collection now, keeping only what is pinned (tests of the
+    /// pinning rules above the store).
+    #[cfg(test)]
+    pub(crate) fn collect_now(&mut self) {
+        self.collect_keeping(&[], false);
+    }
+
     fn collect_keeping(&mut self, protect: &[Handle], keep_recent: bool) {
         let roots: Vec<Handle> = self
             .pinned

@@ -52,12 +52,18 @@ pub struct Fetched {
     pub bytes: u64,
     /// fetch calls made, one after another
     pub calls: u64,
+    /// the quads found here instead, kept until given back (`Here`)
+    pub found: Vec<ContentId>,
 }
 
 /// Where a fetch looks before it asks the peers.
 pub trait Here: Send + Sync + 'static {
-    /// Which of `ids` are not here (called on a blocking thread).
+    /// Which of `ids` are not here (called on a blocking thread); those
+    /// that are may be kept here until `give_back`.
     fn lacking(&self, ids: &[ContentId]) -> Result<Vec<bool>, Status>;
+
+    /// Lets go of what `lacking` found here and kept.
+    fn give_back(&self, _ids: &[ContentId]) {}
 }
 
 impl Here for Mutex<Option<Shard>> {
@@ -85,54 +91,74 @@ pub async fn fetch_missing(
     let lacks = |ids: Vec<(ContentId, u32, Vec<String>)>| {
         let here = here.clone();
         async move {
-            tokio::task::spawn_blocking(move || -> Result<Vec<_>, Status> {
+            tokio::task::spawn_blocking(move || -> Result<(Vec<_>, Vec<ContentId>), Status> {
                 let just: Vec<ContentId> = ids.iter().map(|(id, _, _)| *id).collect();
                 let lacking = here.lacking(&just)?;
-                Ok(ids
+                let found = just
+                    .iter()
+                    .zip(&lacking)
+                    .filter(|(_, lacks)| !**lacks)
+                    .map(|(id, _)| *id)
+                    .collect();
+                let lacked = ids
                     .into_iter()
                     .zip(lacking)
                     .filter(|(_, lacks)| *lacks)
                     .map(|(wanted, _)| wanted)
-                    .collect())
+                    .collect();
+                Ok((lacked, found))
             })
             .await
             .map_err(|error| Status::internal(format!("a lookup failed: {error}")))?
         }
     };
-    let mut round = lacks(wanted).await?;
-    let mut asked: HashSet<ContentId> = HashSet::new();
-    while !round.is_empty() {
-        // One batch per source list (the ids a peer is asked for together).
-        let mut by_sources: HashMap<Vec<String>, Vec<(ContentId, u32)>> = HashMap::new();
-        for (id, level, sources) in round {
-            if got.contains_key(&id) || !asked.insert(id) {
-                continue;
+    let mut found: Vec<ContentId> = Vec::new();
+    let fetched = async {
+        let (mut round, here_now) = lacks(wanted).await?;
+        found.extend(here_now);
+        let mut asked: HashSet<ContentId> = HashSet::new();
+        while !round.is_empty() {
+            // One batch per source list (the ids a peer is asked for together).
+            let mut by_sources: HashMap<Vec<String>, Vec<(ContentId, u32)>> = HashMap::new();
+            for (id, level, sources) in round {
+                if got.contains_key(&id) || !asked.insert(id) {
+                    continue;
+                }
+                by_sources.entry(sources).or_default().push((id, level));
             }
-            by_sources.entry(sources).or_default().push((id, level));
-        }
-        let mut next = Vec::new();
-        for (sources, ids) in by_sources {
-            for batch in ids.chunks(MAX_BATCH) {
-                let (records, size) = fetch_batch(peers, &sources, batch).await?;
-                bytes += size;
-                calls += 1;
-                for ((id, level), record) in batch.iter().zip(records) {
-                    if record.level() != *level {
-                        return Err(Status::data_loss(format!(
-                            "a peer sent quad {id} as level {}, expected {level}",
-                            record.level()
-                        )));
-                    }
-                    if let Record::Inner { level, kids } = record {
-                        for kid in kids {
-                            next.push((kid, level - 1, sources.clone()));
+            let mut next = Vec::new();
+            for (sources, ids) in by_sources {
+                for batch in ids.chunks(MAX_BATCH) {
+                    let (records, size) = fetch_batch(peers, &sources, batch).await?;
+                    bytes += size;
+                    calls += 1;
+                    for ((id, level), record) in batch.iter().zip(records) {
+                        if record.level() != *level {
+                            return Err(Status::data_loss(format!(
+                                "a peer sent quad {id} as level {}, expected {level}",
+                                record.level()
+                            )));
                         }
+                        if let Record::Inner { level, kids } = record {
+                            for kid in kids {
+                                next.push((kid, level - 1, sources.clone()));
+                            }
+                        }
+                        got.insert(*id, record);
                     }
-                    got.insert(*id, record);
                 }
             }
+            let (lacked, here_now) = lacks(next).await?;
+            found.extend(here_now);
+            round = lacked;
         }
-        round = lacks(next).await?;
+        Ok(())
+    }
+    .await;
+    if let Err(status) = fetched {
+        let here = here.clone();
+        let _ = tokio::task::spawn_blocking(move || here.give_back(&found)).await;
+        return Err(status);
     }
     // Children first: lower levels first.
     let mut records: Vec<(ContentId, Record)> = got.into_iter().collect();
@@ -141,6 +167,7 @@ pub async fn fetch_missing(
         records,
         bytes,
         calls,
+        found,
     })
 }
 

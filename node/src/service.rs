@@ -106,10 +106,25 @@ impl NodeState {
         spare: Vec<ContentId>,
         work: impl FnMut(&mut Shard, Option<&mut Spill>) -> Result<T, Failure> + Send + 'static,
     ) -> Result<T, Status> {
+        self.with_fetched(spare, Vec::new(), work).await
+    }
+
+    /// `with_shard` for work on what a fetch found here: gives it back
+    /// (`Here::give_back`) once the work is done, or has failed.
+    async fn with_fetched<T: Send + 'static>(
+        self: &Arc<Self>,
+        spare: Vec<ContentId>,
+        found: Vec<ContentId>,
+        work: impl FnMut(&mut Shard, Option<&mut Spill>) -> Result<T, Failure> + Send + 'static,
+    ) -> Result<T, Status> {
         let state = self.clone();
-        tokio::task::spawn_blocking(move || state.on_shard(&spare, work))
-            .await
-            .map_err(|error| Status::internal(format!("a task failed: {error}")))?
+        tokio::task::spawn_blocking(move || {
+            let outcome = state.on_shard(&spare, work);
+            state.give_back(&found);
+            outcome
+        })
+        .await
+        .map_err(|error| Status::internal(format!("a task failed: {error}")))?
     }
 
     /// Makes sure the four quarters of a square are here, fetching the
@@ -147,8 +162,14 @@ impl Here for NodeState {
                     spill.reload(shard, id)?;
                 }
             }
-            Ok(ids.iter().map(|id| !shard.has(id)).collect())
+            Ok(ids.iter().map(|id| !shard.borrow(id)).collect())
         })
+    }
+
+    fn give_back(&self, ids: &[ContentId]) {
+        if let Some(shard) = self.shard.lock().expect("shard").as_mut() {
+            shard.give_back(ids);
+        }
     }
 }
 
@@ -189,7 +210,7 @@ impl v1::node_server::Node for NodeService {
             let started = Instant::now();
             let outcome = self
                 .state
-                .with_shard(kids.to_vec(), move |shard, spill| {
+                .with_fetched(kids.to_vec(), fetched.found.clone(), move |shard, spill| {
                     // A quarter spilled since the fetch found it here is
                     // read back.
                     if let Some(spill) = spill {
@@ -265,6 +286,9 @@ impl v1::node_server::Node for NodeService {
                     for id in &ids {
                         spill.reload(shard, id)?;
                     }
+                }
+                for id in &ids {
+                    shard.touch(id);
                 }
                 Ok(ids
                     .iter()
@@ -375,7 +399,7 @@ impl v1::node_server::Node for NodeService {
         let level = describe.level;
         let (canonical, canonical_level, figures) = self
             .state
-            .with_shard(kids.to_vec(), move |shard, spill| {
+            .with_fetched(kids.to_vec(), fetched.found.clone(), move |shard, spill| {
                 if let Some(spill) = spill {
                     for kid in &kids {
                         spill.reload(shard, kid)?;

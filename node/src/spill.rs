@@ -40,13 +40,24 @@ impl From<Status> for Failure {
 /// Where pieces are: pack and record.
 pub(crate) type Places = HashMap<ContentId, (Checksum, u32)>;
 
-/// One spill pack: what a manifest would list of it, and how many of its
-/// pieces are still spilled (at none, it is deleted).
+/// One spill pack: what a manifest would list of it, and how many pieces
+/// it is the copy of (at none, it is deleted).
 struct SpillPack {
     bytes: u64,
     records: u64,
     table: Checksum,
-    spilled: usize,
+    copies: usize,
+}
+
+/// A piece's copy in a spill pack.
+#[derive(Clone, Copy)]
+struct Copy {
+    pack: Checksum,
+    record: u32,
+    level: u32,
+    /// the piece is not held in memory now (it was spilled and not read
+    /// back since)
+    away: bool,
 }
 
 /// A node's spilled pieces and their packs.
@@ -63,8 +74,9 @@ pub struct Spill {
     /// whether the last spill was refused for the limit
     refused: bool,
     packs: HashMap<Checksum, SpillPack>,
-    /// spilled pieces: their pack, record and level
-    pieces: HashMap<ContentId, (Checksum, u32, u32)>,
+    /// the pieces spilled since the coordinator last named what to keep:
+    /// a piece read back keeps its copy, so spilling it again is free
+    pieces: HashMap<ContentId, Copy>,
 }
 
 impl Spill {
@@ -85,14 +97,15 @@ impl Spill {
         format!("{}{name}.pack", self.prefix)
     }
 
-    /// Whether `id` is spilled (and not in memory any more).
+    /// Whether `id` is spilled (and not held in memory now).
     pub fn holds(&self, id: &ContentId) -> bool {
-        self.pieces.contains_key(id)
+        self.pieces.get(id).is_some_and(|copy| copy.away)
     }
 
-    /// Writes out half of the pieces `shard` holds outside `spare`, the
-    /// longest held first, and lets them go. Returns how many; 0 when
-    /// there is nothing to spill or the spill limit would be passed.
+    /// Lets go of half of the pieces `shard` holds outside `spare`, the
+    /// longest held first: those with a copy in a spill pack at once, the
+    /// rest written to a new one. Returns how many; 0 when there is
+    /// nothing to spill or the spill limit would be passed.
     pub(crate) fn spill(
         &mut self,
         shard: &mut Shard,
@@ -103,19 +116,24 @@ impl Spill {
         if chosen.is_empty() {
             return Ok(0);
         }
+        let (copied, chosen): (Vec<ContentId>, Vec<ContentId>) = chosen
+            .into_iter()
+            .partition(|id| self.pieces.contains_key(id));
+        for id in &copied {
+            self.pieces.get_mut(id).expect("partitioned").away = true;
+        }
+        shard.release(&copied);
+        if chosen.is_empty() {
+            tracing::debug!(pieces = copied.len(), "store full: let go of copied pieces");
+            return Ok(copied.len());
+        }
         let Some(written) = shard.write_pack(&chosen, &|_| None, &[])? else {
-            return Ok(0);
+            return Ok(copied.len());
         };
         let size = written.bytes.len() as u64;
         self.refused = self.bytes + size > self.limit;
         if self.refused {
-            return Ok(0);
-        }
-        // A piece spilled before and held again since (a result equal to
-        // it) is found in the new pack only (forgotten before the write: an
-        // old pack of the same pieces has the new one's name).
-        for id in &chosen {
-            self.unspill(id);
+            return Ok(copied.len());
         }
         let name = deeptime_engine::pack::pack_name(&written.bytes);
         let key = self.key(&name);
@@ -137,24 +155,32 @@ impl Spill {
             bytes: size,
             records: written.records,
             table: written.table,
-            spilled: 0,
+            copies: 0,
         });
-        if pack.spilled == 0 {
+        if pack.copies == 0 {
             self.bytes += size;
         }
         for id in &chosen {
             let level = shard.level_of(id).expect("a held piece is here");
-            self.pieces.insert(*id, (name, records[id], level));
-            pack.spilled += 1;
+            self.pieces.insert(
+                *id,
+                Copy {
+                    pack: name,
+                    record: records[id],
+                    level,
+                    away: true,
+                },
+            );
+            pack.copies += 1;
         }
         shard.release(&chosen);
         tracing::info!(
             "store full: spilled {} pieces ({}) to storage, {} spilled now",
-            chosen.len(),
+            chosen.len() + copied.len(),
             deeptime_engine::human_bytes(size),
             deeptime_engine::human_bytes(self.bytes)
         );
-        Ok(chosen.len())
+        Ok(chosen.len() + copied.len())
     }
 
     /// Why the last spill wrote nothing, when it was the limit: for the
@@ -172,7 +198,13 @@ impl Spill {
     /// collector has not taken it yet, else read back from its pack.
     /// False when `id` was not spilled.
     pub(crate) fn reload(&mut self, shard: &mut Shard, id: &ContentId) -> Result<bool, Failure> {
-        let Some(&(name, record, level)) = self.pieces.get(id) else {
+        let Some(&Copy {
+            pack: name,
+            record,
+            level,
+            away: true,
+        }) = self.pieces.get(id)
+        else {
             return Ok(false);
         };
         if !shard.has(id) {
@@ -204,19 +236,19 @@ impl Spill {
         } else {
             shard.hold(id)?;
         }
-        self.unspill(id);
+        self.pieces.get_mut(id).expect("found above").away = false;
         Ok(true)
     }
 
-    /// Forgets a spilled piece; a pack none of whose pieces is spilled any
+    /// Forgets a piece's copy; a pack that is the copy of no piece any
     /// more is deleted.
-    fn unspill(&mut self, id: &ContentId) {
-        let Some((name, _, _)) = self.pieces.remove(id) else {
+    fn forget(&mut self, id: &ContentId) {
+        let Some(Copy { pack: name, .. }) = self.pieces.remove(id) else {
             return;
         };
         let pack = self.packs.get_mut(&name).expect("a spilled piece's pack");
-        pack.spilled -= 1;
-        if pack.spilled == 0 {
+        pack.copies -= 1;
+        if pack.copies == 0 {
             self.bytes -= pack.bytes;
             self.packs.remove(&name);
             let key = self.key(&name);
@@ -229,7 +261,7 @@ impl Spill {
         }
     }
 
-    /// Forgets the spilled pieces outside `keep` (the coordinator's
+    /// Forgets the copies of pieces outside `keep` (the coordinator's
     /// retain).
     pub fn forget_unless(&mut self, keep: &HashSet<ContentId>) {
         let gone: Vec<ContentId> = self
@@ -239,7 +271,7 @@ impl Spill {
             .copied()
             .collect();
         for id in &gone {
-            self.unspill(id);
+            self.forget(id);
         }
     }
 
@@ -254,7 +286,10 @@ impl Spill {
         let mut places = HashMap::new();
         let mut done = HashSet::new();
         for id in pieces {
-            let Some(&(name, record, _)) = self.pieces.get(id) else {
+            let Some(&Copy {
+                pack: name, record, ..
+            }) = self.pieces.get(id)
+            else {
                 continue;
             };
             places.insert(*id, (name, record));

@@ -7,7 +7,7 @@
 use std::path::Path;
 use std::time::Duration;
 
-use anyhow::ensure;
+use anyhow::{Context, ensure};
 use deeptime_engine::rule::Rule;
 
 use super::cluster::{Fault, Measured, Nodes, embedded, on_nodes, write_job};
@@ -41,24 +41,23 @@ fn same_digest(one: &Measured, other: &Measured) -> anyhow::Result<()> {
     Ok(())
 }
 
-/// The bytes a node counted live when it ran out of memory ("at least
-/// 4.9 MiB of quads are live"), from the coordinator's message.
-fn live_when_out(run: &Measured) -> Option<f64> {
-    let line = run
-        .said
-        .iter()
-        .find(|line| line.contains("ran out of memory"))?;
-    let after = &line[line.find("at least ")? + "at least ".len()..];
-    let mut words = after.split_whitespace();
-    let number: f64 = words.next()?.parse().ok()?;
-    let unit = match words.next()? {
-        "B" => 1.0,
-        "KiB" => 1024.0,
-        "MiB" => 1024.0 * 1024.0,
-        "GiB" => 1024.0 * 1024.0 * 1024.0,
-        _ => return None,
-    };
-    Some(number * unit)
+/// The bytes an engine store takes for a pattern's quads (generation 0).
+fn state_bytes(exe: &Path, pattern: &Path) -> anyhow::Result<f64> {
+    let output = std::process::Command::new(exe)
+        .arg("leap")
+        .arg(pattern)
+        .args(["--gens", "0", "--json"])
+        .output()?;
+    ensure!(
+        output.status.success(),
+        "deeptime leap {} failed: {}",
+        pattern.display(),
+        String::from_utf8_lossy(&output.stderr).trim()
+    );
+    let report: serde_json::Value = serde_json::from_slice(&output.stdout)?;
+    report["engine"]["bytes"]
+        .as_f64()
+        .context("leap's report has no engine bytes")
 }
 
 /// What a run says about faults: roll backs, pieces read again, late nodes.
@@ -125,6 +124,7 @@ pub fn capacity(settings: &Settings) -> anyhow::Result<Vec<Figure>> {
                 shard_level: None,
                 checkpoint_dir: Some(&checkpoints_of(&name)),
                 coordinator_args: &[],
+                node_args: &[],
                 fault: None,
             },
         )?;
@@ -148,25 +148,27 @@ pub fn capacity(settings: &Settings) -> anyhow::Result<Vec<Figure>> {
         );
     }
 
-    // A state whose live quads are several times one node's budget (a
-    // 2048² soup, quick or not: a few seconds): one node alone must stop
-    // with exit 3, four of the same size finish.
+    // A state several times one node's budget (a 4608² soup; quick: the
+    // 2048² one): one node that may not spill stops with exit 3; four of
+    // the same size finish, and so does one that spills.
     let budget = "4MiB";
-    let (big_target, big_every) = ("32", "16");
-    if side != 2048 {
-        write_rle(&soup(2048, 1)?, Rule::LIFE, &dir.join("big.rle"))?;
-    }
-    let big_pattern = if side == 2048 { "soup.rle" } else { "big.rle" };
+    let (big_side, big_target, big_every) = if settings.quick {
+        (2048u64, "32", "16")
+    } else {
+        (4608, "32", "16")
+    };
+    write_rle(&soup(big_side, 1)?, Rule::LIFE, &dir.join("big.rle"))?;
+    let state = state_bytes(&exe, &dir.join("big.rle"))?;
     let big_alone = embedded(
         &exe,
-        &write_job(dir, "big-alone", big_pattern, big_target, big_every, None)?,
+        &write_job(dir, "big-alone", "big.rle", big_target, big_every, None)?,
     )?;
     let mut outcomes = Vec::new();
-    for nodes in [1usize, 4] {
-        let name = format!("big-{nodes}");
+    for (nodes, spill) in [(1usize, false), (4, true), (1, true)] {
+        let name = format!("big-{nodes}-{spill}");
         let run = on_nodes(
             &exe,
-            &write_job(dir, &name, big_pattern, big_target, big_every, None)?,
+            &write_job(dir, &name, "big.rle", big_target, big_every, None)?,
             dir,
             &Nodes {
                 count: nodes,
@@ -175,6 +177,7 @@ pub fn capacity(settings: &Settings) -> anyhow::Result<Vec<Figure>> {
                 shard_level: Some(8),
                 checkpoint_dir: Some(&checkpoints_of(&name)),
                 coordinator_args: &[],
+                node_args: if spill { &[] } else { &["--spill-limit", "0"] },
                 fault: None,
             },
         )?;
@@ -182,25 +185,40 @@ pub fn capacity(settings: &Settings) -> anyhow::Result<Vec<Figure>> {
     }
     ensure!(
         outcomes[0].code == Some(3),
-        "one node of {budget} should run out (exit 3), it ended with {:?}: {}",
+        "one node of {budget} that may not spill should run out (exit 3), it ended with {:?}: {}",
         outcomes[0].code,
         outcomes[0].last_lines()
     );
     same(&outcomes[1], &big_alone, "four small nodes")?;
-    let live = live_when_out(&outcomes[0]).unwrap_or(0.0);
+    same(&outcomes[2], &big_alone, "one small node that spills")?;
     figures.push(
         Figure::new(
             "capacity",
-            &format!("2048² soup to {big_target}: live bytes / one node's {budget}"),
-            live / deeptime_coordinator::memory::budget(Some(budget))? as f64,
+            &format!("{big_side}² soup to {big_target}: its quads / one node's {budget}"),
+            state / deeptime_coordinator::memory::budget(Some(budget))? as f64,
             "×",
             Some(Goal::AtLeast(3.0)),
         )
         .detail(format!(
-            "live: the lone node's own count when it ran out (exit 3); four nodes: the \
-             embedded digest in {:.2} s, store peaks {:?}",
+            "the soup's quads in an engine store: {}; one node that may not spill: exit 3; \
+             four nodes: the embedded digest in {:.2} s (embedded {:.2} s), store peaks {:?}",
+            deeptime_engine::human_bytes(state as u64),
             outcomes[1].seconds,
+            big_alone.seconds,
             outcomes[1].peaks()
+        )),
+    );
+    figures.push(
+        Figure::new(
+            "capacity",
+            &format!("{big_side}² soup to {big_target}: one {budget} node that spills / four"),
+            outcomes[2].seconds / outcomes[1].seconds,
+            "×",
+            None,
+        )
+        .detail(format!(
+            "one node {:.2} s with the embedded digest, four {:.2} s",
+            outcomes[2].seconds, outcomes[1].seconds
         )),
     );
 
@@ -222,6 +240,7 @@ pub fn capacity(settings: &Settings) -> anyhow::Result<Vec<Figure>> {
                     shard_level: None,
                     checkpoint_dir: Some(&checkpoints_of(&name)),
                     coordinator_args: &[],
+                    node_args: &[],
                     fault: None,
                 },
             )?;
@@ -266,6 +285,7 @@ pub fn capacity(settings: &Settings) -> anyhow::Result<Vec<Figure>> {
             shard_level: None,
             checkpoint_dir: Some(&checkpoints_of("deep")),
             coordinator_args: &[],
+            node_args: &[],
             fault: None,
         },
     )?;
@@ -307,6 +327,7 @@ pub fn capacity(settings: &Settings) -> anyhow::Result<Vec<Figure>> {
                 shard_level: None,
                 checkpoint_dir: Some(&checkpoints_of(name)),
                 coordinator_args: &[],
+                node_args: &[],
                 fault: Some(fault),
             },
         )?;

@@ -151,6 +151,7 @@ fn on_cluster(
             shard_level,
             checkpoint_dir,
             coordinator_args: &[],
+            node_args: &[],
             fault: None,
         },
     )?;
@@ -174,6 +175,8 @@ pub(super) struct Nodes<'a> {
     pub checkpoint_dir: Option<&'a Path>,
     /// the coordinator's arguments besides the usual ones
     pub coordinator_args: &'a [&'a str],
+    /// each node's arguments besides the usual ones
+    pub node_args: &'a [&'a str],
     /// what happens to the second node after the first step
     pub fault: Option<Fault>,
 }
@@ -244,6 +247,7 @@ pub(super) fn on_nodes(
             .args(["node", "--join", &format!("http://127.0.0.1:{port}")])
             .args(["--listen", "127.0.0.1:0", "--memory", nodes.memory])
             .args(["--slots", &nodes.slots.to_string()])
+            .args(nodes.node_args)
             .arg("--token-file")
             .arg(&token)
             .args(
