@@ -36,25 +36,44 @@ fn read_expected(path: &Path) -> serde_json::Value {
 /// Runs deeptime for every generation of `gens` on `pattern` under `rule`
 /// and has the reference compare each result with `expected`.
 fn compare_all(dir: &Path, pattern: &Path, rule: &str, gens: &[u64], expected: &Path, what: &str) {
+    let gens: Vec<String> = gens.iter().map(u64::to_string).collect();
+    compare_all_in(dir, pattern, rule, &gens, None, expected, what);
+}
+
+/// `compare_all` for generations of any size, in `universe` if given.
+fn compare_all_in(
+    dir: &Path,
+    pattern: &Path,
+    rule: &str,
+    gens: &[String],
+    universe: Option<&str>,
+    expected: &Path,
+    what: &str,
+) {
     let mut compare_args: Vec<String> = vec![
         "compare".into(),
         "--expected".into(),
         expected.display().to_string(),
     ];
-    for &generation in gens {
+    for generation in gens {
         let got_rle = dir.join(format!("got-{generation}.rle"));
         let got_json = dir.join(format!("got-{generation}.json"));
-        let run = run_deeptime([
+        let mut args: Vec<&std::ffi::OsStr> = vec![
             "leap".as_ref(),
             pattern.as_os_str(),
             "--rule".as_ref(),
             rule.as_ref(),
             "--gens".as_ref(),
-            generation.to_string().as_ref(),
+            generation.as_ref(),
             "--json".as_ref(),
             "--out".as_ref(),
             got_rle.as_os_str(),
-        ]);
+        ];
+        if let Some(universe) = universe {
+            args.push(std::ffi::OsStr::new("--universe"));
+            args.push(std::ffi::OsStr::new(universe));
+        }
+        let run = run_deeptime(args);
         assert!(
             run.succeeded(),
             "{what}: deeptime failed at generation {generation}:\n{}",
@@ -76,7 +95,7 @@ fn compare_all(dir: &Path, pattern: &Path, rule: &str, gens: &[u64], expected: &
         std::fs::write(&got_json, &run.stdout).expect("write got.json");
         compare_args.extend([
             "--gen".into(),
-            generation.to_string(),
+            generation.clone(),
             "--got".into(),
             got_rle.display().to_string(),
             "--got-json".into(),
@@ -126,23 +145,33 @@ fn check_rule(rule: &str, soups: &[Soup]) {
 /// Has the reference run `pattern` under `rule` and record every
 /// generation of GENS in `expected`.
 fn reference_expect(pattern: &Path, rule: &str, expected: &Path) {
-    let gens = GENS
-        .iter()
-        .map(u64::to_string)
-        .collect::<Vec<_>>()
-        .join(",");
-    run_reference([
+    let gens: Vec<String> = GENS.iter().map(u64::to_string).collect();
+    reference_expect_in(pattern, rule, &gens, None, expected);
+}
+
+/// `reference_expect` for generations of any size, in `universe` if given.
+fn reference_expect_in(
+    pattern: &Path,
+    rule: &str,
+    gens: &[String],
+    universe: Option<&str>,
+    expected: &Path,
+) {
+    let mut args = vec![
         "expect".to_string(),
         "--pattern".into(),
         pattern.display().to_string(),
         "--rule".into(),
         rule.into(),
         "--gens".into(),
-        gens,
+        gens.join(","),
         "--out".into(),
         expected.display().to_string(),
-    ])
-    .assert_success();
+    ];
+    if let Some(universe) = universe {
+        args.extend(["--universe".to_string(), universe.to_string()]);
+    }
+    run_reference(args).assert_success();
 }
 
 /// The soup must stay interesting through the run, or the comparison says
@@ -362,4 +391,61 @@ fn glider_northwest() {
         &expected,
         "glider flying north-west",
     );
+}
+
+/// Bounded universes against the reference: seeded soups on tori and
+/// bounded planes whose sides are not powers of two, cell by cell at small
+/// generations and far beyond the point where their histories repeat (the
+/// reference finds the cycle with a full table of states, deeptime with
+/// Brent's method).
+#[test]
+fn tori_and_bounded_planes_against_the_reference() {
+    let far = "1000000000000000000000000000000000000037";
+    let gens: Vec<String> = [
+        "0", "1", "2", "3", "7", "8", "63", "64", "65", "100", "999", "1000", "4097",
+    ]
+    .iter()
+    .map(|g| g.to_string())
+    .chain([far.to_string(), format!("{far}0")])
+    .collect();
+    for (rule, universe, seed) in [
+        ("B3/S23", "torus 37x23", 1u64),
+        ("B3/S23", "bounded 29x41", 2),
+        ("B36/S23", "torus 40x24", 3),
+        ("B36/S23", "bounded 33x19", 4),
+    ] {
+        let dir = temp_dir();
+        let pattern = dir.path().join("soup.rle");
+        let expected = dir.path().join("expected.json");
+        let what = format!("rule {rule} in the {universe}, soup seed {seed}");
+        run_reference([
+            "soup".to_string(),
+            "--rule".into(),
+            rule.into(),
+            "--seed".into(),
+            seed.to_string(),
+            "--size".into(),
+            "19".into(),
+            "--density".into(),
+            "0.4".into(),
+            "--out".into(),
+            pattern.display().to_string(),
+        ])
+        .assert_success();
+        reference_expect_in(&pattern, rule, &gens, Some(universe), &expected);
+        let period = &read_expected(&expected)["period"];
+        assert!(
+            period.is_u64(),
+            "{what}: the reference saw no cycle by generation 4097"
+        );
+        compare_all_in(
+            dir.path(),
+            &pattern,
+            rule,
+            &gens,
+            Some(universe),
+            &expected,
+            &what,
+        );
+    }
 }

@@ -137,6 +137,12 @@ pub struct LeapArgs {
     /// Memory budget for quads, e.g. 2GiB or 512MiB (default: half of this machine's memory)
     #[arg(long, value_name = "SIZE")]
     pub memory: Option<String>,
+
+    /// Where the pattern lives: plane (unbounded, the default), "torus WxH"
+    /// (edges wrap) or "bounded WxH" (cells outside stay dead), with the
+    /// universe's top-left cell at the pattern's (0, 0)
+    #[arg(long, value_name = "UNIVERSE")]
+    pub universe: Option<String>,
 }
 
 #[derive(Args, Debug)]

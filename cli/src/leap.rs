@@ -5,6 +5,7 @@ use std::path::Path;
 use std::time::Instant;
 
 use anyhow::Context;
+use deeptime_engine::finite::Space;
 use deeptime_engine::generation::parse_generations;
 use deeptime_engine::{Progress, Universe, WriteError};
 
@@ -29,14 +30,20 @@ pub fn run(args: LeapArgs) -> anyhow::Result<()> {
         .as_deref()
         .map(crate::snapshot::parse_region)
         .transpose()?;
+    let space = input::space(args.universe.as_deref(), "--universe")?;
 
     let started = Instant::now();
-    let mut universe = input::build(loaded, rule, budget)?;
-    let line = progress::Line::start("advancing");
-    let mut observe = |progress: &Progress| line.update(progress);
-    let advanced = universe.advance(&generations, Some(&mut observe));
-    line.finish();
-    advanced.with_context(|| format!("advancing {} generations", args.gens))?;
+    let (mut universe, period) = if space == Space::Plane {
+        let mut universe = input::build(loaded, rule, budget)?;
+        let line = progress::Line::start("advancing");
+        let mut observe = |progress: &Progress| line.update(progress);
+        let advanced = universe.advance(&generations, Some(&mut observe));
+        line.finish();
+        advanced.with_context(|| format!("advancing {} generations", args.gens))?;
+        (universe, None)
+    } else {
+        input::advance_bounded(loaded, rule, space, &generations, budget)?
+    };
     let elapsed = started.elapsed();
 
     let mut picture = None;
@@ -54,6 +61,10 @@ pub fn run(args: LeapArgs) -> anyhow::Result<()> {
     }
     let mut report = Report::of(&mut universe, elapsed)?;
     report.picture = picture;
+    if space != Space::Plane {
+        report.universe = Some(space.to_string());
+        report.period = period.map(|period| period.to_string());
+    }
     if let Some(region) = &region {
         let figures = universe
             .region_figures(region)

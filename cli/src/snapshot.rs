@@ -343,6 +343,8 @@ fn from_stored(
         pack_bytes: None,
         region: region_report,
         picture,
+        universe: None,
+        period: None,
     }))
 }
 

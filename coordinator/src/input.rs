@@ -4,6 +4,7 @@
 use std::io::Read;
 use std::path::Path;
 
+use deeptime_engine::finite::Space;
 use deeptime_engine::pattern::{self, Pattern};
 use deeptime_engine::rule::Rule;
 
@@ -73,4 +74,48 @@ pub fn rule(option: Option<&str>, loaded: &Loaded) -> Result<Rule, BadInput> {
         }),
         None => Ok(Rule::LIFE),
     }
+}
+
+/// The universe option's text read (`plane`, `torus WxH`, `bounded WxH`),
+/// `what` naming where it came from in the error.
+pub fn space(text: Option<&str>, what: &str) -> Result<Space, BadInput> {
+    match text {
+        None => Ok(Space::Plane),
+        Some(text) => text
+            .parse()
+            .map_err(|error: deeptime_engine::finite::SpaceError| {
+                BadInput(format!("{what}: {error}"))
+            }),
+    }
+}
+
+/// A bounded universe's end state after `generations`: the pattern put in
+/// `space` (its (0, 0) at the universe's top-left cell), stepped with the
+/// history's cycle found and jumped over, then given back as a plane
+/// state holding the same cells where they are, so that figures, digests,
+/// pictures and RLE come from where they come for the plane. Also the
+/// period, when the run saw the cycle.
+pub fn advance_bounded(
+    loaded: Loaded,
+    rule: Rule,
+    space: Space,
+    generations: &num_bigint::BigUint,
+    budget: u64,
+) -> anyhow::Result<(Universe, Option<u64>)> {
+    use anyhow::Context;
+    let mut finite = deeptime_engine::finite::Finite::from_pattern(&loaded.pattern, rule, space)
+        .map_err(|error| BadInput(format!("{}: {error}", loaded.name)))?;
+    let origin = loaded.pattern.origin;
+    drop(loaded);
+    let line = crate::progress::Line::start("stepping");
+    let history = finite.advance(generations, |stepped| line.note(stepped));
+    line.finish();
+    let mut pattern = finite
+        .to_pattern(budget)
+        .context("the bounded universe's cells")?;
+    pattern.origin = origin;
+    let mut universe =
+        Universe::from_pattern(&pattern, rule, budget).context("the bounded universe's cells")?;
+    universe.set_generation(finite.generation().clone());
+    Ok((universe, history.period))
 }

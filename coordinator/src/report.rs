@@ -28,6 +28,14 @@ pub struct Report {
     /// the pixel grid of a picture written (snapshots with --out x.png)
     #[serde(skip_serializing_if = "Option::is_none")]
     pub picture: Option<PictureReport>,
+    /// the bounded universe the pattern lives in (`torus WxH`, `bounded
+    /// WxH`); absent on the unbounded plane
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub universe: Option<String>,
+    /// the period of the cycle a bounded universe's history ends in, when
+    /// the run saw it
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub period: Option<String>,
 }
 
 /// Where a picture's pixels lie: pixel (c, r) is the square of 2^scale
@@ -141,6 +149,8 @@ impl Report {
             pack_bytes: None,
             region: None,
             picture: None,
+            universe: None,
+            period: None,
         })
     }
 
@@ -159,6 +169,18 @@ impl Report {
             ),
         }
         println!("rule          {}", self.rule);
+        if let Some(universe) = &self.universe {
+            match &self.period {
+                Some(period) if period == "1" => {
+                    println!("universe      {universe} (its history has come to rest)")
+                }
+                Some(period) => println!(
+                    "universe      {universe} (its history repeats every {} generations)",
+                    for_people(period)
+                ),
+                None => println!("universe      {universe}"),
+            }
+        }
         println!("digest        {}", self.digest);
         let engine = &self.engine;
         println!(

@@ -9,6 +9,7 @@ pub const LEAF_LEVEL: u32 = 3;
 pub mod cut;
 pub mod direct;
 pub mod fate;
+pub mod finite;
 pub mod generation;
 pub mod pack;
 pub mod pattern;

@@ -298,6 +298,12 @@ impl Universe {
         self.rule
     }
 
+    /// Says which generation this state is (a state computed elsewhere,
+    /// as a bounded universe's).
+    pub fn set_generation(&mut self, generation: BigUint) {
+        self.generation = generation;
+    }
+
     /// The generation of this state.
     pub fn generation(&self) -> &BigUint {
         &self.generation

@@ -377,6 +377,22 @@ def cmd_soup(args):
         f.write(text)
 
 
+def record_of(plane, rule):
+    """The figures and cells of one state, as compare reads them."""
+    bbox = plane.bbox()
+    live = plane.cells()
+    text, _, _ = write_rle(live, rule.canonical())
+    return {
+        "population": str(plane.population()),
+        "bbox": None if bbox is None else {
+            "left": str(bbox[0]), "top": str(bbox[1]),
+            "width": str(bbox[2]), "height": str(bbox[3]),
+        },
+        "digest": digest(plane),
+        "rle": text,
+    }
+
+
 def run_records(cells, rule, gens):
     """Run from the cells; the record of each listed generation."""
     last = max(gens)
@@ -387,19 +403,61 @@ def run_records(cells, rule, gens):
         if g:
             step(plane, rule)
         if g in wanted:
-            bbox = plane.bbox()
-            live = plane.cells()
-            text, _, _ = write_rle(live, rule.canonical())
-            records[str(g)] = {
-                "population": str(plane.population()),
-                "bbox": None if bbox is None else {
-                    "left": str(bbox[0]), "top": str(bbox[1]),
-                    "width": str(bbox[2]), "height": str(bbox[3]),
-                },
-                "digest": digest(plane),
-                "rle": text,
-            }
+            records[str(g)] = record_of(plane, rule)
     return records
+
+
+UNIVERSE_RE = re.compile(r"^(torus|bounded) ([0-9]+)x([0-9]+)$")
+
+
+def step_finite(grid, rule, wrap):
+    """One generation of a W x H universe. Independent reference:
+    numpy/scipy. scipy's convolve2d counts the neighbours with the 3x3
+    kernel, its "wrap" boundary joining opposite edges (a torus) or its
+    zero "fill" boundary keeping every cell outside dead (a bounded
+    plane)."""
+    boundary = "wrap" if wrap else "fill"
+    counts = scipy.signal.convolve2d(grid.astype(np.int32), KERNEL, mode="same",
+                                     boundary=boundary, fillvalue=0)
+    return np.where(grid, rule.survive_table[counts], rule.birth_table[counts])
+
+
+def run_records_finite(cells, rule, gens, universe):
+    """Run in a torus or bounded plane whose top-left cell is (0, 0); the
+    record of each listed generation, however large: every state is kept,
+    by its bytes, until one comes again, and a later generation is the one
+    the cycle gives (common practice: a finite system's history ends in a
+    cycle; this finds it by a full table of states, not by the engine's
+    method)."""
+    match = UNIVERSE_RE.match(universe)
+    if not match:
+        sys.exit(f"universe {universe!r}: write torus WxH or bounded WxH")
+    wrap = match.group(1) == "torus"
+    width, height = int(match.group(2)), int(match.group(3))
+    grid = np.zeros((height, width), dtype=bool)
+    for x, y in cells:
+        if not (0 <= x < width and 0 <= y < height):
+            sys.exit(f"cell ({x}, {y}) lies outside the {universe}")
+        grid[y, x] = True
+    states = [grid]
+    seen = {grid.tobytes(): 0}
+    start = period = None
+    last = max(gens)
+    while len(states) <= last:
+        if len(states) > 100_000:
+            sys.exit(f"no state came again within 100000 generations in the {universe}")
+        grid = step_finite(grid, rule, wrap)
+        key = grid.tobytes()
+        if key in seen:
+            start, period = seen[key], len(states) - seen[key]
+            break
+        seen[key] = len(states)
+        states.append(grid)
+    records = {}
+    for g in gens:
+        at = g if g < len(states) else start + (g - start) % period
+        records[str(g)] = record_of(Plane(states[at], 0, 0), rule)
+    return records, period
 
 
 def parse_gens(text):
@@ -414,9 +472,14 @@ def cmd_expect(args):
     with open(args.pattern) as f:
         _, _, _, cells = read_rle(f.read())
     gens = parse_gens(args.gens)
-    records = run_records(cells, rule, gens)
+    period = None
+    if args.universe in (None, "plane"):
+        records = run_records(cells, rule, gens)
+    else:
+        records, period = run_records_finite(cells, rule, gens, args.universe)
     with open(args.out, "w") as f:
-        json.dump({"rule": rule.canonical(), "pattern": args.pattern, "generations": records}, f)
+        json.dump({"rule": rule.canonical(), "pattern": args.pattern, "generations": records,
+                   "period": period}, f)
         f.write("\n")
 
 
@@ -727,6 +790,23 @@ def cmd_selftest(_args):
             print(f"SELFTEST FAILED: {what}")
             sys.exit(1)
 
+    # Bounded universes, reasoned by hand (common practice). A blinker lying
+    # across the seam of a 5x5 torus (x = 4, 0, 1 in row 0) turns upright
+    # in column 0 (rows 4, 0, 1).
+    life = Rule("B3/S23")
+    grid = np.zeros((5, 5), dtype=bool)
+    grid[0, [4, 0, 1]] = True
+    upright = step_finite(grid, life, wrap=True)
+    check({(int(x), int(y)) for y, x in zip(*np.nonzero(upright))} == {(0, 4), (0, 0), (0, 1)},
+          "a blinker across a torus's seam")
+    # The same row of three on the bottom edge of a bounded 3x2 plane: the
+    # middle keeps two neighbours, the cell above it is born, nothing below.
+    grid = np.zeros((2, 3), dtype=bool)
+    grid[1, :] = True
+    after = step_finite(grid, life, wrap=False)
+    check({(int(x), int(y)) for y, x in zip(*np.nonzero(after))} == {(1, 0), (1, 1)},
+          "a row of three on a bounded plane's edge")
+
     # Digest, from the definition worked by hand.
     # Empty state: the level-3 leaf with no cells, 12 bytes 03 00 00 00 and
     # eight zero bytes (digest definition).
@@ -852,6 +932,7 @@ def main():
     p.add_argument("--rule", required=True)
     p.add_argument("--gens", required=True, help="comma-separated generations, e.g. 0,1,2,100")
     p.add_argument("--out", required=True)
+    p.add_argument("--universe", help="plane (the default), torus WxH or bounded WxH")
     p.set_defaults(func=cmd_expect)
 
     p = sub.add_parser("compare", help="compare deeptime's output with the expected records")

@@ -477,6 +477,8 @@ impl Run<'_> {
             pack_bytes: None,
             region: None,
             picture: None,
+            universe: None,
+            period: None,
         })
     }
 }

@@ -1,0 +1,479 @@
+//! Bounded universes: a torus of W×H cells (its edges wrap) or a bounded
+//! plane of W×H cells (the cells outside stay dead), any size, not only
+//! powers of two. The universe's top-left cell is the pattern's (0, 0).
+//!
+//! A finite universe has finitely many states, so its history ends in a
+//! cycle: it is stepped a generation at a time (bit-parallel, 64 cells a
+//! word) while Brent's cycle finding watches for a state seen before
+//! (compared whole, never by a hash). Once the period is known, a
+//! generation however far off is reached by stepping only the remainder
+//! of the distance modulo the period. HashLife does not serve here: a
+//! bounded plane kills cells at its edge every generation, which breaks
+//! the jumps of 2^k generations its memo is made of.
+
+use std::fmt;
+use std::str::FromStr;
+
+use num_bigint::BigUint;
+use num_traits::{ToPrimitive, Zero};
+
+use crate::pattern::{BuildError, Builder, Pattern};
+use crate::rule::Rule;
+
+/// The largest side of a bounded universe: 2^24 cells.
+pub const MAX_SIDE: u64 = 1 << 24;
+
+/// The largest bounded universe, in cells (the state is kept as a bit
+/// grid, three copies of it while stepping).
+pub const MAX_CELLS: u64 = 1 << 32;
+
+/// Where a pattern lives: the unbounded plane, a torus or a bounded plane.
+#[derive(Clone, Copy, Debug, PartialEq, Eq, Default)]
+pub enum Space {
+    #[default]
+    Plane,
+    Torus {
+        width: u64,
+        height: u64,
+    },
+    Bounded {
+        width: u64,
+        height: u64,
+    },
+}
+
+/// A universe description that cannot be read.
+#[derive(Debug, Clone, PartialEq, Eq, thiserror::Error)]
+#[error("{0}")]
+pub struct SpaceError(String);
+
+impl FromStr for Space {
+    type Err = SpaceError;
+
+    /// `plane`, `torus WxH` or `bounded WxH` (W and H from 1 to 2^24,
+    /// `x` or `×` between them).
+    fn from_str(text: &str) -> Result<Space, SpaceError> {
+        let text = text.trim();
+        if text == "plane" {
+            return Ok(Space::Plane);
+        }
+        let (kind, size) = text.split_once(char::is_whitespace).ok_or_else(|| {
+            SpaceError(format!(
+                "universe {text:?}: write plane, torus WxH or bounded WxH"
+            ))
+        })?;
+        let size = size.trim();
+        let (width, height) = size
+            .split_once(['x', 'X', '×'])
+            .ok_or_else(|| SpaceError(format!("universe {text:?}: the size is WxH, e.g. 10x10")))?;
+        let side = |what: &str, digits: &str| -> Result<u64, SpaceError> {
+            let value: u64 = digits.trim().parse().map_err(|_| {
+                SpaceError(format!(
+                    "universe {text:?}: the {what} {digits:?} is not a whole number"
+                ))
+            })?;
+            if !(1..=MAX_SIDE).contains(&value) {
+                return Err(SpaceError(format!(
+                    "universe {text:?}: the {what} must be from 1 to {MAX_SIDE}"
+                )));
+            }
+            Ok(value)
+        };
+        let (width, height) = (side("width", width)?, side("height", height)?);
+        if width * height > MAX_CELLS {
+            return Err(SpaceError(format!(
+                "universe {text:?}: at most {MAX_CELLS} cells"
+            )));
+        }
+        match kind {
+            "torus" => Ok(Space::Torus { width, height }),
+            "bounded" => Ok(Space::Bounded { width, height }),
+            other => Err(SpaceError(format!(
+                "universe {text:?}: {other:?} is not a kind of universe (plane, torus or bounded)"
+            ))),
+        }
+    }
+}
+
+impl fmt::Display for Space {
+    /// The canonical text, which `from_str` reads back.
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        match self {
+            Space::Plane => write!(f, "plane"),
+            Space::Torus { width, height } => write!(f, "torus {width}x{height}"),
+            Space::Bounded { width, height } => write!(f, "bounded {width}x{height}"),
+        }
+    }
+}
+
+/// Why a pattern cannot be put in a bounded universe.
+#[derive(Debug, Clone, PartialEq, Eq, thiserror::Error)]
+pub enum FiniteError {
+    #[error("the pattern is {width}×{height} cells from its (0, 0), larger than the {space}")]
+    TooLarge {
+        width: u64,
+        height: u64,
+        space: Space,
+    },
+    #[error("the plane is not a bounded universe")]
+    Unbounded,
+}
+
+/// The state of a bounded universe, stepped a generation at a time.
+#[derive(Clone)]
+pub struct Finite {
+    space: Space,
+    rule: Rule,
+    width: usize,
+    height: usize,
+    /// whether the edges wrap (a torus)
+    wrap: bool,
+    /// 64-bit words per row; bits past the width are always 0
+    words: usize,
+    cells: Vec<u64>,
+    /// what the cells are written into while stepping, then swapped in
+    next: Vec<u64>,
+    /// each row with every cell moved one to the east (`west[x]` is
+    /// `cells[x - 1]`) and to the west, remade at every step
+    west: Vec<u64>,
+    east: Vec<u64>,
+    generation: BigUint,
+}
+
+/// What `advance` found out about the universe's history.
+#[derive(Clone, Debug, PartialEq, Eq)]
+pub struct History {
+    /// the period of the cycle the history ends in, once it was seen
+    /// (a multiple of the smallest period is never reported: Brent's
+    /// method gives the smallest)
+    pub period: Option<u64>,
+    /// generations actually stepped
+    pub stepped: u64,
+}
+
+impl Finite {
+    /// The universe `space` holding `pattern` (its (0, 0) at the universe's
+    /// top-left cell) at generation 0.
+    pub fn from_pattern(
+        pattern: &Pattern,
+        rule: Rule,
+        space: Space,
+    ) -> Result<Finite, FiniteError> {
+        let (width, height, wrap) = match space {
+            Space::Plane => return Err(FiniteError::Unbounded),
+            Space::Torus { width, height } => (width, height, true),
+            Space::Bounded { width, height } => (width, height, false),
+        };
+        let (used_width, used_height) = pattern.extent();
+        if used_width > width || used_height > height {
+            return Err(FiniteError::TooLarge {
+                width: used_width,
+                height: used_height,
+                space,
+            });
+        }
+        let (width, height) = (width as usize, height as usize);
+        let words = width.div_ceil(64);
+        let mut finite = Finite {
+            space,
+            rule,
+            width,
+            height,
+            wrap,
+            words,
+            cells: vec![0; words * height],
+            next: vec![0; words * height],
+            west: vec![0; words * height],
+            east: vec![0; words * height],
+            generation: BigUint::zero(),
+        };
+        for (leaf_row, leaves) in pattern.leaf_rows() {
+            for &(leaf_column, bits) in leaves {
+                for bit in 0..64u64 {
+                    if bits >> bit & 1 == 1 {
+                        let x = (leaf_column * 8 + bit % 8) as usize;
+                        let y = (leaf_row * 8 + bit / 8) as usize;
+                        finite.cells[y * words + x / 64] |= 1 << (x % 64);
+                    }
+                }
+            }
+        }
+        Ok(finite)
+    }
+
+    pub fn space(&self) -> Space {
+        self.space
+    }
+
+    pub fn rule(&self) -> Rule {
+        self.rule
+    }
+
+    pub fn generation(&self) -> &BigUint {
+        &self.generation
+    }
+
+    pub fn population(&self) -> u64 {
+        self.cells
+            .iter()
+            .map(|word| u64::from(word.count_ones()))
+            .sum()
+    }
+
+    /// The live cells as a pattern whose (0, 0) is the universe's top-left
+    /// cell (so `origin` places it where the universe is).
+    pub fn to_pattern(&self, budget: u64) -> Result<Pattern, BuildError> {
+        let mut pattern = Builder::new(budget);
+        for y in 0..self.height {
+            for word in 0..self.words {
+                let mut bits = self.cells[y * self.words + word];
+                while bits != 0 {
+                    let bit = bits.trailing_zeros() as u64;
+                    bits &= bits - 1;
+                    pattern.push_run(y as u64, word as u64 * 64 + bit, 1)?;
+                }
+            }
+        }
+        Ok(pattern.finish(None))
+    }
+
+    /// Advances `generations` on, watching for the cycle the history ends
+    /// in; once it is found only the remainder modulo the period is
+    /// stepped. `observe` hears the generations stepped so far, now and
+    /// then.
+    pub fn advance(&mut self, generations: &BigUint, mut observe: impl FnMut(u64)) -> History {
+        let mut left = generations.clone();
+        let mut stepped = 0u64;
+        // Brent: the tortoise waits at powers of two; the hare (this state)
+        // meets it again exactly when it has gone round the cycle.
+        let mut tortoise = self.cells.clone();
+        let (mut power, mut lap) = (1u64, 0u64);
+        let mut period = None;
+        while !left.is_zero() {
+            self.step();
+            stepped += 1;
+            left -= 1u32;
+            lap += 1;
+            if stepped.is_multiple_of(4096) {
+                observe(stepped);
+            }
+            if self.cells == tortoise {
+                period = Some(lap);
+                break;
+            }
+            if lap == power {
+                tortoise.clone_from(&self.cells);
+                power *= 2;
+                lap = 0;
+            }
+        }
+        if let Some(period) = period {
+            let rest = (&left % period).to_u64().expect("below the period");
+            self.generation += &left - rest;
+            for _ in 0..rest {
+                self.step();
+                stepped += 1;
+            }
+        }
+        History { period, stepped }
+    }
+
+    /// One generation.
+    pub fn step(&mut self) {
+        let (words, width) = (self.words, self.width);
+        let last_mask = if width % 64 == 0 {
+            u64::MAX
+        } else {
+            (1u64 << (width % 64)) - 1
+        };
+        let last_bit = (width - 1) % 64;
+        // Each row moved one cell east and one west, with the cell that
+        // falls off one edge coming in at the other on a torus.
+        for y in 0..self.height {
+            let row = &self.cells[y * words..(y + 1) * words];
+            let first = row[0] & 1;
+            let end = row[words - 1] >> last_bit & 1;
+            let west = &mut self.west[y * words..(y + 1) * words];
+            let east = &mut self.east[y * words..(y + 1) * words];
+            for at in 0..words {
+                let below = if at > 0 { row[at - 1] >> 63 } else { 0 };
+                let above = if at + 1 < words { row[at + 1] << 63 } else { 0 };
+                west[at] = row[at] << 1 | below;
+                east[at] = row[at] >> 1 | above;
+            }
+            west[words - 1] &= last_mask;
+            if self.wrap {
+                west[0] |= end;
+                east[words - 1] |= first << last_bit;
+            }
+        }
+        let (birth, survive) = (self.rule.birth_mask(), self.rule.survive_mask());
+        let (height, wrap) = (self.height as isize, self.wrap);
+        for y in 0..self.height {
+            let neighbour_row = |dy: isize| -> Option<usize> {
+                let row = y as isize + dy;
+                if (0..height).contains(&row) {
+                    Some(row as usize)
+                } else if wrap {
+                    Some(row.rem_euclid(height) as usize)
+                } else {
+                    None
+                }
+            };
+            let (up, down) = (neighbour_row(-1), neighbour_row(1));
+            for at in 0..words {
+                let word =
+                    |grid: &Vec<u64>, row: Option<usize>| row.map_or(0, |r| grid[r * words + at]);
+                let inputs = [
+                    word(&self.west, up),
+                    word(&self.cells, up),
+                    word(&self.east, up),
+                    word(&self.west, Some(y)),
+                    word(&self.east, Some(y)),
+                    word(&self.west, down),
+                    word(&self.cells, down),
+                    word(&self.east, down),
+                ];
+                // The neighbour counts, bit-sliced: count = s0 + 2 s1 + 4 s2 + 8 s3.
+                let mut sum = [0u64; 4];
+                for input in inputs {
+                    let mut carry = input;
+                    for slice in sum.iter_mut() {
+                        let next = *slice & carry;
+                        *slice ^= carry;
+                        carry = next;
+                    }
+                }
+                let (mut born, mut kept) = (0u64, 0u64);
+                for count in 0..=8u32 {
+                    let born_here = birth >> count & 1 == 1;
+                    let kept_here = survive >> count & 1 == 1;
+                    if !born_here && !kept_here {
+                        continue;
+                    }
+                    let mut equal = u64::MAX;
+                    for (bit, slice) in sum.iter().enumerate() {
+                        equal &= if count >> bit & 1 == 1 {
+                            *slice
+                        } else {
+                            !*slice
+                        };
+                    }
+                    if born_here {
+                        born |= equal;
+                    }
+                    if kept_here {
+                        kept |= equal;
+                    }
+                }
+                let alive = self.cells[y * words + at];
+                let mut next = alive & kept | !alive & born;
+                if at + 1 == words {
+                    next &= last_mask;
+                }
+                self.next[y * words + at] = next;
+            }
+        }
+        std::mem::swap(&mut self.cells, &mut self.next);
+        self.generation += 1u32;
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn finite(rle: &str, rule: &str, space: &str) -> Finite {
+        let pattern = crate::pattern::read_pattern(rle.as_bytes(), 1 << 24).unwrap();
+        Finite::from_pattern(&pattern, rule.parse().unwrap(), space.parse().unwrap()).unwrap()
+    }
+
+    fn cells(finite: &Finite) -> Vec<(usize, usize)> {
+        let mut out = Vec::new();
+        for y in 0..finite.height {
+            for x in 0..finite.width {
+                if finite.cells[y * finite.words + x / 64] >> (x % 64) & 1 == 1 {
+                    out.push((x, y));
+                }
+            }
+        }
+        out
+    }
+
+    #[test]
+    fn universes_are_read_and_written_back() {
+        for text in ["plane", "torus 10x10", "bounded 37x23", "torus 1x16777216"] {
+            let space: Space = text.parse().unwrap();
+            assert_eq!(space.to_string(), text);
+        }
+        assert_eq!(
+            "torus 3×4".parse::<Space>().unwrap(),
+            Space::Torus {
+                width: 3,
+                height: 4
+            }
+        );
+        for bad in [
+            "",
+            "torus",
+            "torus 10",
+            "torus 0x5",
+            "sphere 4x4",
+            "bounded 4xq",
+            "torus 16777217x1",
+        ] {
+            assert!(bad.parse::<Space>().is_err(), "{bad}");
+        }
+    }
+
+    #[test]
+    fn a_glider_on_a_ten_by_ten_torus_is_back_after_forty_generations() {
+        // Common practice: a glider moves one cell diagonally every four
+        // generations, so on a 10×10 torus it is back after 40, and (from
+        // the issue) at 40·10^100 too.
+        let mut glider = finite("x = 3, y = 3\nbo$2bo$3o!\n", "B3/S23", "torus 10x10");
+        let start = cells(&glider);
+        let history = glider.advance(&BigUint::from(40u32), |_| {});
+        assert_eq!(cells(&glider), start);
+        assert_eq!(history.stepped, 40);
+        let far = BigUint::from(40u32) * BigUint::from(10u32).pow(100);
+        let mut glider = finite("x = 3, y = 3\nbo$2bo$3o!\n", "B3/S23", "torus 10x10");
+        let history = glider.advance(&far, |_| {});
+        assert_eq!(history.period, Some(40));
+        assert!(history.stepped < 200, "{history:?}");
+        assert_eq!(cells(&glider), start);
+        assert_eq!(glider.generation(), &far);
+    }
+
+    #[test]
+    fn the_edges_wrap_on_a_torus_and_kill_on_a_bounded_plane() {
+        // Reasoned by hand: a blinker lying across the wrap seam of a 5×5
+        // torus still blinks; against the edge of a bounded plane its
+        // outer cells lack neighbours beyond the edge.
+        let mut torus = finite("x = 5, y = 1\n2o2bo!\n", "B3/S23", "torus 5x5");
+        torus.step();
+        assert_eq!(cells(&torus), vec![(0, 0), (0, 1), (0, 4)]);
+        // A block in the corner of a bounded plane is still a block.
+        let mut block = finite("x = 2, y = 2\n2o$2o!\n", "B3/S23", "bounded 7x3");
+        block.step();
+        assert_eq!(cells(&block), vec![(0, 0), (1, 0), (0, 1), (1, 1)]);
+        // A blinker standing on the bottom edge of a bounded plane: its
+        // middle cell has two live neighbours, the cells beside it three,
+        // nothing below the edge is born; the next row up gets a cell.
+        let mut edge = finite("x = 3, y = 2\n3b$3o!\n", "B3/S23", "bounded 3x2");
+        edge.step();
+        assert_eq!(cells(&edge), vec![(1, 0), (1, 1)]);
+    }
+
+    #[test]
+    fn a_pattern_larger_than_the_universe_is_refused() {
+        let pattern = crate::pattern::read_pattern(b"x = 3, y = 3\nbo$2bo$3o!\n", 1 << 20).unwrap();
+        let error = Finite::from_pattern(&pattern, Rule::LIFE, "torus 2x10".parse().unwrap())
+            .err()
+            .unwrap();
+        assert_eq!(
+            error.to_string(),
+            "the pattern is 3×3 cells from its (0, 0), larger than the torus 2x10"
+        );
+    }
+}
