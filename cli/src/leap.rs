@@ -33,16 +33,19 @@ pub fn run(args: LeapArgs) -> anyhow::Result<()> {
     let space = input::space(args.universe.as_deref(), "--universe")?;
 
     let started = Instant::now();
-    let (mut universe, period) = if space == Space::Plane {
-        let mut universe = input::build(loaded, rule, budget)?;
+    let origin = loaded.pattern.origin.unwrap_or((0, 0));
+    let name = loaded.name.clone();
+    let mut universe = input::build(loaded, rule, budget)?;
+    let period = if space == Space::Plane {
         let line = progress::Line::start("advancing");
         let mut observe = |progress: &Progress| line.update(progress);
         let advanced = universe.advance(&generations, Some(&mut observe));
         line.finish();
         advanced.with_context(|| format!("advancing {} generations", args.gens))?;
-        (universe, None)
+        None
     } else {
-        input::advance_bounded(loaded, rule, space, &generations, budget)?
+        input::advance_in(&mut universe, space, origin, &generations, budget)
+            .with_context(|| format!("{name} in the {space}"))?
     };
     let elapsed = started.elapsed();
 

@@ -343,7 +343,7 @@ fn from_stored(
         pack_bytes: None,
         region: region_report,
         picture,
-        universe: None,
+        universe: manifest.universe.clone(),
         period: None,
     }))
 }

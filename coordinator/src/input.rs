@@ -89,33 +89,38 @@ pub fn space(text: Option<&str>, what: &str) -> Result<Space, BadInput> {
     }
 }
 
-/// A bounded universe's end state after `generations`: the pattern put in
-/// `space` (its (0, 0) at the universe's top-left cell), stepped with the
-/// history's cycle found and jumped over, then given back as a plane
-/// state holding the same cells where they are, so that figures, digests,
-/// pictures and RLE come from where they come for the plane. Also the
-/// period, when the run saw the cycle.
-pub fn advance_bounded(
-    loaded: Loaded,
-    rule: Rule,
+/// Advances `universe`, the state of a bounded universe held as a plane
+/// state of its cells (so figures, digests, pictures, RLE and checkpoints
+/// come from where they come for the plane), by `step` generations in
+/// `space`, whose top-left cell stands at `origin` on the plane. Returns
+/// the period of the cycle the history ends in, when it was seen.
+pub fn advance_in(
+    universe: &mut Universe,
     space: Space,
-    generations: &num_bigint::BigUint,
+    origin: (i64, i64),
+    step: &num_bigint::BigUint,
     budget: u64,
-) -> anyhow::Result<(Universe, Option<u64>)> {
+) -> anyhow::Result<Option<u64>> {
     use anyhow::Context;
-    let mut finite = deeptime_engine::finite::Finite::from_pattern(&loaded.pattern, rule, space)
-        .map_err(|error| BadInput(format!("{}: {error}", loaded.name)))?;
-    let origin = loaded.pattern.origin;
-    drop(loaded);
+    let (left, top) = origin;
+    let rule = universe.rule();
+    let cells = universe.cells().context("the bounded universe's cells")?;
+    let mut finite = deeptime_engine::finite::Finite::from_cells(
+        rule,
+        space,
+        cells.into_iter().map(|(x, y)| (x - left, y - top)),
+        universe.generation().clone(),
+    )
+    .map_err(|error| BadInput(error.to_string()))?;
     let line = crate::progress::Line::start("stepping");
-    let history = finite.advance(generations, |stepped| line.note(stepped));
+    let history = finite.advance(step, |stepped| line.note(stepped));
     line.finish();
     let mut pattern = finite
         .to_pattern(budget)
         .context("the bounded universe's cells")?;
-    pattern.origin = origin;
-    let mut universe =
+    pattern.origin = Some(origin);
+    *universe =
         Universe::from_pattern(&pattern, rule, budget).context("the bounded universe's cells")?;
     universe.set_generation(finite.generation().clone());
-    Ok((universe, history.period))
+    Ok(history.period)
 }

@@ -5,6 +5,7 @@
 use std::path::{Path, PathBuf};
 use std::time::Duration;
 
+use deeptime_engine::finite::Space;
 use deeptime_engine::generation::parse_generations;
 use num_bigint::BigUint;
 use num_traits::Zero;
@@ -24,6 +25,7 @@ struct JobFile {
     rule: Option<String>,
     target: String,
     memory: Option<String>,
+    universe: Option<String>,
     checkpoint: CheckpointFile,
     timeline: Option<TimelineFile>,
 }
@@ -62,6 +64,8 @@ pub struct Job {
     /// timeline samples at the multiples of this generation count between
     /// the checkpoints (None: the checkpoints' figures only)
     pub timeline_every: Option<BigUint>,
+    /// where the pattern lives (the unbounded plane unless the job says)
+    pub universe: Space,
 }
 
 impl Job {
@@ -118,6 +122,12 @@ impl Job {
                 Some(every)
             }
         };
+        let universe = match &file.universe {
+            None => Space::Plane,
+            Some(text) => text
+                .parse()
+                .map_err(|error| BadInput(format!("{place}: {error}")))?,
+        };
         let wall_clock = match &file.checkpoint.wall_clock {
             None => None,
             Some(text) => Some(parse_duration(text).ok_or_else(|| {
@@ -164,6 +174,7 @@ impl Job {
             wall_clock,
             keep: file.checkpoint.keep,
             timeline_every,
+            universe,
         })
     }
 }

@@ -7,7 +7,7 @@
 use std::time::{Duration, Instant};
 
 use anyhow::Context;
-use deeptime_engine::{ContentId, KnownQuads, Progress, Universe};
+use deeptime_engine::{KnownQuads, Progress, Universe};
 use num_bigint::BigUint;
 use num_traits::{One, ToPrimitive, Zero};
 
@@ -17,7 +17,8 @@ use crate::numbers::for_people;
 use crate::report::Report;
 use crate::{input, memory, progress};
 use deeptime_engine::BadInput;
-use deeptime_storage::checkpoint::{Checkpoints, Manifest, TimelineSample};
+use deeptime_engine::finite::Space;
+use deeptime_storage::checkpoint::{Checkpoints, Manifest, RunIdentity, TimelineSample};
 
 /// `deeptime run`: runs the job and prints its figures.
 pub fn run(args: RunArgs) -> anyhow::Result<()> {
@@ -31,15 +32,22 @@ pub fn run_job(path: &std::path::Path) -> anyhow::Result<Report> {
     let budget = memory::budget(job.memory.as_deref())?;
     let loaded = input::read(&job.pattern, budget)?;
     let rule = input::rule(job.rule.as_deref(), &loaded)?;
+    // A bounded universe's top-left cell: the pattern's (0, 0).
+    let origin = loaded.pattern.origin.unwrap_or((0, 0));
     let started = Instant::now();
     let mut fresh = input::build(loaded, rule, budget)?;
     let pattern_digest = fresh.digest()?;
+    let identity = RunIdentity {
+        name: &job.name,
+        pattern: &pattern_digest,
+        universe: job.universe,
+    };
 
     let checkpoints = Checkpoints::new(deeptime_storage::open(&job.checkpoint_dir)?);
     // One writer at a time: held until the run ends.
     let _lock = checkpoints.lock()?;
     let (mut universe, mut previous, mut known) =
-        resume_or_start(&checkpoints, &job, fresh, &pattern_digest, budget)?;
+        resume_or_start(&checkpoints, &job, fresh, &identity, budget)?;
     if universe.generation() > &job.target {
         return Err(BadInput(format!(
             "the stored run is at generation {}, past the job's target {}",
@@ -88,7 +96,12 @@ pub fn run_job(path: &std::path::Path) -> anyhow::Result<Report> {
         );
         let mut observe = |progress: &Progress| line.update_part(before, span, progress, &note);
         let started_step = Instant::now();
-        let advanced = universe.advance(&step, Some(&mut observe));
+        let advanced = match job.universe {
+            Space::Plane => universe
+                .advance(&step, Some(&mut observe))
+                .map_err(Into::into),
+            space => input::advance_in(&mut universe, space, origin, &step, budget).map(|_| ()),
+        };
         advanced
             .with_context(|| format!("advancing {} generations", for_people(&step.to_string())))?;
         let took = started_step.elapsed();
@@ -105,13 +118,8 @@ pub fn run_job(path: &std::path::Path) -> anyhow::Result<Report> {
         if universe.generation() != &stop && !due {
             continue;
         }
-        let manifest = checkpoints.write(
-            &mut universe,
-            previous.as_ref(),
-            &mut known,
-            &job.name,
-            &pattern_digest,
-        )?;
+        let manifest =
+            checkpoints.write(&mut universe, previous.as_ref(), &mut known, &identity)?;
         checkpoints.put_samples(&manifest, &samples)?;
         samples.clear();
         last_checkpoint = Instant::now();
@@ -123,7 +131,11 @@ pub fn run_job(path: &std::path::Path) -> anyhow::Result<Report> {
         }
     }
     line.finish();
-    Report::of(&mut universe, started.elapsed())
+    let mut report = Report::of(&mut universe, started.elapsed())?;
+    if job.universe != Space::Plane {
+        report.universe = Some(job.universe.to_string());
+    }
+    Ok(report)
 }
 
 /// The run's state to go on from: the newest checkpoint that reads back
@@ -133,7 +145,7 @@ pub fn resume_or_start(
     checkpoints: &Checkpoints,
     job: &Job,
     mut fresh: Universe,
-    pattern_digest: &ContentId,
+    identity: &RunIdentity<'_>,
     budget: u64,
 ) -> anyhow::Result<(Universe, Option<Manifest>, KnownQuads)> {
     let rule = fresh.rule();
@@ -148,7 +160,7 @@ pub fn resume_or_start(
     Ok(match resumed {
         Some(stored) => {
             let manifest = stored.manifest;
-            check_identity(&manifest, job, &rule.to_string(), pattern_digest)?;
+            check_identity(&manifest, job, &rule.to_string(), identity)?;
             eprintln!(
                 "deeptime: resuming {} from checkpoint {} at generation {}",
                 job.name,
@@ -159,8 +171,7 @@ pub fn resume_or_start(
         }
         None => {
             let mut known = KnownQuads::default();
-            let manifest =
-                checkpoints.write(&mut fresh, None, &mut known, &job.name, pattern_digest)?;
+            let manifest = checkpoints.write(&mut fresh, None, &mut known, identity)?;
             (fresh, Some(manifest), known)
         }
     })
@@ -172,13 +183,23 @@ pub fn check_identity(
     manifest: &Manifest,
     job: &Job,
     rule: &str,
-    pattern_digest: &ContentId,
+    identity: &RunIdentity<'_>,
 ) -> anyhow::Result<()> {
+    let pattern_digest = identity.pattern;
     if manifest.rule != rule {
         return Err(BadInput(format!(
             "{}: the stored run uses rule {}, the job now says {rule}; use another checkpoint.dir",
             job.checkpoint_dir.display(),
             manifest.rule
+        ))
+        .into());
+    }
+    let universe = identity.universe.to_string();
+    let stored = manifest.universe.as_deref().unwrap_or("plane");
+    if stored != universe {
+        return Err(BadInput(format!(
+            "{}: the stored run lives in the {stored}, the job now says {universe}; use another checkpoint.dir",
+            job.checkpoint_dir.display()
         ))
         .into());
     }

@@ -115,6 +115,8 @@ pub enum FiniteError {
         height: u64,
         space: Space,
     },
+    #[error("a live cell {x}, {y} from the universe's top-left cell lies outside the {space}")]
+    Outside { x: i64, y: i64, space: Space },
     #[error("the plane is not a bounded universe")]
     Unbounded,
 }
@@ -159,22 +161,57 @@ impl Finite {
         rule: Rule,
         space: Space,
     ) -> Result<Finite, FiniteError> {
-        let (width, height, wrap) = match space {
-            Space::Plane => return Err(FiniteError::Unbounded),
-            Space::Torus { width, height } => (width, height, true),
-            Space::Bounded { width, height } => (width, height, false),
-        };
+        let mut finite = Finite::empty(rule, space)?;
         let (used_width, used_height) = pattern.extent();
-        if used_width > width || used_height > height {
+        if used_width > finite.width as u64 || used_height > finite.height as u64 {
             return Err(FiniteError::TooLarge {
                 width: used_width,
                 height: used_height,
                 space,
             });
         }
-        let (width, height) = (width as usize, height as usize);
+        for (leaf_row, leaves) in pattern.leaf_rows() {
+            for &(leaf_column, bits) in leaves {
+                for bit in 0..64u64 {
+                    if bits >> bit & 1 == 1 {
+                        finite.set(
+                            (leaf_column * 8 + bit % 8) as usize,
+                            (leaf_row * 8 + bit / 8) as usize,
+                        );
+                    }
+                }
+            }
+        }
+        Ok(finite)
+    }
+
+    /// The universe `space` holding `cells` (from its top-left cell) at
+    /// `generation`.
+    pub fn from_cells(
+        rule: Rule,
+        space: Space,
+        cells: impl IntoIterator<Item = (i64, i64)>,
+        generation: BigUint,
+    ) -> Result<Finite, FiniteError> {
+        let mut finite = Finite::empty(rule, space)?;
+        for (x, y) in cells {
+            if !(0..finite.width as i64).contains(&x) || !(0..finite.height as i64).contains(&y) {
+                return Err(FiniteError::Outside { x, y, space });
+            }
+            finite.set(x as usize, y as usize);
+        }
+        finite.generation = generation;
+        Ok(finite)
+    }
+
+    fn empty(rule: Rule, space: Space) -> Result<Finite, FiniteError> {
+        let (width, height, wrap) = match space {
+            Space::Plane => return Err(FiniteError::Unbounded),
+            Space::Torus { width, height } => (width as usize, height as usize, true),
+            Space::Bounded { width, height } => (width as usize, height as usize, false),
+        };
         let words = width.div_ceil(64);
-        let mut finite = Finite {
+        Ok(Finite {
             space,
             rule,
             width,
@@ -186,19 +223,11 @@ impl Finite {
             west: vec![0; words * height],
             east: vec![0; words * height],
             generation: BigUint::zero(),
-        };
-        for (leaf_row, leaves) in pattern.leaf_rows() {
-            for &(leaf_column, bits) in leaves {
-                for bit in 0..64u64 {
-                    if bits >> bit & 1 == 1 {
-                        let x = (leaf_column * 8 + bit % 8) as usize;
-                        let y = (leaf_row * 8 + bit / 8) as usize;
-                        finite.cells[y * words + x / 64] |= 1 << (x % 64);
-                    }
-                }
-            }
-        }
-        Ok(finite)
+        })
+    }
+
+    fn set(&mut self, x: usize, y: usize) {
+        self.cells[y * self.words + x / 64] |= 1 << (x % 64);
     }
 
     pub fn space(&self) -> Space {

@@ -6,6 +6,7 @@
 
 use std::collections::HashSet;
 
+use deeptime_engine::finite::Space;
 use deeptime_engine::pack::{Checksum, PackError, QuadAt, WrittenPack, pack_name};
 use deeptime_engine::rule::Rule;
 use deeptime_engine::stored::{StoredPack, StoredState};
@@ -145,6 +146,19 @@ pub struct Manifest {
     pub packs: Vec<PackEntry>,
     /// seconds since 1970 when the manifest was written
     pub written: u64,
+    /// the bounded universe the run lives in (`torus WxH`, `bounded WxH`);
+    /// absent on the unbounded plane
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub universe: Option<String>,
+}
+
+/// What a run's checkpoints say it is: the job's name, the digest of its
+/// pattern at generation 0 and the universe it lives in.
+#[derive(Clone, Copy, Debug)]
+pub struct RunIdentity<'a> {
+    pub name: &'a str,
+    pub pattern: &'a ContentId,
+    pub universe: Space,
 }
 
 /// A pack a manifest needs.
@@ -623,8 +637,7 @@ impl Checkpoints {
         universe: &mut Universe,
         previous: Option<&Manifest>,
         known: &mut KnownQuads,
-        name: &str,
-        pattern: &ContentId,
+        run: &RunIdentity<'_>,
     ) -> Result<Manifest> {
         let mut packs = previous.map(|m| m.packs.clone()).unwrap_or_default();
         if packs.len() >= STAND_ALONE_AFTER {
@@ -675,9 +688,9 @@ impl Checkpoints {
                 format: FORMAT.to_string(),
                 version: VERSION,
                 sequence: 0,
-                name: name.to_string(),
+                name: run.name.to_string(),
                 rule: universe.rule().to_string(),
-                pattern: pattern.to_string(),
+                pattern: run.pattern.to_string(),
                 generation: universe.generation().to_string(),
                 root: digest.to_string(),
                 root_pack: root_at.pack,
@@ -686,6 +699,7 @@ impl Checkpoints {
                 bbox: universe.bounding_box().as_ref().map(BoxText::of),
                 packs,
                 written: 0,
+                universe: (run.universe != Space::Plane).then(|| run.universe.to_string()),
             },
         )
     }

@@ -471,9 +471,14 @@ fn checkpoints(settings: &Settings) -> anyhow::Result<Vec<Figure>> {
     ))));
     let checkpoints = Checkpoints::new(Box::new(counted.clone()));
     let digest = universe.digest()?;
+    let identity = deeptime_storage::checkpoint::RunIdentity {
+        name: "bench",
+        pattern: &digest,
+        universe: deeptime_engine::finite::Space::Plane,
+    };
     let mut known = deeptime_engine::KnownQuads::default();
     let (full, full_time) =
-        timed(|| Ok(checkpoints.write(&mut universe, None, &mut known, "bench", &digest)?))?;
+        timed(|| Ok(checkpoints.write(&mut universe, None, &mut known, &identity)?))?;
     let full_bytes = full.pack_bytes();
     let before = counted.bytes_read();
     let (mut loaded, resume_time) = timed(|| Ok(checkpoints.load(full.clone(), BUDGET)?))?;
@@ -508,9 +513,8 @@ fn checkpoints(settings: &Settings) -> anyhow::Result<Vec<Figure>> {
     );
     // Incremental: a few generations on, only what changed is written.
     universe.advance(&BigUint::from(16u32), None)?;
-    let (incremental, incremental_time) = timed(|| {
-        Ok(checkpoints.write(&mut universe, Some(&full), &mut known, "bench", &digest)?)
-    })?;
+    let (incremental, incremental_time) =
+        timed(|| Ok(checkpoints.write(&mut universe, Some(&full), &mut known, &identity)?))?;
     let new_bytes = incremental.pack_bytes() - full_bytes;
     let label = format!("{side}² soup ({} quads)", super::compact(quads as f64));
     Ok(vec![

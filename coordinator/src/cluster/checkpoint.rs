@@ -57,13 +57,7 @@ impl Run<'_> {
             None => {
                 let mut universe = self.gather(state).await?;
                 let manifest = tokio::task::block_in_place(|| {
-                    checkpoints.write(
-                        &mut universe,
-                        previous.as_ref(),
-                        known,
-                        &self.job.name,
-                        &self.pattern_digest,
-                    )
+                    checkpoints.write(&mut universe, previous.as_ref(), known, &self.identity())
                 })?;
                 let mut written = self.written.lock().expect("written");
                 written.gathered += 1;
@@ -265,6 +259,7 @@ impl Run<'_> {
                     }),
                     packs,
                     written: 0,
+                    universe: None,
                 },
             )
         })?;

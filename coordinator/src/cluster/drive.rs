@@ -24,7 +24,7 @@ use crate::numbers::for_people;
 use crate::report::{BoxReport, EngineReport, Report};
 use deeptime_engine::top::Top;
 use deeptime_node::fetch::Peers;
-use deeptime_storage::checkpoint::{Checkpoints, Manifest};
+use deeptime_storage::checkpoint::{Checkpoints, Manifest, RunIdentity};
 
 /// Everything a cluster run works with.
 pub struct Run<'a> {
@@ -92,6 +92,15 @@ enum Ended {
 }
 
 impl Run<'_> {
+    /// What this run's checkpoints say it is (a cluster runs on the plane).
+    pub(super) fn identity(&self) -> RunIdentity<'_> {
+        RunIdentity {
+            name: &self.job.name,
+            pattern: &self.pattern_digest,
+            universe: deeptime_engine::finite::Space::Plane,
+        }
+    }
+
     pub(super) fn say(&self, state: &str) {
         self.board.status.lock().expect("board").state = state.to_string();
     }
@@ -111,7 +120,7 @@ impl Run<'_> {
                     &checkpoints,
                     self.job,
                     fresh,
-                    &self.pattern_digest,
+                    &self.identity(),
                     self.budget,
                 )
             })?;

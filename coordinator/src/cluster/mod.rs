@@ -158,6 +158,14 @@ pub async fn coordinate(
 ) -> anyhow::Result<()> {
     let started = Instant::now();
     let job = Job::load(&args.job)?;
+    if job.universe != deeptime_engine::finite::Space::Plane {
+        return Err(deeptime_engine::BadInput(format!(
+            "{}: the cluster runs jobs on the unbounded plane; a job in a {} runs with deeptime run",
+            args.job.display(),
+            job.universe
+        ))
+        .into());
+    }
     let budget = memory::budget(job.memory.as_deref())?;
     let loaded = input::read(&job.pattern, budget)?;
     let rule = input::rule(job.rule.as_deref(), &loaded)?;

@@ -88,7 +88,7 @@ impl Run<'_> {
                 &manifest,
                 self.job,
                 &self.members.terms.rule,
-                &self.pattern_digest,
+                &self.identity(),
             )?;
             let attempt = if self.nodes_write() {
                 match self.load_on_nodes(checkpoints, &manifest).await {

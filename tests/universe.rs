@@ -1,0 +1,186 @@
+//! Bounded universes (`--universe`, a job's `universe`) through the real
+//! binary: stored runs of a torus resume with the same figures as `leap`
+//! and the independent reference, a stored run's universe cannot change
+//! under it, and the commands that do not take bounded universes yet say
+//! so. (Cell-by-cell checks against the reference are in reference.rs.)
+
+use std::path::Path;
+
+use deeptime_tests::{run_deeptime, run_reference, temp_dir, write_job};
+
+/// `job.toml` in `dir` over `pattern` in `universe`: checkpoints every
+/// `every`, to `target`.
+fn write_universe_job(dir: &Path, universe: &str, target: &str, every: &str) -> std::path::PathBuf {
+    let path = write_job(dir, "job.toml", "ring", "soup.rle", "B3/S23", target, every);
+    let text = std::fs::read_to_string(&path).unwrap();
+    let text = text.replace(
+        "[checkpoint]",
+        &format!("universe = \"{universe}\"\n[checkpoint]"),
+    );
+    std::fs::write(&path, text).unwrap();
+    path
+}
+
+fn report(run: &deeptime_tests::Run) -> serde_json::Value {
+    run.assert_success();
+    serde_json::from_str(run.stdout.trim()).unwrap()
+}
+
+#[test]
+fn a_stored_run_on_a_torus_resumes_with_the_figures_of_leap_and_of_the_reference() {
+    let dir = temp_dir();
+    let pattern = dir.path().join("soup.rle");
+    run_reference(
+        [
+            "soup",
+            "--rule",
+            "B3/S23",
+            "--seed",
+            "7",
+            "--size",
+            "19",
+            "--density",
+            "0.4",
+            "--out",
+        ]
+        .iter()
+        .map(|s| s.to_string())
+        .chain([pattern.display().to_string()]),
+    )
+    .assert_success();
+    let universe = "torus 37x23";
+    let far = "1000000000000000000000000000000000000037";
+
+    // Part of the way, then on to a far target: the second run resumes
+    // from the first's newest checkpoint.
+    let job = write_universe_job(dir.path(), universe, "1000", "250");
+    report(&run_deeptime([
+        "run".as_ref(),
+        job.as_os_str(),
+        "--json".as_ref(),
+    ]));
+    let job = write_universe_job(dir.path(), universe, far, "3*10^38");
+    let resumed = run_deeptime(["run".as_ref(), job.as_os_str(), "--json".as_ref()]);
+    assert!(
+        resumed.stderr.contains("resuming ring"),
+        "{}",
+        resumed.describe()
+    );
+    let stored = report(&resumed);
+    assert_eq!(stored["universe"], universe);
+
+    let leap = report(&run_deeptime([
+        "leap".as_ref(),
+        pattern.as_os_str(),
+        "--gens".as_ref(),
+        far.as_ref(),
+        "--universe".as_ref(),
+        universe.as_ref(),
+        "--json".as_ref(),
+    ]));
+    for field in ["generation", "population", "bbox", "digest"] {
+        assert_eq!(stored[field], leap[field], "{field}");
+    }
+    // Independent reference: numpy/scipy, cycles by a full table of states.
+    let expected = dir.path().join("expected.json");
+    run_reference([
+        "expect".to_string(),
+        "--pattern".into(),
+        pattern.display().to_string(),
+        "--rule".into(),
+        "B3/S23".into(),
+        "--gens".into(),
+        far.into(),
+        "--universe".into(),
+        universe.into(),
+        "--out".into(),
+        expected.display().to_string(),
+    ])
+    .assert_success();
+    let expected: serde_json::Value =
+        serde_json::from_str(&std::fs::read_to_string(&expected).unwrap()).unwrap();
+    let record = &expected["generations"][far];
+    assert_eq!(stored["population"], record["population"]);
+    assert_eq!(stored["digest"], record["digest"]);
+
+    // Every checkpoint reads back whole; a snapshot between them says the
+    // universe.
+    let runs = dir.path().join("runs");
+    run_deeptime(["verify".as_ref(), runs.as_os_str()]).assert_success();
+    let snapshot = report(&run_deeptime([
+        "snapshot".as_ref(),
+        runs.as_os_str(),
+        "--gen".as_ref(),
+        "3*10^38".as_ref(),
+        "--json".as_ref(),
+    ]));
+    assert_eq!(snapshot["universe"], universe);
+}
+
+#[test]
+fn a_stored_run_keeps_its_universe_and_bad_universes_are_one_line_errors() {
+    let dir = temp_dir();
+    std::fs::write(dir.path().join("soup.rle"), "x = 3, y = 3\nbo$2bo$3o!\n").unwrap();
+    let job = write_universe_job(dir.path(), "torus 10x10", "100", "50");
+    report(&run_deeptime([
+        "run".as_ref(),
+        job.as_os_str(),
+        "--json".as_ref(),
+    ]));
+    let job = write_universe_job(dir.path(), "bounded 10x10", "200", "50");
+    let changed = run_deeptime(["run".as_ref(), job.as_os_str()]);
+    assert_eq!(changed.code, Some(2), "{}", changed.describe());
+    assert!(
+        changed
+            .stderr
+            .contains("the stored run lives in the torus 10x10, the job now says bounded 10x10"),
+        "{}",
+        changed.describe()
+    );
+
+    let job = write_universe_job(dir.path(), "torus 0x10", "200", "50");
+    let bad = run_deeptime(["run".as_ref(), job.as_os_str()]);
+    assert_eq!(bad.code, Some(2), "{}", bad.describe());
+    assert_eq!(bad.stderr.trim().lines().count(), 1, "{}", bad.describe());
+    assert!(
+        bad.stderr
+            .contains("job.toml: universe \"torus 0x10\": the width must be from 1"),
+        "{}",
+        bad.describe()
+    );
+
+    // A pattern that does not fit is refused, naming the file.
+    let small = run_deeptime([
+        "leap".as_ref(),
+        dir.path().join("soup.rle").as_os_str(),
+        "--gens".as_ref(),
+        "1".as_ref(),
+        "--universe".as_ref(),
+        "torus 2x2".as_ref(),
+    ]);
+    assert_eq!(small.code, Some(2), "{}", small.describe());
+    assert!(
+        small.stderr.contains("soup.rle in the torus 2x2"),
+        "{}",
+        small.describe()
+    );
+
+    // The cluster does not take bounded universes yet, and says so.
+    let job = write_universe_job(dir.path(), "torus 10x10", "200", "50");
+    let cluster = run_deeptime([
+        "coordinator".as_ref(),
+        job.as_os_str(),
+        "--listen".as_ref(),
+        "127.0.0.1:0".as_ref(),
+        "--token-file".as_ref(),
+        dir.path().join("token").as_os_str(),
+    ]);
+    assert_eq!(cluster.code, Some(2), "{}", cluster.describe());
+    assert!(
+        cluster
+            .stderr
+            .contains("the cluster runs jobs on the unbounded plane"),
+        "{}",
+        cluster.describe()
+    );
+}
