@@ -184,3 +184,79 @@ fn a_stored_run_keeps_its_universe_and_bad_universes_are_one_line_errors() {
         cluster.describe()
     );
 }
+
+#[test]
+fn a_timeline_in_a_bounded_universe_matches_the_reference_at_every_sample() {
+    let dir = temp_dir();
+    let pattern = dir.path().join("soup.rle");
+    run_reference(
+        [
+            "soup",
+            "--rule",
+            "B3/S23",
+            "--seed",
+            "11",
+            "--size",
+            "19",
+            "--density",
+            "0.4",
+            "--out",
+        ]
+        .iter()
+        .map(|s| s.to_string())
+        .chain([pattern.display().to_string()]),
+    )
+    .assert_success();
+    let universe = "bounded 31x29";
+    let csv = dir.path().join("timeline.csv");
+    run_deeptime([
+        "timeline".as_ref(),
+        pattern.as_os_str(),
+        "--gens".as_ref(),
+        "10^30".as_ref(),
+        "--every".as_ref(),
+        "10^29".as_ref(),
+        "--universe".as_ref(),
+        universe.as_ref(),
+        "--csv".as_ref(),
+        csv.as_os_str(),
+    ])
+    .assert_success();
+    // Independent reference: numpy/scipy, at the same generations.
+    let gens: Vec<String> = (0..=10u32)
+        .map(|k| {
+            if k == 0 {
+                "0".to_string()
+            } else {
+                format!("{k}{}", "0".repeat(29))
+            }
+        })
+        .collect();
+    let expected = dir.path().join("expected.json");
+    run_reference([
+        "expect".to_string(),
+        "--pattern".into(),
+        pattern.display().to_string(),
+        "--rule".into(),
+        "B3/S23".into(),
+        "--gens".into(),
+        gens.join(","),
+        "--universe".into(),
+        universe.into(),
+        "--out".into(),
+        expected.display().to_string(),
+    ])
+    .assert_success();
+    let expected: serde_json::Value =
+        serde_json::from_str(&std::fs::read_to_string(&expected).unwrap()).unwrap();
+    let text = std::fs::read_to_string(&csv).unwrap();
+    let rows: Vec<&str> = text.lines().skip(1).collect();
+    assert_eq!(rows.len(), gens.len(), "{text}");
+    for (row, generation) in rows.iter().zip(&gens) {
+        let fields: Vec<&str> = row.split(',').collect();
+        let record = &expected["generations"][generation.as_str()];
+        assert_eq!(fields[0], generation, "{row}");
+        assert_eq!(fields[1], record["population"], "{row}");
+        assert_eq!(fields[6], record["digest"], "{row}");
+    }
+}

@@ -11,6 +11,7 @@ use std::path::{Path, PathBuf};
 use std::time::Instant;
 
 use anyhow::Context;
+use deeptime_engine::finite::Space;
 use deeptime_engine::generation::parse_generations;
 use deeptime_engine::{Universe, human_bytes};
 use num_bigint::BigUint;
@@ -80,13 +81,18 @@ pub fn run(args: TimelineArgs) -> anyhow::Result<()> {
     }
     check_outputs(&args)?;
     let budget = memory::budget(args.memory.as_deref())?;
+    let space = input::space(args.universe.as_deref(), "--universe")?;
     let loaded = input::read(&args.pattern, budget)?;
     let rule = input::rule(args.rule.as_deref(), &loaded)?;
+    let origin = loaded.pattern.origin.unwrap_or((0, 0));
 
     let started = Instant::now();
     let mut universe = input::build(loaded, rule, budget)?;
     let line = progress::Line::start("sampling");
-    let sampled = sample(&mut universe, &gens, &every);
+    let sampled = sample(&mut universe, &gens, &every, |universe, step| match space {
+        Space::Plane => universe.advance(step, None).map_err(Into::into),
+        space => input::advance_in(universe, space, origin, step, budget).map(|_| ()),
+    });
     line.finish();
     let samples = sampled?;
     let elapsed = started.elapsed();
@@ -231,6 +237,7 @@ pub fn sample(
     universe: &mut Universe,
     gens: &BigUint,
     every: &BigUint,
+    mut advance: impl FnMut(&mut Universe, &BigUint) -> anyhow::Result<()>,
 ) -> anyhow::Result<Vec<Sample>> {
     let start = universe.generation().clone();
     let end = &start + gens;
@@ -247,9 +254,8 @@ pub fn sample(
             return Ok(samples);
         }
         let step = std::cmp::min(left, every.clone());
-        universe.advance(&step, None).with_context(|| {
-            format!("advancing to generation {}", universe.generation() + &step)
-        })?;
+        let to = universe.generation() + &step;
+        advance(universe, &step).with_context(|| format!("advancing to generation {to}"))?;
     }
 }
 
