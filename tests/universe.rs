@@ -260,3 +260,73 @@ fn a_timeline_in_a_bounded_universe_matches_the_reference_at_every_sample() {
         assert_eq!(fields[6], record["digest"], "{row}");
     }
 }
+
+#[test]
+fn the_fate_in_a_bounded_universe_is_where_the_reference_sees_the_cycle_start() {
+    for (universe, seed) in [("torus 37x23", 5u64), ("bounded 29x41", 6)] {
+        let dir = temp_dir();
+        let pattern = dir.path().join("soup.rle");
+        run_reference(
+            [
+                "soup",
+                "--rule",
+                "B3/S23",
+                "--seed",
+                &seed.to_string(),
+                "--size",
+                "19",
+                "--density",
+                "0.4",
+                "--out",
+            ]
+            .iter()
+            .map(|s| s.to_string())
+            .chain([pattern.display().to_string()]),
+        )
+        .assert_success();
+        let fate = report(&run_deeptime([
+            "fate".as_ref(),
+            pattern.as_os_str(),
+            "--universe".as_ref(),
+            universe.as_ref(),
+            "--json".as_ref(),
+        ]));
+        // Independent reference: numpy/scipy, the first state that comes
+        // again by a full table of states.
+        let expect = |gens: &str| -> serde_json::Value {
+            let expected = dir.path().join("expected.json");
+            run_reference([
+                "expect".to_string(),
+                "--pattern".into(),
+                pattern.display().to_string(),
+                "--rule".into(),
+                "B3/S23".into(),
+                "--gens".into(),
+                gens.into(),
+                "--universe".into(),
+                universe.into(),
+                "--out".into(),
+                expected.display().to_string(),
+            ])
+            .assert_success();
+            serde_json::from_str(&std::fs::read_to_string(&expected).unwrap()).unwrap()
+        };
+        let cycle = expect("10000000000000000000000000000000000000000");
+        let settles_at = cycle["settles_at"].as_u64().unwrap();
+        assert_eq!(fate["settles_at"], settles_at.to_string(), "{universe}");
+        assert_eq!(
+            fate["period"],
+            cycle["period"].as_u64().unwrap().to_string(),
+            "{universe}"
+        );
+        assert!(
+            settles_at > 0,
+            "{universe}: the soup should take a while to settle"
+        );
+        let there = expect(&settles_at.to_string());
+        let record = &there["generations"][settles_at.to_string()];
+        assert_eq!(fate["population"], record["population"], "{universe}");
+        assert_eq!(fate["digest"], record["digest"], "{universe}");
+        assert_eq!(fate["universe"], universe);
+    }
+}

@@ -165,6 +165,11 @@ pub struct FateArgs {
     /// Memory budget for quads, e.g. 2GiB or 512MiB (default: half of this machine's memory)
     #[arg(long, value_name = "SIZE")]
     pub memory: Option<String>,
+
+    /// Where the pattern lives: plane (the default), "torus WxH" or
+    /// "bounded WxH", as for leap (no census there)
+    #[arg(long, value_name = "UNIVERSE")]
+    pub universe: Option<String>,
 }
 
 #[derive(Args, Debug)]

@@ -5,8 +5,10 @@
 use std::time::Instant;
 
 use deeptime_engine::fate::{self, CensusEntry, Fate, FateError, Growth, NotYet};
+use deeptime_engine::finite::{Finite, Space};
 use deeptime_engine::generation::parse_generations;
 use deeptime_engine::human_bytes;
+use num_bigint::BigUint;
 use serde::Serialize;
 
 use crate::cli::FateArgs;
@@ -34,6 +36,9 @@ struct FateReport {
     census: Option<Vec<CensusReport>>,
     unsettled: Option<UnsettledReport>,
     engine: EngineReport,
+    /// the bounded universe the pattern lives in; absent on the plane
+    #[serde(skip_serializing_if = "Option::is_none")]
+    universe: Option<String>,
 }
 
 #[derive(Serialize, Debug)]
@@ -121,8 +126,12 @@ pub fn run(args: FateArgs) -> anyhow::Result<()> {
     let limit =
         parse_generations(limit_text).map_err(|error| BadInput(format!("--limit: {error}")))?;
     let budget = memory::budget(args.memory.as_deref())?;
+    let space = input::space(args.universe.as_deref(), "--universe")?;
     let loaded = input::read(&args.pattern, budget)?;
     let rule = input::rule(args.rule.as_deref(), &loaded)?;
+    if space != Space::Plane {
+        return bounded(loaded, rule, space, &limit, budget, args.json);
+    }
 
     let started = Instant::now();
     let mut universe = input::build(loaded, rule, budget)?;
@@ -152,6 +161,7 @@ pub fn run(args: FateArgs) -> anyhow::Result<()> {
         census: None,
         unsettled: None,
         engine,
+        universe: None,
     };
     match &fate {
         Fate::Settled(settled) => {
@@ -181,6 +191,75 @@ pub fn run(args: FateArgs) -> anyhow::Result<()> {
         }
     }
     if args.json {
+        println!("{}", serde_json::to_string(&report)?);
+    } else {
+        print_summary(&report);
+    }
+    Ok(())
+}
+
+/// The fate of a pattern in a torus or bounded plane: where its history's
+/// cycle starts and its period (`Finite::settle`), and the state there. No
+/// census: objects are named by how they behave on the plane.
+fn bounded(
+    loaded: input::Loaded,
+    rule: deeptime_engine::rule::Rule,
+    space: Space,
+    limit: &BigUint,
+    budget: u64,
+    json: bool,
+) -> anyhow::Result<()> {
+    let started = Instant::now();
+    let origin = loaded.pattern.origin.unwrap_or((0, 0));
+    let settled = Finite::from_pattern(&loaded.pattern, rule, space)
+        .map_err(|error| BadInput(format!("{}: {error}", loaded.name)))?
+        .settle(limit);
+    let mut universe = input::build(loaded, rule, budget)?;
+    let to = settled.map_or(limit.clone(), |(start, _)| BigUint::from(start));
+    input::advance_in(&mut universe, space, origin, &to, budget)?;
+    let population = universe.population().to_string();
+    let bbox = universe.bounding_box().as_ref().map(BoxReport::from);
+    let digest = universe.digest()?.to_string();
+    let mut report = FateReport {
+        rule: rule.to_string(),
+        limit: limit.to_string(),
+        settles_at: None,
+        period: None,
+        displacement: None,
+        period_of: None,
+        population: None,
+        bbox: None,
+        digest: None,
+        shape_digest: None,
+        census: None,
+        unsettled: None,
+        engine: EngineReport::of(&universe, started.elapsed()),
+        universe: Some(space.to_string()),
+    };
+    match settled {
+        Some((start, period)) => {
+            let cells = universe.cells()?;
+            report.settles_at = Some(start.to_string());
+            report.period = Some(period.to_string());
+            report.displacement = Some(Shift::of((0, 0)));
+            report.period_of = Some("whole");
+            report.population = Some(population);
+            report.bbox = bbox;
+            report.digest = Some(digest);
+            report.shape_digest = Some(fate::shape_digest_of(&cells).to_string());
+        }
+        None => {
+            report.unsettled = Some(UnsettledReport {
+                generation: limit.to_string(),
+                population,
+                bbox,
+                digest,
+                reason: "no state came again",
+                growth: None,
+            });
+        }
+    }
+    if json {
         println!("{}", serde_json::to_string(&report)?);
     } else {
         print_summary(&report);
@@ -218,7 +297,11 @@ fn print_summary(report: &FateReport) {
                 report.shape_digest.as_deref().unwrap_or("")
             );
             let census = report.census.as_deref().unwrap_or(&[]);
-            if census.is_empty() {
+            if let Some(universe) = &report.universe {
+                println!(
+                    "universe      {universe} (no census: objects are named as they behave on the plane)"
+                );
+            } else if census.is_empty() {
                 println!("census        nothing left");
             }
             for (at, entry) in census.iter().enumerate() {

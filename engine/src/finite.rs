@@ -253,15 +253,8 @@ impl Finite {
     /// cell (so `origin` places it where the universe is).
     pub fn to_pattern(&self, budget: u64) -> Result<Pattern, BuildError> {
         let mut pattern = Builder::new(budget);
-        for y in 0..self.height {
-            for word in 0..self.words {
-                let mut bits = self.cells[y * self.words + word];
-                while bits != 0 {
-                    let bit = bits.trailing_zeros() as u64;
-                    bits &= bits - 1;
-                    pattern.push_run(y as u64, word as u64 * 64 + bit, 1)?;
-                }
-            }
+        for (x, y) in self.cells() {
+            pattern.push_run(y as u64, x as u64, 1)?;
         }
         Ok(pattern.finish(None))
     }
@@ -305,6 +298,44 @@ impl Finite {
             }
         }
         History { period, stepped }
+    }
+
+    /// When the history from this state settles: the first generation
+    /// (counted from this one) of the cycle it ends in, and its period;
+    /// None when the cycle is not seen within `limit` generations.
+    pub fn settle(&self, limit: &BigUint) -> Option<(u64, u64)> {
+        let mut hare = self.clone();
+        let history = hare.advance(limit, |_| {});
+        let period = history.period?;
+        // The cycle starts where a state and the one a period later first
+        // agree.
+        let (mut early, mut late) = (self.clone(), self.clone());
+        for _ in 0..period {
+            late.step();
+        }
+        let mut start = 0u64;
+        while early.cells != late.cells {
+            early.step();
+            late.step();
+            start += 1;
+        }
+        Some((start, period))
+    }
+
+    /// The live cells, from the universe's top-left cell.
+    pub fn cells(&self) -> Vec<(i64, i64)> {
+        let mut cells = Vec::new();
+        for y in 0..self.height {
+            for word in 0..self.words {
+                let mut bits = self.cells[y * self.words + word];
+                while bits != 0 {
+                    let bit = bits.trailing_zeros() as i64;
+                    bits &= bits - 1;
+                    cells.push((word as i64 * 64 + bit, y as i64));
+                }
+            }
+        }
+        cells
     }
 
     /// One generation.
@@ -492,6 +523,31 @@ mod tests {
         let mut edge = finite("x = 3, y = 2\n3b$3o!\n", "B3/S23", "bounded 3x2");
         edge.step();
         assert_eq!(cells(&edge), vec![(1, 0), (1, 1)]);
+    }
+
+    #[test]
+    fn a_history_settles_where_its_cycle_starts() {
+        // Reasoned by hand: a glider on a 10×10 torus is in its cycle from
+        // the start (period 40); a glider in a bounded 10×10 plane runs
+        // into the corner and leaves a block (common practice: a glider
+        // meeting a wall of dead cells), still from then on.
+        let glider = finite("x = 3, y = 3\nbo$2bo$3o!\n", "B3/S23", "torus 10x10");
+        assert_eq!(glider.settle(&BigUint::from(1000u32)), Some((0, 40)));
+        let walled = finite("x = 3, y = 3\nbo$2bo$3o!\n", "B3/S23", "bounded 10x10");
+        let (start, period) = walled.settle(&BigUint::from(1000u32)).unwrap();
+        assert_eq!(period, 1);
+        // Settled at `start`, not before.
+        let mut at = walled.clone();
+        at.advance(&BigUint::from(start), |_| {});
+        let mut next = at.clone();
+        next.step();
+        assert!(at.cells == next.cells);
+        let mut before = walled.clone();
+        before.advance(&BigUint::from(start - 1), |_| {});
+        let mut after = before.clone();
+        after.step();
+        assert!(before.cells != after.cells);
+        assert_eq!(glider.settle(&BigUint::from(10u32)), None, "not within 10");
     }
 
     #[test]

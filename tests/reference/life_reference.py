@@ -457,7 +457,7 @@ def run_records_finite(cells, rule, gens, universe):
     for g in gens:
         at = g if g < len(states) else start + (g - start) % period
         records[str(g)] = record_of(Plane(states[at], 0, 0), rule)
-    return records, period
+    return records, (start, period)
 
 
 def parse_gens(text):
@@ -472,14 +472,14 @@ def cmd_expect(args):
     with open(args.pattern) as f:
         _, _, _, cells = read_rle(f.read())
     gens = parse_gens(args.gens)
-    period = None
+    settles_at = period = None
     if args.universe in (None, "plane"):
         records = run_records(cells, rule, gens)
     else:
-        records, period = run_records_finite(cells, rule, gens, args.universe)
+        records, (settles_at, period) = run_records_finite(cells, rule, gens, args.universe)
     with open(args.out, "w") as f:
         json.dump({"rule": rule.canonical(), "pattern": args.pattern, "generations": records,
-                   "period": period}, f)
+                   "settles_at": settles_at, "period": period}, f)
         f.write("\n")
 
 
