@@ -96,7 +96,8 @@ pub fn generation(data: &[u8]) {
     }
 }
 
-/// A rule; one that parses must read back the same from its canonical text.
+/// A rule, and the same text as a universe (`--universe`): one that
+/// parses must read back the same from its canonical text.
 pub fn rule(data: &[u8]) {
     let Ok(text) = std::str::from_utf8(data) else {
         return;
@@ -108,6 +109,16 @@ pub fn rule(data: &[u8]) {
         assert_eq!(
             again, rule,
             "rule {text:?} and its canonical text {canonical:?} differ"
+        );
+    }
+    if let Ok(space) = text.parse::<deeptime_engine::finite::Space>() {
+        let canonical = space.to_string();
+        let again: deeptime_engine::finite::Space = canonical
+            .parse()
+            .unwrap_or_else(|error| panic!("canonical universe {canonical:?} refused: {error}"));
+        assert_eq!(
+            again, space,
+            "universe {text:?} and its canonical text {canonical:?} differ"
         );
     }
 }
