@@ -11,7 +11,7 @@
 
 use std::path::Path;
 
-use deeptime_tests::{run_deeptime, run_reference, temp_dir};
+use deeptime_tests::{reference_soup, run_deeptime, run_reference, temp_dir};
 
 /// The generations compared: small ones, each power of two up to 256 with
 /// its neighbours, and a few others up to 300.
@@ -122,20 +122,7 @@ fn check_rule(rule: &str, soups: &[Soup]) {
             "rule {rule}, soup seed {} size {} density {}",
             soup.seed, soup.size, soup.density
         );
-        run_reference([
-            "soup".to_string(),
-            "--rule".into(),
-            rule.into(),
-            "--seed".into(),
-            soup.seed.to_string(),
-            "--size".into(),
-            soup.size.to_string(),
-            "--density".into(),
-            soup.density.to_string(),
-            "--out".into(),
-            pattern.display().to_string(),
-        ])
-        .assert_success();
+        reference_soup(&pattern, rule, soup.seed, soup.size, soup.density);
         reference_expect(&pattern, rule, &expected);
         assert_interesting(&read_expected(&expected), &what);
         compare_all(dir.path(), &pattern, rule, GENS, &expected, &what);
@@ -418,20 +405,7 @@ fn tori_and_bounded_planes_against_the_reference() {
         let pattern = dir.path().join("soup.rle");
         let expected = dir.path().join("expected.json");
         let what = format!("rule {rule} in the {universe}, soup seed {seed}");
-        run_reference([
-            "soup".to_string(),
-            "--rule".into(),
-            rule.into(),
-            "--seed".into(),
-            seed.to_string(),
-            "--size".into(),
-            "19".into(),
-            "--density".into(),
-            "0.4".into(),
-            "--out".into(),
-            pattern.display().to_string(),
-        ])
-        .assert_success();
+        reference_soup(&pattern, rule, seed, 19, 0.4);
         reference_expect_in(&pattern, rule, &gens, Some(universe), &expected);
         let period = &read_expected(&expected)["period"];
         assert!(

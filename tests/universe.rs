@@ -4,9 +4,9 @@
 //! under it, and the commands that do not take bounded universes yet say
 //! so. (Cell-by-cell checks against the reference are in reference.rs.)
 
-use std::path::Path;
+use std::path::{Path, PathBuf};
 
-use deeptime_tests::{run_deeptime, run_reference, temp_dir, write_job};
+use deeptime_tests::{reference_soup, run_deeptime, run_reference, temp_dir, write_job};
 
 /// `job.toml` in `dir` over `pattern` in `universe`: checkpoints every
 /// `every`, to `target`.
@@ -26,28 +26,40 @@ fn report(run: &deeptime_tests::Run) -> serde_json::Value {
     serde_json::from_str(run.stdout.trim()).unwrap()
 }
 
+/// The reference's seeded 19×19 soup under B3/S23, as `dir/soup.rle`.
+fn soup_in(dir: &Path, seed: u64) -> PathBuf {
+    let pattern = dir.join("soup.rle");
+    reference_soup(&pattern, "B3/S23", seed, 19, 0.4);
+    pattern
+}
+
+/// The reference's records of `pattern` under B3/S23 in `universe` at
+/// `gens` (comma-separated decimals), with where its cycle starts and its
+/// period. Independent reference: numpy/scipy, cycles by a full table of
+/// states.
+fn reference_records(pattern: &Path, gens: &str, universe: &str) -> serde_json::Value {
+    let expected = pattern.with_file_name("expected.json");
+    run_reference([
+        "expect".to_string(),
+        "--pattern".into(),
+        pattern.display().to_string(),
+        "--rule".into(),
+        "B3/S23".into(),
+        "--gens".into(),
+        gens.into(),
+        "--universe".into(),
+        universe.into(),
+        "--out".into(),
+        expected.display().to_string(),
+    ])
+    .assert_success();
+    serde_json::from_str(&std::fs::read_to_string(&expected).unwrap()).unwrap()
+}
+
 #[test]
 fn a_stored_run_on_a_torus_resumes_with_the_figures_of_leap_and_of_the_reference() {
     let dir = temp_dir();
-    let pattern = dir.path().join("soup.rle");
-    run_reference(
-        [
-            "soup",
-            "--rule",
-            "B3/S23",
-            "--seed",
-            "7",
-            "--size",
-            "19",
-            "--density",
-            "0.4",
-            "--out",
-        ]
-        .iter()
-        .map(|s| s.to_string())
-        .chain([pattern.display().to_string()]),
-    )
-    .assert_success();
+    let pattern = soup_in(dir.path(), 7);
     let universe = "torus 37x23";
     let far = "1000000000000000000000000000000000000037";
 
@@ -81,24 +93,7 @@ fn a_stored_run_on_a_torus_resumes_with_the_figures_of_leap_and_of_the_reference
     for field in ["generation", "population", "bbox", "digest"] {
         assert_eq!(stored[field], leap[field], "{field}");
     }
-    // Independent reference: numpy/scipy, cycles by a full table of states.
-    let expected = dir.path().join("expected.json");
-    run_reference([
-        "expect".to_string(),
-        "--pattern".into(),
-        pattern.display().to_string(),
-        "--rule".into(),
-        "B3/S23".into(),
-        "--gens".into(),
-        far.into(),
-        "--universe".into(),
-        universe.into(),
-        "--out".into(),
-        expected.display().to_string(),
-    ])
-    .assert_success();
-    let expected: serde_json::Value =
-        serde_json::from_str(&std::fs::read_to_string(&expected).unwrap()).unwrap();
+    let expected = reference_records(&pattern, far, universe);
     let record = &expected["generations"][far];
     assert_eq!(stored["population"], record["population"]);
     assert_eq!(stored["digest"], record["digest"]);
@@ -188,25 +183,7 @@ fn a_stored_run_keeps_its_universe_and_bad_universes_are_one_line_errors() {
 #[test]
 fn a_timeline_in_a_bounded_universe_matches_the_reference_at_every_sample() {
     let dir = temp_dir();
-    let pattern = dir.path().join("soup.rle");
-    run_reference(
-        [
-            "soup",
-            "--rule",
-            "B3/S23",
-            "--seed",
-            "11",
-            "--size",
-            "19",
-            "--density",
-            "0.4",
-            "--out",
-        ]
-        .iter()
-        .map(|s| s.to_string())
-        .chain([pattern.display().to_string()]),
-    )
-    .assert_success();
+    let pattern = soup_in(dir.path(), 11);
     let universe = "bounded 31x29";
     let csv = dir.path().join("timeline.csv");
     run_deeptime([
@@ -232,23 +209,7 @@ fn a_timeline_in_a_bounded_universe_matches_the_reference_at_every_sample() {
             }
         })
         .collect();
-    let expected = dir.path().join("expected.json");
-    run_reference([
-        "expect".to_string(),
-        "--pattern".into(),
-        pattern.display().to_string(),
-        "--rule".into(),
-        "B3/S23".into(),
-        "--gens".into(),
-        gens.join(","),
-        "--universe".into(),
-        universe.into(),
-        "--out".into(),
-        expected.display().to_string(),
-    ])
-    .assert_success();
-    let expected: serde_json::Value =
-        serde_json::from_str(&std::fs::read_to_string(&expected).unwrap()).unwrap();
+    let expected = reference_records(&pattern, &gens.join(","), universe);
     let text = std::fs::read_to_string(&csv).unwrap();
     let rows: Vec<&str> = text.lines().skip(1).collect();
     assert_eq!(rows.len(), gens.len(), "{text}");
@@ -265,25 +226,7 @@ fn a_timeline_in_a_bounded_universe_matches_the_reference_at_every_sample() {
 fn the_fate_in_a_bounded_universe_is_where_the_reference_sees_the_cycle_start() {
     for (universe, seed) in [("torus 37x23", 5u64), ("bounded 29x41", 6)] {
         let dir = temp_dir();
-        let pattern = dir.path().join("soup.rle");
-        run_reference(
-            [
-                "soup",
-                "--rule",
-                "B3/S23",
-                "--seed",
-                &seed.to_string(),
-                "--size",
-                "19",
-                "--density",
-                "0.4",
-                "--out",
-            ]
-            .iter()
-            .map(|s| s.to_string())
-            .chain([pattern.display().to_string()]),
-        )
-        .assert_success();
+        let pattern = soup_in(dir.path(), seed);
         let fate = report(&run_deeptime([
             "fate".as_ref(),
             pattern.as_os_str(),
@@ -291,26 +234,7 @@ fn the_fate_in_a_bounded_universe_is_where_the_reference_sees_the_cycle_start() 
             universe.as_ref(),
             "--json".as_ref(),
         ]));
-        // Independent reference: numpy/scipy, the first state that comes
-        // again by a full table of states.
-        let expect = |gens: &str| -> serde_json::Value {
-            let expected = dir.path().join("expected.json");
-            run_reference([
-                "expect".to_string(),
-                "--pattern".into(),
-                pattern.display().to_string(),
-                "--rule".into(),
-                "B3/S23".into(),
-                "--gens".into(),
-                gens.into(),
-                "--universe".into(),
-                universe.into(),
-                "--out".into(),
-                expected.display().to_string(),
-            ])
-            .assert_success();
-            serde_json::from_str(&std::fs::read_to_string(&expected).unwrap()).unwrap()
-        };
+        let expect = |gens: &str| reference_records(&pattern, gens, universe);
         let cycle = expect("10000000000000000000000000000000000000000");
         let settles_at = cycle["settles_at"].as_u64().unwrap();
         assert_eq!(fate["settles_at"], settles_at.to_string(), "{universe}");

@@ -41,6 +41,28 @@ struct FateReport {
     universe: Option<String>,
 }
 
+impl FateReport {
+    /// A report that says nothing yet of the fate.
+    fn of(rule: deeptime_engine::rule::Rule, limit: &BigUint, engine: EngineReport) -> FateReport {
+        FateReport {
+            rule: rule.to_string(),
+            limit: limit.to_string(),
+            settles_at: None,
+            period: None,
+            displacement: None,
+            period_of: None,
+            population: None,
+            bbox: None,
+            digest: None,
+            shape_digest: None,
+            census: None,
+            unsettled: None,
+            engine,
+            universe: None,
+        }
+    }
+}
+
 #[derive(Serialize, Debug)]
 struct Shift {
     x: String,
@@ -147,22 +169,7 @@ pub fn run(args: FateArgs) -> anyhow::Result<()> {
     };
     let elapsed = started.elapsed();
     let engine = EngineReport::of(&universe, elapsed);
-    let mut report = FateReport {
-        rule: rule.to_string(),
-        limit: limit.to_string(),
-        settles_at: None,
-        period: None,
-        displacement: None,
-        period_of: None,
-        population: None,
-        bbox: None,
-        digest: None,
-        shape_digest: None,
-        census: None,
-        unsettled: None,
-        engine,
-        universe: None,
-    };
+    let mut report = FateReport::of(rule, &limit, engine);
     match &fate {
         Fate::Settled(settled) => {
             report.settles_at = Some(settled.generation.to_string());
@@ -220,22 +227,8 @@ fn bounded(
     let population = universe.population().to_string();
     let bbox = universe.bounding_box().as_ref().map(BoxReport::from);
     let digest = universe.digest()?.to_string();
-    let mut report = FateReport {
-        rule: rule.to_string(),
-        limit: limit.to_string(),
-        settles_at: None,
-        period: None,
-        displacement: None,
-        period_of: None,
-        population: None,
-        bbox: None,
-        digest: None,
-        shape_digest: None,
-        census: None,
-        unsettled: None,
-        engine: EngineReport::of(&universe, started.elapsed()),
-        universe: Some(space.to_string()),
-    };
+    let mut report = FateReport::of(rule, limit, EngineReport::of(&universe, started.elapsed()));
+    report.universe = Some(space.to_string());
     match settled {
         Some((start, period)) => {
             let cells = universe.cells()?;

@@ -147,6 +147,25 @@ where
     run_program(&python(), all)
 }
 
+/// Has the reference write its seeded random `size`×`size` soup of
+/// `density` under `rule` to `out` (top-left cell at (0, 0)).
+pub fn reference_soup(out: &Path, rule: &str, seed: u64, size: u32, density: f64) {
+    run_reference([
+        "soup".to_string(),
+        "--rule".into(),
+        rule.into(),
+        "--seed".into(),
+        seed.to_string(),
+        "--size".into(),
+        size.to_string(),
+        "--density".into(),
+        density.to_string(),
+        "--out".into(),
+        out.display().to_string(),
+    ])
+    .assert_success();
+}
+
 /// A fresh temporary folder, removed when the value is dropped.
 pub fn temp_dir() -> tempfile::TempDir {
     tempfile::Builder::new()
