@@ -138,11 +138,25 @@ pub struct LeapArgs {
     #[arg(long, value_name = "SIZE")]
     pub memory: Option<String>,
 
+    #[command(flatten)]
+    pub universe: UniverseArg,
+}
+
+/// `--universe`, for the commands that advance a pattern.
+#[derive(Args, Debug)]
+pub struct UniverseArg {
     /// Where the pattern lives: plane (unbounded, the default), "torus WxH"
     /// (edges wrap) or "bounded WxH" (cells outside stay dead), with the
     /// universe's top-left cell at the pattern's (0, 0)
-    #[arg(long, value_name = "UNIVERSE")]
-    pub universe: Option<String>,
+    #[arg(long = "universe", value_name = "UNIVERSE")]
+    pub text: Option<String>,
+}
+
+impl UniverseArg {
+    /// The universe the option names.
+    pub fn space(&self) -> Result<deeptime_engine::finite::Space, deeptime_engine::BadInput> {
+        deeptime_coordinator::input::space(self.text.as_deref(), "--universe")
+    }
 }
 
 #[derive(Args, Debug)]
@@ -166,10 +180,8 @@ pub struct FateArgs {
     #[arg(long, value_name = "SIZE")]
     pub memory: Option<String>,
 
-    /// Where the pattern lives: plane (the default), "torus WxH" or
-    /// "bounded WxH", as for leap (no census there)
-    #[arg(long, value_name = "UNIVERSE")]
-    pub universe: Option<String>,
+    #[command(flatten)]
+    pub universe: UniverseArg,
 }
 
 #[derive(Args, Debug)]
@@ -206,10 +218,8 @@ pub struct TimelineArgs {
     #[arg(long, value_name = "SIZE")]
     pub memory: Option<String>,
 
-    /// Where the pattern lives: plane (the default), "torus WxH" or
-    /// "bounded WxH", as for leap
-    #[arg(long, value_name = "UNIVERSE")]
-    pub universe: Option<String>,
+    #[command(flatten)]
+    pub universe: UniverseArg,
 }
 
 #[derive(Args, Debug)]

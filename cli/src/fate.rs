@@ -148,7 +148,7 @@ pub fn run(args: FateArgs) -> anyhow::Result<()> {
     let limit =
         parse_generations(limit_text).map_err(|error| BadInput(format!("--limit: {error}")))?;
     let budget = memory::budget(args.memory.as_deref())?;
-    let space = input::space(args.universe.as_deref(), "--universe")?;
+    let space = args.universe.space()?;
     let loaded = input::read(&args.pattern, budget)?;
     let rule = input::rule(args.rule.as_deref(), &loaded)?;
     if space != Space::Plane {
@@ -218,12 +218,12 @@ fn bounded(
 ) -> anyhow::Result<()> {
     let started = Instant::now();
     let origin = loaded.pattern.origin.unwrap_or((0, 0));
-    let settled = Finite::from_pattern(&loaded.pattern, rule, space)
-        .map_err(|error| BadInput(format!("{}: {error}", loaded.name)))?
-        .settle(limit);
-    let mut universe = input::build(loaded, rule, budget)?;
-    let to = settled.map_or(limit.clone(), |(start, _)| BigUint::from(start));
-    input::advance_in(&mut universe, space, origin, &to, budget)?;
+    let mut finite = Finite::from_pattern(&loaded.pattern, rule, space)
+        .map_err(|error| BadInput(format!("{}: {error}", loaded.name)))?;
+    drop(loaded);
+    // Left where it settles, or at the limit.
+    let settled = finite.settle(limit);
+    let mut universe = input::plane_state(&finite, origin, budget)?;
     let population = universe.population().to_string();
     let bbox = universe.bounding_box().as_ref().map(BoxReport::from);
     let digest = universe.digest()?.to_string();

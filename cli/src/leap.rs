@@ -30,23 +30,27 @@ pub fn run(args: LeapArgs) -> anyhow::Result<()> {
         .as_deref()
         .map(crate::snapshot::parse_region)
         .transpose()?;
-    let space = input::space(args.universe.as_deref(), "--universe")?;
+    let space = args.universe.space()?;
 
     let started = Instant::now();
     let origin = loaded.pattern.origin.unwrap_or((0, 0));
     let name = loaded.name.clone();
     let mut universe = input::build(loaded, rule, budget)?;
-    let period = if space == Space::Plane {
-        let line = progress::Line::start("advancing");
-        let mut observe = |progress: &Progress| line.update(progress);
-        let advanced = universe.advance(&generations, Some(&mut observe));
-        line.finish();
-        advanced.with_context(|| format!("advancing {} generations", args.gens))?;
-        None
-    } else {
-        input::advance_in(&mut universe, space, origin, &generations, budget)
-            .with_context(|| format!("{name} in the {space}"))?
-    };
+    let line = progress::Line::start("advancing");
+    let mut observe = |progress: &Progress| line.update(progress);
+    let advanced = input::advance(
+        &mut universe,
+        space,
+        origin,
+        &generations,
+        budget,
+        Some(&mut observe),
+    );
+    line.finish();
+    let period = advanced.with_context(|| match space {
+        Space::Plane => format!("advancing {} generations", args.gens),
+        space => format!("{name} in the {space}"),
+    })?;
     let elapsed = started.elapsed();
 
     let mut picture = None;

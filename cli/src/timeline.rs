@@ -11,7 +11,6 @@ use std::path::{Path, PathBuf};
 use std::time::Instant;
 
 use anyhow::Context;
-use deeptime_engine::finite::Space;
 use deeptime_engine::generation::parse_generations;
 use deeptime_engine::{Universe, human_bytes};
 use num_bigint::BigUint;
@@ -81,7 +80,7 @@ pub fn run(args: TimelineArgs) -> anyhow::Result<()> {
     }
     check_outputs(&args)?;
     let budget = memory::budget(args.memory.as_deref())?;
-    let space = input::space(args.universe.as_deref(), "--universe")?;
+    let space = args.universe.space()?;
     let loaded = input::read(&args.pattern, budget)?;
     let rule = input::rule(args.rule.as_deref(), &loaded)?;
     let origin = loaded.pattern.origin.unwrap_or((0, 0));
@@ -89,9 +88,8 @@ pub fn run(args: TimelineArgs) -> anyhow::Result<()> {
     let started = Instant::now();
     let mut universe = input::build(loaded, rule, budget)?;
     let line = progress::Line::start("sampling");
-    let sampled = sample(&mut universe, &gens, &every, |universe, step| match space {
-        Space::Plane => universe.advance(step, None).map_err(Into::into),
-        space => input::advance_in(universe, space, origin, step, budget).map(|_| ()),
+    let sampled = sample(&mut universe, &gens, &every, |universe, step| {
+        input::advance(universe, space, origin, step, budget, None).map(|_| ())
     });
     line.finish();
     let samples = sampled?;

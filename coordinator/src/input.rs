@@ -4,7 +4,7 @@
 use std::io::Read;
 use std::path::Path;
 
-use deeptime_engine::finite::Space;
+use deeptime_engine::finite::{Finite, Space};
 use deeptime_engine::pattern::{self, Pattern};
 use deeptime_engine::rule::Rule;
 
@@ -89,38 +89,61 @@ pub fn space(text: Option<&str>, what: &str) -> Result<Space, BadInput> {
     }
 }
 
-/// Advances `universe`, the state of a bounded universe held as a plane
-/// state of its cells (so figures, digests, pictures, RLE and checkpoints
-/// come from where they come for the plane), by `step` generations in
-/// `space`, whose top-left cell stands at `origin` on the plane. Returns
-/// the period of the cycle the history ends in, when it was seen.
-pub fn advance_in(
+/// Advances `universe` by `step` generations where it lives (`observe`
+/// hears the progress): on the plane by HashLife; in a bounded `space`,
+/// whose top-left cell stands at `origin` on the plane, a generation at a
+/// time with its cycle found and jumped over, the state held as a plane
+/// state of its cells between calls (so figures, digests, pictures, RLE
+/// and checkpoints come from where they come for the plane). Returns the
+/// period of a bounded universe's cycle, when it was seen.
+pub fn advance(
     universe: &mut Universe,
     space: Space,
     origin: (i64, i64),
     step: &num_bigint::BigUint,
     budget: u64,
+    observe: Option<deeptime_engine::Observer<'_>>,
 ) -> anyhow::Result<Option<u64>> {
     use anyhow::Context;
+    if space == Space::Plane {
+        universe.advance(step, observe)?;
+        return Ok(None);
+    }
     let (left, top) = origin;
-    let rule = universe.rule();
     let cells = universe.cells().context("the bounded universe's cells")?;
-    let mut finite = deeptime_engine::finite::Finite::from_cells(
-        rule,
+    let mut finite = Finite::from_cells(
+        universe.rule(),
         space,
         cells.into_iter().map(|(x, y)| (x - left, y - top)),
         universe.generation().clone(),
     )
     .map_err(|error| BadInput(error.to_string()))?;
-    let line = crate::progress::Line::start("stepping");
-    let history = finite.advance(step, |stepped| line.note(stepped));
-    line.finish();
+    // Progress as a share of the step (the cycle, once seen, ends it early).
+    let store = universe.store_stats();
+    let whole = num_traits::ToPrimitive::to_f64(step).unwrap_or(f64::MAX);
+    let mut observe = observe;
+    let history = finite.advance(step, |stepped| {
+        if let Some(observe) = observe.as_mut() {
+            observe(&deeptime_engine::Progress {
+                done: (stepped as f64 / whole).min(1.0),
+                store,
+            });
+        }
+    });
+    *universe = plane_state(&finite, origin, budget)?;
+    Ok(history.period)
+}
+
+/// A bounded universe's state as the plane state of its cells, its
+/// top-left cell at `origin`, at the same generation.
+pub fn plane_state(finite: &Finite, origin: (i64, i64), budget: u64) -> anyhow::Result<Universe> {
+    use anyhow::Context;
     let mut pattern = finite
         .to_pattern(budget)
         .context("the bounded universe's cells")?;
     pattern.origin = Some(origin);
-    *universe =
-        Universe::from_pattern(&pattern, rule, budget).context("the bounded universe's cells")?;
+    let mut universe = Universe::from_pattern(&pattern, finite.rule(), budget)
+        .context("the bounded universe's cells")?;
     universe.set_generation(finite.generation().clone());
-    Ok(history.period)
+    Ok(universe)
 }

@@ -57,15 +57,6 @@ impl Line {
         }
     }
 
-    /// Shows a count of work done where no share of the whole is known
-    /// (generations stepped one at a time, say).
-    pub fn note(&self, done: u64) {
-        if let Some(bar) = &self.bar {
-            bar.set_message(format!("{done} done"));
-            bar.tick();
-        }
-    }
-
     pub fn finish(self) {
         if let Some(bar) = self.bar {
             bar.finish_and_clear();

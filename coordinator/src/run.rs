@@ -96,14 +96,15 @@ pub fn run_job(path: &std::path::Path) -> anyhow::Result<Report> {
         );
         let mut observe = |progress: &Progress| line.update_part(before, span, progress, &note);
         let started_step = Instant::now();
-        let advanced = match job.universe {
-            Space::Plane => universe
-                .advance(&step, Some(&mut observe))
-                .map_err(Into::into),
-            space => input::advance_in(&mut universe, space, origin, &step, budget).map(|_| ()),
-        };
-        advanced
-            .with_context(|| format!("advancing {} generations", for_people(&step.to_string())))?;
+        input::advance(
+            &mut universe,
+            job.universe,
+            origin,
+            &step,
+            budget,
+            Some(&mut observe),
+        )
+        .with_context(|| format!("advancing {} generations", for_people(&step.to_string())))?;
         let took = started_step.elapsed();
         let due = match pacer.as_mut() {
             Some(pacer) => {

@@ -300,16 +300,18 @@ impl Finite {
         History { period, stepped }
     }
 
-    /// When the history from this state settles: the first generation
-    /// (counted from this one) of the cycle it ends in, and its period;
-    /// None when the cycle is not seen within `limit` generations.
-    pub fn settle(&self, limit: &BigUint) -> Option<(u64, u64)> {
-        let mut hare = self.clone();
-        let history = hare.advance(limit, |_| {});
+    /// Goes on to where the history from this state settles: the first
+    /// generation (counted from this one) of the cycle it ends in, whose
+    /// state this becomes, and the cycle's period. None when the cycle is
+    /// not seen within `limit` generations; this is then the state at the
+    /// limit.
+    pub fn settle(&mut self, limit: &BigUint) -> Option<(u64, u64)> {
+        let start_state = self.clone();
+        let history = self.advance(limit, |_| {});
         let period = history.period?;
         // The cycle starts where a state and the one a period later first
         // agree.
-        let (mut early, mut late) = (self.clone(), self.clone());
+        let (mut early, mut late) = (start_state.clone(), start_state);
         for _ in 0..period {
             late.step();
         }
@@ -319,6 +321,7 @@ impl Finite {
             late.step();
             start += 1;
         }
+        *self = early;
         Some((start, period))
     }
 
@@ -532,13 +535,19 @@ mod tests {
         // into the corner and leaves a block (common practice: a glider
         // meeting a wall of dead cells), still from then on.
         let glider = finite("x = 3, y = 3\nbo$2bo$3o!\n", "B3/S23", "torus 10x10");
-        assert_eq!(glider.settle(&BigUint::from(1000u32)), Some((0, 40)));
+        assert_eq!(
+            glider.clone().settle(&BigUint::from(1000u32)),
+            Some((0, 40))
+        );
         let walled = finite("x = 3, y = 3\nbo$2bo$3o!\n", "B3/S23", "bounded 10x10");
-        let (start, period) = walled.settle(&BigUint::from(1000u32)).unwrap();
-        assert_eq!(period, 1);
-        // Settled at `start`, not before.
         let mut at = walled.clone();
-        at.advance(&BigUint::from(start), |_| {});
+        let (start, period) = at.settle(&BigUint::from(1000u32)).unwrap();
+        assert_eq!(period, 1);
+        // Settled at `start`, not before; the state is left there.
+        assert_eq!(at.generation(), &BigUint::from(start));
+        let mut stepped = walled.clone();
+        stepped.advance(&BigUint::from(start), |_| {});
+        assert!(at.cells == stepped.cells);
         let mut next = at.clone();
         next.step();
         assert!(at.cells == next.cells);
@@ -547,7 +556,13 @@ mod tests {
         let mut after = before.clone();
         after.step();
         assert!(before.cells != after.cells);
-        assert_eq!(glider.settle(&BigUint::from(10u32)), None, "not within 10");
+        let mut short = glider.clone();
+        assert_eq!(short.settle(&BigUint::from(10u32)), None, "not within 10");
+        assert_eq!(
+            short.generation(),
+            &BigUint::from(10u32),
+            "left at the limit"
+        );
     }
 
     #[test]
