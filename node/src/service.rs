@@ -14,7 +14,7 @@ use deeptime_proto::v1;
 use tonic::{Request, Response, Status};
 
 use crate::fetch::{Fetched, Here, Peers, fetch_missing};
-use crate::spill::{Failure, Spill};
+use crate::spill::{Failure, Spill, Spilled};
 use crate::wire::{self, MAX_BATCH};
 
 /// The job a node works for, as the coordinator described it at join.
@@ -82,17 +82,19 @@ impl NodeState {
                 Err(Failure::Shard(ShardError::Budget(budget))) => {
                     let spilled = match spill.as_mut() {
                         Some(spill) => spill.spill(shard, &spare).map_err(failed)?,
-                        None => 0,
+                        None => Spilled::Nothing,
                     };
-                    if spilled == 0 {
-                        let status = wire::shard_status(ShardError::Budget(budget));
-                        return Err(match spill.as_ref().and_then(|spill| spill.refusal()) {
-                            Some(why) => Status::resource_exhausted(format!(
-                                "{}, and {why}",
-                                status.message()
-                            )),
-                            None => status,
-                        });
+                    let full = wire::shard_status(ShardError::Budget(budget));
+                    match (spilled, spill.as_ref()) {
+                        (Spilled::LetGo, _) => {}
+                        (Spilled::OverLimit, Some(spill)) => {
+                            return Err(Status::resource_exhausted(format!(
+                                "{}, and {}",
+                                full.message(),
+                                spill.limit_text()
+                            )));
+                        }
+                        _ => return Err(full),
                     }
                 }
                 Err(failure) => return Err(failed(failure)),
@@ -158,9 +160,7 @@ impl Here for NodeState {
     fn lacking(&self, ids: &[ContentId]) -> Result<Vec<bool>, Status> {
         self.on_shard(ids, |shard, spill| {
             if let Some(spill) = spill {
-                for id in ids {
-                    spill.reload(shard, id)?;
-                }
+                spill.reload_all(shard, ids)?;
             }
             Ok(ids.iter().map(|id| !shard.borrow(id)).collect())
         })
@@ -214,9 +214,7 @@ impl v1::node_server::Node for NodeService {
                     // A quarter spilled since the fetch found it here is
                     // read back.
                     if let Some(spill) = spill {
-                        for kid in &kids {
-                            spill.reload(shard, kid)?;
-                        }
+                        spill.reload_all(shard, &kids)?;
                     }
                     // What the fetch brought that is still lacking here (another
                     // task on this node may have brought some of it meanwhile).
@@ -283,9 +281,7 @@ impl v1::node_server::Node for NodeService {
             .state
             .with_shard(ids.clone(), move |shard, spill| {
                 if let Some(spill) = spill {
-                    for id in &ids {
-                        spill.reload(shard, id)?;
-                    }
+                    spill.reload_all(shard, &ids)?;
                 }
                 for id in &ids {
                     shard.touch(id);
@@ -401,9 +397,7 @@ impl v1::node_server::Node for NodeService {
             .state
             .with_fetched(kids.to_vec(), fetched.found.clone(), move |shard, spill| {
                 if let Some(spill) = spill {
-                    for kid in &kids {
-                        spill.reload(shard, kid)?;
-                    }
+                    spill.reload_all(shard, &kids)?;
                 }
                 Ok(shard.with_inputs(&fetched.records, |shard| shard.describe(&kids, level))?)
             })

@@ -40,6 +40,16 @@ impl From<Status> for Failure {
 /// Where pieces are: pack and record.
 pub(crate) type Places = HashMap<ContentId, (Checksum, u32)>;
 
+/// What a spill did.
+pub(crate) enum Spilled {
+    /// let go of at least one piece
+    LetGo,
+    /// nothing: no piece it may let go of is held
+    Nothing,
+    /// nothing: writing them would pass the spill limit
+    OverLimit,
+}
+
 /// One spill pack: what a manifest would list of it, and how many pieces
 /// it is the copy of (at none, it is deleted).
 struct SpillPack {
@@ -71,8 +81,6 @@ pub struct Spill {
     limit: u64,
     /// bytes of the spill packs kept now
     bytes: u64,
-    /// whether the last spill was refused for the limit
-    refused: bool,
     packs: HashMap<Checksum, SpillPack>,
     /// the pieces spilled since the coordinator last named what to keep:
     /// a piece read back keeps its copy, so spilling it again is free
@@ -87,7 +95,6 @@ impl Spill {
             prefix: format!("spill/{:016x}-", rand::random::<u64>()),
             limit,
             bytes: 0,
-            refused: false,
             packs: HashMap::new(),
             pieces: HashMap::new(),
         }
@@ -104,17 +111,16 @@ impl Spill {
 
     /// Lets go of half of the pieces `shard` holds outside `spare`, the
     /// longest held first: those with a copy in a spill pack at once, the
-    /// rest written to a new one. Returns how many; 0 when there is
-    /// nothing to spill or the spill limit would be passed.
+    /// rest written to a new one.
     pub(crate) fn spill(
         &mut self,
         shard: &mut Shard,
         spare: &HashSet<ContentId>,
-    ) -> Result<usize, Failure> {
+    ) -> Result<Spilled, Failure> {
         let spillable = shard.held().saturating_sub(spare.len());
         let chosen = shard.oldest_held(spillable.div_ceil(2).max(1), spare);
         if chosen.is_empty() {
-            return Ok(0);
+            return Ok(Spilled::Nothing);
         }
         let (copied, chosen): (Vec<ContentId>, Vec<ContentId>) = chosen
             .into_iter()
@@ -123,17 +129,24 @@ impl Spill {
             self.pieces.get_mut(id).expect("partitioned").away = true;
         }
         shard.release(&copied);
+        // What was let go of without writing, or else what stopped it.
+        let only_copied = |otherwise| {
+            if copied.is_empty() {
+                otherwise
+            } else {
+                Spilled::LetGo
+            }
+        };
         if chosen.is_empty() {
             tracing::debug!(pieces = copied.len(), "store full: let go of copied pieces");
-            return Ok(copied.len());
+            return Ok(only_copied(Spilled::Nothing));
         }
         let Some(written) = shard.write_pack(&chosen, &|_| None, &[])? else {
-            return Ok(copied.len());
+            return Ok(only_copied(Spilled::Nothing));
         };
         let size = written.bytes.len() as u64;
-        self.refused = self.bytes + size > self.limit;
-        if self.refused {
-            return Ok(copied.len());
+        if self.bytes + size > self.limit {
+            return Ok(only_copied(Spilled::OverLimit));
         }
         let name = deeptime_engine::pack::pack_name(&written.bytes);
         let key = self.key(&name);
@@ -180,18 +193,27 @@ impl Spill {
             deeptime_engine::human_bytes(size),
             deeptime_engine::human_bytes(self.bytes)
         );
-        Ok(chosen.len() + copied.len())
+        Ok(Spilled::LetGo)
     }
 
-    /// Why the last spill wrote nothing, when it was the limit: for the
-    /// out-of-memory message.
-    pub fn refusal(&self) -> Option<String> {
-        self.refused.then(|| {
-            format!(
-                "its --spill-limit of {} is reached",
-                deeptime_engine::human_bytes(self.limit)
-            )
-        })
+    /// The limit, as the out-of-memory message names it.
+    pub fn limit_text(&self) -> String {
+        format!(
+            "its --spill-limit of {} is reached",
+            deeptime_engine::human_bytes(self.limit)
+        )
+    }
+
+    /// Reads back those of `ids` that were spilled (`reload`).
+    pub(crate) fn reload_all(
+        &mut self,
+        shard: &mut Shard,
+        ids: &[ContentId],
+    ) -> Result<(), Failure> {
+        for id in ids {
+            self.reload(shard, id)?;
+        }
+        Ok(())
     }
 
     /// Makes a spilled piece held in `shard` again: at once when the
