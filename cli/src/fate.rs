@@ -7,7 +7,6 @@ use std::time::Instant;
 use deeptime_engine::fate::{self, CensusEntry, Fate, FateError, Growth, NotYet};
 use deeptime_engine::finite::{Finite, Space};
 use deeptime_engine::generation::parse_generations;
-use deeptime_engine::human_bytes;
 use num_bigint::BigUint;
 use serde::Serialize;
 
@@ -347,15 +346,7 @@ fn print_summary(report: &FateReport) {
         }
         (None, None) => {}
     }
-    let engine = &report.engine;
-    println!(
-        "engine        {:.3} s, {} quads created, {} live in {}, {} collections",
-        engine.seconds,
-        engine.quads_created,
-        engine.quads,
-        human_bytes(engine.bytes),
-        engine.collections
-    );
+    println!("engine        {}", report.engine.summary());
 }
 
 fn print_box(bbox: Option<&BoxReport>) {

@@ -134,6 +134,20 @@ impl EngineReport {
     }
 }
 
+impl EngineReport {
+    /// The figures as the reports print them: time, quads and memory.
+    pub fn summary(&self) -> String {
+        format!(
+            "{:.3} s, {} quads created, {} live in {}, {} collections",
+            self.seconds,
+            self.quads_created,
+            self.quads,
+            human_bytes(self.bytes),
+            self.collections
+        )
+    }
+}
+
 impl Report {
     pub fn of(universe: &mut Universe, elapsed: Duration) -> anyhow::Result<Report> {
         let digest = universe.digest()?;
@@ -183,14 +197,7 @@ impl Report {
         }
         println!("digest        {}", self.digest);
         let engine = &self.engine;
-        println!(
-            "engine        {:.3} s, {} quads created, {} live in {}, {} collections",
-            engine.seconds,
-            engine.quads_created,
-            engine.quads,
-            human_bytes(engine.bytes),
-            engine.collections
-        );
+        println!("engine        {}", engine.summary());
         if let Some(region) = &self.region {
             let inside = match &region.bbox {
                 Some(b) => box_for_people(&b.left, &b.top, &b.width, &b.height),
