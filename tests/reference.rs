@@ -352,6 +352,31 @@ fn b1357_s02468() {
     );
 }
 
+/// Six isotropic rules in Hensel notation, each on its own soup. The first
+/// three rule strings are LifeWiki's ("Isotropic non-totalistic rule"); the
+/// others were picked because soups stay active under them through 300
+/// generations (measured with the reference).
+#[test]
+fn isotropic_rules_in_hensel_notation() {
+    for (rule, seed) in [
+        ("B2-a/S12", 61),
+        ("B3/S2-i34q", 62),
+        ("B1e2ak3inqy4ny5e/S", 63),
+        ("B36-k/S23", 64),
+        ("B2i34c/S2-i3", 65),
+        ("B3/S23-a4i", 66),
+    ] {
+        check_rule(
+            rule,
+            &[Soup {
+                seed,
+                size: 40,
+                density: 0.4,
+            }],
+        );
+    }
+}
+
 #[test]
 fn glider_northwest() {
     // A glider flying towards negative x and y (common practice: it moves by
@@ -400,6 +425,8 @@ fn tori_and_bounded_planes_against_the_reference() {
         ("B3/S23", "bounded 29x41", 2),
         ("B36/S23", "torus 40x24", 3),
         ("B36/S23", "bounded 33x19", 4),
+        ("B2-a/S12", "torus 30x26", 5),
+        ("B3/S2-i34q", "bounded 27x35", 6),
     ] {
         let dir = temp_dir();
         let pattern = dir.path().join("soup.rle");

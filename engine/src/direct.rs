@@ -11,6 +11,7 @@
 
 use crate::pattern::{BuildError, Builder, Pattern};
 use crate::rule::Rule;
+use crate::rule::sliced::Sliced;
 
 const TILE: usize = 64;
 
@@ -18,7 +19,7 @@ const TILE: usize = 64;
 #[derive(Clone)]
 pub struct Grid {
     rule: Rule,
-    counts: Vec<([u64; 4], u64, u64)>,
+    sliced: Sliced,
     /// column of bit 0 of the first word of each row (a multiple of 64)
     left: i64,
     /// row of the first row (a multiple of 64)
@@ -46,7 +47,7 @@ impl Grid {
         let rows = ((height as usize).div_ceil(TILE) + 2) * TILE;
         let mut grid = Grid {
             rule,
-            counts: compile(&rule),
+            sliced: Sliced::new(&rule),
             left: -(TILE as i64),
             top: -(TILE as i64),
             words,
@@ -191,6 +192,8 @@ impl Grid {
             let sides = left ^ right;
             Line {
                 word,
+                west: left,
+                east: right,
                 ones: sides ^ word,
                 twos: (left & right) | (sides & word),
                 side_ones: sides,
@@ -210,15 +213,13 @@ impl Grid {
             let bit1 = t ^ carry0;
             let carry2 = t & carry0;
             let planes = [bit0, bit1, carry1 ^ carry2, carry1 & carry2];
-            let alive = mid.word;
-            let mut out = 0u64;
-            for (want, born, stays) in &self.counts {
-                let differs = (planes[0] ^ want[0])
-                    | (planes[1] ^ want[1])
-                    | (planes[2] ^ want[2])
-                    | (planes[3] ^ want[3]);
-                out |= !differs & ((born & !alive) | (stays & alive));
-            }
+            // Clockwise from north; bit x is the cell (x, y), x growing east.
+            let neighbours = || {
+                [
+                    up.word, up.east, mid.east, down.east, down.word, down.west, mid.west, up.west,
+                ]
+            };
+            let out = self.sliced.next(mid.word, &planes, neighbours);
             self.back[row * words + column] = out;
             any |= out;
             up = mid;
@@ -283,22 +284,15 @@ impl Grid {
 #[derive(Clone, Copy, Default)]
 struct Line {
     word: u64,
+    /// each cell's western and eastern neighbour
+    west: u64,
+    east: u64,
     /// low and high bit of the sum of each cell and its two neighbours
     ones: u64,
     twos: u64,
     /// the same for the two neighbours alone
     side_ones: u64,
     side_twos: u64,
-}
-
-fn compile(rule: &Rule) -> Vec<([u64; 4], u64, u64)> {
-    let word = |yes: bool| if yes { u64::MAX } else { 0 };
-    rule.active_counts()
-        .map(|(count, born, stays)| {
-            let want = [0, 1, 2, 3].map(|bit| word(count >> bit & 1 == 1));
-            (want, word(born), word(stays))
-        })
-        .collect()
 }
 
 #[inline]

@@ -19,6 +19,7 @@ use num_traits::{ToPrimitive, Zero};
 
 use crate::pattern::{BuildError, Builder, Pattern};
 use crate::rule::Rule;
+use crate::rule::sliced::Sliced;
 
 /// The largest side of a bounded universe: 2^24 cells.
 pub const MAX_SIDE: u64 = 1 << 24;
@@ -126,6 +127,7 @@ pub enum FiniteError {
 pub struct Finite {
     space: Space,
     rule: Rule,
+    sliced: Sliced,
     width: usize,
     height: usize,
     /// whether the edges wrap (a torus)
@@ -214,6 +216,7 @@ impl Finite {
         Ok(Finite {
             space,
             rule,
+            sliced: Sliced::new(&rule),
             width,
             height,
             wrap,
@@ -370,7 +373,6 @@ impl Finite {
                 east[words - 1] |= first << last_bit;
             }
         }
-        let (birth, survive) = (self.rule.birth_mask(), self.rule.survive_mask());
         let (height, wrap) = (self.height as isize, self.wrap);
         for y in 0..self.height {
             let neighbour_row = |dy: isize| -> Option<usize> {
@@ -387,19 +389,20 @@ impl Finite {
             for at in 0..words {
                 let word =
                     |grid: &Vec<u64>, row: Option<usize>| row.map_or(0, |r| grid[r * words + at]);
-                let inputs = [
-                    word(&self.west, up),
+                // Clockwise from north (see `rule::letters`).
+                let neighbours = [
                     word(&self.cells, up),
                     word(&self.east, up),
-                    word(&self.west, Some(y)),
                     word(&self.east, Some(y)),
-                    word(&self.west, down),
-                    word(&self.cells, down),
                     word(&self.east, down),
+                    word(&self.cells, down),
+                    word(&self.west, down),
+                    word(&self.west, Some(y)),
+                    word(&self.west, up),
                 ];
                 // The neighbour counts, bit-sliced: count = s0 + 2 s1 + 4 s2 + 8 s3.
                 let mut sum = [0u64; 4];
-                for input in inputs {
+                for input in neighbours {
                     let mut carry = input;
                     for slice in sum.iter_mut() {
                         let next = *slice & carry;
@@ -407,30 +410,8 @@ impl Finite {
                         carry = next;
                     }
                 }
-                let (mut born, mut kept) = (0u64, 0u64);
-                for count in 0..=8u32 {
-                    let born_here = birth >> count & 1 == 1;
-                    let kept_here = survive >> count & 1 == 1;
-                    if !born_here && !kept_here {
-                        continue;
-                    }
-                    let mut equal = u64::MAX;
-                    for (bit, slice) in sum.iter().enumerate() {
-                        equal &= if count >> bit & 1 == 1 {
-                            *slice
-                        } else {
-                            !*slice
-                        };
-                    }
-                    if born_here {
-                        born |= equal;
-                    }
-                    if kept_here {
-                        kept |= equal;
-                    }
-                }
                 let alive = self.cells[y * words + at];
-                let mut next = alive & kept | !alive & born;
+                let mut next = self.sliced.next(alive, &sum, || neighbours);
                 if at + 1 == words {
                     next &= last_mask;
                 }

@@ -32,6 +32,7 @@
 use std::array;
 
 use crate::rule::Rule;
+use crate::rule::sliced::{Fix, ONES, Sliced, ZEROS};
 
 /// The cells of a square of side 16, 32 or 64, strided: row y is
 /// `groups[y % 8][y / 8]`, and bit x of a row is the cell (x, y). A square
@@ -67,6 +68,9 @@ pub struct Kernel {
     flip: [u8; 5],
     /// whether the tree has a leaf "the opposite"
     flips: bool,
+    /// the arrangements where an isotropic rule differs from the tree,
+    /// which picks by count alone; none for an outer-totalistic rule
+    fixes: Vec<Fix>,
     isa: Isa,
 }
 
@@ -102,11 +106,12 @@ impl Kernel {
     }
 
     fn with_isa(rule: &Rule, isa: Isa) -> Kernel {
+        let Sliced { base, fixes } = Sliced::new(rule);
         // The count includes the cell: a dead cell counting q has q live
         // neighbours, a live one q - 1.
-        let leaf = |count: u32| -> u8 {
-            let born = rule.next_state(false, count);
-            let stays = count > 0 && rule.next_state(true, count - 1);
+        let leaf = |count: usize| -> u8 {
+            let born = count <= 8 && base[count].0;
+            let stays = count > 0 && base[count - 1].1;
             match (born, stays) {
                 (false, false) => DEAD,
                 (true, true) => LIVE,
@@ -114,12 +119,13 @@ impl Kernel {
                 (true, false) => OPPOSITE,
             }
         };
-        let even: [u8; 5] = array::from_fn(|pair| leaf(2 * pair as u32));
-        let flip: [u8; 5] = array::from_fn(|pair| even[pair] ^ leaf(2 * pair as u32 + 1));
+        let even: [u8; 5] = array::from_fn(|pair| leaf(2 * pair));
+        let flip: [u8; 5] = array::from_fn(|pair| even[pair] ^ leaf(2 * pair + 1));
         Kernel {
             even,
             flip,
             flips: even.iter().chain(&flip).any(|&leaf| leaf == OPPOSITE),
+            fixes,
             isa,
         }
     }
@@ -198,13 +204,123 @@ fn generations<const L: usize, const TERNARY: bool>(
         opposite: Words([0; WORDS]),
     };
     let mut other = Words([0; WORDS]);
+    let mut fixing = (!kernel.fixes.is_empty()).then(|| Box::new(FixScratch::new()));
+    let mut step = |from: &Words, to: &mut Words| {
+        generation::<L, TERNARY>(kernel, &mut scratch, from, to);
+        if let Some(fixing) = fixing.as_deref_mut() {
+            fix::<L, TERNARY>(kernel, &scratch, fixing, from, to);
+        }
+    };
     for _ in 0..steps / 2 {
-        generation::<L, TERNARY>(kernel, &mut scratch, cells, &mut other);
-        generation::<L, TERNARY>(kernel, &mut scratch, &other, cells);
+        step(cells, &mut other);
+        step(&other, cells);
     }
     if steps % 2 == 1 {
-        generation::<L, TERNARY>(kernel, &mut scratch, cells, &mut other);
+        step(cells, &mut other);
         *cells = other;
+    }
+}
+
+/// What the fixes of an isotropic rule work in: the eight neighbour planes
+/// of every word (then a plane of ones and one of zeros, see [`Sliced`]),
+/// the four planes of the count of nine, and the matches of one fix.
+#[repr(C, align(64))]
+struct FixScratch {
+    /// The cells with room for one group before and after, as `ones`.
+    rows: [u64; SUMS],
+    planes: [Words; 10],
+    count: [Words; 4],
+    matched: Words,
+}
+
+impl FixScratch {
+    fn new() -> FixScratch {
+        let mut planes = [Words([0; WORDS]); 10];
+        planes[ONES as usize] = LIVE_WORDS;
+        planes[ZEROS as usize] = DEAD_WORDS;
+        FixScratch {
+            rows: [0; SUMS],
+            planes,
+            count: [Words([0; WORDS]); 4],
+            matched: Words([0; WORDS]),
+        }
+    }
+}
+
+/// Applies the kernel's fixes to a generation `generation` has just
+/// computed from `cells` into `next`: where a cell's arrangement is one the
+/// rule treats apart from its count, its new state flips. Every loop runs
+/// over all words, so that the compiler vectorises it.
+#[inline(always)]
+fn fix<const L: usize, const TERNARY: bool>(
+    kernel: &Kernel,
+    scratch: &Scratch,
+    fixing: &mut FixScratch,
+    cells: &Words,
+    next: &mut Words,
+) {
+    let words = 8 * L;
+    let FixScratch {
+        rows,
+        planes,
+        count,
+        matched,
+    } = fixing;
+    let Scratch { ones, twos, .. } = scratch;
+    rows[L..L + words].copy_from_slice(&cells.0[..words]);
+    rows.copy_within(8 * L - 1..9 * L - 1, 0);
+    rows.copy_within(L + 1..2 * L + 1, 9 * L);
+    for word in 0..words {
+        let (above, at, below) = (rows[word], rows[word + L], rows[word + 2 * L]);
+        // Bit x is the cell (x, y), x growing east: the western neighbour
+        // is one bit lower, so the row moves up a bit. Clockwise from north.
+        let neighbours = [
+            above,
+            above >> 1,
+            at >> 1,
+            below >> 1,
+            below,
+            below << 1,
+            at << 1,
+            above << 1,
+        ];
+        for (plane, value) in planes.iter_mut().zip(neighbours) {
+            plane.0[word] = value;
+        }
+        let (above, at, below) = (word, word + L, word + 2 * L);
+        let q0 = ones[above] ^ ones[at] ^ ones[below];
+        let carry = majority::<TERNARY>(ones[above], ones[at], ones[below]);
+        let twos_sum = twos[above] ^ twos[at] ^ twos[below];
+        let fours = majority::<TERNARY>(twos[above], twos[at], twos[below]);
+        let carry_twos = twos_sum & carry;
+        count[0].0[word] = q0;
+        count[1].0[word] = twos_sum ^ carry;
+        count[2].0[word] = fours ^ carry_twos;
+        count[3].0[word] = fours & carry_twos;
+    }
+    for fix in &kernel.fixes {
+        matched.0[..words].fill(0);
+        for term in &fix.terms {
+            let [a, b, c, d] = term.cells.map(|cell| &planes[cell as usize].0);
+            let invert = term.invert;
+            for word in 0..words {
+                matched.0[word] |= (a[word] ^ invert)
+                    & (b[word] ^ invert)
+                    & (c[word] ^ invert)
+                    & (d[word] ^ invert);
+            }
+        }
+        // A live cell's count of nine is its neighbours and itself.
+        let value = fix.count + fix.alive as u32;
+        let want = [0, 1, 2, 3].map(|bit| if value >> bit & 1 == 1 { 0 } else { u64::MAX });
+        let state = if fix.alive { 0 } else { u64::MAX };
+        for word in 0..words {
+            let equal = (count[0].0[word] ^ want[0])
+                & (count[1].0[word] ^ want[1])
+                & (count[2].0[word] ^ want[2])
+                & (count[3].0[word] ^ want[3]);
+            next.0[word] ^= matched.0[word] & equal & (cells.0[word] ^ state);
+        }
     }
 }
 
@@ -444,21 +560,29 @@ mod tests {
         let mut next = vec![vec![false; side as usize]; side as usize];
         for y in 0..side {
             for x in 0..side {
-                let mut count = 0;
-                for dy in -1..=1 {
-                    for dx in -1..=1 {
-                        let (nx, ny) = (x + dx, y + dy);
-                        if (dx, dy) != (0, 0)
-                            && (0..side).contains(&nx)
-                            && (0..side).contains(&ny)
-                            && cells[ny as usize][nx as usize]
-                        {
-                            count += 1;
-                        }
+                // Clockwise from north, y growing south (see `rule::letters`).
+                let around = [
+                    (0, -1),
+                    (1, -1),
+                    (1, 0),
+                    (1, 1),
+                    (0, 1),
+                    (-1, 1),
+                    (-1, 0),
+                    (-1, -1),
+                ];
+                let mut neighbourhood = 0u8;
+                for (bit, (dx, dy)) in around.into_iter().enumerate() {
+                    let (nx, ny) = (x + dx, y + dy);
+                    if (0..side).contains(&nx)
+                        && (0..side).contains(&ny)
+                        && cells[ny as usize][nx as usize]
+                    {
+                        neighbourhood |= 1 << bit;
                     }
                 }
                 next[y as usize][x as usize] =
-                    rule.next_state(cells[y as usize][x as usize], count);
+                    rule.next_state(cells[y as usize][x as usize], neighbourhood);
             }
         }
         next
@@ -483,8 +607,15 @@ mod tests {
         leaves
     }
 
-    const RULES: [&str; 8] = [
+    const RULES: [&str; 12] = [
         "B3/S23",
+        // Isotropic rules, which the kernel steps with fixes: rule strings
+        // from LifeWiki, "Isotropic non-totalistic rule", and one with
+        // fixes at every count.
+        "B2-a/S12",
+        "B3/S2-i34q",
+        "B1e2ak3inqy4ny5e/S",
+        "B1c2-n3ajr4ciqtz5-ek6ak7c8/S01e2ain3qy4-kt5cej6c7e8",
         "B36/S23",
         "B2/S",
         "B3678/S34678",

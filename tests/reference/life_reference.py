@@ -29,35 +29,158 @@ import sys
 import blake3
 import numpy as np
 import scipy.ndimage
-import scipy.signal
 
 # ---------------------------------------------------------------- rules
 
 
-RULE_RE = re.compile(r"^B([0-8]*)/S([0-8]*)$")
+# Hensel notation's letters: one picture per letter of the counts 1 to 4,
+# rows top to bottom, "x" a live neighbour, the centre always ".". Each
+# letter names its picture and the picture's images under the eight
+# symmetries of the square; a count n above 4 names with letter x the
+# complements of (8 - n)x. Source: LifeWiki, "Isotropic non-totalistic
+# rule" (the table is pictures there; written out here from memory of it,
+# independently of the engine's table).
+LETTER_PICTURES = {
+    1: {"c": "..x/.../...", "e": ".x./.../..."},
+    2: {"c": "..x/.../..x", "e": ".x./..x/...", "k": ".x./.../..x",
+        "a": ".xx/.../...", "i": ".x./.../.x.", "n": "..x/.../x.."},
+    3: {"c": "..x/.../x.x", "e": ".x./..x/.x.", "k": ".x./..x/x..",
+        "a": ".xx/..x/...", "i": "xxx/.../...", "n": ".xx/.../..x",
+        "y": ".x./.../x.x", "q": ".xx/.../x..", "j": ".xx/x../...",
+        "r": ".xx/.../.x."},
+    4: {"c": "x.x/.../x.x", "e": ".x./x.x/.x.", "k": ".xx/x../..x",
+        "a": ".xx/..x/..x", "i": ".xx/.../.xx", "n": "xxx/.../..x",
+        "y": ".xx/.../x.x", "q": ".xx/..x/x..", "j": ".xx/x../.x.",
+        "r": ".xx/..x/.x.", "t": "xxx/.../.x.", "w": ".xx/x../x..",
+        "z": ".xx/.../xx."},
+}
+
+# Each neighbourhood as a number: the weight of each neighbour's place in the
+# 3x3 window, row by row (a layout of this file's own).
+WEIGHTS = np.array([[1, 2, 4], [8, 0, 16], [32, 64, 128]], dtype=np.int32)
+
+
+def picture_array(picture):
+    return np.array([[ch == "x" for ch in row] for row in picture.split("/")], dtype=bool)
+
+
+def window_index(window):
+    """The number of a 3x3 window's neighbourhood (its centre ignored)."""
+    return int((window.astype(np.int32) * WEIGHTS).sum())
+
+
+def images(window):
+    """The window under the eight symmetries: four quarter turns of it and of
+    its mirror image (numpy's rot90 and fliplr)."""
+    out = []
+    for base in (window, np.fliplr(window)):
+        for turns in range(4):
+            out.append(np.rot90(base, turns))
+    return out
+
+
+def build_letter_classes():
+    """(count, letter) -> the set of neighbourhood numbers it names."""
+    classes = {}
+    for count, pictures in LETTER_PICTURES.items():
+        for letter, picture in pictures.items():
+            window = picture_array(picture)
+            named = {window_index(w) for w in images(window)}
+            classes[(count, letter)] = named
+            if count < 4:
+                complement = ~window
+                complement[1, 1] = False
+                classes[(8 - count, letter)] = {window_index(w) for w in images(complement)}
+    return classes
+
+
+LETTER_CLASSES = build_letter_classes()
+
+
+def letters_of(count):
+    return sorted(letter for c, letter in LETTER_CLASSES if c == count)
+
+
+def neighbourhoods_with(count):
+    return {i for i in range(256) if bin(i).count("1") == count}
+
+
+RULE_PART_RE = re.compile(r"([0-8])(-?)([a-z]*)")
+
+
+def parse_part(text, rule_text):
+    """The set of neighbourhood numbers a B or S part names."""
+    named = set()
+    at = 0
+    while at < len(text):
+        match = RULE_PART_RE.match(text, at)
+        if not match or match.end() == at:
+            raise ValueError(f"rule {rule_text!r}: cannot read {text[at:]!r}")
+        count, minus, letters = int(match.group(1)), match.group(2), match.group(3)
+        if minus and not letters:
+            raise ValueError(f"rule {rule_text!r}: '-' with no letter after it")
+        for letter in letters:
+            if (count, letter) not in LETTER_CLASSES:
+                raise ValueError(f"rule {rule_text!r}: {count} has no letter {letter!r}")
+        if not letters:
+            named |= neighbourhoods_with(count)
+        else:
+            listed = set().union(*(LETTER_CLASSES[(count, l)] for l in letters))
+            named |= (neighbourhoods_with(count) - listed) if minus else listed
+        at = match.end()
+    return named
+
+
+RULE_RE = re.compile(r"^B([0-8a-z-]*)/?S([0-8a-z-]*)$")
 
 
 class Rule:
-    """A Life-like rule: the neighbour counts that give birth and survival."""
+    """A two-state rule on the eight neighbours, in B/S notation with the
+    letters of Hensel notation: which neighbourhoods give birth and which
+    survival, as tables indexed by neighbourhood number."""
 
     def __init__(self, text):
         match = RULE_RE.match(text.strip())
         if not match:
-            raise ValueError(f"rule {text!r} is not in the form B<digits>/S<digits>")
-        self.birth = sorted({int(d) for d in match.group(1)})
-        self.survive = sorted({int(d) for d in match.group(2)})
-        if 0 in self.birth:
+            raise ValueError(f"rule {text!r} is not in the form B<counts>/S<counts>")
+        self.birth_set = parse_part(match.group(1), text)
+        self.survive_set = parse_part(match.group(2), text)
+        if 0 in self.birth_set:
             # The padding argument (cells spread at most one cell per
             # generation) needs a rule without B0 (common practice).
             raise ValueError(f"rule {text!r} has B0, which this reference does not handle")
-        # Lookup tables indexed by neighbour count 0..8.
-        self.birth_table = np.zeros(9, dtype=bool)
-        self.birth_table[self.birth] = True
-        self.survive_table = np.zeros(9, dtype=bool)
-        self.survive_table[self.survive] = True
+        self.birth_table = np.zeros(256, dtype=bool)
+        self.birth_table[sorted(self.birth_set)] = True
+        self.survive_table = np.zeros(256, dtype=bool)
+        self.survive_table[sorted(self.survive_set)] = True
 
     def canonical(self):
-        return "B" + "".join(map(str, self.birth)) + "/S" + "".join(map(str, self.survive))
+        """B, each count with its letters (alphabetical), or '-' and the
+        letters left out when that is shorter, then /S the same way."""
+        def part(named):
+            out = ""
+            for count in range(9):
+                letters = letters_of(count)
+                if not letters:
+                    if neighbourhoods_with(count) <= named:
+                        out += str(count)
+                    continue
+                inside = [l for l in letters if LETTER_CLASSES[(count, l)] <= named]
+                outside = [l for l in letters if l not in inside]
+                if not inside:
+                    continue
+                out += str(count)
+                if outside and len(outside) < len(inside):
+                    out += "-" + "".join(outside)
+                elif outside:
+                    out += "".join(inside)
+            return out
+        return "B" + part(self.birth_set) + "/S" + part(self.survive_set)
+
+    def next_state(self, alive, window):
+        """Whether the centre of a 3x3 window lives on."""
+        table = self.survive_table if alive else self.birth_table
+        return bool(table[window_index(window)])
 
 
 # ---------------------------------------------------------------- RLE
@@ -229,14 +352,18 @@ class Plane:
         return {(int(x) + self.x0, int(y) + self.y0) for x, y in zip(xs, ys)}
 
 
-KERNEL = np.array([[1, 1, 1], [1, 0, 1], [1, 1, 1]], dtype=np.int32)
+def neighbourhood_numbers(grid, boundary):
+    """Every cell's neighbourhood number: scipy.ndimage.correlate with
+    WEIGHTS (correlation, so the weights land where they stand), cells
+    outside the grid dead ("constant") or wrapped round ("wrap")."""
+    return scipy.ndimage.correlate(grid.astype(np.int32), WEIGHTS, mode=boundary, cval=0)
 
 
 def step(plane, rule):
     """One generation, in place. Independent reference: numpy/scipy.
 
-    The neighbour counts come from scipy.signal.convolve2d with the 3x3 kernel
-    (centre 0). Only the live cells' bounding box grown by one cell can change
+    The neighbourhoods come from scipy's correlation with the weights of
+    each neighbour's place. Only the live cells' bounding box grown by one cell can change
     (a rule without B0 never births a cell with no live neighbour), so the
     convolution runs on that window, with zeros outside it: every cell outside
     the window is dead. The grid's padding must keep the window off the edge;
@@ -251,8 +378,8 @@ def step(plane, rule):
     if r0 < 0 or c0 < 0 or r1 > grid.shape[0] or c1 > grid.shape[1]:
         raise RuntimeError("the pattern reached the edge of the reference grid: the padding is too small")
     window = grid[r0:r1, c0:c1]
-    counts = scipy.signal.convolve2d(window.astype(np.int32), KERNEL, mode="same", boundary="fill", fillvalue=0)
-    new = np.where(window, rule.survive_table[counts], rule.birth_table[counts])
+    numbers = neighbourhood_numbers(window, "constant")
+    new = np.where(window, rule.survive_table[numbers], rule.birth_table[numbers])
     grid[r0:r1, c0:c1] = new
 
 
@@ -260,16 +387,13 @@ def step_naive(cells, rule):
     """One generation on a set of cells with plain Python dictionaries: a
     second, slower computation that the self-test holds step() against.
     Common practice."""
-    counts = {}
-    for x, y in cells:
-        for dx in (-1, 0, 1):
-            for dy in (-1, 0, 1):
-                if dx or dy:
-                    key = (x + dx, y + dy)
-                    counts[key] = counts.get(key, 0) + 1
-    born = {c for c, n in counts.items() if c not in cells and n in rule.birth}
-    kept = {c for c in cells if counts.get(c, 0) in rule.survive}
-    return born | kept
+    near = {(x + dx, y + dy) for x, y in cells for dx in (-1, 0, 1) for dy in (-1, 0, 1)}
+    out = set()
+    for x, y in near:
+        window = np.array([[(x + dx, y + dy) in cells for dx in (-1, 0, 1)] for dy in (-1, 0, 1)])
+        if rule.next_state((x, y) in cells, window):
+            out.add((x, y))
+    return out
 
 
 # ---------------------------------------------------------------- digest
@@ -412,14 +536,12 @@ UNIVERSE_RE = re.compile(r"^(torus|bounded) ([0-9]+)x([0-9]+)$")
 
 def step_finite(grid, rule, wrap):
     """One generation of a W x H universe. Independent reference:
-    numpy/scipy. scipy's convolve2d counts the neighbours with the 3x3
+    numpy/scipy. scipy's correlate finds the neighbourhoods with the 3x3
     kernel, its "wrap" boundary joining opposite edges (a torus) or its
     zero "fill" boundary keeping every cell outside dead (a bounded
     plane)."""
-    boundary = "wrap" if wrap else "fill"
-    counts = scipy.signal.convolve2d(grid.astype(np.int32), KERNEL, mode="same",
-                                     boundary=boundary, fillvalue=0)
-    return np.where(grid, rule.survive_table[counts], rule.birth_table[counts])
+    numbers = neighbourhood_numbers(grid, "wrap" if wrap else "constant")
+    return np.where(grid, rule.survive_table[numbers], rule.birth_table[numbers])
 
 
 def run_records_finite(cells, rule, gens, universe):
@@ -891,10 +1013,51 @@ def cmd_selftest(_args):
     step(plane, Rule("B3/S012345678"))
     check(plane.cells() == {(5, 5)}, "S0 keeps a lone cell")
 
+    # Hensel letters. 51 arrangements from 0 to 8 neighbours, and every
+    # neighbourhood of 1..7 neighbours in exactly one letter (LifeWiki,
+    # "Isotropic non-totalistic rule": the table's size, from memory).
+    check(sum(max(1, len(letters_of(c))) for c in range(9)) == 51, "51 arrangements")
+    for count in range(1, 8):
+        named = [i for l in letters_of(count) for i in LETTER_CLASSES[(count, l)]]
+        check(sorted(named) == sorted(neighbourhoods_with(count)), f"letters of {count} cover it once")
+    # LifeWiki, same page: 2i is a blinker's centre; 4q a middle cell of the
+    # beacon's dense phase; B1e2ak3inqy4ny5e/S is B1/S on the four
+    # orthogonal neighbours.
+    blinker_centre = picture_array(".x./.../.x.")
+    check(window_index(blinker_centre) in LETTER_CLASSES[(2, "i")], "2i is a blinker's centre")
+    beacon_cell = picture_array("xx./x../..x")
+    check(window_index(beacon_cell) in LETTER_CLASSES[(4, "q")], "4q is the beacon's middle cell")
+    emulation = Rule("B1e2ak3inqy4ny5e/S")
+    orthogonal = [(0, 1), (1, 0), (1, 2), (2, 1)]
+    for number in range(256):
+        window = np.array([[number & WEIGHTS[r, c] != 0 if (r, c) != (1, 1) else False
+                            for c in range(3)] for r in range(3)])
+        one = sum(window[r, c] for r, c in orthogonal) == 1
+        check(emulation.next_state(False, window) == one, f"von Neumann emulation, {number}")
+    # The same identity by stepping: B1/S on the four orthogonal neighbours,
+    # counted with a plus-shaped kernel, against the Hensel rule for 30
+    # generations of a soup (LifeWiki, same page; independent reference:
+    # numpy/scipy).
+    plus = np.array([[0, 1, 0], [1, 0, 1], [0, 1, 0]], dtype=np.int32)
+    soup_rng = random.Random(11)
+    soup = {(x, y) for x in range(12) for y in range(12) if soup_rng.random() < 0.3}
+    plane = Plane.from_cells(soup, 40)
+    grid = plane.grid.copy()
+    for g in range(30):
+        step(plane, emulation)
+        orthogonal_counts = scipy.ndimage.correlate(grid.astype(np.int32), plus, mode="constant", cval=0)
+        grid = ~grid & (orthogonal_counts == 1)
+        check(np.array_equal(plane.grid, grid), f"B1/S on the orthogonal neighbours, generation {g + 1}")
+    check(Rule("B2-a/S12").canonical() == "B2-a/S12", "canonical B2-a/S12")
+    check(Rule("B3/S2-i34q").canonical() == "B3/S2-i34q", "canonical tlife")
+    check(Rule("B3aceijknqry/S2aceikn3").canonical() == "B3/S23", "every letter is the whole count")
+    check(Rule("B3S23").canonical() == "B3/S23", "slashless form")
+
     # The scipy step against the plain-Python step on random soups, every
     # rule the whole-system test uses and a few more.
     for text in ("B3/S23", "B36/S23", "B3678/S34678", "B2/S", "B3/S012345678",
-                 "B1357/S02468", "B1/S1", "B345/S5", "B25678/S0135"):
+                 "B1357/S02468", "B1/S1", "B345/S5", "B25678/S0135",
+                 "B2-a/S12", "B3/S2-i34q", "B1e2ak3inqy4ny5e/S", "B2e3-ir4t/S1c23-q4w"):
         rule = Rule(text)
         soup = {(x, y) for x in range(16) for y in range(16) if rng.random() < 0.4}
         plane = Plane.from_cells(soup, 25)

@@ -104,24 +104,25 @@ pub fn step(cells: &[Cell], rule: Rule) -> Vec<Cell> {
     for &(x, y) in cells {
         alive[(y - top) as usize * width + (x - left) as usize] = 1;
     }
-    // Row sums of three, then three rows of those.
-    let mut across = vec![0u8; width * height];
-    for row in 0..height {
-        let line = &alive[row * width..(row + 1) * width];
-        let out = &mut across[row * width..(row + 1) * width];
-        for x in 1..width - 1 {
-            out[x] = line[x - 1] + line[x] + line[x + 1];
-        }
-    }
-    let (birth, survive) = (rule.birth_mask(), rule.survive_mask());
     let mut next = Vec::with_capacity(cells.len() + 8);
     for row in 1..height - 1 {
         for x in 1..width - 1 {
             let at = row * width + x;
-            let me = alive[at];
-            let count = across[at - width] + across[at] + across[at + width] - me;
-            let mask = if me == 1 { survive } else { birth };
-            if (mask >> count) & 1 == 1 {
+            // Clockwise from north (see `rule::letters`).
+            let neighbourhood = [
+                at - width,
+                at - width + 1,
+                at + 1,
+                at + width + 1,
+                at + width,
+                at + width - 1,
+                at - 1,
+                at - width - 1,
+            ]
+            .iter()
+            .enumerate()
+            .fold(0u8, |n, (bit, &cell)| n | alive[cell] << bit);
+            if rule.next_state(alive[at] == 1, neighbourhood) {
                 next.push((left + x as i64, top + row as i64));
             }
         }
