@@ -363,12 +363,13 @@ fn one_node_process_with_two_slots_serves_as_two_nodes_and_gives_the_single_proc
 #[test]
 fn three_nodes_give_the_single_process_figures_on_a_soup_that_spans_many_pieces() {
     // Shard level 6: pieces of 32×32 cells, so a 96×96 soup spans many and
-    // tasks must fetch quads from other nodes.
+    // tasks must fetch quads from other nodes. The rule is isotropic (Hensel
+    // notation): the nodes parse it and step it as leap does.
     let dir = temp_dir();
     std::fs::write(dir.path().join("soup.rle"), soup(96)).unwrap();
-    let job = write_job(dir.path(), "soup.rle", "B36/S23", "200", "64");
+    let job = write_job(dir.path(), "soup.rle", "B36-k/S23", "200", "64");
     let cluster = run_cluster(&job, 3, &["--shard-level", "6"]);
-    let single = leap_report(&dir.path().join("soup.rle"), "200", "B36/S23");
+    let single = leap_report(&dir.path().join("soup.rle"), "200", "B36-k/S23");
     assert_same_figures(&cluster, &single);
     // Checkpoints at 64, 128, 192 and 200 (and 0), readable as any run's;
     // the nodes wrote all but the first, each its own pack.
@@ -385,7 +386,7 @@ fn three_nodes_give_the_single_process_figures_on_a_soup_that_spans_many_pieces(
     ]);
     snapshot.assert_success();
     let snapshot: serde_json::Value = serde_json::from_str(&snapshot.stdout).unwrap();
-    let at_128 = leap_report(&dir.path().join("soup.rle"), "128", "B36/S23");
+    let at_128 = leap_report(&dir.path().join("soup.rle"), "128", "B36-k/S23");
     assert_same_figures(&snapshot, &at_128);
     assert!(
         cluster["cluster"]["bytes_fetched"].as_u64().unwrap() > 0,

@@ -236,7 +236,7 @@ pub struct BenchArgs {
     #[arg(long, value_name = "PATH")]
     pub python: Option<PathBuf>,
 
-    /// Run one part only: reach, stepping, chaotic, numpy, checkpoints, cluster, capacity or fate
+    /// Run one part only: reach, stepping, chaotic, rules, numpy, checkpoints, cluster, capacity or fate
     #[arg(long, value_name = "PART")]
     pub only: Option<String>,
 }

@@ -32,7 +32,7 @@
 use std::array;
 
 use crate::rule::Rule;
-use crate::rule::sliced::{Fix, ONES, Sliced, ZEROS};
+use crate::rule::sliced::{Fix, Sliced};
 
 /// The cells of a square of side 16, 32 or 64, strided: row y is
 /// `groups[y % 8][y / 8]`, and bit x of a row is the cell (x, y). A square
@@ -204,123 +204,28 @@ fn generations<const L: usize, const TERNARY: bool>(
         opposite: Words([0; WORDS]),
     };
     let mut other = Words([0; WORDS]);
-    let mut fixing = (!kernel.fixes.is_empty()).then(|| Box::new(FixScratch::new()));
-    let mut step = |from: &Words, to: &mut Words| {
-        generation::<L, TERNARY>(kernel, &mut scratch, from, to);
-        if let Some(fixing) = fixing.as_deref_mut() {
-            fix::<L, TERNARY>(kernel, &scratch, fixing, from, to);
+    if kernel.fixes.is_empty() {
+        for _ in 0..steps / 2 {
+            generation::<L, TERNARY>(kernel, &mut scratch, cells, &mut other);
+            generation::<L, TERNARY>(kernel, &mut scratch, &other, cells);
         }
-    };
+        if steps % 2 == 1 {
+            generation::<L, TERNARY>(kernel, &mut scratch, cells, &mut other);
+            *cells = other;
+        }
+        return;
+    }
+    let mut fixing = FixScratch::new();
     for _ in 0..steps / 2 {
-        step(cells, &mut other);
-        step(&other, cells);
+        generation::<L, TERNARY>(kernel, &mut scratch, cells, &mut other);
+        fix::<L, TERNARY>(kernel, &scratch, &mut fixing, cells, &mut other);
+        generation::<L, TERNARY>(kernel, &mut scratch, &other, cells);
+        fix::<L, TERNARY>(kernel, &scratch, &mut fixing, &other, cells);
     }
     if steps % 2 == 1 {
-        step(cells, &mut other);
+        generation::<L, TERNARY>(kernel, &mut scratch, cells, &mut other);
+        fix::<L, TERNARY>(kernel, &scratch, &mut fixing, cells, &mut other);
         *cells = other;
-    }
-}
-
-/// What the fixes of an isotropic rule work in: the eight neighbour planes
-/// of every word (then a plane of ones and one of zeros, see [`Sliced`]),
-/// the four planes of the count of nine, and the matches of one fix.
-#[repr(C, align(64))]
-struct FixScratch {
-    /// The cells with room for one group before and after, as `ones`.
-    rows: [u64; SUMS],
-    planes: [Words; 10],
-    count: [Words; 4],
-    matched: Words,
-}
-
-impl FixScratch {
-    fn new() -> FixScratch {
-        let mut planes = [Words([0; WORDS]); 10];
-        planes[ONES as usize] = LIVE_WORDS;
-        planes[ZEROS as usize] = DEAD_WORDS;
-        FixScratch {
-            rows: [0; SUMS],
-            planes,
-            count: [Words([0; WORDS]); 4],
-            matched: Words([0; WORDS]),
-        }
-    }
-}
-
-/// Applies the kernel's fixes to a generation `generation` has just
-/// computed from `cells` into `next`: where a cell's arrangement is one the
-/// rule treats apart from its count, its new state flips. Every loop runs
-/// over all words, so that the compiler vectorises it.
-#[inline(always)]
-fn fix<const L: usize, const TERNARY: bool>(
-    kernel: &Kernel,
-    scratch: &Scratch,
-    fixing: &mut FixScratch,
-    cells: &Words,
-    next: &mut Words,
-) {
-    let words = 8 * L;
-    let FixScratch {
-        rows,
-        planes,
-        count,
-        matched,
-    } = fixing;
-    let Scratch { ones, twos, .. } = scratch;
-    rows[L..L + words].copy_from_slice(&cells.0[..words]);
-    rows.copy_within(8 * L - 1..9 * L - 1, 0);
-    rows.copy_within(L + 1..2 * L + 1, 9 * L);
-    for word in 0..words {
-        let (above, at, below) = (rows[word], rows[word + L], rows[word + 2 * L]);
-        // Bit x is the cell (x, y), x growing east: the western neighbour
-        // is one bit lower, so the row moves up a bit. Clockwise from north.
-        let neighbours = [
-            above,
-            above >> 1,
-            at >> 1,
-            below >> 1,
-            below,
-            below << 1,
-            at << 1,
-            above << 1,
-        ];
-        for (plane, value) in planes.iter_mut().zip(neighbours) {
-            plane.0[word] = value;
-        }
-        let (above, at, below) = (word, word + L, word + 2 * L);
-        let q0 = ones[above] ^ ones[at] ^ ones[below];
-        let carry = majority::<TERNARY>(ones[above], ones[at], ones[below]);
-        let twos_sum = twos[above] ^ twos[at] ^ twos[below];
-        let fours = majority::<TERNARY>(twos[above], twos[at], twos[below]);
-        let carry_twos = twos_sum & carry;
-        count[0].0[word] = q0;
-        count[1].0[word] = twos_sum ^ carry;
-        count[2].0[word] = fours ^ carry_twos;
-        count[3].0[word] = fours & carry_twos;
-    }
-    for fix in &kernel.fixes {
-        matched.0[..words].fill(0);
-        for term in &fix.terms {
-            let [a, b, c, d] = term.cells.map(|cell| &planes[cell as usize].0);
-            let invert = term.invert;
-            for word in 0..words {
-                matched.0[word] |= (a[word] ^ invert)
-                    & (b[word] ^ invert)
-                    & (c[word] ^ invert)
-                    & (d[word] ^ invert);
-            }
-        }
-        // A live cell's count of nine is its neighbours and itself.
-        let value = fix.count + fix.alive as u32;
-        let want = [0, 1, 2, 3].map(|bit| if value >> bit & 1 == 1 { 0 } else { u64::MAX });
-        let state = if fix.alive { 0 } else { u64::MAX };
-        for word in 0..words {
-            let equal = (count[0].0[word] ^ want[0])
-                & (count[1].0[word] ^ want[1])
-                & (count[2].0[word] ^ want[2])
-                & (count[3].0[word] ^ want[3]);
-            next.0[word] ^= matched.0[word] & equal & (cells.0[word] ^ state);
-        }
     }
 }
 
@@ -389,6 +294,151 @@ fn generation<const L: usize, const TERNARY: bool>(
         let high = select(q1, pair(2), pair(3));
         // Counts 8 and 9 are the only ones with bit 3, and have bits 1, 2 clear.
         next.0[word] = select(q3, select(q2, low, high), pair(4));
+    }
+}
+
+/// What the fixes of an isotropic rule work in: the cells with room for one
+/// group before and after (as the sums across), the eight neighbour planes
+/// of every word, the four planes of the count of nine, and the matches of
+/// one fix.
+#[repr(C, align(64))]
+struct FixScratch {
+    rows: [u64; SUMS],
+    planes: [Words; 8],
+    count: [Words; 4],
+    matched: Words,
+    term: Words,
+}
+
+impl FixScratch {
+    fn new() -> FixScratch {
+        FixScratch {
+            rows: [0; SUMS],
+            planes: [Words([0; WORDS]); 8],
+            count: [Words([0; WORDS]); 4],
+            matched: Words([0; WORDS]),
+            term: Words([0; WORDS]),
+        }
+    }
+}
+
+/// Applies the kernel's fixes to a generation `generation` has just
+/// computed from `cells` into `next`: where a cell's arrangement is one the
+/// rule treats apart from its count, its new state flips. Every loop runs
+/// over all words and does one thing, so that the compiler vectorises it.
+#[inline(always)]
+fn fix<const L: usize, const TERNARY: bool>(
+    kernel: &Kernel,
+    scratch: &Scratch,
+    fixing: &mut FixScratch,
+    cells: &Words,
+    next: &mut Words,
+) {
+    let words = 8 * L;
+    let FixScratch {
+        rows,
+        planes,
+        count,
+        matched,
+        term,
+    } = fixing;
+    let Scratch { ones, twos, .. } = scratch;
+    rows[L..L + words].copy_from_slice(&cells.0[..words]);
+    rows.copy_within(8 * L - 1..9 * L - 1, 0);
+    rows.copy_within(L + 1..2 * L + 1, 9 * L);
+    // Bit x is the cell (x, y), x growing east: the western neighbour is
+    // one bit lower, so the row moves up a bit. Clockwise from north.
+    let (above, at, below) = (
+        &rows[..words],
+        &rows[L..L + words],
+        &rows[2 * L..2 * L + words],
+    );
+    let [n, ne, e, se, s, sw, w, nw] = planes;
+    for word in 0..words {
+        n.0[word] = above[word];
+        ne.0[word] = above[word] >> 1;
+        nw.0[word] = above[word] << 1;
+    }
+    for word in 0..words {
+        e.0[word] = at[word] >> 1;
+        w.0[word] = at[word] << 1;
+    }
+    for word in 0..words {
+        s.0[word] = below[word];
+        se.0[word] = below[word] >> 1;
+        sw.0[word] = below[word] << 1;
+    }
+    // The count of nine, as in `generation`.
+    for word in 0..words {
+        let (above, at, below) = (word, word + L, word + 2 * L);
+        let q0 = ones[above] ^ ones[at] ^ ones[below];
+        let carry = majority::<TERNARY>(ones[above], ones[at], ones[below]);
+        let twos_sum = twos[above] ^ twos[at] ^ twos[below];
+        let fours = majority::<TERNARY>(twos[above], twos[at], twos[below]);
+        let carry_twos = twos_sum & carry;
+        count[0].0[word] = q0;
+        count[1].0[word] = twos_sum ^ carry;
+        count[2].0[word] = fours ^ carry_twos;
+        count[3].0[word] = fours & carry_twos;
+    }
+    for fix in &kernel.fixes {
+        match (fix.cells, fix.count > 4) {
+            (1, false) => match_arrangements::<L, 1, false>(fix, planes, matched, term),
+            (2, false) => match_arrangements::<L, 2, false>(fix, planes, matched, term),
+            (3, false) => match_arrangements::<L, 3, false>(fix, planes, matched, term),
+            (_, false) => match_arrangements::<L, 4, false>(fix, planes, matched, term),
+            (1, true) => match_arrangements::<L, 1, true>(fix, planes, matched, term),
+            (2, true) => match_arrangements::<L, 2, true>(fix, planes, matched, term),
+            (3, true) => match_arrangements::<L, 3, true>(fix, planes, matched, term),
+            (_, true) => match_arrangements::<L, 4, true>(fix, planes, matched, term),
+        }
+        // A live cell's count of nine is its neighbours and itself.
+        let value = fix.count + fix.alive as u32;
+        let want = [0, 1, 2, 3].map(|bit| if value >> bit & 1 == 1 { 0 } else { u64::MAX });
+        let state = if fix.alive { 0 } else { u64::MAX };
+        for word in 0..words {
+            let equal = (count[0].0[word] ^ want[0])
+                & (count[1].0[word] ^ want[1])
+                & (count[2].0[word] ^ want[2])
+                & (count[3].0[word] ^ want[3]);
+            next.0[word] ^= matched.0[word] & equal & (cells.0[word] ^ state);
+        }
+    }
+}
+
+/// Where any of a fix's arrangements matches, into `matched`; each is told
+/// by its K cells (see [`crate::rule::sliced::Term`]): all live, or with
+/// `DEAD` (counts above 4) all dead.
+#[inline(always)]
+fn match_arrangements<const L: usize, const K: usize, const DEAD: bool>(
+    fix: &Fix,
+    planes: &[Words; 8],
+    matched: &mut Words,
+    term: &mut Words,
+) {
+    let words = 8 * L;
+    for (index, arrangement) in fix.terms.iter().enumerate() {
+        let first = &planes[arrangement.cells[0] as usize & 7].0;
+        term.0[..words].copy_from_slice(&first[..words]);
+        for &cell in &arrangement.cells[1..K] {
+            let plane = &planes[cell as usize & 7].0;
+            for word in 0..words {
+                if DEAD {
+                    term.0[word] |= plane[word];
+                } else {
+                    term.0[word] &= plane[word];
+                }
+            }
+        }
+        if index == 0 {
+            for word in 0..words {
+                matched.0[word] = if DEAD { !term.0[word] } else { term.0[word] };
+            }
+        } else {
+            for word in 0..words {
+                matched.0[word] |= if DEAD { !term.0[word] } else { term.0[word] };
+            }
+        }
     }
 }
 
@@ -758,6 +808,38 @@ mod tests {
                     cells = naive_step(&rule, &cells);
                 }
             }
+        }
+    }
+}
+
+#[cfg(test)]
+mod timing {
+    use super::*;
+
+    #[test]
+    #[ignore]
+    fn kernel_timing() {
+        for text in ["B3/S23", "B3/S2-i34q", "B36/S23", "B36-k/S23"] {
+            let rule: Rule = text.parse().unwrap();
+            let kernel = Kernel::new(&rule);
+            let mut seed = 0x9e37_79b9_7f4a_7c15u64;
+            let mut block = Block::EMPTY;
+            for g in block.groups.iter_mut() {
+                for w in g.iter_mut() {
+                    seed ^= seed << 13;
+                    seed ^= seed >> 7;
+                    seed ^= seed << 17;
+                    *w = seed;
+                }
+            }
+            let start = std::time::Instant::now();
+            let mut sink = 0u64;
+            for _ in 0..20000 {
+                let mut b = block;
+                kernel.advance_block(&mut b, 64, 16);
+                sink ^= b.row(20);
+            }
+            println!("{text}: {:?} per block ({sink})", start.elapsed() / 20000);
         }
     }
 }

@@ -14,6 +14,7 @@ mod cluster;
 mod fate;
 mod process;
 mod resident;
+mod rules;
 mod suite;
 
 use std::path::PathBuf;

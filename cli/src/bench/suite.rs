@@ -35,6 +35,10 @@ pub const PARTS: &[Part] = &[
         run: chaotic,
     },
     Part {
+        name: "rules",
+        run: super::rules::rules,
+    },
+    Part {
         name: "numpy",
         run: numpy,
     },
@@ -114,7 +118,7 @@ pub fn timed<T>(work: impl FnOnce() -> anyhow::Result<T>) -> anyhow::Result<(T, 
 
 /// The pattern advanced `steps` generations in one HashLife jump under
 /// `budget`, timed from building it.
-fn timed_jump(
+pub fn timed_jump(
     pattern: &Pattern,
     rule: Rule,
     steps: &BigUint,

@@ -27,6 +27,9 @@ pub(crate) struct Fix {
     pub count: u32,
     /// whether the fix is for live cells (survival) or dead ones (birth)
     pub alive: bool,
+    /// how many cells tell each arrangement: the count, or for counts
+    /// above 4 the dead neighbours (so at most 4)
+    pub cells: usize,
     pub terms: Vec<Term>,
 }
 
@@ -94,6 +97,7 @@ impl Sliced {
                     fixes.push(Fix {
                         count,
                         alive,
+                        cells: count.min(8 - count) as usize,
                         terms,
                     });
                 }
