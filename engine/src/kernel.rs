@@ -327,6 +327,7 @@ impl FixScratch {
 /// rule treats apart from its count, its new state flips. Every loop runs
 /// over all words and does one thing, so that the compiler vectorises it.
 #[inline(always)]
+#[allow(clippy::needless_range_loop)] // index loops over arrays in step vectorise
 fn fix<const L: usize, const TERNARY: bool>(
     kernel: &Kernel,
     scratch: &Scratch,
@@ -410,6 +411,7 @@ fn fix<const L: usize, const TERNARY: bool>(
 /// by its K cells (see [`crate::rule::sliced::Term`]): all live, or with
 /// `DEAD` (counts above 4) all dead.
 #[inline(always)]
+#[allow(clippy::needless_range_loop)] // as in `fix`
 fn match_arrangements<const L: usize, const K: usize, const DEAD: bool>(
     fix: &Fix,
     planes: &[Words; 8],
@@ -808,38 +810,6 @@ mod tests {
                     cells = naive_step(&rule, &cells);
                 }
             }
-        }
-    }
-}
-
-#[cfg(test)]
-mod timing {
-    use super::*;
-
-    #[test]
-    #[ignore]
-    fn kernel_timing() {
-        for text in ["B3/S23", "B3/S2-i34q", "B36/S23", "B36-k/S23"] {
-            let rule: Rule = text.parse().unwrap();
-            let kernel = Kernel::new(&rule);
-            let mut seed = 0x9e37_79b9_7f4a_7c15u64;
-            let mut block = Block::EMPTY;
-            for g in block.groups.iter_mut() {
-                for w in g.iter_mut() {
-                    seed ^= seed << 13;
-                    seed ^= seed >> 7;
-                    seed ^= seed << 17;
-                    *w = seed;
-                }
-            }
-            let start = std::time::Instant::now();
-            let mut sink = 0u64;
-            for _ in 0..20000 {
-                let mut b = block;
-                kernel.advance_block(&mut b, 64, 16);
-                sink ^= b.row(20);
-            }
-            println!("{text}: {:?} per block ({sink})", start.elapsed() / 20000);
         }
     }
 }
