@@ -160,7 +160,8 @@ fn a_stored_run_keeps_its_universe_and_bad_universes_are_one_line_errors() {
         small.describe()
     );
 
-    // The cluster does not take bounded universes yet, and says so.
+    // The coordinator runs a bounded job itself, says so, and gives the
+    // figures leap gives in the same universe.
     let job = write_universe_job(dir.path(), "torus 10x10", "200", "50");
     let cluster = run_deeptime([
         "coordinator".as_ref(),
@@ -169,15 +170,32 @@ fn a_stored_run_keeps_its_universe_and_bad_universes_are_one_line_errors() {
         "127.0.0.1:0".as_ref(),
         "--token-file".as_ref(),
         dir.path().join("token").as_os_str(),
+        "--json".as_ref(),
     ]);
-    assert_eq!(cluster.code, Some(2), "{}", cluster.describe());
+    let figures = report(&cluster);
     assert!(
-        cluster
-            .stderr
-            .contains("the cluster runs jobs on the unbounded plane"),
+        cluster.stderr.contains("the coordinator runs it itself"),
         "{}",
         cluster.describe()
     );
+    let leap = report(&run_deeptime([
+        "leap".as_ref(),
+        dir.path().join("soup.rle").as_os_str(),
+        "--gens".as_ref(),
+        "200".as_ref(),
+        "--universe".as_ref(),
+        "torus 10x10".as_ref(),
+        "--json".as_ref(),
+    ]));
+    for field in ["generation", "population", "bbox", "digest", "rule"] {
+        assert_eq!(
+            figures[field],
+            leap[field],
+            "{field}: {}",
+            cluster.describe()
+        );
+    }
+    assert_eq!(figures["cluster"]["nodes"], 0, "{figures}");
 }
 
 #[test]

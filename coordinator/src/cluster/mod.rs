@@ -121,7 +121,7 @@ impl Finished {
     }
 }
 
-#[derive(Serialize)]
+#[derive(Serialize, Default)]
 pub struct ClusterFigures {
     pub nodes: usize,
     pub shard_level: u32,
@@ -159,12 +159,7 @@ pub async fn coordinate(
     let started = Instant::now();
     let job = Job::load(&args.job)?;
     if job.universe != deeptime_engine::finite::Space::Plane {
-        return Err(deeptime_engine::BadInput(format!(
-            "{}: the cluster runs jobs on the unbounded plane; a job in a {} runs with deeptime run",
-            args.job.display(),
-            job.universe
-        ))
-        .into());
+        return run_bounded_here(&args, &job, finished);
     }
     let budget = memory::budget(job.memory.as_deref())?;
     let loaded = input::read(&job.pattern, budget)?;
@@ -341,6 +336,29 @@ pub async fn coordinate(
     server.abort();
     membership.shutdown_background();
     outcome
+}
+
+/// A job in a torus or bounded plane: at most 2^32 cells, stepped a
+/// generation at a time with no quadtree to share out, so the coordinator
+/// runs it itself as `deeptime run` would (same checkpoints, same figures)
+/// and says so; nodes that join get no work.
+fn run_bounded_here(
+    args: &CoordinatorArgs,
+    job: &Job,
+    finished: impl FnOnce(&Finished) -> anyhow::Result<()>,
+) -> anyhow::Result<()> {
+    token_for_coordinator(&args.token_file)?;
+    tracing::info!(
+        "{}: the job is in a {}; a bounded universe holds at most 2^32 cells and is stepped a \
+         generation at a time, so the coordinator runs it itself, without nodes",
+        args.job.display(),
+        job.universe
+    );
+    let report = tokio::task::block_in_place(|| crate::run::run_job(&args.job))?;
+    finished(&Finished {
+        report,
+        cluster: ClusterFigures::default(),
+    })
 }
 
 /// Deletes the nodes' spill packs once the run is done (a failure to is
