@@ -206,25 +206,45 @@ fn generations<const L: usize, const TERNARY: bool>(
     let mut other = Words([0; WORDS]);
     if kernel.fixes.is_empty() {
         for _ in 0..steps / 2 {
-            generation::<L, TERNARY>(kernel, &mut scratch, cells, &mut other);
-            generation::<L, TERNARY>(kernel, &mut scratch, &other, cells);
+            generation::<L, TERNARY, false>(kernel, &mut scratch, cells, &mut other, None);
+            generation::<L, TERNARY, false>(kernel, &mut scratch, &other, cells, None);
         }
         if steps % 2 == 1 {
-            generation::<L, TERNARY>(kernel, &mut scratch, cells, &mut other);
+            generation::<L, TERNARY, false>(kernel, &mut scratch, cells, &mut other, None);
             *cells = other;
         }
         return;
     }
     let mut fixing = FixScratch::new();
+    // No closure here: one would be compiled without the instruction set
+    // this function is compiled for.
     for _ in 0..steps / 2 {
-        generation::<L, TERNARY>(kernel, &mut scratch, cells, &mut other);
-        fix::<L, TERNARY>(kernel, &scratch, &mut fixing, cells, &mut other);
-        generation::<L, TERNARY>(kernel, &mut scratch, &other, cells);
-        fix::<L, TERNARY>(kernel, &scratch, &mut fixing, &other, cells);
+        generation::<L, TERNARY, true>(
+            kernel,
+            &mut scratch,
+            cells,
+            &mut other,
+            Some(&mut fixing.count),
+        );
+        fix::<L>(kernel, &mut fixing, cells, &mut other);
+        generation::<L, TERNARY, true>(
+            kernel,
+            &mut scratch,
+            &other,
+            cells,
+            Some(&mut fixing.count),
+        );
+        fix::<L>(kernel, &mut fixing, &other, cells);
     }
     if steps % 2 == 1 {
-        generation::<L, TERNARY>(kernel, &mut scratch, cells, &mut other);
-        fix::<L, TERNARY>(kernel, &scratch, &mut fixing, cells, &mut other);
+        generation::<L, TERNARY, true>(
+            kernel,
+            &mut scratch,
+            cells,
+            &mut other,
+            Some(&mut fixing.count),
+        );
+        fix::<L>(kernel, &mut fixing, cells, &mut other);
         *cells = other;
     }
 }
@@ -244,11 +264,12 @@ struct Scratch {
 /// across, then counts and the rule), which the compiler vectorises across
 /// words.
 #[inline(always)]
-fn generation<const L: usize, const TERNARY: bool>(
+fn generation<const L: usize, const TERNARY: bool, const COUNTS: bool>(
     kernel: &Kernel,
     scratch: &mut Scratch,
     cells: &Words,
     next: &mut Words,
+    mut counts: Option<&mut [Words; 4]>,
 ) {
     let words = 8 * L;
     let Scratch {
@@ -294,20 +315,26 @@ fn generation<const L: usize, const TERNARY: bool>(
         let high = select(q1, pair(2), pair(3));
         // Counts 8 and 9 are the only ones with bit 3, and have bits 1, 2 clear.
         next.0[word] = select(q3, select(q2, low, high), pair(4));
+        // The fixes of an isotropic rule compare the counts again.
+        if COUNTS && let Some(counts) = counts.as_deref_mut() {
+            counts[0].0[word] = q0;
+            counts[1].0[word] = q1;
+            counts[2].0[word] = q2;
+            counts[3].0[word] = q3;
+        }
     }
 }
 
 /// What the fixes of an isotropic rule work in: the cells with room for one
 /// group before and after (as the sums across), the eight neighbour planes
-/// of every word, the four planes of the count of nine, and the matches of
-/// one fix.
+/// of every word, the four planes of the count of nine, and where one fix's
+/// arrangements match.
 #[repr(C, align(64))]
 struct FixScratch {
     rows: [u64; SUMS],
     planes: [Words; 8],
     count: [Words; 4],
     matched: Words,
-    term: Words,
 }
 
 impl FixScratch {
@@ -317,7 +344,6 @@ impl FixScratch {
             planes: [Words([0; WORDS]); 8],
             count: [Words([0; WORDS]); 4],
             matched: Words([0; WORDS]),
-            term: Words([0; WORDS]),
         }
     }
 }
@@ -328,22 +354,14 @@ impl FixScratch {
 /// over all words and does one thing, so that the compiler vectorises it.
 #[inline(always)]
 #[allow(clippy::needless_range_loop)] // index loops over arrays in step vectorise
-fn fix<const L: usize, const TERNARY: bool>(
-    kernel: &Kernel,
-    scratch: &Scratch,
-    fixing: &mut FixScratch,
-    cells: &Words,
-    next: &mut Words,
-) {
+fn fix<const L: usize>(kernel: &Kernel, fixing: &mut FixScratch, cells: &Words, next: &mut Words) {
     let words = 8 * L;
     let FixScratch {
         rows,
         planes,
         count,
         matched,
-        term,
     } = fixing;
-    let Scratch { ones, twos, .. } = scratch;
     rows[L..L + words].copy_from_slice(&cells.0[..words]);
     rows.copy_within(8 * L - 1..9 * L - 1, 0);
     rows.copy_within(L + 1..2 * L + 1, 9 * L);
@@ -369,29 +387,16 @@ fn fix<const L: usize, const TERNARY: bool>(
         se.0[word] = below[word] >> 1;
         sw.0[word] = below[word] << 1;
     }
-    // The count of nine, as in `generation`.
-    for word in 0..words {
-        let (above, at, below) = (word, word + L, word + 2 * L);
-        let q0 = ones[above] ^ ones[at] ^ ones[below];
-        let carry = majority::<TERNARY>(ones[above], ones[at], ones[below]);
-        let twos_sum = twos[above] ^ twos[at] ^ twos[below];
-        let fours = majority::<TERNARY>(twos[above], twos[at], twos[below]);
-        let carry_twos = twos_sum & carry;
-        count[0].0[word] = q0;
-        count[1].0[word] = twos_sum ^ carry;
-        count[2].0[word] = fours ^ carry_twos;
-        count[3].0[word] = fours & carry_twos;
-    }
     for fix in &kernel.fixes {
         match (fix.cells, fix.count > 4) {
-            (1, false) => match_arrangements::<L, 1, false>(fix, planes, matched, term),
-            (2, false) => match_arrangements::<L, 2, false>(fix, planes, matched, term),
-            (3, false) => match_arrangements::<L, 3, false>(fix, planes, matched, term),
-            (_, false) => match_arrangements::<L, 4, false>(fix, planes, matched, term),
-            (1, true) => match_arrangements::<L, 1, true>(fix, planes, matched, term),
-            (2, true) => match_arrangements::<L, 2, true>(fix, planes, matched, term),
-            (3, true) => match_arrangements::<L, 3, true>(fix, planes, matched, term),
-            (_, true) => match_arrangements::<L, 4, true>(fix, planes, matched, term),
+            (1, false) => match_arrangements::<L, 1, false>(fix, planes, matched),
+            (2, false) => match_arrangements::<L, 2, false>(fix, planes, matched),
+            (3, false) => match_arrangements::<L, 3, false>(fix, planes, matched),
+            (_, false) => match_arrangements::<L, 4, false>(fix, planes, matched),
+            (1, true) => match_arrangements::<L, 1, true>(fix, planes, matched),
+            (2, true) => match_arrangements::<L, 2, true>(fix, planes, matched),
+            (3, true) => match_arrangements::<L, 3, true>(fix, planes, matched),
+            (_, true) => match_arrangements::<L, 4, true>(fix, planes, matched),
         }
         // A live cell's count of nine is its neighbours and itself.
         let value = fix.count + fix.alive as u32;
@@ -407,38 +412,43 @@ fn fix<const L: usize, const TERNARY: bool>(
     }
 }
 
+/// Arrangements matched in one loop over the words: enough to keep the
+/// loop's work in registers, few enough to keep it simple.
+const TERMS_AT_ONCE: usize = 4;
+
 /// Where any of a fix's arrangements matches, into `matched`; each is told
 /// by its K cells (see [`crate::rule::sliced::Term`]): all live, or with
-/// `DEAD` (counts above 4) all dead.
+/// `DEAD` (counts above 4) all dead. A few arrangements per loop over the
+/// words; a missing one is a plane that never matches.
 #[inline(always)]
 #[allow(clippy::needless_range_loop)] // as in `fix`
 fn match_arrangements<const L: usize, const K: usize, const DEAD: bool>(
     fix: &Fix,
     planes: &[Words; 8],
     matched: &mut Words,
-    term: &mut Words,
 ) {
     let words = 8 * L;
-    for (index, arrangement) in fix.terms.iter().enumerate() {
-        let first = &planes[arrangement.cells[0] as usize & 7].0;
-        term.0[..words].copy_from_slice(&first[..words]);
-        for &cell in &arrangement.cells[1..K] {
-            let plane = &planes[cell as usize & 7].0;
-            for word in 0..words {
-                if DEAD {
-                    term.0[word] |= plane[word];
+    let never = if DEAD { &LIVE_WORDS.0 } else { &DEAD_WORDS.0 };
+    for (group, terms) in fix.terms.chunks(TERMS_AT_ONCE).enumerate() {
+        let cells: [[&[u64; WORDS]; K]; TERMS_AT_ONCE] = array::from_fn(|t| {
+            array::from_fn(|k| match terms.get(t) {
+                Some(term) => &planes[term.cells[k] as usize & 7].0,
+                None => never,
+            })
+        });
+        for word in 0..words {
+            let mut any = 0;
+            for term in &cells {
+                any |= if DEAD {
+                    !term.iter().fold(0, |any, plane| any | plane[word])
                 } else {
-                    term.0[word] &= plane[word];
-                }
+                    term.iter().fold(u64::MAX, |all, plane| all & plane[word])
+                };
             }
-        }
-        if index == 0 {
-            for word in 0..words {
-                matched.0[word] = if DEAD { !term.0[word] } else { term.0[word] };
-            }
-        } else {
-            for word in 0..words {
-                matched.0[word] |= if DEAD { !term.0[word] } else { term.0[word] };
+            if group == 0 {
+                matched.0[word] = any;
+            } else {
+                matched.0[word] |= any;
             }
         }
     }

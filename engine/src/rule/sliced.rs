@@ -35,38 +35,39 @@ pub(crate) struct Fix {
 
 /// One arrangement, told apart from the others of its count by at most four
 /// neighbours: the live ones when the count is at most 4, else the dead
-/// ones. Evaluated as the and of `planes[cell] ^ invert` over the four
-/// cells, where [`ONES`] and [`ZEROS`] pad a shorter list.
+/// ones. The first [`Fix::cells`] entries are used.
 #[derive(Clone, Copy, Debug, PartialEq, Eq)]
 pub(crate) struct Term {
     pub cells: [u8; 4],
-    pub invert: u64,
 }
-
-/// Index of a plane of ones after the eight neighbour planes.
-pub(crate) const ONES: u8 = 8;
-/// Index of a plane of zeros.
-pub(crate) const ZEROS: u8 = 9;
 
 impl Term {
     fn of(neighbourhood: u8) -> Term {
-        let live = neighbourhood.count_ones() <= 4;
-        let named = if live { neighbourhood } else { !neighbourhood };
-        let mut cells = [if live { ONES } else { ZEROS }; 4];
+        let named = if neighbourhood.count_ones() <= 4 {
+            neighbourhood
+        } else {
+            !neighbourhood
+        };
+        let mut cells = [0; 4];
         for (slot, bit) in (0..8u8).filter(|bit| named >> bit & 1 == 1).enumerate() {
             cells[slot] = bit;
         }
-        Term {
-            cells,
-            invert: if live { 0 } else { u64::MAX },
-        }
+        Term { cells }
     }
+}
 
-    /// Where the arrangement matches among cells known to have its count.
-    #[inline(always)]
-    pub fn eval(&self, planes: &[u64; 10]) -> u64 {
-        self.cells.iter().fold(u64::MAX, |all, &cell| {
-            all & (planes[cell as usize] ^ self.invert)
+impl Fix {
+    /// Where any of the fix's arrangements matches among cells known to
+    /// have its count, given the eight neighbour planes.
+    #[inline]
+    fn matched(&self, planes: &[u64; 8]) -> u64 {
+        self.terms.iter().fold(0, |any, term| {
+            let cells = term.cells[..self.cells].iter().map(|&c| planes[c as usize]);
+            any | if self.count > 4 {
+                !cells.fold(0, |any, plane| any | plane)
+            } else {
+                cells.fold(u64::MAX, |all, plane| all & plane)
+            }
         })
     }
 }
@@ -135,13 +136,9 @@ impl Sliced {
         if self.fixes.is_empty() {
             return next;
         }
-        let n = neighbours();
-        let planes = [n[0], n[1], n[2], n[3], n[4], n[5], n[6], n[7], u64::MAX, 0];
+        let planes = neighbours();
         for fix in &self.fixes {
-            let matched = fix
-                .terms
-                .iter()
-                .fold(0, |any, term| any | term.eval(&planes));
+            let matched = fix.matched(&planes);
             let state = if fix.alive { alive } else { !alive };
             next ^= matched & equal(fix.count) & state;
         }
