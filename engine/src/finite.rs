@@ -19,7 +19,7 @@ use num_traits::{ToPrimitive, Zero};
 
 use crate::pattern::{BuildError, Builder, Pattern};
 use crate::rule::Rule;
-use crate::rule::sliced::Sliced;
+use crate::rule::sliced::{self, Sliced};
 
 /// The largest side of a bounded universe: 2^24 cells.
 pub const MAX_SIDE: u64 = 1 << 24;
@@ -400,16 +400,7 @@ impl Finite {
                     word(&self.west, Some(y)),
                     word(&self.west, up),
                 ];
-                // The neighbour counts, bit-sliced: count = s0 + 2 s1 + 4 s2 + 8 s3.
-                let mut sum = [0u64; 4];
-                for input in neighbours {
-                    let mut carry = input;
-                    for slice in sum.iter_mut() {
-                        let next = *slice & carry;
-                        *slice ^= carry;
-                        carry = next;
-                    }
-                }
+                let sum = sliced::counts(&neighbours);
                 let alive = self.cells[y * words + at];
                 let mut next = self.sliced.next(alive, &sum, || neighbours);
                 if at + 1 == words {

@@ -204,48 +204,34 @@ fn generations<const L: usize, const TERNARY: bool>(
         opposite: Words([0; WORDS]),
     };
     let mut other = Words([0; WORDS]);
-    if kernel.fixes.is_empty() {
-        for _ in 0..steps / 2 {
-            generation::<L, TERNARY, false>(kernel, &mut scratch, cells, &mut other, None);
-            generation::<L, TERNARY, false>(kernel, &mut scratch, &other, cells, None);
-        }
-        if steps % 2 == 1 {
-            generation::<L, TERNARY, false>(kernel, &mut scratch, cells, &mut other, None);
-            *cells = other;
-        }
-        return;
-    }
-    let mut fixing = FixScratch::new();
-    // No closure here: one would be compiled without the instruction set
-    // this function is compiled for.
+    let mut fixing = (!kernel.fixes.is_empty()).then(FixScratch::new);
     for _ in 0..steps / 2 {
-        generation::<L, TERNARY, true>(
-            kernel,
-            &mut scratch,
-            cells,
-            &mut other,
-            Some(&mut fixing.count),
-        );
-        fix::<L>(kernel, &mut fixing, cells, &mut other);
-        generation::<L, TERNARY, true>(
-            kernel,
-            &mut scratch,
-            &other,
-            cells,
-            Some(&mut fixing.count),
-        );
-        fix::<L>(kernel, &mut fixing, &other, cells);
+        one_generation::<L, TERNARY>(kernel, &mut scratch, fixing.as_mut(), cells, &mut other);
+        one_generation::<L, TERNARY>(kernel, &mut scratch, fixing.as_mut(), &other, cells);
     }
     if steps % 2 == 1 {
-        generation::<L, TERNARY, true>(
-            kernel,
-            &mut scratch,
-            cells,
-            &mut other,
-            Some(&mut fixing.count),
-        );
-        fix::<L>(kernel, &mut fixing, cells, &mut other);
+        one_generation::<L, TERNARY>(kernel, &mut scratch, fixing.as_mut(), cells, &mut other);
         *cells = other;
+    }
+}
+
+/// One generation from `cells` into `next`, then the fixes of an isotropic
+/// rule when there are any. A function, not a closure: a closure would be
+/// compiled without the instruction set its caller is compiled for.
+#[inline(always)]
+fn one_generation<const L: usize, const TERNARY: bool>(
+    kernel: &Kernel,
+    scratch: &mut Scratch,
+    fixing: Option<&mut FixScratch>,
+    cells: &Words,
+    next: &mut Words,
+) {
+    match fixing {
+        None => generation::<L, TERNARY, false>(kernel, scratch, cells, next, None),
+        Some(fixing) => {
+            generation::<L, TERNARY, true>(kernel, scratch, cells, next, Some(&mut fixing.count));
+            fix::<L>(kernel, fixing, cells, next);
+        }
     }
 }
 

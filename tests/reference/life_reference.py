@@ -1,9 +1,11 @@
 #!/usr/bin/env python3
 """Independent reference simulator for deeptime's whole-system tests.
 
-It runs two-state Life-like rules (B/S notation, no B0) the plain way: a
-numpy boolean grid, padded so that nothing reaches its edge, and neighbour
-counts from scipy's 2-D convolution with the 3x3 kernel. It shares no code with
+It runs two-state rules on the eight neighbours (B/S notation with the
+letters of Hensel notation, no B0) the plain way: a numpy boolean grid,
+padded so that nothing reaches its edge, and each cell's neighbourhood
+numbered by scipy's 2-D correlation with a 3x3 window of weights, looked up
+in the rule's tables. It shares no code with
 the Rust engine: it has its own rule parser, RLE reader and writer, and its own
 computation of the state digest from the grid. tests/reference.rs drives it:
 

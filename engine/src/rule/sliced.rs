@@ -146,6 +146,22 @@ impl Sliced {
     }
 }
 
+/// The live-neighbour counts of 64 cells as four bit planes (`[0]` the
+/// lowest), added up from their eight neighbour planes.
+#[inline]
+pub(crate) fn counts(neighbours: &[u64; 8]) -> [u64; 4] {
+    let mut sum = [0u64; 4];
+    for &plane in neighbours {
+        let mut carry = plane;
+        for slice in sum.iter_mut() {
+            let next = *slice & carry;
+            *slice ^= carry;
+            carry = next;
+        }
+    }
+    sum
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
@@ -161,16 +177,7 @@ mod tests {
             state
         };
         let planes: [u64; 8] = std::array::from_fn(|_| next());
-        let mut count = [0u64; 4];
-        for plane in planes {
-            let mut carry = plane;
-            for bit in count.iter_mut() {
-                let next_carry = *bit & carry;
-                *bit ^= carry;
-                carry = next_carry;
-            }
-        }
-        (planes, count, next())
+        (planes, counts(&planes), next())
     }
 
     #[test]
