@@ -12,8 +12,10 @@
 //! and including each cell. The rule, compiled once into a selection tree
 //! over those planes whose ten leaves are "dead", "live", "as it was" or "the
 //! opposite", picks the new row: the same few operations for any B/S rule,
-//! however many counts it names. Cells near the border see wrong neighbours,
-//! but the error moves inward one cell per generation, so after t ≤ side/4
+//! however many counts it names. An isotropic rule's letters are applied
+//! after that as fixes: where a cell's arrangement is one its count's
+//! decision does not cover, its new state flips (see `rule::sliced`).
+//! Cells near the border see wrong neighbours, but the error moves inward one cell per generation, so after t ≤ side/4
 //! generations the centre half is exact.
 //!
 //! The rows are held strided (see [`Block`]): row y is lane y/8 of group
@@ -275,13 +277,8 @@ fn generation<const L: usize, const TERNARY: bool, const COUNTS: bool>(
             opposite.0[word] = !cells.0[word];
         }
     }
-    // Above group 0 is group 7 one lane earlier; below group 7 is group 0
-    // one lane later. Lane 0 above and the last lane below lie outside the
-    // square and get any word: only border cells see them.
-    ones.copy_within(8 * L - 1..9 * L - 1, 0);
-    twos.copy_within(8 * L - 1..9 * L - 1, 0);
-    ones.copy_within(L + 1..2 * L + 1, 9 * L);
-    twos.copy_within(L + 1..2 * L + 1, 9 * L);
+    pad::<L>(ones);
+    pad::<L>(twos);
     let leaves = [&DEAD_WORDS.0, &LIVE_WORDS.0, &cells.0, &opposite.0];
     let even = kernel.even.map(|leaf| leaves[leaf as usize & 3]);
     let flip = kernel.flip.map(|leaf| leaves[leaf as usize & 3]);
@@ -309,6 +306,17 @@ fn generation<const L: usize, const TERNARY: bool, const COUNTS: bool>(
             counts[3].0[word] = q3;
         }
     }
+}
+
+/// Fills the group before and after the words of an array laid out as
+/// the sums across (word w at index L + w). Above group 0 is group 7 one
+/// lane earlier; below group 7 is group 0 one lane later. Lane 0 above and
+/// the last lane below lie outside the square and get any word: only
+/// border cells see them.
+#[inline(always)]
+fn pad<const L: usize>(array: &mut [u64; SUMS]) {
+    array.copy_within(8 * L - 1..9 * L - 1, 0);
+    array.copy_within(L + 1..2 * L + 1, 9 * L);
 }
 
 /// What the fixes of an isotropic rule work in: the cells with room for one
@@ -349,8 +357,7 @@ fn fix<const L: usize>(kernel: &Kernel, fixing: &mut FixScratch, cells: &Words, 
         matched,
     } = fixing;
     rows[L..L + words].copy_from_slice(&cells.0[..words]);
-    rows.copy_within(8 * L - 1..9 * L - 1, 0);
-    rows.copy_within(L + 1..2 * L + 1, 9 * L);
+    pad::<L>(rows);
     // Bit x is the cell (x, y), x growing east: the western neighbour is
     // one bit lower, so the row moves up a bit. Clockwise from north.
     let (above, at, below) = (
@@ -374,7 +381,7 @@ fn fix<const L: usize>(kernel: &Kernel, fixing: &mut FixScratch, cells: &Words, 
         sw.0[word] = below[word] << 1;
     }
     for fix in &kernel.fixes {
-        match (fix.cells, fix.count > 4) {
+        match (fix.cells(), fix.count > 4) {
             (1, false) => match_arrangements::<L, 1, false>(fix, planes, matched),
             (2, false) => match_arrangements::<L, 2, false>(fix, planes, matched),
             (3, false) => match_arrangements::<L, 3, false>(fix, planes, matched),
@@ -608,19 +615,9 @@ mod tests {
         let mut next = vec![vec![false; side as usize]; side as usize];
         for y in 0..side {
             for x in 0..side {
-                // Clockwise from north, y growing south (see `rule::letters`).
-                let around = [
-                    (0, -1),
-                    (1, -1),
-                    (1, 0),
-                    (1, 1),
-                    (0, 1),
-                    (-1, 1),
-                    (-1, 0),
-                    (-1, -1),
-                ];
                 let mut neighbourhood = 0u8;
-                for (bit, (dx, dy)) in around.into_iter().enumerate() {
+                for (bit, (dx, dy)) in crate::rule::letters::OFFSETS.into_iter().enumerate() {
+                    let (dx, dy) = (dx as i32, dy as i32);
                     let (nx, ny) = (x + dx, y + dy);
                     if (0..side).contains(&nx)
                         && (0..side).contains(&ny)

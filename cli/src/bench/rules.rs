@@ -52,26 +52,21 @@ pub fn rules(settings: &Settings) -> anyhow::Result<Vec<Figure>> {
             ));
         }
         let detail = details.join("; ");
-        figures.push(
-            Figure::new(
-                "rules",
-                &format!("{label}: {child} / {parent}, HashLife time per quad created"),
-                per_quad[1] / per_quad[0],
-                "×",
-                Some(Goal::AtMost(1.5)),
-            )
-            .detail(detail.clone()),
-        );
-        figures.push(
-            Figure::new(
-                "rules",
-                &format!("{label}: {child} / {parent}, direct stepper time"),
-                direct[1] / direct[0],
-                "×",
-                Some(Goal::AtMost(1.5)),
-            )
-            .detail(detail),
-        );
+        for (what, seconds) in [
+            ("HashLife time per quad created", per_quad),
+            ("direct stepper time", direct),
+        ] {
+            figures.push(
+                Figure::new(
+                    "rules",
+                    &format!("{label}: {child} / {parent}, {what}"),
+                    seconds[1] / seconds[0],
+                    "×",
+                    Some(Goal::AtMost(1.5)),
+                )
+                .detail(detail.clone()),
+            );
+        }
     }
     Ok(figures)
 }

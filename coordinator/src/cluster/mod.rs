@@ -347,6 +347,8 @@ fn run_bounded_here(
     job: &Job,
     finished: impl FnOnce(&Finished) -> anyhow::Result<()>,
 ) -> anyhow::Result<()> {
+    // The token file is read or written as for any job, so that a bad one
+    // is the same error and nodes started for this job can still join.
     token_for_coordinator(&args.token_file)?;
     tracing::info!(
         "{}: the job is in a {}; a bounded universe holds at most 2^32 cells and is stepped a \

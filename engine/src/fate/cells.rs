@@ -10,6 +10,7 @@
 use std::collections::HashMap;
 
 use crate::rule::Rule;
+use crate::rule::letters::OFFSETS;
 
 /// A live cell: (x, y).
 pub type Cell = (i64, i64);
@@ -108,20 +109,10 @@ pub fn step(cells: &[Cell], rule: Rule) -> Vec<Cell> {
     for row in 1..height - 1 {
         for x in 1..width - 1 {
             let at = row * width + x;
-            // Clockwise from north (see `rule::letters`).
-            let neighbourhood = [
-                at - width,
-                at - width + 1,
-                at + 1,
-                at + width + 1,
-                at + width,
-                at + width - 1,
-                at - 1,
-                at - width - 1,
-            ]
-            .iter()
-            .enumerate()
-            .fold(0u8, |n, (bit, &cell)| n | alive[cell] << bit);
+            let neighbourhood = OFFSETS.iter().enumerate().fold(0u8, |n, (bit, &(dx, dy))| {
+                let cell = (at as i64 + dy * width as i64 + dx) as usize;
+                n | alive[cell] << bit
+            });
             if rule.next_state(alive[at] == 1, neighbourhood) {
                 next.push((left + x as i64, top + row as i64));
             }

@@ -23,6 +23,19 @@ pub const SW: u8 = 1 << 5;
 pub const W: u8 = 1 << 6;
 pub const NW: u8 = 1 << 7;
 
+/// Where each neighbour stands, bit by bit from [`N`]: (dx, dy) with x
+/// growing east and y growing south.
+pub const OFFSETS: [(i64, i64); 8] = [
+    (0, -1),
+    (1, -1),
+    (1, 0),
+    (1, 1),
+    (0, 1),
+    (-1, 1),
+    (-1, 0),
+    (-1, -1),
+];
+
 /// Every letter, in the order they are written back: alphabetical, as in
 /// the rule strings of the published definition (`B1e2ak3inqy4ny5e/S`).
 pub const LETTER_ORDER: [char; 13] = [

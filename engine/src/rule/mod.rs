@@ -45,11 +45,15 @@ const fn with_counts(mask: u16) -> Neighbourhoods {
     let mut n = 0;
     while n < 256 {
         if mask >> (n as u8).count_ones() & 1 == 1 {
-            set[n / 64] |= 1 << (n % 64);
+            insert(&mut set, n as u8);
         }
         n += 1;
     }
     set
+}
+
+const fn insert(set: &mut Neighbourhoods, neighbourhood: u8) {
+    set[neighbourhood as usize / 64] |= 1 << (neighbourhood % 64);
 }
 
 fn contains(set: &Neighbourhoods, neighbourhood: u8) -> bool {

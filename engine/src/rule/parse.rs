@@ -4,7 +4,7 @@
 //! count, or after `-` those that do not.
 
 use super::letters;
-use super::{Neighbourhoods, Rule};
+use super::{Neighbourhoods, Rule, insert};
 
 /// Rule text that cannot be turned into a [`Rule`]. Positions count
 /// characters from 1 in the text with surrounding whitespace removed.
@@ -203,7 +203,7 @@ impl Item {
                 None => true,
             };
             if named {
-                set[n as usize / 64] |= 1 << (n % 64);
+                insert(set, n);
             }
         }
         Ok(())

@@ -27,9 +27,6 @@ pub(crate) struct Fix {
     pub count: u32,
     /// whether the fix is for live cells (survival) or dead ones (birth)
     pub alive: bool,
-    /// how many cells tell each arrangement: the count, or for counts
-    /// above 4 the dead neighbours (so at most 4)
-    pub cells: usize,
     pub terms: Vec<Term>,
 }
 
@@ -57,12 +54,20 @@ impl Term {
 }
 
 impl Fix {
+    /// How many cells tell each arrangement: the count, or for counts above
+    /// 4 the dead neighbours (so at most 4).
+    pub fn cells(&self) -> usize {
+        self.count.min(8 - self.count) as usize
+    }
+
     /// Where any of the fix's arrangements matches among cells known to
     /// have its count, given the eight neighbour planes.
     #[inline]
     fn matched(&self, planes: &[u64; 8]) -> u64 {
         self.terms.iter().fold(0, |any, term| {
-            let cells = term.cells[..self.cells].iter().map(|&c| planes[c as usize]);
+            let cells = term.cells[..self.cells()]
+                .iter()
+                .map(|&c| planes[c as usize]);
             any | if self.count > 4 {
                 !cells.fold(0, |any, plane| any | plane)
             } else {
@@ -98,7 +103,6 @@ impl Sliced {
                     fixes.push(Fix {
                         count,
                         alive,
-                        cells: count.min(8 - count) as usize,
                         terms,
                     });
                 }
