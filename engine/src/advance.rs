@@ -74,16 +74,20 @@ struct Local<'a, 'o> {
 
 impl<'a, 'o> Advance<'a, 'o> {
     /// Prepares an advance of a level-`top_level` quad by N generations,
-    /// where N is given by its little-endian words and 0 < N < 2^(top_level-2).
+    /// where N is given by its little-endian words and 0 < N < 2^(top_level-2),
+    /// under two rules without B0 taking turns (the first at the start; see
+    /// [`Rule::stepping_pair`]). The full-stride memo in the quads holds
+    /// for one pair only: every advance of a store must use the same pair,
+    /// but for advances by one generation, which never use it.
     pub(crate) fn new(
         store: &'a mut Store,
-        rule: Rule,
+        rules: [Rule; 2],
         steps: &'a [u64],
         top_level: u32,
         observer: Option<Observer<'o>>,
     ) -> Advance<'a, 'o> {
         Advance {
-            tree: Local::new(store, rule, observer),
+            tree: Local::new(store, rules, observer),
             steps,
             top_level,
         }
@@ -117,11 +121,15 @@ impl<'a, 'o> Advance<'a, 'o> {
 }
 
 impl<'a, 'o> Local<'a, 'o> {
-    fn new(store: &'a mut Store, rule: Rule, observer: Option<Observer<'o>>) -> Local<'a, 'o> {
+    fn new(
+        store: &'a mut Store,
+        rules: [Rule; 2],
+        observer: Option<Observer<'o>>,
+    ) -> Local<'a, 'o> {
         let collections = store.collections();
         Local {
             store,
-            kernel: Kernel::new(&rule),
+            kernel: Kernel::alternating(rules),
             observer,
             calls: 0,
             last_report: Instant::now(),
@@ -453,14 +461,14 @@ mod tests {
             let root = soup(&mut store, level, &mut seed);
             store.scratch.push(root);
             let words = [steps];
-            let at_once = Advance::new(&mut store, rule, &words, level, None)
+            let at_once = Advance::new(&mut store, [rule, rule], &words, level, None)
                 .run_as(root, stride)
                 .unwrap();
             // A fresh memo: the deferred walk must not find the answers.
             store.residual.clear();
             store.forget_results();
             let mut tree = Deferred {
-                local: Local::new(&mut store, rule, None),
+                local: Local::new(&mut store, [rule, rule], None),
                 tickets: HashMap::new(),
                 answers: HashMap::new(),
                 requests: 0,
@@ -493,7 +501,7 @@ mod tests {
     /// between runs; the result and the requests the tree met.
     fn deferred(store: &mut Store, root: Handle, level: u32, words: &[u64]) -> (Handle, u64) {
         let mut tree = Deferred {
-            local: Local::new(store, Rule::LIFE, None),
+            local: Local::new(store, [Rule::LIFE; 2], None),
             tickets: HashMap::new(),
             answers: HashMap::new(),
             requests: 0,
@@ -529,7 +537,7 @@ mod tests {
         }
         store.scratch.push(quad);
         let words = [(1u64 << 12) - 1];
-        let at_once = Advance::new(&mut store, Rule::LIFE, &words, level, None)
+        let at_once = Advance::new(&mut store, [Rule::LIFE; 2], &words, level, None)
             .run(quad)
             .unwrap();
         store.residual.clear();

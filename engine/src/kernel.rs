@@ -59,11 +59,21 @@ impl Block {
 /// the leaf at leaf-column x, leaf-row y (leaf bits `8*y + x`).
 pub(crate) type LeafGrid = [[u64; 8]; 8];
 
+/// One or two rules compiled for the kernel: the first steps the
+/// generations an even number after the start of an advance, the second
+/// the odd ones (the same rule twice but for the B0 rules, see
+/// [`crate::rule::Background`]).
+#[derive(Clone, Debug)]
+pub struct Kernel {
+    steps: [Compiled; 2],
+    isa: Isa,
+}
+
 /// A rule compiled for the kernel: the selection tree's leaves as indices
 /// into [dead, live, as it was, the opposite], an order in which xor of two
 /// indices is the index of the xor of the two words.
 #[derive(Clone, Debug)]
-pub struct Kernel {
+struct Compiled {
     /// leaf of the even count of each pair (0/1, 2/3, 4/5, 6/7, 8/9)
     even: [u8; 5],
     /// xor of the pair's two leaves: what a set lowest count bit flips
@@ -73,7 +83,6 @@ pub struct Kernel {
     /// the arrangements where an isotropic rule differs from the tree,
     /// which picks by count alone; none for an outer-totalistic rule
     fixes: Vec<Fix>,
-    isa: Isa,
 }
 
 /// The instruction set the kernel's loops are compiled for.
@@ -103,11 +112,32 @@ impl Isa {
 }
 
 impl Kernel {
+    /// The kernel of one rule without B0, every generation.
+    #[cfg(test)]
     pub fn new(rule: &Rule) -> Kernel {
-        Kernel::with_isa(rule, Isa::detect())
+        Kernel::alternating([*rule, *rule])
     }
 
-    fn with_isa(rule: &Rule, isa: Isa) -> Kernel {
+    /// The kernel of two rules without B0 taking turns, the first at the
+    /// start of every block advanced (see [`Rule::stepping_pair`]).
+    pub(crate) fn alternating(rules: [Rule; 2]) -> Kernel {
+        Kernel::with_isa(rules, Isa::detect())
+    }
+
+    fn with_isa(rules: [Rule; 2], isa: Isa) -> Kernel {
+        Kernel {
+            steps: rules.map(|rule| Compiled::new(&rule)),
+            isa,
+        }
+    }
+}
+
+impl Compiled {
+    fn new(rule: &Rule) -> Compiled {
+        debug_assert!(
+            !rule.births_on_empty(),
+            "the kernel runs no B0 rule: {rule}"
+        );
         let Sliced { base, fixes } = Sliced::new(rule);
         // The count includes the cell: a dead cell counting q has q live
         // neighbours, a live one q - 1.
@@ -123,15 +153,16 @@ impl Kernel {
         };
         let even: [u8; 5] = array::from_fn(|pair| leaf(2 * pair));
         let flip: [u8; 5] = array::from_fn(|pair| even[pair] ^ leaf(2 * pair + 1));
-        Kernel {
+        Compiled {
             even,
             flip,
             flips: even.iter().chain(&flip).any(|&leaf| leaf == OPPOSITE),
             fixes,
-            isa,
         }
     }
+}
 
+impl Kernel {
     /// Advances the square of side `side` (16, 32 or 64) in `block` by
     /// `steps` ≤ side/4 generations in place; afterwards rows and columns
     /// side/4 .. 3*side/4 (the centre half) are exact, the rest unspecified.
@@ -206,13 +237,15 @@ fn generations<const L: usize, const TERNARY: bool>(
         opposite: Words([0; WORDS]),
     };
     let mut other = Words([0; WORDS]);
-    let mut fixing = (!kernel.fixes.is_empty()).then(FixScratch::new);
+    let [even, odd] = &kernel.steps;
+    let has_fixes = !even.fixes.is_empty() || !odd.fixes.is_empty();
+    let mut fixing = has_fixes.then(FixScratch::new);
     for _ in 0..steps / 2 {
-        one_generation::<L, TERNARY>(kernel, &mut scratch, fixing.as_mut(), cells, &mut other);
-        one_generation::<L, TERNARY>(kernel, &mut scratch, fixing.as_mut(), &other, cells);
+        one_generation::<L, TERNARY>(even, &mut scratch, fixing.as_mut(), cells, &mut other);
+        one_generation::<L, TERNARY>(odd, &mut scratch, fixing.as_mut(), &other, cells);
     }
     if steps % 2 == 1 {
-        one_generation::<L, TERNARY>(kernel, &mut scratch, fixing.as_mut(), cells, &mut other);
+        one_generation::<L, TERNARY>(even, &mut scratch, fixing.as_mut(), cells, &mut other);
         *cells = other;
     }
 }
@@ -222,18 +255,18 @@ fn generations<const L: usize, const TERNARY: bool>(
 /// compiled without the instruction set its caller is compiled for.
 #[inline(always)]
 fn one_generation<const L: usize, const TERNARY: bool>(
-    kernel: &Kernel,
+    rule: &Compiled,
     scratch: &mut Scratch,
     fixing: Option<&mut FixScratch>,
     cells: &Words,
     next: &mut Words,
 ) {
     match fixing {
-        None => generation::<L, TERNARY, false>(kernel, scratch, cells, next, None),
-        Some(fixing) => {
-            generation::<L, TERNARY, true>(kernel, scratch, cells, next, Some(&mut fixing.count));
-            fix::<L>(kernel, fixing, cells, next);
+        Some(fixing) if !rule.fixes.is_empty() => {
+            generation::<L, TERNARY, true>(rule, scratch, cells, next, Some(&mut fixing.count));
+            fix::<L>(rule, fixing, cells, next);
         }
+        _ => generation::<L, TERNARY, false>(rule, scratch, cells, next, None),
     }
 }
 
@@ -253,7 +286,7 @@ struct Scratch {
 /// words.
 #[inline(always)]
 fn generation<const L: usize, const TERNARY: bool, const COUNTS: bool>(
-    kernel: &Kernel,
+    rule: &Compiled,
     scratch: &mut Scratch,
     cells: &Words,
     next: &mut Words,
@@ -272,7 +305,7 @@ fn generation<const L: usize, const TERNARY: bool, const COUNTS: bool>(
         twos[L + word] = majority::<TERNARY>(left, row, right);
     }
     // Many rules (Life among them) never flip a cell: then no need.
-    if kernel.flips {
+    if rule.flips {
         for word in 0..words {
             opposite.0[word] = !cells.0[word];
         }
@@ -280,8 +313,8 @@ fn generation<const L: usize, const TERNARY: bool, const COUNTS: bool>(
     pad::<L>(ones);
     pad::<L>(twos);
     let leaves = [&DEAD_WORDS.0, &LIVE_WORDS.0, &cells.0, &opposite.0];
-    let even = kernel.even.map(|leaf| leaves[leaf as usize & 3]);
-    let flip = kernel.flip.map(|leaf| leaves[leaf as usize & 3]);
+    let even = rule.even.map(|leaf| leaves[leaf as usize & 3]);
+    let flip = rule.flip.map(|leaf| leaves[leaf as usize & 3]);
     for word in 0..words {
         let (above, at, below) = (word, word + L, word + 2 * L);
         // The count of nine cells from three sums across, by carry-save adders.
@@ -348,7 +381,7 @@ impl FixScratch {
 /// over all words and does one thing, so that the compiler vectorises it.
 #[inline(always)]
 #[allow(clippy::needless_range_loop)] // index loops over arrays in step vectorise
-fn fix<const L: usize>(kernel: &Kernel, fixing: &mut FixScratch, cells: &Words, next: &mut Words) {
+fn fix<const L: usize>(rule: &Compiled, fixing: &mut FixScratch, cells: &Words, next: &mut Words) {
     let words = 8 * L;
     let FixScratch {
         rows,
@@ -380,7 +413,7 @@ fn fix<const L: usize>(kernel: &Kernel, fixing: &mut FixScratch, cells: &Words, 
         se.0[word] = below[word] >> 1;
         sw.0[word] = below[word] << 1;
     }
-    for fix in &kernel.fixes {
+    for fix in &rule.fixes {
         match (fix.cells(), fix.count > 4) {
             (1, false) => match_arrangements::<L, 1, false>(fix, planes, matched),
             (2, false) => match_arrangements::<L, 2, false>(fix, planes, matched),
@@ -695,7 +728,7 @@ mod tests {
         for isa in isas() {
             for rule in RULES {
                 let rule: Rule = rule.parse().unwrap();
-                let kernel = Kernel::with_isa(&rule, isa);
+                let kernel = Kernel::with_isa([rule, rule], isa);
                 for side in [16, 32, 64] {
                     for _ in 0..4 {
                         // Leaves outside the square hold soup too: they

@@ -19,7 +19,7 @@ use crate::content_id::ContentId;
 use crate::error::BudgetExceeded;
 use crate::figures::{self, Side};
 use crate::recursion::Stride;
-use crate::rule::Rule;
+use crate::rule::{Background, Rule};
 use crate::store::{Handle, LEAF_LEVEL, Store};
 use crate::universe::fits_centre_half;
 
@@ -95,6 +95,15 @@ pub enum ShardError {
     /// a stride beyond what a square of the level can move
     #[error("a stride of {stride} is more than 2^({level}-2) generations")]
     BadStride { stride: u64, level: u32 },
+    /// a stride of several generations from a background the rule does
+    /// not settle in (the memo of whole strides holds for that one only)
+    #[error(
+        "a stride of {stride} generations from a {background} background: a B0 rule's advance moves one generation first"
+    )]
+    Unsettled {
+        stride: u64,
+        background: &'static str,
+    },
     #[error(transparent)]
     Budget(#[from] BudgetExceeded),
 }
@@ -113,8 +122,9 @@ pub struct Shard {
     borrowed: ahash::HashMap<ContentId, (Handle, u32)>,
     /// quads handed over and not yet named held (pinned until `retain`)
     staged: Vec<Handle>,
-    /// the stride the store's residual memo was filled for
-    residual_for: u64,
+    /// the stride and starting background the store's residual memo was
+    /// filled for
+    residual_for: (u64, Background),
 }
 
 impl Shard {
@@ -133,7 +143,7 @@ impl Shard {
             next_held: 0,
             borrowed: Default::default(),
             staged: Vec::new(),
-            residual_for: 0,
+            residual_for: (0, Background::Dead),
         })
     }
 
@@ -403,12 +413,16 @@ impl Shard {
 
     /// The base case of the cluster's recursion: the centre (level K-1) of
     /// the level-K square made of `kids`, `stride` generations on
-    /// (0 ≤ stride ≤ 2^(K-2)). The result is held and indexed.
+    /// (0 ≤ stride ≤ 2^(K-2)) from a generation whose background is `from`
+    /// (see [`Background`]; a stride of more than one generation starts
+    /// from the background the rule settles in). The result is held and
+    /// indexed.
     pub fn advance(
         &mut self,
         kids: &[ContentId; 4],
         level: u32,
         stride: u64,
+        from: Background,
     ) -> Result<(ContentId, Figures), ShardError> {
         if !(LEAF_LEVEL + 2..=MAX_SHARD_LEVEL).contains(&level) {
             return Err(ShardError::BadLevel { level });
@@ -417,10 +431,16 @@ impl Shard {
         if stride > full {
             return Err(ShardError::BadStride { stride, level });
         }
+        if stride > 1 && from != self.rule.settled_background() {
+            return Err(ShardError::Unsettled {
+                stride,
+                background: from.name(),
+            });
+        }
         let handles = self.handles(kids, level - 1)?;
         let base = self.store.scratch.len();
         self.store.scratch.extend(handles);
-        let outcome = self.advance_square(handles, level, stride);
+        let outcome = self.advance_square(handles, level, stride, from);
         self.store.scratch.truncate(base);
         let result = outcome?;
         self.store.scratch.push(result);
@@ -436,6 +456,7 @@ impl Shard {
         kids: [Handle; 4],
         level: u32,
         stride: u64,
+        from: Background,
     ) -> Result<Handle, ShardError> {
         let quad = self.store.join(kids)?;
         self.store.scratch.push(quad);
@@ -443,12 +464,13 @@ impl Shard {
             return Ok(advance::centre(&mut self.store, quad, level)?);
         }
         let full = stride == 1u64 << (level - 2);
-        if !full && stride != self.residual_for {
+        if !full && (stride, from) != self.residual_for {
             self.store.residual.clear();
-            self.residual_for = stride;
+            self.residual_for = (stride, from);
         }
         let steps = [stride];
-        let mut run = Advance::new(&mut self.store, self.rule, &steps, level, None);
+        let rules = self.rule.stepping_pair(from);
+        let mut run = Advance::new(&mut self.store, rules, &steps, level, None);
         let kind = if full { Stride::Full } else { Stride::Residual };
         Ok(run.run_as(quad, kind)?)
     }
@@ -585,7 +607,7 @@ mod tests {
         let centre = cut
             .centre_square()
             .expect("the root is above the shard level");
-        let (id, figures) = shard.advance(&centre, level, 16).unwrap();
+        let (id, figures) = shard.advance(&centre, level, 16, Background::Dead).unwrap();
         universe.advance(&16u32.into(), None).unwrap();
         assert_eq!(figures.population, universe.population().to_u64_digits()[0]);
         // The result's canonical id is the advanced universe's digest.

@@ -19,7 +19,7 @@ use crate::figures::{self, Side};
 use crate::pack::ReadError;
 use crate::pack::{self, Checksum, QuadAt};
 use crate::pattern::{MAX_COORDINATE, Pattern, write};
-use crate::rule::Rule;
+use crate::rule::{Background, Rule};
 use crate::store::{Handle, LEAF_LEVEL, Store, StoreStats};
 use crate::view::{QuadView, StoreView, descend};
 
@@ -115,8 +115,9 @@ pub struct Universe {
     pub(crate) root: Handle,
     pub(crate) level: u32,
     pub(crate) generation: BigUint,
-    /// The advance the residual memo was filled for (N's words).
-    residual_for: Vec<u64>,
+    /// The advance the residual memo was filled for: N's words and the
+    /// background it started from.
+    residual_for: (Vec<u64>, Background),
 }
 
 impl Universe {
@@ -131,7 +132,7 @@ impl Universe {
             root,
             level: MIN_ROOT_LEVEL,
             generation: BigUint::zero(),
-            residual_for: Vec::new(),
+            residual_for: (Vec::new(), Background::Dead),
         })
     }
 
@@ -298,6 +299,14 @@ impl Universe {
         self.rule
     }
 
+    /// The state of the cells far from the pattern (alive at some
+    /// generations under a B0 rule). The store holds the cells that differ
+    /// from it, and every figure (population, bounding box, digest) and
+    /// every cell written counts those.
+    pub fn background(&self) -> Background {
+        self.rule.background(&self.generation)
+    }
+
     /// Says which generation this state is (a state computed elsewhere,
     /// as a bounded universe's).
     pub fn set_generation(&mut self, generation: BigUint) {
@@ -374,8 +383,26 @@ impl Universe {
         }
     }
 
-    /// Advances the state by `generations` in one pass of the recursion.
+    /// Advances the state by `generations`: in one pass of the recursion
+    /// from the background the rule's memo is made for, after one single
+    /// generation when the state is not there (B0 rules only).
     fn advance_whole(
+        &mut self,
+        generations: &BigUint,
+        observer: Option<Observer<'_>>,
+    ) -> Result<(), AdvanceError> {
+        if generations.is_zero() {
+            return Ok(());
+        }
+        if self.background() != self.rule.settled_background() {
+            self.advance_pass(&BigUint::one(), None)?;
+            return self.advance_pass(&(generations - 1u32), observer);
+        }
+        self.advance_pass(generations, observer)
+    }
+
+    /// Advances the state by `generations` in one pass of the recursion.
+    fn advance_pass(
         &mut self,
         generations: &BigUint,
         observer: Option<Observer<'_>>,
@@ -397,15 +424,23 @@ impl Universe {
         }
         self.expand()?;
         self.store.empty(self.level)?;
-        let words = generations.to_u64_digits();
-        if words != self.residual_for {
+        let from = self.background();
+        let key = (generations.to_u64_digits(), from);
+        if key != self.residual_for {
             self.store.residual.clear();
-            self.residual_for = words.clone();
+            self.residual_for = key;
         }
         let level = self.level;
+        let rules = self.rule.stepping_pair(from);
         // The walk keeps its frames on the heap: no deep stack needed.
-        let result =
-            Advance::new(&mut self.store, self.rule, &words, level, observer).run(self.root);
+        let result = Advance::new(
+            &mut self.store,
+            rules,
+            &self.residual_for.0,
+            level,
+            observer,
+        )
+        .run(self.root);
         // A failed advance leaves its path on the scratch stack: drop it, so
         // a caller that retries (with a larger budget) starts clean.
         self.store.scratch.clear();

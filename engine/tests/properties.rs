@@ -126,7 +126,7 @@ fn every_budget_either_gives_the_same_state_or_a_budget_error() {
     // at light speed, so its live set passes each budget below mid-run
     // (this once stalled in table growth at 1.5 MiB).
     let bits: Vec<bool> = (0..256u32)
-        .map(|i| (i * 2_654_435_761u32) >> 29 & 1 == 1)
+        .map(|i| i.wrapping_mul(2_654_435_761) >> 29 & 1 == 1)
         .collect();
     let pattern = soup(&bits, 16, (0, 0));
     let rule = Rule::parse("B2/S").unwrap();

@@ -4,19 +4,23 @@
 //! arrangements of a count of live neighbours count.
 //!
 //! [`parse`] reads rule text (the slashed and slashless forms, and the older
-//! survival/birth digits `23/3`), refusing B0 rules; [`Display`] prints one
-//! canonical form; [`letters`] holds the notation's letter table; and
-//! [`sliced`] compiles a rule for the steppers that work on 64 cells at once.
+//! survival/birth digits `23/3`); [`Display`] prints one canonical form;
+//! [`letters`] holds the notation's letter table; [`sliced`] compiles a
+//! rule for the steppers that work on 64 cells at once; and [`background`]
+//! turns a B0 rule into rules without B0 over the cells that differ from
+//! the background.
 //!
 //! [`Display`]: fmt::Display
 
 use std::fmt;
 use std::str::FromStr;
 
+mod background;
 pub mod letters;
 mod parse;
 pub(crate) mod sliced;
 
+pub use background::Background;
 pub use parse::RuleError;
 
 /// Bits 0 to 8: one per possible count of live neighbours.
@@ -31,8 +35,8 @@ type Neighbourhoods = [u64; 4];
 /// rule that parses is isotropic: a neighbourhood and its eight symmetries
 /// are in a set together.
 ///
-/// A `Rule` never has birth on the empty neighbourhood (see
-/// [`Rule::from_masks`]).
+/// A rule may have B0 (birth on the empty neighbourhood); the steppers of
+/// the unbounded plane run such a rule through [`Rule::stepping`].
 #[derive(Clone, Copy, Debug, PartialEq, Eq, Hash)]
 pub struct Rule {
     birth: Neighbourhoods,
@@ -83,7 +87,7 @@ impl Rule {
     }
 
     /// Builds an outer-totalistic rule from its masks (bit k: k live
-    /// neighbours); refuses bits above 8 and B0.
+    /// neighbours); refuses bits above 8.
     pub fn from_masks(birth: u16, survive: u16) -> Result<Rule, RuleError> {
         if birth & !NEIGHBOUR_COUNTS != 0 {
             return Err(RuleError::MaskTooWide {
@@ -97,18 +101,10 @@ impl Rule {
                 mask: survive,
             });
         }
-        Rule::from_sets(with_counts(birth), with_counts(survive))
-    }
-
-    /// Builds a rule from its two sets of neighbourhoods; refuses B0.
-    fn from_sets(birth: Neighbourhoods, survive: Neighbourhoods) -> Result<Rule, RuleError> {
-        let rule = Rule { birth, survive };
-        if contains(&birth, 0) {
-            return Err(RuleError::BirthOnZero {
-                rule: rule.to_string(),
-            });
-        }
-        Ok(rule)
+        Ok(Rule {
+            birth: with_counts(birth),
+            survive: with_counts(survive),
+        })
     }
 
     /// The birth and survival masks by count (bit k: k live neighbours) of
@@ -338,10 +334,19 @@ mod tests {
     }
 
     #[test]
-    fn from_masks_refuses_b0_and_wide_masks() {
+    fn b0_rules_read_in_every_form() {
+        for text in ["B03/S23", "b03s23", "S23/B03", "23/03"] {
+            assert_eq!(canonical(text), "B03/S23", "{text}");
+        }
+        assert_eq!(canonical("B0/S8"), "B0/S8");
+        assert_eq!(canonical("B02-a/S"), "B02-a/S");
+    }
+
+    #[test]
+    fn from_masks_refuses_wide_masks() {
         assert_eq!(
-            Rule::from_masks(0b1001, 0b1100).unwrap_err().to_string(),
-            "rule B03/S23 has B0 (empty cells are born): deeptime does not run B0 rules"
+            Rule::from_masks(0b1001, 0b1100).unwrap().to_string(),
+            "B03/S23"
         );
         assert_eq!(
             Rule::from_masks(0x200, 0).unwrap_err().to_string(),
@@ -435,14 +440,6 @@ mod tests {
             ("B3/B23", "rule \"B3/B23\" has two 'B' parts"),
             ("s3/S23", "rule \"s3/S23\" has two 'S' parts"),
             ("B3B2", "rule \"B3B2\" has two 'B' parts"),
-            (
-                "B03/S23",
-                "rule B03/S23 has B0 (empty cells are born): deeptime does not run B0 rules",
-            ),
-            (
-                "23/03",
-                "rule B03/S23 has B0 (empty cells are born): deeptime does not run B0 rules",
-            ),
         ];
         for (text, message) in cases {
             assert_eq!(error(text), message, "{text:?}");

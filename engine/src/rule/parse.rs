@@ -55,11 +55,6 @@ pub enum RuleError {
     /// Both parts carry the same letter.
     #[error("rule {rule:?} has two '{letter}' parts")]
     RepeatedPart { letter: char, rule: String },
-    /// Birth on zero neighbours: every empty cell of the infinite plane would
-    /// be born, which the engine's quadtree (empty space stays empty) cannot
-    /// represent. This is a documented choice, not a parsing failure.
-    #[error("rule {rule} has B0 (empty cells are born): deeptime does not run B0 rules")]
-    BirthOnZero { rule: String },
     /// A mask given to [`Rule::from_masks`] with a bit for more than 8
     /// neighbours.
     #[error("{which} mask {mask:#x} has bits above 8: a cell has at most 8 neighbours")]
@@ -139,7 +134,7 @@ pub(super) fn parse(text: &str) -> Result<Rule, RuleError> {
         }
         _ => return Err(RuleError::MixedForms { rule: rule.into() }),
     };
-    Rule::from_sets(birth, survive)
+    Ok(Rule { birth, survive })
 }
 
 /// First pass: every character must belong to rule text. Runs before the
