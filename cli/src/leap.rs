@@ -77,7 +77,9 @@ pub fn run(args: LeapArgs) -> anyhow::Result<()> {
             .region_figures(region)
             .with_context(|| format!("--region {}", args.region.as_deref().unwrap_or("")))?;
         report.region = Some(deeptime_coordinator::report::RegionReport::of(
-            region, figures,
+            region,
+            figures,
+            universe.background(),
         ));
     }
     report.print(args.json)

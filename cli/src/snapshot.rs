@@ -16,6 +16,7 @@ use std::time::{Duration, Instant};
 use anyhow::{Context, bail};
 use deeptime_engine::generation::parse_generations;
 use deeptime_engine::render::{MAX_PIXELS, Picture};
+use deeptime_engine::rule::Background;
 use deeptime_engine::stored::StoredState;
 use deeptime_engine::{BoundingBox, Progress, Region, Universe};
 use num_bigint::{BigInt, BigUint};
@@ -23,7 +24,9 @@ use num_bigint::{BigInt, BigUint};
 use crate::cli::SnapshotArgs;
 use crate::failure::{BadInput, OutputFailed};
 use deeptime_coordinator::numbers::for_people;
-use deeptime_coordinator::report::{BoxReport, EngineReport, PictureReport, RegionReport, Report};
+use deeptime_coordinator::report::{
+    self, BoxReport, EngineReport, PictureReport, RegionReport, Report,
+};
 use deeptime_coordinator::{memory, output, progress};
 use deeptime_storage::Counting;
 use deeptime_storage::checkpoint::{CheckpointError, Checkpoints, Manifest};
@@ -148,7 +151,7 @@ pub fn run(args: SnapshotArgs) -> anyhow::Result<()> {
         let figures = universe
             .region_figures(region)
             .with_context(|| format!("--region {}", args.region.as_deref().unwrap_or("")))?;
-        report.region = Some(RegionReport::of(region, figures));
+        report.region = Some(RegionReport::of(region, figures, universe.background()));
     }
     report.bytes_read = Some(counted.bytes_read());
     report.pack_bytes = Some(pack_bytes);
@@ -315,12 +318,20 @@ fn from_stored(
         )?;
     }
     let region_report = match region {
-        Some(region) => Some(RegionReport::of(region, state.region_figures(region)?)),
+        Some(region) => Some(RegionReport::of(
+            region,
+            state.region_figures(region)?,
+            state.background(),
+        )),
         None => None,
     };
+    let background = state.background();
+    let (population, dead_cells) = report::population(background, manifest.population.clone());
     Ok(Some(Report {
         generation: manifest.generation.clone(),
-        population: manifest.population.clone(),
+        background: background.name(),
+        population,
+        dead_cells,
         bbox: manifest.bbox.as_ref().map(|bbox| BoxReport {
             left: bbox.left.clone(),
             top: bbox.top.clone(),
@@ -376,6 +387,15 @@ impl Source<'_, '_> {
         Ok(())
     }
 
+    fn background(&self) -> Background {
+        match self {
+            Source::Memory(universe) => universe.background(),
+            Source::Stored(state) => state.background(),
+        }
+    }
+
+    /// The picture of the live cells: where the background is alive, the
+    /// stored cells are the dead ones, and each share is turned over.
     fn picture(
         &mut self,
         left: &BigInt,
@@ -384,10 +404,17 @@ impl Source<'_, '_> {
         rows: u64,
         scale: u32,
     ) -> anyhow::Result<Picture> {
-        Ok(match self {
+        let background = self.background();
+        let mut picture = match self {
             Source::Memory(universe) => universe.picture(left, top, columns, rows, scale)?,
             Source::Stored(state) => state.picture(left, top, columns, rows, scale)?,
-        })
+        };
+        if background == Background::Alive {
+            for share in &mut picture.shares {
+                *share = 1.0 - *share;
+            }
+        }
+        Ok(picture)
     }
 }
 

@@ -20,23 +20,61 @@ use serde::Serialize;
 use crate::cli::TimelineArgs;
 use crate::failure::{BadInput, OutputFailed};
 use deeptime_coordinator::numbers::{box_for_people, for_people};
-use deeptime_coordinator::report::{BoxReport, EngineReport};
+use deeptime_coordinator::report::{self, BoxReport, EngineReport};
 use deeptime_coordinator::{input, memory, output, progress};
+use deeptime_engine::rule::Background;
 use deeptime_storage::checkpoint::Checkpoints;
 
 /// At most this many samples in one timeline.
 pub const MAX_SAMPLES: u64 = 100_000;
 
-/// The CSV header, one line per sample after it.
-pub const CSV_HEADER: &str = "generation,population,left,top,width,height,digest";
+/// The CSV header, one line per sample after it. Under a B0 rule the
+/// population may be `infinite` (an alive background), the box and digest
+/// are of the cells that differ from the background, and `dead_cells`
+/// counts them when it is alive (see `deeptime_coordinator::report`).
+pub const CSV_HEADER: &str =
+    "generation,population,left,top,width,height,digest,background,dead_cells";
 
 /// The figures of one sampled generation.
 #[derive(Serialize, Debug)]
 pub struct Sample {
     pub generation: String,
+    pub background: &'static str,
     pub population: String,
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub dead_cells: Option<String>,
     pub bbox: Option<BoxReport>,
     pub digest: String,
+}
+
+impl Sample {
+    /// A sample whose cells that differ from `background` number
+    /// `differing`.
+    fn new(
+        generation: String,
+        background: Background,
+        differing: String,
+        bbox: Option<BoxReport>,
+        digest: String,
+    ) -> Sample {
+        let (population, dead_cells) = report::population(background, differing);
+        Sample {
+            generation,
+            background: background.name(),
+            population,
+            dead_cells,
+            bbox,
+            digest,
+        }
+    }
+}
+
+/// The background a manifest or stored sample names (absent: dead).
+fn background_named(name: Option<&str>) -> Background {
+    match name {
+        Some("alive") => Background::Alive,
+        _ => Background::Dead,
+    }
 }
 
 #[derive(Serialize, Debug)]
@@ -126,17 +164,18 @@ fn from_run(args: &TimelineArgs) -> anyhow::Result<()> {
         let generation = manifest.generation()?;
         stored.push((
             generation,
-            Sample {
-                generation: manifest.generation.clone(),
-                population: manifest.population.clone(),
-                bbox: manifest.bbox.as_ref().map(|b| BoxReport {
+            Sample::new(
+                manifest.generation.clone(),
+                background_named(manifest.background.as_deref()),
+                manifest.population.clone(),
+                manifest.bbox.as_ref().map(|b| BoxReport {
                     left: b.left.clone(),
                     top: b.top.clone(),
                     width: b.width.clone(),
                     height: b.height.clone(),
                 }),
-                digest: manifest.root.clone(),
-            },
+                manifest.root.clone(),
+            ),
         ));
     }
     // And the samples `[timeline] every` took between the checkpoints.
@@ -151,17 +190,18 @@ fn from_run(args: &TimelineArgs) -> anyhow::Result<()> {
         };
         stored.push((
             generation,
-            Sample {
-                generation: sample.generation,
-                population: sample.population,
-                bbox: sample.bbox.map(|b| BoxReport {
+            Sample::new(
+                sample.generation,
+                background_named(sample.background.as_deref()),
+                sample.population,
+                sample.bbox.map(|b| BoxReport {
                     left: b.left,
                     top: b.top,
                     width: b.width,
                     height: b.height,
                 }),
-                digest: sample.digest,
-            },
+                sample.digest,
+            ),
         ));
     }
     stored.sort_by(|a, b| a.0.cmp(&b.0));
@@ -241,12 +281,13 @@ pub fn sample(
     let end = &start + gens;
     let mut samples = Vec::new();
     loop {
-        samples.push(Sample {
-            generation: (universe.generation() - &start).to_string(),
-            population: universe.population().to_string(),
-            bbox: universe.bounding_box().as_ref().map(BoxReport::from),
-            digest: universe.digest()?.to_string(),
-        });
+        samples.push(Sample::new(
+            (universe.generation() - &start).to_string(),
+            universe.background(),
+            universe.population().to_string(),
+            universe.bounding_box().as_ref().map(BoxReport::from),
+            universe.digest()?.to_string(),
+        ));
         let left = &end - universe.generation();
         if left.is_zero() {
             return Ok(samples);
@@ -268,8 +309,12 @@ pub fn write_csv(out: &mut impl Write, samples: &[Sample]) -> std::io::Result<()
         };
         writeln!(
             out,
-            "{},{},{left},{top},{width},{height},{}",
-            sample.generation, sample.population, sample.digest
+            "{},{},{left},{top},{width},{height},{},{},{}",
+            sample.generation,
+            sample.population,
+            sample.digest,
+            sample.background,
+            sample.dead_cells.as_deref().unwrap_or("")
         )?;
     }
     Ok(())

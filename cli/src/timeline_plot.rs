@@ -12,6 +12,7 @@ use plotters::coord::ranged1d::{AsRangedCoord, ValueFormatter};
 use plotters::prelude::*;
 
 use crate::timeline::{Sample, as_f64};
+use deeptime_coordinator::report;
 
 const WIDTH: u32 = 1200;
 const HEIGHT: u32 = 750;
@@ -58,7 +59,9 @@ fn spans_decades(low: f64, high: f64) -> bool {
 /// The population by generation as PNG bytes.
 pub fn population_png(samples: &[Sample], rule: &str) -> anyhow::Result<Vec<u8>> {
     let mut points = Vec::with_capacity(samples.len());
-    for sample in samples {
+    // Generations whose background is alive (a B0 rule's) have no finite
+    // population: the plot leaves them out.
+    for sample in samples.iter().filter(|s| s.population != report::INFINITE) {
         let (Some(x), Some(y)) = (as_f64(&sample.generation), as_f64(&sample.population)) else {
             bail!(
                 "generation {} or its population is beyond what a plot can place (10^308)",

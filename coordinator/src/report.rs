@@ -1,17 +1,31 @@
 //! The figures of a state, as one JSON object or a short human summary.
 //! Numbers a user relies on (generation, population, coordinates) are
 //! decimal strings: they can be astronomically large.
+//!
+//! Under a B0 rule the background (every cell far from the pattern) is
+//! alive at some generations. Then the population is the string
+//! `infinite`, and `dead_cells`, the bounding box and the digest are of the
+//! cells that differ from the background: the dead ones.
 
 use crate::numbers::{box_for_people, for_people};
 use std::time::Duration;
 
+use deeptime_engine::rule::Background;
 use deeptime_engine::{Universe, human_bytes};
+use num_bigint::BigUint;
 use serde::Serialize;
 
 #[derive(Serialize, Debug)]
 pub struct Report {
     pub generation: String,
+    /// `dead` or `alive`: the state of every cell far from the pattern
+    pub background: &'static str,
+    /// live cells, or `infinite` when the background is alive
     pub population: String,
+    /// the cells that are dead, when the background is alive
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub dead_cells: Option<String>,
+    /// the extent of the cells that differ from the background
     pub bbox: Option<BoxReport>,
     pub rule: String,
     pub digest: String,
@@ -58,14 +72,24 @@ pub struct RegionReport {
     pub width: String,
     pub height: String,
     pub population: String,
+    /// the extent of the cells inside that differ from the background
     pub bbox: Option<BoxReport>,
 }
 
 impl RegionReport {
+    /// The report of `region`, given the count and extent of the cells in
+    /// it that differ from `background`.
     pub fn of(
         region: &deeptime_engine::Region,
-        (population, bbox): (u64, Option<deeptime_engine::BoundingBox>),
+        (differing, bbox): (u64, Option<deeptime_engine::BoundingBox>),
+        background: Background,
     ) -> RegionReport {
+        let population = match background {
+            Background::Dead => BigUint::from(differing),
+            Background::Alive => {
+                BigUint::from(region.width) * BigUint::from(region.height) - differing
+            }
+        };
         RegionReport {
             left: region.left.to_string(),
             top: region.top.to_string(),
@@ -76,6 +100,19 @@ impl RegionReport {
         }
     }
 }
+
+/// The population of a state whose cells that differ from the background
+/// number `differing`, and the count of its dead cells when the background
+/// is alive (see the module documentation).
+pub fn population(background: Background, differing: String) -> (String, Option<String>) {
+    match background {
+        Background::Dead => (differing, None),
+        Background::Alive => (INFINITE.to_string(), Some(differing)),
+    }
+}
+
+/// The population of a state on an alive background.
+pub const INFINITE: &str = "infinite";
 
 #[derive(Serialize, Debug)]
 pub struct BoxReport {
@@ -152,9 +189,13 @@ impl Report {
     pub fn of(universe: &mut Universe, elapsed: Duration) -> anyhow::Result<Report> {
         let digest = universe.digest()?;
         let engine = EngineReport::of(universe, elapsed);
+        let background = universe.background();
+        let (population, dead_cells) = population(background, universe.population().to_string());
         Ok(Report {
             generation: universe.generation().to_string(),
-            population: universe.population().to_string(),
+            background: background.name(),
+            population,
+            dead_cells,
             bbox: universe.bounding_box().as_ref().map(BoxReport::from),
             rule: universe.rule().to_string(),
             digest: digest.to_string(),
@@ -174,11 +215,23 @@ impl Report {
             return Ok(());
         }
         println!("generation    {}", for_people(&self.generation));
-        println!("population    {}", for_people(&self.population));
+        let (cells, of) = match &self.dead_cells {
+            None => {
+                println!("population    {}", for_people(&self.population));
+                ("live", "")
+            }
+            Some(dead) => {
+                println!(
+                    "population    infinite: the background is alive, and {} cells are dead",
+                    for_people(dead)
+                );
+                ("dead", " of the dead cells")
+            }
+        };
         match &self.bbox {
-            None => println!("bounding box  none (no live cells)"),
+            None => println!("bounding box  none (no {cells} cells)"),
             Some(bbox) => println!(
-                "bounding box  {}",
+                "bounding box  {}{of}",
                 box_for_people(&bbox.left, &bbox.top, &bbox.width, &bbox.height)
             ),
         }

@@ -22,7 +22,7 @@ use crate::pack::{
     decode_chunk, read_trailer,
 };
 use crate::render::{Picture, RenderError, picture_of};
-use crate::rule::Rule;
+use crate::rule::{Background, Rule};
 use crate::store::LEAF_LEVEL;
 use crate::universe::{Region, WriteError, write_region_rle};
 use crate::view::QuadView;
@@ -88,6 +88,9 @@ pub struct StoredState<'f> {
     root: StoredNode,
     level: u32,
     rule: Rule,
+    /// the background at the stored generation: the quads hold the cells
+    /// that differ from it
+    background: Background,
     /// records decoded so far (whole chunks)
     pub records_decoded: u64,
     /// of which leaves
@@ -105,7 +108,7 @@ impl<'f> StoredState<'f> {
         packs: Vec<StoredPack>,
         root: QuadAt,
         population: &BigUint,
-        rule: Rule,
+        (rule, background): (Rule, Background),
     ) -> Result<StoredState<'f>, ReadError> {
         let count = packs.len();
         let mut state = StoredState {
@@ -117,6 +120,7 @@ impl<'f> StoredState<'f> {
             root: StoredNode::At(root),
             level: LEAF_LEVEL,
             rule,
+            background,
             records_decoded: 0,
             leaves_decoded: 0,
             chunks_read: 0,
@@ -168,6 +172,8 @@ impl<'f> StoredState<'f> {
             root: StoredNode::Empty,
             level: LEAF_LEVEL,
             rule,
+            // No state of a generation: nothing is written from it.
+            background: Background::Dead,
             records_decoded: 0,
             leaves_decoded: 0,
             chunks_read: 0,
@@ -277,6 +283,11 @@ impl<'f> StoredState<'f> {
     /// The rule the state runs under.
     pub fn rule(&self) -> Rule {
         self.rule
+    }
+
+    /// The background at the stored generation (see [`Background`]).
+    pub fn background(&self) -> Background {
+        self.background
     }
 
     fn fail(&self, pack: usize, error: PackError) -> ReadError {
@@ -424,7 +435,7 @@ impl<'f> StoredState<'f> {
         region: &Region,
         note: Option<&str>,
     ) -> Result<(), WriteError> {
-        let rule = self.rule;
+        let rule = (self.rule, self.background);
         write_region_rle(self, rule, out, region, note)
     }
 

@@ -560,7 +560,8 @@ impl Universe {
     pub fn write_rle(&mut self, out: &mut impl Write) -> Result<(), WriteError> {
         let rule = self.rule.to_string();
         let Some(bbox) = self.bounding_box() else {
-            write::write_rle(out, 0, 0, &rule, Vec::new())?;
+            let origin = (&BigInt::zero(), &BigInt::zero());
+            write::write_rle_at(out, origin, self.background(), None, 0, 0, &rule, [])?;
             return Ok(());
         };
         let region = Region::of_box(&bbox)?;
@@ -586,18 +587,20 @@ impl Universe {
         region: &Region,
         note: Option<&str>,
     ) -> Result<(), WriteError> {
-        let rule = self.rule;
+        let (rule, background) = (self.rule, self.background());
         let mut view = StoreView::new(&self.store, self.root, self.level);
-        write_region_rle(&mut view, rule, out, region, note)
+        write_region_rle(&mut view, (rule, background), out, region, note)
     }
 }
 
 /// The cells of `region` of a quadtree as RLE text, its (0, 0) the
 /// region's corner (the `#position` comment gives it), with a `#C` comment
 /// holding `note`: what a state in memory and a stored one both write.
+/// The cells are those that differ from `background`, which a comment
+/// names when it is alive.
 pub(crate) fn write_region_rle<V: QuadView>(
     view: &mut V,
-    rule: Rule,
+    (rule, background): (Rule, Background),
     out: &mut impl Write,
     region: &Region,
     note: Option<&str>,
@@ -606,6 +609,7 @@ pub(crate) fn write_region_rle<V: QuadView>(
     write::write_rle_at(
         out,
         (&region.left, &region.top),
+        background,
         note,
         region.width,
         region.height,

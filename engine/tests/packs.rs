@@ -273,7 +273,7 @@ fn a_record_count_the_chunks_cannot_hold_is_refused_before_any_allocation() {
         packs,
         last(0, 1),
         &BigUint::from(5u32),
-        Rule::LIFE,
+        (Rule::LIFE, deeptime_engine::rule::Background::Dead),
     )
     .err()
     .unwrap();
@@ -408,8 +408,14 @@ fn a_region_and_a_picture_read_from_a_few_chunks_equal_those_of_the_whole_state(
         packs: vec![&first.bytes, &second.bytes],
         fetched: 0,
     };
-    let mut stored =
-        StoredState::open(&mut fetch, packs.clone(), root, &population, Rule::LIFE).unwrap();
+    let mut stored = StoredState::open(
+        &mut fetch,
+        packs.clone(),
+        root,
+        &population,
+        (Rule::LIFE, deeptime_engine::rule::Background::Dead),
+    )
+    .unwrap();
     let mut from_stored = Vec::new();
     stored.write_rle_region(&mut from_stored, &region).unwrap();
     drop(stored);
@@ -432,7 +438,14 @@ fn a_region_and_a_picture_read_from_a_few_chunks_equal_those_of_the_whole_state(
         packs: vec![&first.bytes, &second.bytes],
         fetched: 0,
     };
-    let mut stored = StoredState::open(&mut fetch, packs, root, &population, Rule::LIFE).unwrap();
+    let mut stored = StoredState::open(
+        &mut fetch,
+        packs,
+        root,
+        &population,
+        (Rule::LIFE, deeptime_engine::rule::Background::Dead),
+    )
+    .unwrap();
     let (left, top) = (BigInt::from(-40), BigInt::from(-40));
     let picture = stored.picture(&left, &top, 20, 20, 6).unwrap();
     drop(stored);
@@ -465,9 +478,15 @@ fn a_partial_read_refuses_a_damaged_chunk_or_a_wrong_population() {
         fetched: 0,
     };
     let wrong = &state.population() + 1u32;
-    let error = StoredState::open(&mut fetch, packs.clone(), root, &wrong, Rule::LIFE)
-        .err()
-        .unwrap();
+    let error = StoredState::open(
+        &mut fetch,
+        packs.clone(),
+        root,
+        &wrong,
+        (Rule::LIFE, deeptime_engine::rule::Background::Dead),
+    )
+    .err()
+    .unwrap();
     assert!(error.to_string().contains("live cells"), "{error}");
     // One flipped bit in the first chunk (leaves): the region reads it and
     // refuses it by its checksum.
@@ -477,8 +496,13 @@ fn a_partial_read_refuses_a_damaged_chunk_or_a_wrong_population() {
         packs: vec![&damaged],
         fetched: 0,
     };
-    let refused = match StoredState::open(&mut fetch, packs, root, &state.population(), Rule::LIFE)
-    {
+    let refused = match StoredState::open(
+        &mut fetch,
+        packs,
+        root,
+        &state.population(),
+        (Rule::LIFE, deeptime_engine::rule::Background::Dead),
+    ) {
         // The root's chunk may be the damaged one; else the region's is.
         Err(error) => error.to_string(),
         Ok(mut stored) => stored

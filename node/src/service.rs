@@ -9,6 +9,7 @@ use std::sync::{Arc, Mutex};
 use std::time::Instant;
 
 use deeptime_engine::ContentId;
+use deeptime_engine::rule::Background;
 use deeptime_engine::shard::{Record, Shard, ShardError};
 use deeptime_proto::v1;
 use tonic::{Request, Response, Status};
@@ -207,6 +208,11 @@ impl v1::node_server::Node for NodeService {
             fetched_bytes += fetched.bytes;
             fetch_calls += fetched.calls;
             let (level, stride) = (task.level, task.stride);
+            let from = if task.background_alive {
+                Background::Alive
+            } else {
+                Background::Dead
+            };
             let started = Instant::now();
             let outcome = self
                 .state
@@ -227,7 +233,7 @@ impl v1::node_server::Node for NodeService {
                         })
                         .sum();
                     let (id, figures) = shard.with_inputs(&fetched.records, |shard| {
-                        shard.advance(&kids, level, stride)
+                        shard.advance(&kids, level, stride, from)
                     })?;
                     Ok((id, figures, lacked, shard.stats()))
                 })

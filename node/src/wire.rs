@@ -204,7 +204,8 @@ pub fn shard_status(error: ShardError) -> Status {
         ShardError::WrongId { .. } => Status::data_loss(error.to_string()),
         ShardError::WrongLevel { .. }
         | ShardError::BadLevel { .. }
-        | ShardError::BadStride { .. } => Status::invalid_argument(error.to_string()),
+        | ShardError::BadStride { .. }
+        | ShardError::Unsettled { .. } => Status::invalid_argument(error.to_string()),
         ShardError::Budget(budget) => Status::resource_exhausted(format!(
             "its memory budget of {} is too small: at least {} of quads are live",
             deeptime_engine::human_bytes(budget.budget),

@@ -8,7 +8,7 @@ use std::collections::HashSet;
 
 use deeptime_engine::finite::Space;
 use deeptime_engine::pack::{Checksum, PackError, QuadAt, WrittenPack, pack_name};
-use deeptime_engine::rule::Rule;
+use deeptime_engine::rule::{Background, Rule};
 use deeptime_engine::stored::{StoredPack, StoredState};
 use deeptime_engine::{BoundingBox, ContentId, KnownQuads, PackInput, Universe};
 use num_bigint::{BigInt, BigUint};
@@ -138,10 +138,15 @@ pub struct Manifest {
     pub root_pack: u32,
     /// the root's record number in that pack
     pub root_record: u32,
-    /// live cells, decimal
+    /// live cells, decimal; when `background` is alive, the dead cells
     pub population: String,
-    /// the extent of the live cells (decimal strings), null when none live
+    /// the extent of the cells that differ from the background (decimal
+    /// strings), null when there are none
     pub bbox: Option<BoxText>,
+    /// `alive` when the background is (a B0 rule's); absent when dead.
+    /// The rule and generation say it too: this is for people reading.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub background: Option<String>,
     /// every pack the state needs, in the order to read them
     pub packs: Vec<PackEntry>,
     /// seconds since 1970 when the manifest was written
@@ -342,12 +347,22 @@ fn hex(text: &str, what: &str) -> Result<Checksum> {
 pub struct TimelineSample {
     /// the generation, decimal
     pub generation: String,
-    /// live cells, decimal
+    /// live cells, decimal; when `background` is alive, the dead cells
     pub population: String,
-    /// the extent of the live cells, null when none live
+    /// the extent of the cells that differ from the background, null when
+    /// there are none
     pub bbox: Option<BoxText>,
     /// the state's digest
     pub digest: String,
+    /// `alive` when the background is (a B0 rule's); absent when dead
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub background: Option<String>,
+}
+
+/// What manifests and samples write of a background: `alive`, or nothing
+/// for the dead background of every rule without B0.
+pub fn background_field(background: Background) -> Option<String> {
+    (background == Background::Alive).then(|| background.name().to_string())
 }
 
 impl TimelineSample {
@@ -358,6 +373,7 @@ impl TimelineSample {
             population: universe.population().to_string(),
             bbox: universe.bounding_box().as_ref().map(BoxText::of),
             digest: universe.digest()?.to_string(),
+            background: background_field(universe.background()),
         })
     }
 }
@@ -535,13 +551,14 @@ impl Checkpoints {
                 .map(|entry| pack_key(&entry.name))
                 .collect(),
         };
+        let rule = Rule::parse(&manifest.rule)
+            .map_err(|error| damaged(format!("manifest {}: {error}", manifest.sequence)))?;
         Ok(StoredParts {
             fetch,
             packs,
             root: manifest.root_at(),
             population: manifest.population()?,
-            rule: Rule::parse(&manifest.rule)
-                .map_err(|error| damaged(format!("manifest {}: {error}", manifest.sequence)))?,
+            rule: (rule, rule.background(&manifest.generation()?)),
         })
     }
 
@@ -697,6 +714,7 @@ impl Checkpoints {
                 root_record: root_at.record,
                 population: universe.population().to_string(),
                 bbox: universe.bounding_box().as_ref().map(BoxText::of),
+                background: background_field(universe.background()),
                 packs,
                 written: 0,
                 universe: (run.universe != Space::Plane).then(|| run.universe.to_string()),
@@ -796,7 +814,7 @@ pub struct StoredParts<'s> {
     packs: Vec<StoredPack>,
     root: QuadAt,
     population: BigUint,
-    rule: Rule,
+    rule: (Rule, Background),
 }
 
 impl StoredParts<'_> {

@@ -236,6 +236,13 @@ impl Run<'_> {
             .get(&root)
             .context("the state's root is in no pack of the run")?;
         let (population, bbox) = self.figures(state);
+        let rule: deeptime_engine::rule::Rule = self
+            .members
+            .terms
+            .rule
+            .parse()
+            .map_err(|e| anyhow::anyhow!("{e}"))?;
+        let background = rule.background(&state.generation);
         let manifest = tokio::task::block_in_place(|| {
             checkpoints.commit(
                 previous.as_ref(),
@@ -257,6 +264,7 @@ impl Run<'_> {
                         width: b.width,
                         height: b.height,
                     }),
+                    background: deeptime_storage::checkpoint::background_field(background),
                     packs,
                     written: 0,
                     universe: None,

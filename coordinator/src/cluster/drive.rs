@@ -11,6 +11,7 @@ use std::time::{Duration, Instant};
 
 use anyhow::Context;
 use deeptime_engine::cut::Piece;
+use deeptime_engine::rule::Background;
 use deeptime_engine::{ContentId, KnownQuads, Universe};
 use num_bigint::BigUint;
 
@@ -466,9 +467,12 @@ impl Run<'_> {
             members.iter().map(|m| f(m)).sum::<u64>()
         };
         use std::sync::atomic::Ordering::Relaxed;
+        // The cluster runs no B0 rule (`coordinate` refuses them).
         Ok(Report {
             generation: state.generation.to_string(),
+            background: Background::Dead.name(),
             population: population.to_string(),
+            dead_cells: None,
             bbox,
             rule: self.members.terms.rule.clone(),
             digest: digest.to_string(),

@@ -164,6 +164,13 @@ pub async fn coordinate(
     let budget = memory::budget(job.memory.as_deref())?;
     let loaded = input::read(&job.pattern, budget)?;
     let rule = input::rule(job.rule.as_deref(), &loaded)?;
+    if rule.births_on_empty() {
+        return Err(BadInput(format!(
+            "{}: rule {rule} has B0 (empty cells are born), which the cluster does not run yet: run the job on one machine with `deeptime run`",
+            args.job.display()
+        ))
+        .into());
+    }
     let mut universe = input::build(loaded, rule, budget)?;
     let pattern_digest = universe.digest()?;
     let side = universe

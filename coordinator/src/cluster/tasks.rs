@@ -394,6 +394,8 @@ impl Dispatcher {
                     sources,
                 }),
                 stride,
+                // The cluster runs no B0 rule (`coordinate` refuses them).
+                background_alive: false,
             });
             request.set_timeout(TASK_TIMEOUT);
             let sent = std::time::Instant::now();

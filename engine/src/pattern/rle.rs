@@ -40,6 +40,14 @@ pub fn read_rle(bytes: &[u8], budget: u64) -> Result<Pattern, PatternError> {
             origin = Some((at, read_position(rest, at)?));
             continue;
         }
+        if trimmed.starts_with(super::write::ALIVE_BACKGROUND) {
+            return Err(PatternError::new(
+                line.number,
+                line.column(line.text.len() - trimmed.len()),
+                "the text holds the dead cells of a state whose background is alive (a B0 rule's); \
+                 a pattern starts on a dead background: resume the run from its checkpoint instead",
+            ));
+        }
         if trimmed.is_empty() || trimmed.starts_with('#') {
             continue;
         }

@@ -5,18 +5,26 @@
 //! runs, not the area; it checks its input and refuses rows or runs out of
 //! order rather than writing text that would read back differently.
 
+use crate::rule::Background;
 use std::io::{self, Write};
 
 /// Body lines are at most this long (common practice for RLE).
 const MAX_LINE: usize = 70;
 
+/// The comment that says a text holds the dead cells of a state whose
+/// background is alive (a B0 rule's): the reader refuses such a text.
+pub const ALIVE_BACKGROUND: &str = "#background alive";
+
 /// RLE text as [`write_rle`] writes it, after a `#position X Y` comment
 /// giving the plane coordinates of the text's (0, 0) (which the reader
-/// puts back) and, when given, a `#C` comment line with `note`.
+/// puts back), the [`ALIVE_BACKGROUND`] comment when `background` is alive
+/// (the cells written are then the dead ones) and, when given, a `#C`
+/// comment line with `note`.
 #[allow(clippy::too_many_arguments)]
 pub fn write_rle_at<W: Write>(
     out: &mut W,
     (left, top): (&num_bigint::BigInt, &num_bigint::BigInt),
+    background: Background,
     note: Option<&str>,
     width: u64,
     height: u64,
@@ -24,6 +32,12 @@ pub fn write_rle_at<W: Write>(
     rows: impl IntoIterator<Item = (u64, Vec<(u64, u64)>)>,
 ) -> io::Result<()> {
     writeln!(out, "#position {left} {top}")?;
+    if background == Background::Alive {
+        writeln!(
+            out,
+            "{ALIVE_BACKGROUND}: every cell not written is alive, and the cells written are dead"
+        )?;
+    }
     if let Some(note) = note {
         if note.chars().any(|c| c.is_control()) {
             return Err(invalid(format!("note {note:?} cannot stand in a comment")));
