@@ -110,6 +110,31 @@ fn a_stored_run_on_a_torus_resumes_with_the_figures_of_leap_and_of_the_reference
         "--json".as_ref(),
     ]));
     assert_eq!(snapshot["universe"], universe);
+
+    // A generation between two checkpoints: the stored state advanced in
+    // its universe (not on the plane), as leap and the reference have it.
+    let between = report(&run_deeptime([
+        "snapshot".as_ref(),
+        runs.as_os_str(),
+        "--gen".as_ref(),
+        "777".as_ref(),
+        "--json".as_ref(),
+    ]));
+    assert_eq!(between["universe"], universe);
+    let leap = report(&run_deeptime([
+        "leap".as_ref(),
+        pattern.as_os_str(),
+        "--gens".as_ref(),
+        "777".as_ref(),
+        "--universe".as_ref(),
+        universe.as_ref(),
+        "--json".as_ref(),
+    ]));
+    let expected = reference_records(&pattern, "777", universe);
+    for field in ["generation", "population", "bbox", "digest"] {
+        assert_eq!(between[field], leap[field], "{field}");
+    }
+    assert_eq!(between["digest"], expected["generations"]["777"]["digest"]);
 }
 
 #[test]

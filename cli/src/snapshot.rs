@@ -27,7 +27,7 @@ use deeptime_coordinator::numbers::for_people;
 use deeptime_coordinator::report::{
     self, BoxReport, EngineReport, PictureReport, RegionReport, Report,
 };
-use deeptime_coordinator::{memory, output, progress};
+use deeptime_coordinator::{input, memory, output, progress};
 use deeptime_storage::Counting;
 use deeptime_storage::checkpoint::{CheckpointError, Checkpoints, Manifest};
 
@@ -96,7 +96,8 @@ pub fn run(args: SnapshotArgs) -> anyhow::Result<()> {
         }
         match checkpoints.load(manifest, budget) {
             Ok(loaded) => {
-                opened = Some((stored, loaded.universe, pack_bytes));
+                let lives = (loaded.manifest.universe.clone(), loaded.manifest.origin);
+                opened = Some((stored, loaded.universe, pack_bytes, lives));
                 break;
             }
             Err(error) if !error.is_damage() => return Err(error.into()),
@@ -104,7 +105,7 @@ pub fn run(args: SnapshotArgs) -> anyhow::Result<()> {
         }
     }
     drop(candidates);
-    let Some((stored, mut universe, pack_bytes)) = opened else {
+    let Some((stored, mut universe, pack_bytes, (space_text, origin))) = opened else {
         if last.is_none() {
             let earliest = earliest_generation(&checkpoints, &keys)
                 .map_or_else(|| "none".to_string(), |e| for_people(&e.to_string()));
@@ -125,9 +126,19 @@ pub fn run(args: SnapshotArgs) -> anyhow::Result<()> {
             "deeptime: advancing from the checkpoint at generation {}",
             for_people(&stored.to_string())
         );
+        // Where the run lives: the plane, or the bounded universe its
+        // manifest names, with its top-left cell where it stood.
+        let space = input::space(space_text.as_deref(), "the checkpoint's universe")?;
         let line = progress::Line::start("advancing");
         let mut observe = |progress: &Progress| line.update(progress);
-        let advanced = universe.advance(&steps, Some(&mut observe));
+        let advanced = input::advance(
+            &mut universe,
+            space,
+            origin.unwrap_or((0, 0)),
+            &steps,
+            budget,
+            Some(&mut observe),
+        );
         line.finish();
         advanced.with_context(|| format!("advancing {steps} generations"))?;
     }
@@ -147,6 +158,7 @@ pub fn run(args: SnapshotArgs) -> anyhow::Result<()> {
     }
     let mut report = Report::of(&mut universe, started.elapsed())?;
     report.picture = picture;
+    report.universe = space_text;
     if let Some(region) = &region {
         let figures = universe
             .region_figures(region)

@@ -41,6 +41,7 @@ pub fn run_job(path: &std::path::Path) -> anyhow::Result<Report> {
         name: &job.name,
         pattern: &pattern_digest,
         universe: job.universe,
+        origin,
     };
 
     let checkpoints = Checkpoints::new(deeptime_storage::open(&job.checkpoint_dir)?);

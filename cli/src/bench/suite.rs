@@ -479,6 +479,7 @@ fn checkpoints(settings: &Settings) -> anyhow::Result<Vec<Figure>> {
         name: "bench",
         pattern: &digest,
         universe: deeptime_engine::finite::Space::Plane,
+        origin: (0, 0),
     };
     let mut known = deeptime_engine::KnownQuads::default();
     let (full, full_time) =

@@ -268,6 +268,7 @@ impl Run<'_> {
                     packs,
                     written: 0,
                     universe: None,
+                    origin: None,
                 },
             )
         })?;

@@ -99,6 +99,7 @@ impl Run<'_> {
             name: &self.job.name,
             pattern: &self.pattern_digest,
             universe: deeptime_engine::finite::Space::Plane,
+            origin: (0, 0),
         }
     }
 
