@@ -164,14 +164,17 @@ fn reference_expect_in(
 /// The soup must stay interesting through the run, or the comparison says
 /// little: alive at the end, changing, and not a solid block. Source: the
 /// reference's own records (independent reference: numpy/scipy).
+/// Under a B0 rule the cells counted are those that differ from the
+/// background (the dead ones when it is alive).
 fn assert_interesting(expected: &serde_json::Value, what: &str) {
     let gens = &expected["generations"];
     let population = |generation: u64| -> u64 {
-        gens[generation.to_string()]["population"]
-            .as_str()
-            .expect("population")
-            .parse()
-            .expect("decimal")
+        let record = &gens[generation.to_string()];
+        let counted = match record["dead_cells"].as_str() {
+            Some(dead) => dead,
+            None => record["population"].as_str().expect("population"),
+        };
+        counted.parse().expect("decimal")
     };
     let last = *GENS.last().unwrap();
     let final_population = population(last);
@@ -377,6 +380,33 @@ fn isotropic_rules_in_hensel_notation() {
     }
 }
 
+/// Rules with B0, each on its own soup: two without S8 (the background
+/// flips every generation) and two with S8 (it stays alive from generation
+/// 1). B0123478/S01234678 and B0123478/S0134678 are the black/white
+/// reversals of B3/S23 and B36/S23 (LifeWiki, "Black/white reversal", from
+/// memory); the others were picked because soups stay active under them
+/// through 300 generations without filling their box (measured with the
+/// reference). The reference keeps the true cells and the background's
+/// state; deeptime keeps the cells that differ from it.
+#[test]
+fn b0_rules_with_and_without_s8() {
+    for (rule, seed) in [
+        ("B03/S23", 71),
+        ("B02a3-k/S2-i3", 72),
+        ("B0123478/S01234678", 73),
+        ("B0123478/S0134678", 74),
+    ] {
+        check_rule(
+            rule,
+            &[Soup {
+                seed,
+                size: 40,
+                density: 0.4,
+            }],
+        );
+    }
+}
+
 #[test]
 fn glider_northwest() {
     // A glider flying towards negative x and y (common practice: it moves by
@@ -427,6 +457,10 @@ fn tori_and_bounded_planes_against_the_reference() {
         ("B36/S23", "bounded 33x19", 4),
         ("B2-a/S12", "torus 30x26", 5),
         ("B3/S2-i34q", "bounded 27x35", 6),
+        // B0: every cell of a torus is explicit, and outside a bounded
+        // plane cells stay dead, so no background is ever alive there.
+        ("B02a3-k/S2-i3", "torus 21x20", 7),
+        ("B0123478/S0134678", "bounded 23x19", 8),
     ] {
         let dir = temp_dir();
         let pattern = dir.path().join("soup.rle");

@@ -145,5 +145,6 @@ pub fn plane_state(finite: &Finite, origin: (i64, i64), budget: u64) -> anyhow::
     let mut universe = Universe::from_pattern(&pattern, finite.rule(), budget)
         .context("the bounded universe's cells")?;
     universe.set_generation(finite.generation().clone());
+    universe.mark_bounded();
     Ok(universe)
 }

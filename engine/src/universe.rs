@@ -118,6 +118,9 @@ pub struct Universe {
     /// The advance the residual memo was filled for: N's words and the
     /// background it started from.
     residual_for: (Vec<u64>, Background),
+    /// Whether the state holds the cells of a torus or bounded plane (see
+    /// [`Universe::mark_bounded`]).
+    bounded: bool,
 }
 
 impl Universe {
@@ -133,6 +136,7 @@ impl Universe {
             level: MIN_ROOT_LEVEL,
             generation: BigUint::zero(),
             residual_for: (Vec::new(), Background::Dead),
+            bounded: false,
         })
     }
 
@@ -304,7 +308,18 @@ impl Universe {
     /// from it, and every figure (population, bounding box, digest) and
     /// every cell written counts those.
     pub fn background(&self) -> Background {
+        if self.bounded {
+            return Background::Dead;
+        }
         self.rule.background(&self.generation)
+    }
+
+    /// Marks the state as the cells of a torus or bounded plane, held here
+    /// between the bounded stepper's runs: there is no background outside
+    /// them, so it is dead whatever the rule (B0 brings to life only cells
+    /// inside, which are stored as they are).
+    pub fn mark_bounded(&mut self) {
+        self.bounded = true;
     }
 
     /// Says which generation this state is (a state computed elsewhere,

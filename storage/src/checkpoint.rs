@@ -155,6 +155,10 @@ pub struct Manifest {
     /// absent on the unbounded plane
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub universe: Option<String>,
+    /// where the bounded universe's top-left cell stands on the plane
+    /// (x, y); absent on the plane, and read as (0, 0) when absent
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub origin: Option<(i64, i64)>,
 }
 
 /// What a run's checkpoints say it is: the job's name, the digest of its
@@ -164,6 +168,8 @@ pub struct RunIdentity<'a> {
     pub name: &'a str,
     pub pattern: &'a ContentId,
     pub universe: Space,
+    /// where a bounded universe's top-left cell stands on the plane
+    pub origin: (i64, i64),
 }
 
 /// A pack a manifest needs.
@@ -503,6 +509,9 @@ impl Checkpoints {
                         .unwrap_or_else(|| "the packs".to_string());
                     from_pack_error(&place, error)
                 })?;
+        if manifest.universe.is_some() {
+            universe.mark_bounded();
+        }
         let digest = universe.digest()?;
         if digest != root {
             return Err(damaged(format!(
@@ -558,7 +567,11 @@ impl Checkpoints {
             packs,
             root: manifest.root_at(),
             population: manifest.population()?,
-            rule: (rule, rule.background(&manifest.generation()?)),
+            // A torus or bounded plane has no background outside it.
+            rule: match manifest.universe {
+                Some(_) => (rule, Background::Dead),
+                None => (rule, rule.background(&manifest.generation()?)),
+            },
         })
     }
 
@@ -718,6 +731,7 @@ impl Checkpoints {
                 packs,
                 written: 0,
                 universe: (run.universe != Space::Plane).then(|| run.universe.to_string()),
+                origin: (run.universe != Space::Plane).then_some(run.origin),
             },
         )
     }

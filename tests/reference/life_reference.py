@@ -2,10 +2,13 @@
 """Independent reference simulator for deeptime's whole-system tests.
 
 It runs two-state rules on the eight neighbours (B/S notation with the
-letters of Hensel notation, no B0) the plain way: a numpy boolean grid,
-padded so that nothing reaches its edge, and each cell's neighbourhood
-numbered by scipy's 2-D correlation with a 3x3 window of weights, looked up
-in the rule's tables. It shares no code with
+letters of Hensel notation) the plain way: a numpy boolean grid, padded so
+that nothing reaches its edge, and each cell's neighbourhood numbered by
+scipy's 2-D correlation with a 3x3 window of weights, looked up in the
+rule's tables. A rule with B0 brings every empty cell of the plane to life:
+the grid then keeps the true cells and an explicit state for every cell
+outside it (the background), and steps the whole grid with the outside in
+that state. It shares no code with
 the Rust engine: it has its own rule parser, RLE reader and writer, and its own
 computation of the state digest from the grid. tests/reference.rs drives it:
 
@@ -147,10 +150,8 @@ class Rule:
             raise ValueError(f"rule {text!r} is not in the form B<counts>/S<counts>")
         self.birth_set = parse_part(match.group(1), text)
         self.survive_set = parse_part(match.group(2), text)
-        if 0 in self.birth_set:
-            # The padding argument (cells spread at most one cell per
-            # generation) needs a rule without B0 (common practice).
-            raise ValueError(f"rule {text!r} has B0, which this reference does not handle")
+        # B0: a cell with no live neighbour is born (empty space comes alive).
+        self.b0 = 0 in self.birth_set
         self.birth_table = np.zeros(256, dtype=bool)
         self.birth_table[sorted(self.birth_set)] = True
         self.survive_table = np.zeros(256, dtype=bool)
@@ -311,12 +312,18 @@ def write_rle(cells, rule_text, box=None):
 
 class Plane:
     """A finite grid of cells with the plane coordinates of its (0, 0):
-    grid[row, col] is the cell at x = col + x0, y = row + y0."""
+    grid[row, col] is the cell at x = col + x0, y = row + y0. Every cell
+    outside the grid is in the state `background` (alive only under a B0
+    rule). The figures are of the cells that differ from the background."""
 
-    def __init__(self, grid, x0, y0):
+    def __init__(self, grid, x0, y0, background=False):
         self.grid = grid
         self.x0 = x0
         self.y0 = y0
+        self.background = background
+
+    def differing(self):
+        return self.grid ^ self.background
 
     @staticmethod
     def from_cells(cells, margin):
@@ -334,14 +341,18 @@ class Plane:
         return Plane(grid, left - margin, top - margin)
 
     def population(self):
-        return int(np.count_nonzero(self.grid))
+        """The cells that differ from the background (the live ones when
+        it is dead)."""
+        return int(np.count_nonzero(self.differing()))
 
     def bbox(self):
-        """(left, top, width, height) of the live cells, or None."""
-        rows = np.flatnonzero(self.grid.any(axis=1))
+        """(left, top, width, height) of the cells that differ from the
+        background, or None."""
+        differing = self.differing()
+        rows = np.flatnonzero(differing.any(axis=1))
         if rows.size == 0:
             return None
-        cols = np.flatnonzero(self.grid.any(axis=0))
+        cols = np.flatnonzero(differing.any(axis=0))
         return (
             int(cols[0]) + self.x0,
             int(rows[0]) + self.y0,
@@ -350,7 +361,7 @@ class Plane:
         )
 
     def cells(self):
-        ys, xs = np.nonzero(self.grid)
+        ys, xs = np.nonzero(self.differing())
         return {(int(x) + self.x0, int(y) + self.y0) for x, y in zip(xs, ys)}
 
 
@@ -363,6 +374,7 @@ def neighbourhood_numbers(grid, boundary):
 
 def step(plane, rule):
     """One generation, in place. Independent reference: numpy/scipy.
+    A rule with B0, or an alive background, goes to step_with_background.
 
     The neighbourhoods come from scipy's correlation with the weights of
     each neighbour's place. Only the live cells' bounding box grown by one cell can change
@@ -370,6 +382,9 @@ def step(plane, rule):
     convolution runs on that window, with zeros outside it: every cell outside
     the window is dead. The grid's padding must keep the window off the edge;
     that is checked, not assumed."""
+    if rule.b0 or plane.background:
+        step_with_background(plane, rule)
+        return
     grid = plane.grid
     rows = np.flatnonzero(grid.any(axis=1))
     if rows.size == 0:
@@ -383,6 +398,25 @@ def step(plane, rule):
     numbers = neighbourhood_numbers(window, "constant")
     new = np.where(window, rule.survive_table[numbers], rule.birth_table[numbers])
     grid[r0:r1, c0:c1] = new
+
+
+def step_with_background(plane, rule):
+    """One generation of the whole grid, every cell outside it in the
+    background's state (scipy's "constant" boundary with that value); the
+    background then takes the state the rule gives a cell whose eight
+    neighbours share it: born with B0 when dead, kept with S8 when alive
+    (common practice for B0 rules). Whatever differs from the background
+    spreads at most one cell a generation, so the grid's padding keeps it
+    off the edge: checked, not assumed, on the grid's outer ring."""
+    bg = bool(plane.background)
+    numbers = scipy.ndimage.correlate(plane.grid.astype(np.int32), WEIGHTS, mode="constant", cval=int(bg))
+    new = np.where(plane.grid, rule.survive_table[numbers], rule.birth_table[numbers])
+    background = bool(rule.survive_table[255]) if bg else bool(rule.birth_table[0])
+    ring = np.concatenate([new[0, :], new[-1, :], new[:, 0], new[:, -1]])
+    if (ring != background).any():
+        raise RuntimeError("the pattern reached the edge of the reference grid: the padding is too small")
+    plane.grid = new
+    plane.background = background
 
 
 def step_naive(cells, rule):
@@ -451,7 +485,7 @@ def digest(plane):
     quad = np.zeros((side, side), dtype=bool)
     if bbox is not None:
         left, top, width, height = bbox
-        src = plane.grid[top - plane.y0:top - plane.y0 + height, left - plane.x0:left - plane.x0 + width]
+        src = plane.differing()[top - plane.y0:top - plane.y0 + height, left - plane.x0:left - plane.x0 + width]
         quad[top + half:top + half + height, left + half:left + half + width] = src
     n = side // 8
     # packbits(..., bitorder="little") makes bit x of each byte column x, so
@@ -508,8 +542,11 @@ def record_of(plane, rule):
     bbox = plane.bbox()
     live = plane.cells()
     text, _, _ = write_rle(live, rule.canonical())
+    alive = bool(plane.background)
     return {
-        "population": str(plane.population()),
+        "background": "alive" if alive else "dead",
+        "population": "infinite" if alive else str(plane.population()),
+        "dead_cells": str(plane.population()) if alive else None,
         "bbox": None if bbox is None else {
             "left": str(bbox[0]), "top": str(bbox[1]),
             "width": str(bbox[2]), "height": str(bbox[3]),
@@ -640,6 +677,10 @@ def compare_one(expected, gen, got_rle, got_json):
         problems.append(f"rule: deeptime {report['rule']!r}, reference {expected['rule']!r}")
     if report["population"] != record["population"]:
         problems.append(f"population: deeptime {report['population']!r}, reference {record['population']!r}")
+    if report.get("background") != record["background"]:
+        problems.append(f"background: deeptime {report.get('background')!r}, reference {record['background']!r}")
+    if report.get("dead_cells") != record["dead_cells"]:
+        problems.append(f"dead cells: deeptime {report.get('dead_cells')!r}, reference {record['dead_cells']!r}")
     if report["bbox"] != record["bbox"]:
         problems.append(f"bbox: deeptime {report['bbox']!r}, reference {record['bbox']!r}")
     if report["digest"] != record["digest"]:
@@ -652,6 +693,10 @@ def compare_one(expected, gen, got_rle, got_json):
     except ValueError as e:
         problems.append(f"deeptime's RLE does not parse with the reference reader: {e}")
         return problems
+    # An alive background is named in the text (deeptime's own comment).
+    says_alive = any(line.startswith("#background alive") for line in rle_text.splitlines())
+    if says_alive != (record["background"] == "alive"):
+        problems.append(f"RLE says background alive: {says_alive}, reference background {record['background']}")
     if rle_rule is not None and rle_rule != expected["rule"]:
         problems.append(f"RLE header rule: deeptime {rle_rule!r}, reference {expected['rule']!r}")
     bbox = report["bbox"]
@@ -1077,6 +1122,55 @@ def cmd_selftest(_args):
                 want = None
             check(bbox == want, f"bbox, rule {text}, generation {g + 1}")
             check(plane.population() == len(naive), f"population, rule {text}, generation {g + 1}")
+
+    # B0. LifeWiki, "Black/white reversal" (from memory): B0123478/S01234678
+    # is Life with the two states swapped. A soup's complement on an alive
+    # background, stepped by it, stays the complement of the soup stepped
+    # by Life (on a dead background); the background stays alive (S8).
+    reversal = Rule("B0123478/S01234678")
+    life = Rule("B3/S23")
+    soup = {(x, y) for x in range(14) for y in range(14) if rng.random() < 0.35}
+    plane = Plane.from_cells(soup, 30)
+    swapped = Plane(~plane.grid, plane.x0, plane.y0, background=True)
+    for g in range(25):
+        step(plane, life)
+        step(swapped, reversal)
+        check(swapped.background, f"the reversal keeps an alive background, generation {g + 1}")
+        check(np.array_equal(swapped.grid, ~plane.grid), f"reversal of Life, generation {g + 1}")
+        check(swapped.cells() == plane.cells(), f"reversal: the dead cells are Life's live ones, {g + 1}")
+    # B0 without S8 flips the background every generation; with S8 it
+    # stays alive from generation 1 (common practice). On an empty plane
+    # nothing differs from it.
+    for text, flips in (("B0/S", True), ("B0/S8", False), ("B03/S23", True)):
+        plane = Plane.from_cells(set(), 3)
+        for g in range(1, 7):
+            step(plane, Rule(text))
+            want = (g % 2 == 1) if flips else True
+            check(plane.background == want, f"{text}: background at generation {g}")
+            check(plane.population() == 0, f"{text}: nothing differs on an empty plane, {g}")
+    # Every B0 step against a plain-Python step of the true cells of the
+    # grid, cell by cell, each neighbour outside the grid in the
+    # background's state (common practice).
+    def step_grid_naive(grid, background, rule):
+        height, width = grid.shape
+
+        def at(x, y):
+            return grid[y, x] if 0 <= x < width and 0 <= y < height else background
+        new = np.array([[rule.next_state(at(x, y), np.array([[at(x + dx, y + dy) for dx in (-1, 0, 1)]
+                                                             for dy in (-1, 0, 1)]))
+                         for x in range(width)] for y in range(height)])
+        return new, rule.next_state(background, np.full((3, 3), background))
+
+    for text in ("B03/S23", "B0124/S1357", "B0123478/S34678", "B02a3-k/S2-i3"):
+        rule = Rule(text)
+        soup = {(x, y) for x in range(10) for y in range(10) if rng.random() < 0.4}
+        plane = Plane.from_cells(soup, 12)
+        grid, background = plane.grid.copy(), False
+        for g in range(8):
+            step(plane, rule)
+            grid, background = step_grid_naive(grid, background, rule)
+            check(plane.background == background, f"B0 background, rule {text}, generation {g + 1}")
+            check(np.array_equal(plane.grid, grid), f"B0 step equals plain step, rule {text}, generation {g + 1}")
     print(f"selftest: {checks} passed, 0 failed")
 
 
