@@ -1,0 +1,208 @@
+//! B0 rules through the commands users run: a stored run whose checkpoints
+//! fall at generations with a dead and an alive background resumes and
+//! serves snapshots with `leap`'s figures; `--out` names an alive
+//! background; Life's black/white reversal agrees with Life itself at
+//! 10^30 generations; what does not take B0 yet says so in one line.
+//! (Cell-by-cell checks against the reference are in reference.rs.)
+
+use std::path::Path;
+
+use deeptime_tests::{leap_report, reference_soup, run_deeptime, temp_dir, write_job};
+use serde_json::Value;
+
+fn report(run: &deeptime_tests::Run) -> Value {
+    run.assert_success();
+    serde_json::from_str(run.stdout.trim()).unwrap()
+}
+
+fn snapshot(runs: &Path, generation: &str, extra: &[&str]) -> Value {
+    let mut args = vec![
+        "snapshot",
+        runs.to_str().unwrap(),
+        "--gen",
+        generation,
+        "--json",
+    ];
+    args.extend_from_slice(extra);
+    report(&run_deeptime(args))
+}
+
+/// The figures a user relies on, equal between two reports.
+fn assert_same_state(got: &Value, want: &Value, what: &str) {
+    for field in [
+        "generation",
+        "background",
+        "population",
+        "dead_cells",
+        "bbox",
+        "digest",
+    ] {
+        assert_eq!(got[field], want[field], "{what}: {field}");
+    }
+}
+
+/// B0 without S8: the background flips every generation (common practice).
+/// B01245/S0125 is built so that the cells differing from its background
+/// evolve by B3678/S34678, which is its own black/white reversal (LifeWiki,
+/// "Day & Night", from memory): complementing a state, stepping it by
+/// B01245/S0125 and complementing again is a step of B3678/S34678. So at
+/// every generation its dead or live cells (whichever differ from the
+/// background) are the live cells of B3678/S34678. Checkpoints fall at odd
+/// (alive) and even (dead) generations, and snapshots between them start
+/// from either.
+#[test]
+fn a_stored_b0_run_resumes_and_serves_snapshots_at_either_background() {
+    let dir = temp_dir();
+    let rule = "B01245/S0125";
+    let twin = "B3678/S34678";
+    let pattern = dir.path().join("soup.rle");
+    reference_soup(&pattern, rule, 82, 64, 0.5);
+    let job = write_job(
+        dir.path(),
+        "job.toml",
+        "tide",
+        "soup.rle",
+        rule,
+        "6002",
+        "3001",
+    );
+    report(&run_deeptime([
+        "run".as_ref(),
+        job.as_os_str(),
+        "--json".as_ref(),
+    ]));
+    let job = write_job(
+        dir.path(),
+        "job.toml",
+        "tide",
+        "soup.rle",
+        rule,
+        "1000001",
+        "300001",
+    );
+    let resumed = run_deeptime(["run".as_ref(), job.as_os_str(), "--json".as_ref()]);
+    assert!(
+        resumed.stderr.contains("resuming tide"),
+        "{}",
+        resumed.describe()
+    );
+    let finished = report(&resumed);
+    let leap = leap_report(&pattern, "1000001", rule);
+    assert_same_state(&finished, &leap, "the resumed run");
+    assert_eq!(leap["background"], "alive");
+    assert_eq!(leap["population"], "infinite");
+    assert!(leap["dead_cells"].as_str().unwrap().parse::<u64>().unwrap() > 0);
+
+    let runs = dir.path().join("runs");
+    run_deeptime(["verify".as_ref(), runs.as_os_str()]).assert_success();
+    for (generation, background) in [
+        ("3001", "alive"),
+        ("4500", "dead"),
+        ("4501", "alive"),
+        ("6002", "dead"),
+        ("900003", "alive"),
+        ("950000", "dead"),
+        ("950001", "alive"),
+    ] {
+        let got = snapshot(&runs, generation, &[]);
+        assert_eq!(got["background"], background, "generation {generation}");
+        assert_same_state(&got, &leap_report(&pattern, generation, rule), generation);
+        let twin = leap_report(&pattern, generation, twin);
+        let counted = if background == "alive" {
+            "dead_cells"
+        } else {
+            "population"
+        };
+        assert_eq!(got[counted], twin["population"], "{generation}: {twin}");
+        assert_eq!(got["digest"], twin["digest"], "generation {generation}");
+    }
+
+    // --out names an alive background in a comment, and the reader refuses
+    // to start a pattern from such a text.
+    let out = dir.path().join("odd.rle");
+    snapshot(&runs, "900003", &["--out", out.to_str().unwrap()]);
+    let text = std::fs::read_to_string(&out).unwrap();
+    assert!(
+        text.lines()
+            .any(|line| line.starts_with("#background alive")),
+        "{text}"
+    );
+    let refused = run_deeptime([
+        "leap".as_ref(),
+        out.as_os_str(),
+        "--gens".as_ref(),
+        "1".as_ref(),
+    ]);
+    assert_eq!(refused.code, Some(2), "{}", refused.describe());
+    assert!(
+        refused.stderr.contains("odd.rle:2:1: ") && refused.stderr.contains("background is alive"),
+        "{}",
+        refused.describe()
+    );
+    let even = dir.path().join("even.rle");
+    snapshot(&runs, "600002", &["--out", even.to_str().unwrap()]);
+    assert!(
+        !std::fs::read_to_string(&even)
+            .unwrap()
+            .contains("#background")
+    );
+
+    // A rectangle far from the pattern on an alive background: every one
+    // of its cells lives (common practice).
+    let far = snapshot(&runs, "900003", &["--region", "100000,100000,30,20"]);
+    assert_eq!(far["region"]["population"], "600");
+    assert_eq!(far["region"]["bbox"], Value::Null);
+}
+
+/// LifeWiki, "Black/white reversal" (from memory): B0123478/S01234678 is
+/// Life with the states swapped. Its first generation brings the
+/// background to life, and from there the dead cells evolve by Life: the
+/// dead cells at 10^30 are Life's live cells 10^30 - 1 generations after
+/// the dead cells of generation 1.
+#[test]
+fn lifes_reversal_agrees_with_life_at_ten_to_the_thirty() {
+    let dir = temp_dir();
+    let reversal = "B0123478/S01234678";
+    let pattern = dir.path().join("soup.rle");
+    reference_soup(&pattern, reversal, 82, 40, 0.4);
+    let first = dir.path().join("first.rle");
+    let run = run_deeptime([
+        "leap".as_ref(),
+        pattern.as_os_str(),
+        "--rule".as_ref(),
+        reversal.as_ref(),
+        "--gens".as_ref(),
+        "1".as_ref(),
+        "--out".as_ref(),
+        first.as_os_str(),
+    ]);
+    run.assert_success();
+    // The dead cells of generation 1 as a Life pattern, where they stand.
+    let text = std::fs::read_to_string(&first).unwrap();
+    let as_life: String = text
+        .lines()
+        .filter(|line| !line.starts_with("#background"))
+        .map(|line| line.replace(reversal, "B3/S23") + "\n")
+        .collect();
+    std::fs::write(&first, as_life).unwrap();
+    let far = leap_report(&pattern, "10^30", reversal);
+    let life = leap_report(&first, "999999999999999999999999999999", "B3/S23");
+    assert_eq!(far["background"], "alive");
+    assert_eq!(far["population"], "infinite");
+    assert_eq!(far["dead_cells"], life["population"]);
+    assert_eq!(far["bbox"], life["bbox"]);
+    assert_eq!(far["digest"], life["digest"]);
+}
+
+/// What does not run B0 rules on the plane yet refuses them in one line,
+/// exit 2, before any work.
+#[test]
+fn fate_refuses_b0_on_the_plane_in_one_line() {
+    let dir = temp_dir();
+    let pattern = dir.path().join("soup.rle");
+    reference_soup(&pattern, "B03/S23", 83, 12, 0.4);
+    let run = run_deeptime(["fate".as_ref(), pattern.as_os_str()]);
+    assert_eq!(run.code, Some(2), "{}", run.describe());
+    assert_eq!(run.stderr.trim().lines().count(), 1, "{}", run.describe());
+    assert!(run.stderr.contains("has B0"), "{}", run.describe());
+}
