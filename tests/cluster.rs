@@ -394,6 +394,57 @@ fn three_nodes_give_the_single_process_figures_on_a_soup_that_spans_many_pieces(
     );
 }
 
+/// B0 rules on the cluster: tasks carry the background their generation
+/// has, and a step from a background other than the one the rule settles
+/// in moves one generation first, as in one process. B01245/S0125 flips
+/// its background every generation (checkpoints at 75, 225 and 301 are at
+/// an alive one, 150 and 300 at a dead one); B0123478/S0134678 keeps it
+/// alive from generation 1 (S8). Each equals leap, itself checked against
+/// the reference in tests/reference.rs, and a run resumed from a
+/// checkpoint at an alive background goes on to leap's figures.
+#[test]
+fn b0_rules_on_three_nodes_give_the_single_process_figures_at_either_background() {
+    for (rule, first, every, resumed) in [
+        ("B01245/S0125", "301", "75", "451"),
+        ("B0123478/S0134678", "200", "75", "333"),
+    ] {
+        let dir = temp_dir();
+        let pattern = dir.path().join("soup.rle");
+        deeptime_tests::reference_soup(&pattern, rule, 91, 96, 0.5);
+        let job = write_job(dir.path(), "soup.rle", rule, first, every);
+        let cluster = run_cluster(&job, 3, &["--shard-level", "6"]);
+        let single = leap_report(&pattern, first, rule);
+        assert_same_figures(&cluster, &single);
+        for field in ["background", "dead_cells"] {
+            assert_eq!(cluster[field], single[field], "{rule}: {field}");
+        }
+        assert_eq!(single["background"], "alive", "{rule}");
+        assert_checkpoints_hold(dir.path(), &cluster);
+        let snapshot = run_deeptime([
+            "snapshot".as_ref(),
+            dir.path().join("runs").as_os_str(),
+            "--gen".as_ref(),
+            "225".as_ref(),
+            "--json".as_ref(),
+        ]);
+        snapshot.assert_success();
+        let snapshot: serde_json::Value = serde_json::from_str(&snapshot.stdout).unwrap();
+        let at_225 = leap_report(&pattern, "225", rule);
+        assert_same_figures(&snapshot, &at_225);
+        assert_eq!(snapshot["background"], at_225["background"], "{rule}");
+
+        let job = write_job(dir.path(), "soup.rle", rule, resumed, every);
+        let mut cluster = Cluster::start(&job, 3, &["--shard-level", "6"]);
+        cluster.add_nodes(3, "256MiB", &[]);
+        let (report, stderr) = cluster.report();
+        assert!(stderr.contains("resuming"), "{stderr}");
+        let single = leap_report(&pattern, resumed, rule);
+        assert_same_figures(&report, &single);
+        assert_eq!(report["background"], single["background"], "{rule}");
+        assert_eq!(report["dead_cells"], single["dead_cells"], "{rule}");
+    }
+}
+
 #[test]
 fn a_node_with_a_wrong_token_is_refused_and_exits_non_zero() {
     let dir = temp_dir();

@@ -13,6 +13,7 @@ use std::sync::atomic::Ordering;
 use anyhow::anyhow;
 use deeptime_engine::ContentId;
 use deeptime_engine::recursion::{self, Stride};
+use deeptime_engine::rule::Background;
 use deeptime_engine::top::{Quad, Top};
 use deeptime_engine::walk::{Answer, Ticket, Tree, Walk};
 use futures::FutureExt;
@@ -30,18 +31,29 @@ const MAX_CARRIED: usize = 1 << 20;
 /// in its store, so what recurs (the regular parts of a pattern) is not
 /// computed again. What is left here is which N the residual results are
 /// for.
-#[derive(Default)]
 pub struct Memo {
-    /// the N (little-endian words) the residual entries are for
-    residual_for: Vec<u64>,
+    /// the N (little-endian words) the residual entries are for, and the
+    /// background the advance started from (B0 rules)
+    residual_for: (Vec<u64>, Background),
+}
+
+impl Default for Memo {
+    fn default() -> Memo {
+        Memo {
+            residual_for: (Vec::new(), Background::Dead),
+        }
+    }
 }
 
 impl Memo {
-    /// Before an advance by N: residual results hold only for the same N.
-    fn begin(&mut self, top: &mut Top, words: &[u64]) {
-        let changed = words != self.residual_for;
+    /// Before an advance by N from `from`: residual results hold only for
+    /// the same N from the same background. (Full-stride results hold for
+    /// every advance: all that are long enough to make them start from the
+    /// background the rule settles in.)
+    fn begin(&mut self, top: &mut Top, words: &[u64], from: Background) {
+        let changed = (words, from) != (&self.residual_for.0[..], self.residual_for.1);
         if changed {
-            self.residual_for = words.to_vec();
+            self.residual_for = (words.to_vec(), from);
         }
         top.memo_begin(changed);
     }
@@ -183,8 +195,10 @@ impl Tree for Remote<'_> {
 }
 
 /// Advances `root` (of `level`, grown for N: see [`Top::grown_for`]) by N
-/// generations with tasks on the nodes; returns the root's centre. On an
-/// error every task still in flight is dropped (its call cancelled).
+/// generations from a generation whose background is `from` (more than one
+/// only from the background the rule settles in) with tasks on the nodes;
+/// returns the root's centre. On an error every task still in flight is
+/// dropped (its call cancelled).
 pub async fn advance(
     tasks: &Dispatcher,
     job: &str,
@@ -192,7 +206,7 @@ pub async fn advance(
     memo: &mut Memo,
     root: ContentId,
     level: u32,
-    steps: &BigUint,
+    (steps, from): (&BigUint, Background),
 ) -> anyhow::Result<ContentId> {
     let shard_level = top.lock().expect("top").shard_level;
     let words = steps.to_u64_digits();
@@ -204,7 +218,7 @@ pub async fn advance(
     let mut out;
     {
         let mut top = top.lock().expect("top");
-        memo.begin(&mut top, &words);
+        memo.begin(&mut top, &words, from);
         empties = (shard_level - 1..=level)
             .map(|at| {
                 let id = top.empty(at);
@@ -233,7 +247,7 @@ pub async fn advance(
         for ask in asks.unsent.drain(..) {
             running.push(async move {
                 let outcome = tasks
-                    .advance(job, shard_level, ask.kids, ask.generations)
+                    .advance(job, shard_level, ask.kids, (ask.generations, from))
                     .await;
                 (ask, outcome)
             });

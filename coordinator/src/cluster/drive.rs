@@ -11,7 +11,7 @@ use std::time::{Duration, Instant};
 
 use anyhow::Context;
 use deeptime_engine::cut::Piece;
-use deeptime_engine::rule::Background;
+use deeptime_engine::rule::Rule;
 use deeptime_engine::{ContentId, KnownQuads, Universe};
 use num_bigint::BigUint;
 
@@ -22,7 +22,7 @@ use crate::cluster::recover::Recovered;
 use crate::cluster::tasks::{Dispatcher, HandOver, PiecesLost};
 use crate::job::Job;
 use crate::numbers::for_people;
-use crate::report::{BoxReport, EngineReport, Report};
+use crate::report::{self, BoxReport, EngineReport, Report};
 use deeptime_engine::top::Top;
 use deeptime_node::fetch::Peers;
 use deeptime_storage::checkpoint::{Checkpoints, Manifest, RunIdentity};
@@ -32,6 +32,7 @@ pub struct Run<'a> {
     pub min_nodes: usize,
     pub job: &'a Job,
     pub job_id: &'a str,
+    pub rule: Rule,
     pub shard_level: u32,
     pub budget: u64,
     pub pattern_digest: ContentId,
@@ -247,13 +248,14 @@ impl Run<'_> {
         let (root, level) = (cut.root, cut.root_level);
         let pieces = top.pieces(&root, level);
         self.tasks.retain(self.job_id, &pieces).await?;
-        let population = universe.population();
+        let (population, _) =
+            report::population(universe.background(), universe.population().to_string());
         let generation = universe.generation().clone();
         {
             let mut status = self.board.status.lock().expect("board");
             status.generation = generation.to_string();
             status.started_from = generation.to_string();
-            status.population = population.to_string();
+            status.population = population;
             status.bbox = universe
                 .bounding_box()
                 .map(|bbox| deeptime_proto::v1::BoundingBox {
@@ -298,6 +300,13 @@ impl Run<'_> {
             if let Some(pacer) = &pacer {
                 step = step.min(pacer.step.clone());
             }
+            // A B0 rule's state away from the background the memo is made
+            // for moves one generation on its own first (see
+            // `deeptime_engine::rule::Background`).
+            let from = self.rule.background(&state.generation);
+            if from != self.rule.settled_background() {
+                step = BigUint::from(1u32);
+            }
             let stepping = Instant::now();
             // Kept (its top) until the step's checkpoint is stored: pieces
             // lost before then are read again from it.
@@ -315,7 +324,7 @@ impl Run<'_> {
                 &mut memo,
                 root,
                 level,
-                &step,
+                (&step, from),
             )
             .await;
             let root = match outcome {
@@ -353,10 +362,12 @@ impl Run<'_> {
             };
             self.tasks.retain(self.job_id, &kept).await?;
             let (population, bbox) = self.figures(&state);
+            let background = self.rule.background(&state.generation);
+            let (population, _) = report::population(background, population.to_string());
             {
                 let mut status = self.board.status.lock().expect("board");
                 status.generation = state.generation.to_string();
-                status.population = population.to_string();
+                status.population = population.clone();
                 status.bbox = bbox.map(|bbox| deeptime_proto::v1::BoundingBox {
                     left: bbox.left,
                     top: bbox.top,
@@ -367,7 +378,7 @@ impl Run<'_> {
             tracing::info!(
                 "generation {}, population {}, {} tasks",
                 for_people(&state.generation.to_string()),
-                for_people(&population.to_string()),
+                for_people(&population),
                 self.tasks.counters().done
             );
             let due = match pacer.as_mut() {
@@ -468,12 +479,13 @@ impl Run<'_> {
             members.iter().map(|m| f(m)).sum::<u64>()
         };
         use std::sync::atomic::Ordering::Relaxed;
-        // The cluster runs no B0 rule (`coordinate` refuses them).
+        let background = self.rule.background(&state.generation);
+        let (population, dead_cells) = report::population(background, population.to_string());
         Ok(Report {
             generation: state.generation.to_string(),
-            background: Background::Dead.name(),
-            population: population.to_string(),
-            dead_cells: None,
+            background: background.name(),
+            population,
+            dead_cells,
             bbox,
             rule: self.members.terms.rule.clone(),
             digest: digest.to_string(),

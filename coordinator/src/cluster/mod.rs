@@ -164,13 +164,6 @@ pub async fn coordinate(
     let budget = memory::budget(job.memory.as_deref())?;
     let loaded = input::read(&job.pattern, budget)?;
     let rule = input::rule(job.rule.as_deref(), &loaded)?;
-    if rule.births_on_empty() {
-        return Err(BadInput(format!(
-            "{}: rule {rule} has B0 (empty cells are born), which the cluster does not run yet: run the job on one machine with `deeptime run`",
-            args.job.display()
-        ))
-        .into());
-    }
     let mut universe = input::build(loaded, rule, budget)?;
     let pattern_digest = universe.digest()?;
     let side = universe
@@ -218,7 +211,11 @@ pub async fn coordinate(
             state: "waiting".to_string(),
             generation: "0".to_string(),
             target: job.target.to_string(),
-            population: universe.population().to_string(),
+            population: crate::report::population(
+                universe.background(),
+                universe.population().to_string(),
+            )
+            .0,
             shard_level,
             rule: rule.to_string(),
             ..Default::default()
@@ -279,6 +276,7 @@ pub async fn coordinate(
         min_nodes: args.min_nodes,
         job: &job,
         job_id: &job_id,
+        rule,
         shard_level,
         budget,
         pattern_digest,

@@ -284,7 +284,8 @@ impl Run<'_> {
             let mut status = self.board.status.lock().expect("board");
             status.generation = on_nodes.generation.to_string();
             status.started_from = on_nodes.generation.to_string();
-            status.population = population.to_string();
+            let background = self.rule.background(&on_nodes.generation);
+            status.population = crate::report::population(background, population.to_string()).0;
         }
         Ok(Some((on_nodes, known)))
     }

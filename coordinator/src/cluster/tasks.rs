@@ -11,6 +11,7 @@ use std::time::Duration;
 
 use anyhow::anyhow;
 use deeptime_engine::ContentId;
+use deeptime_engine::rule::Background;
 use deeptime_engine::shard::{Figures, Record};
 use deeptime_node::wire::{self, MAX_BATCH};
 use deeptime_proto::v1;
@@ -346,7 +347,7 @@ impl Dispatcher {
         job: &str,
         level: u32,
         kids: [ContentId; 4],
-        stride: u64,
+        (stride, from): (u64, Background),
     ) -> anyhow::Result<ContentId> {
         // Tries until a member answers; a peer that failed a member's fetch
         // is probed, and lost if it is gone; a slow one is given the time a
@@ -394,8 +395,7 @@ impl Dispatcher {
                     sources,
                 }),
                 stride,
-                // The cluster runs no B0 rule (`coordinate` refuses them).
-                background_alive: false,
+                background_alive: from == Background::Alive,
             });
             request.set_timeout(TASK_TIMEOUT);
             let sent = std::time::Instant::now();

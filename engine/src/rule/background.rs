@@ -79,7 +79,7 @@ impl Rule {
     /// every advance long enough to use it starts there (after one single
     /// generation when it does not). From it the background repeats every
     /// two generations.
-    pub(crate) fn settled_background(&self) -> Background {
+    pub fn settled_background(&self) -> Background {
         if self.births_on_empty() && self.survives_full() {
             Background::Alive
         } else {
