@@ -38,8 +38,14 @@ pub struct Grid {
 }
 
 impl Grid {
-    /// The grid holding `pattern` with its top-left cell at (0, 0).
+    /// The grid holding `pattern` with its top-left cell at (0, 0), under
+    /// a rule without B0 (the benchmark's baseline and the tests' second
+    /// check never run one; a B0 rule panics here).
     pub fn from_pattern(pattern: &Pattern, rule: Rule) -> Grid {
+        assert!(
+            !rule.births_on_empty(),
+            "the direct stepper skips empty tiles and runs no B0 rule ({rule})"
+        );
         let (width, height) = pattern.extent();
         let (width, height) = (width.max(1), height.max(1));
         // One empty ring of tiles around the pattern.
