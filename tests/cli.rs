@@ -312,10 +312,10 @@ const MALFORMED: &[(&[u8], &[&str], i32, &str)] = &[
         "FILE:3:2: unexpected 'X'",
     ),
     (
-        b"x = 1, y = 1\no!",
+        b"#C a state written by a B0 rule\n#background alive: every cell not written is alive\nx = 1, y = 1\no!",
         &["--rule", "B03/S23"],
         2,
-        "--rule: rule B03/S23 has B0 (empty cells are born): deeptime does not run B0 rules",
+        "FILE:2:1: the text holds the dead cells of a state whose background is alive (a B0 rule's); a pattern starts on a dead background: resume the run from its checkpoint instead",
     ),
     (
         b"x = 1, y = 1\no!",
