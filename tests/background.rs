@@ -194,6 +194,61 @@ fn lifes_reversal_agrees_with_life_at_ten_to_the_thirty() {
     assert_eq!(far["digest"], life["digest"]);
 }
 
+/// A timeline of the twin rules above, sample by sample: the flipping one
+/// alternates between a dead background (its live cells counted) and an
+/// alive one (`infinite`, its dead cells counted), and what it counts is
+/// always the live cells of B3678/S34678 (as above).
+#[test]
+fn a_b0_timeline_names_each_samples_background() {
+    let dir = temp_dir();
+    let pattern = dir.path().join("soup.rle");
+    reference_soup(&pattern, "B01245/S0125", 84, 48, 0.5);
+    let rows = |rule: &str| -> Vec<Vec<String>> {
+        let csv = dir.path().join("timeline.csv");
+        run_deeptime([
+            "timeline".as_ref(),
+            pattern.as_os_str(),
+            "--rule".as_ref(),
+            rule.as_ref(),
+            "--gens".as_ref(),
+            "41".as_ref(),
+            "--every".as_ref(),
+            "1".as_ref(),
+            "--csv".as_ref(),
+            csv.as_os_str(),
+        ])
+        .assert_success();
+        let text = std::fs::read_to_string(&csv).unwrap();
+        let mut lines = text.lines();
+        assert_eq!(
+            lines.next(),
+            Some("generation,population,left,top,width,height,digest,background,dead_cells")
+        );
+        lines
+            .map(|line| line.split(',').map(String::from).collect())
+            .collect()
+    };
+    let flipping = rows("B01245/S0125");
+    let twin = rows("B3678/S34678");
+    assert_eq!(flipping.len(), 42);
+    for (g, (row, twin)) in flipping.iter().zip(&twin).enumerate() {
+        let alive = g % 2 == 1;
+        assert_eq!(
+            row[7],
+            if alive { "alive" } else { "dead" },
+            "generation {g}"
+        );
+        let (population, counted) = if alive {
+            ("infinite", &row[8])
+        } else {
+            (twin[1].as_str(), &row[1])
+        };
+        assert_eq!(row[1], population, "generation {g}");
+        assert_eq!(counted, &twin[1], "generation {g}");
+        assert_eq!(row[2..7], twin[2..7], "generation {g}: box and digest");
+    }
+}
+
 /// What does not run B0 rules on the plane yet refuses them in one line,
 /// exit 2, before any work.
 #[test]

@@ -43,15 +43,16 @@ fn the_gun_has_36_plus_5k_cells_at_30k() {
     let mut lines = text.lines();
     assert_eq!(
         lines.next(),
-        Some("generation,population,left,top,width,height,digest")
+        Some("generation,population,left,top,width,height,digest,background,dead_cells")
     );
     let rows: Vec<Vec<&str>> = lines.map(|line| line.split(',').collect()).collect();
     assert_eq!(rows.len(), 101);
     for (k, row) in rows.iter().enumerate() {
-        assert_eq!(row.len(), 7, "{row:?}");
+        assert_eq!(row.len(), 9, "{row:?}");
         assert_eq!(row[0], (30 * k).to_string());
         assert_eq!(row[1], (36 + 5 * k).to_string(), "generation {}", row[0]);
         assert_eq!(row[6].len(), 32);
+        assert_eq!((row[7], row[8]), ("dead", ""), "a rule without B0");
     }
 }
 
