@@ -95,6 +95,9 @@ pub fn population_png(samples: &[Sample], rule: &str) -> anyhow::Result<Vec<u8>>
     if log_x && samples.first().is_some_and(|s| s.generation == "0") {
         title.push_str(" (generation 0 not shown on the log scale)");
     }
+    if samples.iter().any(|s| s.population == report::INFINITE) {
+        title.push_str(" (generations with an alive background not shown)");
+    }
 
     REGISTER.call_once(|| {
         // The bytes are a valid font (checked by the tests); a failure here

@@ -1,4 +1,5 @@
-//! What an isotropic rule costs against its outer-totalistic parent: the
+//! What an isotropic rule costs against its outer-totalistic parent, and
+//! a B0 rule against the rule without B0 that does the same work: the
 //! same soup under both, by HashLife and by the direct stepper, side by
 //! side. The two rules evolve the soup differently, so HashLife's time is
 //! compared per quad it created (its unit of work), and the direct
@@ -68,5 +69,45 @@ pub fn rules(settings: &Settings) -> anyhow::Result<Vec<Figure>> {
             );
         }
     }
+    figures.push(b0_cost(&pattern, &label, generations)?);
     Ok(figures)
+}
+
+/// A B0 rule and its twin without B0: the cells B01245/S0125 keeps (those
+/// that differ from its flipping background) evolve exactly as B3678/S34678
+/// evolves the same soup (README, "Rules with B0"), so both runs do the same
+/// work but for the B0 rule's two rules taking turns in the kernel. Compared
+/// by time, after checking the two states are the same.
+fn b0_cost(
+    pattern: &deeptime_engine::pattern::Pattern,
+    label: &str,
+    generations: u64,
+) -> anyhow::Result<Figure> {
+    const TWINS: [&str; 2] = ["B3678/S34678", "B01245/S0125"];
+    // One more than the others: the B0 rule's background is alive at the end.
+    let steps = BigUint::from(generations + 1);
+    let mut seconds = Vec::new();
+    let mut digests = Vec::new();
+    for text in TWINS {
+        let (mut universe, took) = timed_jump(pattern, Rule::parse(text)?, &steps, BUDGET)?;
+        seconds.push(took.as_secs_f64());
+        digests.push(universe.digest()?);
+    }
+    ensure!(
+        digests[0] == digests[1],
+        "{} and {} differ on the {label} soup",
+        TWINS[0],
+        TWINS[1]
+    );
+    Ok(Figure::new(
+        "rules",
+        &format!("{label}+1: {} / {}, HashLife time", TWINS[1], TWINS[0]),
+        seconds[1] / seconds[0],
+        "×",
+        None,
+    )
+    .detail(format!(
+        "{}: {:.2} s; {}: {:.2} s; the same state",
+        TWINS[0], seconds[0], TWINS[1], seconds[1]
+    )))
 }
