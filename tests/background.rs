@@ -154,6 +154,64 @@ fn a_stored_b0_run_resumes_and_serves_snapshots_at_either_background() {
     assert_eq!(far["region"]["bbox"], Value::Null);
 }
 
+/// The same with a flipping rule whose two steps (from a dead and from an
+/// alive background) are different rules, so that a step taken with the
+/// wrong one shows: B02a3-k/S2-i3, which reference.rs checks cell by cell
+/// against the reference through 300 generations.
+#[test]
+fn a_stored_run_of_a_flipping_rule_resumes_at_an_alive_background() {
+    let dir = temp_dir();
+    let rule = "B02a3-k/S2-i3";
+    let pattern = dir.path().join("soup.rle");
+    reference_soup(&pattern, rule, 85, 40, 0.4);
+    let job = write_job(
+        dir.path(),
+        "job.toml",
+        "tide",
+        "soup.rle",
+        rule,
+        "225",
+        "75",
+    );
+    report(&run_deeptime([
+        "run".as_ref(),
+        job.as_os_str(),
+        "--json".as_ref(),
+    ]));
+    let job = write_job(
+        dir.path(),
+        "job.toml",
+        "tide",
+        "soup.rle",
+        rule,
+        "451",
+        "75",
+    );
+    let resumed = run_deeptime(["run".as_ref(), job.as_os_str(), "--json".as_ref()]);
+    assert!(
+        resumed.stderr.contains("resuming tide"),
+        "{}",
+        resumed.describe()
+    );
+    assert_same_state(
+        &report(&resumed),
+        &leap_report(&pattern, "451", rule),
+        "resumed",
+    );
+    let runs = dir.path().join("runs");
+    for (generation, background) in [
+        ("225", "alive"),
+        ("300", "dead"),
+        ("301", "alive"),
+        ("376", "dead"),
+        ("377", "alive"),
+    ] {
+        let got = snapshot(&runs, generation, &[]);
+        assert_eq!(got["background"], background, "generation {generation}");
+        assert_same_state(&got, &leap_report(&pattern, generation, rule), generation);
+    }
+}
+
 /// LifeWiki, "Black/white reversal" (from memory): B0123478/S01234678 is
 /// Life with the states swapped. Its first generation brings the
 /// background to life, and from there the dead cells evolve by Life: the

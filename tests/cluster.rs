@@ -396,16 +396,17 @@ fn three_nodes_give_the_single_process_figures_on_a_soup_that_spans_many_pieces(
 
 /// B0 rules on the cluster: tasks carry the background their generation
 /// has, and a step from a background other than the one the rule settles
-/// in moves one generation first, as in one process. B01245/S0125 flips
-/// its background every generation (checkpoints at 75, 225 and 301 are at
-/// an alive one, 150 and 300 at a dead one); B0123478/S0134678 keeps it
+/// in moves one generation first, as in one process. B02a3-k/S2-i3 flips
+/// its background every generation, and the two rules that step what
+/// differs from it differ (checkpoints at 75, 225 and 301 are at an alive
+/// background, 150 and 300 at a dead one); B0123478/S0134678 keeps it
 /// alive from generation 1 (S8). Each equals leap, itself checked against
 /// the reference in tests/reference.rs, and a run resumed from a
 /// checkpoint at an alive background goes on to leap's figures.
 #[test]
 fn b0_rules_on_three_nodes_give_the_single_process_figures_at_either_background() {
     for (rule, first, every, resumed) in [
-        ("B01245/S0125", "301", "75", "451"),
+        ("B02a3-k/S2-i3", "301", "75", "451"),
         ("B0123478/S0134678", "200", "75", "333"),
     ] {
         let dir = temp_dir();

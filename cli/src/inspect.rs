@@ -8,7 +8,8 @@ use serde::Serialize;
 
 use crate::cli::DirArgs;
 use deeptime_coordinator::numbers::{box_for_people, for_people};
-use deeptime_storage::checkpoint::Checkpoints;
+use deeptime_coordinator::report::population_for_people;
+use deeptime_storage::checkpoint::{Checkpoints, background_of};
 
 fn open(dir: &Path) -> anyhow::Result<Checkpoints> {
     Ok(Checkpoints::new(
@@ -35,8 +36,15 @@ struct Checked {
 struct Row {
     sequence: u64,
     generation: String,
+    /// as in every report: `dead`, or `alive` under a B0 rule
+    background: &'static str,
+    /// live cells, or `infinite` on an alive background
     population: String,
-    /// the extent of the live cells, null when none live
+    /// the dead cells, on an alive background
+    #[serde(skip_serializing_if = "Option::is_none")]
+    dead_cells: Option<String>,
+    /// the extent of the cells that differ from the background, null when
+    /// there are none
     bbox: Option<deeptime_storage::checkpoint::BoxText>,
     digest: String,
     /// bytes of every pack the checkpoint needs (its own and earlier ones)
@@ -53,11 +61,16 @@ pub fn list(args: DirArgs) -> anyhow::Result<()> {
     })?;
     for (_, manifest) in readable {
         let written = std::time::UNIX_EPOCH + std::time::Duration::from_secs(manifest.written);
+        let background = background_of(manifest.background.as_deref());
+        let (population, dead_cells) =
+            deeptime_coordinator::report::population(background, manifest.population.clone());
         rows.push(Row {
             sequence: manifest.sequence,
             pack_bytes: manifest.pack_bytes(),
             generation: manifest.generation,
-            population: manifest.population,
+            background: background.name(),
+            population,
+            dead_cells,
             bbox: manifest.bbox,
             digest: manifest.root,
             written: humantime::format_rfc3339_seconds(written).to_string(),
@@ -86,11 +99,12 @@ pub fn list(args: DirArgs) -> anyhow::Result<()> {
             Some(bbox) => box_for_people(&bbox.left, &bbox.top, &bbox.width, &bbox.height),
             None => "none".to_string(),
         };
+        let population = population_for_people(&row.population, row.dead_cells.as_deref());
         println!(
             "{:>8}  {:>24}  {:>24}  {:<40}  {:32}  {:>14}  {:20}",
             row.sequence,
             for_people(&row.generation),
-            for_people(&row.population),
+            population,
             bbox,
             row.digest,
             deeptime_engine::human_bytes(row.pack_bytes),

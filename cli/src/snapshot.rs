@@ -468,7 +468,8 @@ fn write_out(
             None => match &bbox {
                 Some(bbox) => source.write_rle_region(writer, &Region::of_box(bbox)?, &note),
                 None => {
-                    deeptime_engine::pattern::write::write_rle(writer, 0, 0, &source.rule(), [])?;
+                    let (rule, background) = (source.rule(), source.background());
+                    deeptime_engine::pattern::write::write_empty_rle(writer, &rule, background)?;
                     Ok(())
                 }
             },

@@ -20,10 +20,10 @@ use serde::Serialize;
 use crate::cli::TimelineArgs;
 use crate::failure::{BadInput, OutputFailed};
 use deeptime_coordinator::numbers::{box_for_people, for_people};
-use deeptime_coordinator::report::{self, BoxReport, EngineReport};
+use deeptime_coordinator::report::{self, BoxReport, EngineReport, population_for_people};
 use deeptime_coordinator::{input, memory, output, progress};
 use deeptime_engine::rule::Background;
-use deeptime_storage::checkpoint::Checkpoints;
+use deeptime_storage::checkpoint::{Checkpoints, background_of};
 
 /// At most this many samples in one timeline.
 pub const MAX_SAMPLES: u64 = 100_000;
@@ -66,14 +66,6 @@ impl Sample {
             bbox,
             digest,
         }
-    }
-}
-
-/// The background a manifest or stored sample names (absent: dead).
-fn background_named(name: Option<&str>) -> Background {
-    match name {
-        Some("alive") => Background::Alive,
-        _ => Background::Dead,
     }
 }
 
@@ -166,7 +158,7 @@ fn from_run(args: &TimelineArgs) -> anyhow::Result<()> {
             generation,
             Sample::new(
                 manifest.generation.clone(),
-                background_named(manifest.background.as_deref()),
+                background_of(manifest.background.as_deref()),
                 manifest.population.clone(),
                 manifest.bbox.as_ref().map(|b| BoxReport {
                     left: b.left.clone(),
@@ -192,7 +184,7 @@ fn from_run(args: &TimelineArgs) -> anyhow::Result<()> {
             generation,
             Sample::new(
                 sample.generation,
-                background_named(sample.background.as_deref()),
+                background_of(sample.background.as_deref()),
                 sample.population,
                 sample.bbox.map(|b| BoxReport {
                     left: b.left,
@@ -332,7 +324,11 @@ fn print_table(report: &TimelineReport, csv: &Option<PathBuf>, png: &Option<Path
     let counts = report
         .samples
         .iter()
-        .map(|s| shown(&s.population).chars().count())
+        .map(|s| {
+            population_for_people(&s.population, s.dead_cells.as_deref())
+                .chars()
+                .count()
+        })
         .max()
         .unwrap_or(10)
         .max(10);
@@ -348,7 +344,7 @@ fn print_table(report: &TimelineReport, csv: &Option<PathBuf>, png: &Option<Path
         println!(
             "{:<width$}  {:>counts$}  {:<32}  {bbox}",
             shown(&sample.generation),
-            shown(&sample.population),
+            population_for_people(&sample.population, sample.dead_cells.as_deref()),
             sample.digest
         );
     }

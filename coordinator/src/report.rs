@@ -114,6 +114,28 @@ pub fn population(background: Background, differing: String) -> (String, Option<
 /// The population of a state on an alive background.
 pub const INFINITE: &str = "infinite";
 
+/// Sets a job status's population, background and dead cells from the
+/// count of cells that differ from `background`.
+pub fn show_population(
+    status: &mut deeptime_proto::v1::JobStatus,
+    background: Background,
+    differing: String,
+) {
+    let (population, dead_cells) = population(background, differing);
+    status.population = population;
+    status.dead_cells = dead_cells;
+    status.background = background.name().to_string();
+}
+
+/// A population as tables and status lines show it: the number, or on an
+/// alive background `infinite; N dead`.
+pub fn population_for_people(population: &str, dead_cells: Option<&str>) -> String {
+    match dead_cells {
+        None => for_people(population),
+        Some(dead) => format!("{INFINITE}; {} dead", for_people(dead)),
+    }
+}
+
 #[derive(Serialize, Debug)]
 pub struct BoxReport {
     pub left: String,

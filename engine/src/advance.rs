@@ -5,7 +5,8 @@
 //! An advance of a whole state by N generations meets at level m only the
 //! full stride 2^(m-2) and the residual N mod 2^(m-2). So each quad
 //! memoises two results: the full-stride one in the quad itself and the
-//! residual one in a side map kept while N's low bits stay the same. One
+//! residual one in a side map kept while N's low bits (and, for a B0 rule,
+//! the background the advance starts from) stay the same. One
 //! pass costs about two passes of the next power of two, never one pass per
 //! binary digit of N.
 //!

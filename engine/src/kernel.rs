@@ -722,13 +722,40 @@ mod tests {
     // cell-by-cell stepper's (common practice: check a fast stepper against
     // the plain definition on random soups).
     #[test]
-    #[allow(clippy::needless_range_loop)]
     fn blocks_agree_with_cell_by_cell_stepping() {
+        let pairs = RULES.map(|text| {
+            let rule: Rule = text.parse().unwrap();
+            [rule, rule]
+        });
+        blocks_agree_with_cell_by_cell_stepping_under(&pairs);
+    }
+
+    // Two rules taking turns, the first at the start: the pairs that step
+    // the cells of B0 rules that differ from their background, from either
+    // background (a flipping background's two rules differ).
+    #[test]
+    fn alternating_rules_take_turns_from_the_first() {
+        use crate::rule::Background;
+        let mut pairs = Vec::new();
+        for text in ["B03/S23", "B0124/S1357", "B02a3-k/S2-i3", "B0123478/S34678"] {
+            let rule: Rule = text.parse().unwrap();
+            for from in [Background::Dead, Background::Alive] {
+                let pair = rule.stepping_pair(from);
+                if rule.next_background(from) != from {
+                    assert_ne!(pair[0], pair[1], "{text} from {from:?}");
+                }
+                pairs.push(pair);
+            }
+        }
+        blocks_agree_with_cell_by_cell_stepping_under(&pairs);
+    }
+
+    #[allow(clippy::needless_range_loop)]
+    fn blocks_agree_with_cell_by_cell_stepping_under(pairs: &[[Rule; 2]]) {
         let mut seed = 0x9e37_79b9_7f4a_7c15u64;
         for isa in isas() {
-            for rule in RULES {
-                let rule: Rule = rule.parse().unwrap();
-                let kernel = Kernel::with_isa([rule, rule], isa);
+            for &[first, second] in pairs {
+                let (rule, kernel) = (first, Kernel::with_isa([first, second], isa));
                 for side in [16, 32, 64] {
                     for _ in 0..4 {
                         // Leaves outside the square hold soup too: they
@@ -750,7 +777,8 @@ mod tests {
                                     );
                                 }
                             }
-                            cells = naive_step(&rule, &cells);
+                            let turn = if steps % 2 == 0 { &first } else { &second };
+                            cells = naive_step(turn, &cells);
                         }
                     }
                 }

@@ -1,5 +1,7 @@
-//! The figures of a rectangle of a state: its live cells' number and
-//! bounding box, for states in memory and stored ones alike.
+//! The figures of a rectangle of a state: the number and bounding box of
+//! its cells that differ from the background (the live ones, but under a
+//! B0 rule at an alive background), for states in memory and stored ones
+//! alike.
 
 use num_bigint::{BigInt, BigUint};
 
@@ -7,7 +9,8 @@ use crate::stored::StoredState;
 use crate::universe::{BoundingBox, Region, Universe, WriteError, rows_in};
 use crate::view::{QuadView, StoreView};
 
-/// The population and bounding box of the live cells inside `region`,
+/// The number and bounding box of the cells inside `region` that differ
+/// from the background,
 /// found from its rows of runs (so within text's limits: a region at most
 /// 2^40 cells each way holding at most 2^26 live cells).
 fn figures_in<V: QuadView>(
@@ -39,7 +42,8 @@ fn figures_in<V: QuadView>(
 }
 
 impl Universe {
-    /// The population and bounding box of the live cells in `region`.
+    /// The count and bounding box of the cells in `region` that differ
+    /// from the background.
     pub fn region_figures(
         &self,
         region: &Region,
@@ -52,8 +56,8 @@ impl Universe {
 }
 
 impl StoredState<'_> {
-    /// The population and bounding box of the live cells in `region`,
-    /// reading only the quads that overlap it.
+    /// The count and bounding box of the cells in `region` that differ
+    /// from the background, reading only the quads that overlap it.
     pub fn region_figures(
         &mut self,
         region: &Region,

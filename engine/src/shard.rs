@@ -621,6 +621,40 @@ mod tests {
         assert_eq!(digest, universe.digest().unwrap());
     }
 
+    /// A B0 rule whose background flips (B03/S23): a square at an odd
+    /// generation (alive background) moves one generation, as the universe
+    /// does; a longer stride from there is refused, and from the settled
+    /// (dead) background it equals the universe's.
+    #[test]
+    fn a_b0_square_moves_from_either_background_as_the_universe_does() {
+        let pattern = crate::pattern::read_pattern(b"x = 3, y = 3\nb2o$2o$bo!\n", 1 << 28).unwrap();
+        let rule: Rule = "B03/S23".parse().unwrap();
+        let level = 7;
+        let mut universe = Universe::from_pattern(&pattern, rule, 1 << 28).unwrap();
+        universe.advance(&1u32.into(), None).unwrap();
+        assert_eq!(universe.background(), Background::Alive);
+        for (stride, from) in [(1, Background::Alive), (16, Background::Dead)] {
+            let (mut shard, cut) = shard_of(&mut universe, level);
+            let centre = cut.centre_square().expect("above the shard level");
+            if from == Background::Alive {
+                let refused = shard.advance(&centre, level, 16, from);
+                assert!(
+                    matches!(refused, Err(ShardError::Unsettled { stride: 16, .. })),
+                    "{refused:?}"
+                );
+            }
+            let (id, figures) = shard.advance(&centre, level, stride, from).unwrap();
+            universe.advance(&stride.into(), None).unwrap();
+            assert_eq!(figures.population, universe.population().to_u64_digits()[0]);
+            let record = shard.record(&id).unwrap();
+            let Record::Inner { kids, level } = record else {
+                panic!("inner")
+            };
+            let (digest, _, _) = shard.describe(&kids, level).unwrap();
+            assert_eq!(digest, universe.digest().unwrap(), "{stride} from {from:?}");
+        }
+    }
+
     #[test]
     fn released_pieces_go_at_the_next_collection_and_borrowed_ones_stay_until_given_back() {
         // Common practice for pinning collectors. A 64² field of our own

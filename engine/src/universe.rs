@@ -373,6 +373,9 @@ impl Universe {
         generations: &BigUint,
         mut observer: Option<Observer<'_>>,
     ) -> Result<(), AdvanceError> {
+        // A bounded universe's cells move by its own stepper, not on the
+        // plane (`coordinator::input::advance` takes them there and back).
+        debug_assert!(!self.bounded, "HashLife on a bounded universe's cells");
         self.advance_split(generations, &mut observer, 0)
     }
 
@@ -498,12 +501,14 @@ impl Universe {
         fits_centre_half(&self.store, quad, level)
     }
 
-    /// The number of live cells.
+    /// The number of cells that differ from the background: the live ones,
+    /// or under a B0 rule at an alive background the dead ones.
     pub fn population(&self) -> BigUint {
         figures::population(&self.store, self.root, self.level)
     }
 
-    /// The extent of the live cells, or None when there are none.
+    /// The extent of the cells that differ from the background (see
+    /// `population`), or None when there are none.
     pub fn bounding_box(&self) -> Option<BoundingBox> {
         let find =
             |axis, max| figures::extreme(&self.store, self.root, self.level, Side { axis, max });
@@ -534,13 +539,15 @@ impl Universe {
     }
 
     /// The state's digest: the content id of its canonical root (see
-    /// `content_id`). Equal live cells give equal digests.
+    /// `content_id`). Equal cells that differ from the background give equal
+    /// digests (the background is told apart by `background`).
     pub fn digest(&mut self) -> Result<ContentId, BudgetExceeded> {
         let (quad, level) = self.canonical_root()?;
         Ok(figures::content_id(&mut self.store, quad, level))
     }
 
-    /// The live cells as (x, y), sorted by row then column. For states whose
+    /// The cells that differ from the background (the live ones when it is
+    /// dead) as (x, y), sorted by row then column. For states whose
     /// coordinates fit `i64` and whose cells fit text (see `write_rle`).
     pub fn cells(&mut self) -> Result<Vec<(i64, i64)>, WriteError> {
         let Some(bbox) = self.bounding_box() else {
@@ -575,8 +582,7 @@ impl Universe {
     pub fn write_rle(&mut self, out: &mut impl Write) -> Result<(), WriteError> {
         let rule = self.rule.to_string();
         let Some(bbox) = self.bounding_box() else {
-            let origin = (&BigInt::zero(), &BigInt::zero());
-            write::write_rle_at(out, origin, self.background(), None, 0, 0, &rule, [])?;
+            write::write_empty_rle(out, &rule, self.background())?;
             return Ok(());
         };
         let region = Region::of_box(&bbox)?;

@@ -371,6 +371,14 @@ pub fn background_field(background: Background) -> Option<String> {
     (background == Background::Alive).then(|| background.name().to_string())
 }
 
+/// The background a manifest or sample names (absent: dead).
+pub fn background_of(field: Option<&str>) -> Background {
+    match field {
+        Some("alive") => Background::Alive,
+        _ => Background::Dead,
+    }
+}
+
 impl TimelineSample {
     /// The figures of `universe` now.
     pub fn of(universe: &mut Universe) -> Result<TimelineSample> {

@@ -248,14 +248,13 @@ impl Run<'_> {
         let (root, level) = (cut.root, cut.root_level);
         let pieces = top.pieces(&root, level);
         self.tasks.retain(self.job_id, &pieces).await?;
-        let (population, _) =
-            report::population(universe.background(), universe.population().to_string());
         let generation = universe.generation().clone();
         {
             let mut status = self.board.status.lock().expect("board");
             status.generation = generation.to_string();
             status.started_from = generation.to_string();
-            status.population = population;
+            let differing = universe.population().to_string();
+            report::show_population(&mut status, universe.background(), differing);
             status.bbox = universe
                 .bounding_box()
                 .map(|bbox| deeptime_proto::v1::BoundingBox {
@@ -361,13 +360,14 @@ impl Run<'_> {
                 keep_for_next(&mut top, (root, level), &[(start.0, start.1)])
             };
             self.tasks.retain(self.job_id, &kept).await?;
-            let (population, bbox) = self.figures(&state);
+            let (differing, bbox) = self.figures(&state);
             let background = self.rule.background(&state.generation);
-            let (population, _) = report::population(background, population.to_string());
+            let (population, dead_cells) = report::population(background, differing.to_string());
+            let population = report::population_for_people(&population, dead_cells.as_deref());
             {
                 let mut status = self.board.status.lock().expect("board");
                 status.generation = state.generation.to_string();
-                status.population = population.clone();
+                report::show_population(&mut status, background, differing.to_string());
                 status.bbox = bbox.map(|bbox| deeptime_proto::v1::BoundingBox {
                     left: bbox.left,
                     top: bbox.top,
@@ -378,7 +378,7 @@ impl Run<'_> {
             tracing::info!(
                 "generation {}, population {}, {} tasks",
                 for_people(&state.generation.to_string()),
-                for_people(&population),
+                population,
                 self.tasks.counters().done
             );
             let due = match pacer.as_mut() {

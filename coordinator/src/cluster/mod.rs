@@ -211,17 +211,17 @@ pub async fn coordinate(
             state: "waiting".to_string(),
             generation: "0".to_string(),
             target: job.target.to_string(),
-            population: crate::report::population(
-                universe.background(),
-                universe.population().to_string(),
-            )
-            .0,
             shard_level,
             rule: rule.to_string(),
             ..Default::default()
         }),
         started: Some(started),
     });
+    crate::report::show_population(
+        &mut board.status.lock().expect("board"),
+        universe.background(),
+        universe.population().to_string(),
+    );
 
     // Serve before waiting, so nodes can join; on a runtime of its own, so
     // that no work of the run (a long walk, many task replies) delays a

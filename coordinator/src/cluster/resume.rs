@@ -285,7 +285,7 @@ impl Run<'_> {
             status.generation = on_nodes.generation.to_string();
             status.started_from = on_nodes.generation.to_string();
             let background = self.rule.background(&on_nodes.generation);
-            status.population = crate::report::population(background, population.to_string()).0;
+            crate::report::show_population(&mut status, background, population.to_string());
         }
         Ok(Some((on_nodes, known)))
     }

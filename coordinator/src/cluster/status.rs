@@ -90,7 +90,8 @@ pub fn run(args: StatusArgs) -> anyhow::Result<()> {
                 json!({
                     "name": status.name, "state": status.state, "rule": status.rule,
                     "generation": status.generation, "target": status.target,
-                    "population": status.population, "bbox": bbox,
+                    "background": status.background, "population": status.population,
+                    "dead_cells": status.dead_cells, "bbox": bbox,
                     "started_from": status.started_from,
                     "shard_level": status.shard_level,
                     "tasks_done": status.tasks_done, "tasks_running": status.tasks_running,
@@ -121,7 +122,10 @@ pub fn run(args: StatusArgs) -> anyhow::Result<()> {
                 seconds_for_people(&left)
             );
         }
-        println!("population    {}", for_people(&status.population));
+        println!(
+            "population    {}",
+            crate::report::population_for_people(&status.population, status.dead_cells.as_deref())
+        );
         if let Some(b) = &status.bbox {
             println!(
                 "bounding box  {}",

@@ -47,6 +47,17 @@ pub fn write_rle_at<W: Write>(
     write_rle(out, width, height, rule, rows)
 }
 
+/// The text of a state with no cell that differs from `background`: an
+/// empty pattern, and on an alive background the comment that says so.
+pub fn write_empty_rle<W: Write>(
+    out: &mut W,
+    rule: &str,
+    background: Background,
+) -> io::Result<()> {
+    let zero = num_bigint::BigInt::from(0);
+    write_rle_at(out, (&zero, &zero), background, None, 0, 0, rule, [])
+}
+
 /// Writes RLE text: header `x = W, y = H, rule = R`, body lines at most 70
 /// characters, ending with `!`.
 ///
