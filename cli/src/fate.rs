@@ -153,13 +153,6 @@ pub fn run(args: FateArgs) -> anyhow::Result<()> {
     if space != Space::Plane {
         return bounded(loaded, rule, space, &limit, budget, args.json);
     }
-    if rule.births_on_empty() {
-        return Err(BadInput(format!(
-            "rule {rule} has B0 (empty cells are born): fate does not take apart states on the plane under B0 rules yet; \
-             `deeptime leap` and `deeptime timeline` run them, and fate runs them in a bounded --universe"
-        ))
-        .into());
-    }
 
     let started = Instant::now();
     let mut universe = input::build(loaded, rule, budget)?;
@@ -171,6 +164,9 @@ pub fn run(args: FateArgs) -> anyhow::Result<()> {
         }
         Err(error @ FateError::TooLarge { .. }) => {
             return Err(anyhow::anyhow!("{error}; try a smaller --limit"));
+        }
+        Err(error @ FateError::B0OnThePlane { .. }) => {
+            return Err(BadInput(error.to_string()).into());
         }
     };
     let elapsed = started.elapsed();

@@ -431,7 +431,7 @@ impl Shard {
         if stride > full {
             return Err(ShardError::BadStride { stride, level });
         }
-        if stride > 1 && from != self.rule.settled_background() {
+        if stride > 1 && !self.rule.memo_holds_from(from) {
             return Err(ShardError::Unsettled {
                 stride,
                 background: from.name(),

@@ -322,6 +322,12 @@ impl Universe {
         self.bounded = true;
     }
 
+    /// Whether the state holds a bounded universe's cells (see
+    /// [`Universe::mark_bounded`]).
+    pub fn is_bounded(&self) -> bool {
+        self.bounded
+    }
+
     /// Says which generation this state is (a state computed elsewhere,
     /// as a bounded universe's).
     pub fn set_generation(&mut self, generation: BigUint) {
@@ -412,7 +418,7 @@ impl Universe {
         if generations.is_zero() {
             return Ok(());
         }
-        if self.background() != self.rule.settled_background() {
+        if !self.rule.memo_holds_from(self.background()) {
             self.advance_pass(&BigUint::one(), None)?;
             return self.advance_pass(&(generations - 1u32), observer);
         }

@@ -236,13 +236,7 @@ impl Run<'_> {
             .get(&root)
             .context("the state's root is in no pack of the run")?;
         let (population, bbox) = self.figures(state);
-        let rule: deeptime_engine::rule::Rule = self
-            .members
-            .terms
-            .rule
-            .parse()
-            .map_err(|e| anyhow::anyhow!("{e}"))?;
-        let background = rule.background(&state.generation);
+        let background = self.rule.background(&state.generation);
         let manifest = tokio::task::block_in_place(|| {
             checkpoints.commit(
                 previous.as_ref(),
@@ -287,13 +281,7 @@ impl Run<'_> {
             .lock()
             .expect("top")
             .pieces(&state.root, state.level);
-        let rule: deeptime_engine::rule::Rule = self
-            .members
-            .terms
-            .rule
-            .parse()
-            .map_err(|e| anyhow::anyhow!("{e}"))?;
-        let shard = Arc::new(Mutex::new(Some(Shard::new(rule, self.budget)?)));
+        let shard = Arc::new(Mutex::new(Some(Shard::new(self.rule, self.budget)?)));
         let mut wanted = Vec::new();
         for piece in &pieces {
             wanted.push((*piece, self.shard_level - 1, self.tasks.holders_of(piece)?));
@@ -305,7 +293,7 @@ impl Run<'_> {
             })?;
         let top = state.top.clone();
         let (root, level, generation) = (state.root, state.level, state.generation.clone());
-        let budget = self.budget;
+        let (rule, budget) = (self.rule, self.budget);
         tokio::task::block_in_place(move || {
             let mut guard = shard.lock().expect("shard");
             let shard = guard.as_mut().expect("made above");

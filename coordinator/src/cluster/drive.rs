@@ -303,7 +303,7 @@ impl Run<'_> {
             // for moves one generation on its own first (see
             // `deeptime_engine::rule::Background`).
             let from = self.rule.background(&state.generation);
-            if from != self.rule.settled_background() {
+            if !self.rule.memo_holds_from(from) {
                 step = BigUint::from(1u32);
             }
             let stepping = Instant::now();

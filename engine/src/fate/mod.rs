@@ -133,6 +133,13 @@ pub enum FateError {
     /// a state too large to take apart into objects
     #[error("the state at generation {generation} is too large to take apart into objects: {what}")]
     TooLarge { generation: BigUint, what: String },
+    /// a B0 rule on the unbounded plane, whose background comes alive: its
+    /// objects are not taken apart yet
+    #[error(
+        "rule {rule} has B0 (empty cells are born): fate does not take apart states on the plane under B0 rules yet; \
+         `deeptime leap` and `deeptime timeline` run them, and fate runs them in a bounded --universe"
+    )]
+    B0OnThePlane { rule: String },
 }
 
 /// What `universe` (at its generation) becomes, looking as far as
@@ -140,6 +147,11 @@ pub enum FateError {
 /// the end of the growth window after the limit.
 pub fn fate(universe: &mut Universe, limit: &BigUint) -> Result<Fate, FateError> {
     let rule = universe.rule();
+    if rule.births_on_empty() && !universe.is_bounded() {
+        return Err(FateError::B0OnThePlane {
+            rule: rule.to_string(),
+        });
+    }
     let start = universe.generation().clone();
     let limit = std::cmp::max(limit.clone(), start.clone());
     let mut states = States::new(universe);

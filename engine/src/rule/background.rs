@@ -87,6 +87,14 @@ impl Rule {
         }
     }
 
+    /// Whether an advance of several generations from a generation whose
+    /// background is `from` may use the memo of whole strides; when it may
+    /// not (odd generations of a flipping rule, generation 0 of one with
+    /// S8), one generation is moved on its own first.
+    pub fn memo_holds_from(&self, from: Background) -> bool {
+        from == self.settled_background()
+    }
+
     /// The rule without B0 that steps the cells differing from the
     /// background, from a generation whose background is `from` to the
     /// next (the module documentation gives the three cases). For a rule
