@@ -41,6 +41,24 @@ fn assert_same_state(got: &Value, want: &Value, what: &str) {
     }
 }
 
+/// Runs the job over `dir/soup.rle` to `first` (target, every), then again
+/// to `then`, resuming from the first run's newest checkpoint; returns the
+/// second run's report.
+fn run_then_resume(dir: &Path, rule: &str, first: (&str, &str), then: (&str, &str)) -> Value {
+    let run = |(target, every): (&str, &str)| {
+        let job = write_job(dir, "job.toml", "tide", "soup.rle", rule, target, every);
+        run_deeptime(["run".as_ref(), job.as_os_str(), "--json".as_ref()])
+    };
+    report(&run(first));
+    let resumed = run(then);
+    assert!(
+        resumed.stderr.contains("resuming tide"),
+        "{}",
+        resumed.describe()
+    );
+    report(&resumed)
+}
+
 /// B0 without S8: the background flips every generation (common practice).
 /// B01245/S0125 is built so that the cells differing from its background
 /// evolve by B3678/S34678, which is its own black/white reversal (LifeWiki,
@@ -57,36 +75,7 @@ fn a_stored_b0_run_resumes_and_serves_snapshots_at_either_background() {
     let twin = "B3678/S34678";
     let pattern = dir.path().join("soup.rle");
     reference_soup(&pattern, rule, 82, 64, 0.5);
-    let job = write_job(
-        dir.path(),
-        "job.toml",
-        "tide",
-        "soup.rle",
-        rule,
-        "6002",
-        "3001",
-    );
-    report(&run_deeptime([
-        "run".as_ref(),
-        job.as_os_str(),
-        "--json".as_ref(),
-    ]));
-    let job = write_job(
-        dir.path(),
-        "job.toml",
-        "tide",
-        "soup.rle",
-        rule,
-        "1000001",
-        "300001",
-    );
-    let resumed = run_deeptime(["run".as_ref(), job.as_os_str(), "--json".as_ref()]);
-    assert!(
-        resumed.stderr.contains("resuming tide"),
-        "{}",
-        resumed.describe()
-    );
-    let finished = report(&resumed);
+    let finished = run_then_resume(dir.path(), rule, ("6002", "3001"), ("1000001", "300001"));
     let leap = leap_report(&pattern, "1000001", rule);
     assert_same_state(&finished, &leap, "the resumed run");
     assert_eq!(leap["background"], "alive");
@@ -164,40 +153,8 @@ fn a_stored_run_of_a_flipping_rule_resumes_at_an_alive_background() {
     let rule = "B02a3-k/S2-i3";
     let pattern = dir.path().join("soup.rle");
     reference_soup(&pattern, rule, 85, 40, 0.4);
-    let job = write_job(
-        dir.path(),
-        "job.toml",
-        "tide",
-        "soup.rle",
-        rule,
-        "225",
-        "75",
-    );
-    report(&run_deeptime([
-        "run".as_ref(),
-        job.as_os_str(),
-        "--json".as_ref(),
-    ]));
-    let job = write_job(
-        dir.path(),
-        "job.toml",
-        "tide",
-        "soup.rle",
-        rule,
-        "451",
-        "75",
-    );
-    let resumed = run_deeptime(["run".as_ref(), job.as_os_str(), "--json".as_ref()]);
-    assert!(
-        resumed.stderr.contains("resuming tide"),
-        "{}",
-        resumed.describe()
-    );
-    assert_same_state(
-        &report(&resumed),
-        &leap_report(&pattern, "451", rule),
-        "resumed",
-    );
+    let resumed = run_then_resume(dir.path(), rule, ("225", "75"), ("451", "75"));
+    assert_same_state(&resumed, &leap_report(&pattern, "451", rule), "resumed");
     let runs = dir.path().join("runs");
     for (generation, background) in [
         ("225", "alive"),

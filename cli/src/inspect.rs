@@ -9,7 +9,7 @@ use serde::Serialize;
 use crate::cli::DirArgs;
 use deeptime_coordinator::numbers::{box_for_people, for_people};
 use deeptime_coordinator::report::population_for_people;
-use deeptime_storage::checkpoint::{Checkpoints, background_of};
+use deeptime_storage::checkpoint::Checkpoints;
 
 fn open(dir: &Path) -> anyhow::Result<Checkpoints> {
     Ok(Checkpoints::new(
@@ -61,7 +61,7 @@ pub fn list(args: DirArgs) -> anyhow::Result<()> {
     })?;
     for (_, manifest) in readable {
         let written = std::time::UNIX_EPOCH + std::time::Duration::from_secs(manifest.written);
-        let background = background_of(manifest.background.as_deref());
+        let background = manifest.background()?;
         let (population, dead_cells) =
             deeptime_coordinator::report::population(background, manifest.population.clone());
         rows.push(Row {

@@ -158,7 +158,7 @@ fn from_run(args: &TimelineArgs) -> anyhow::Result<()> {
             generation,
             Sample::new(
                 manifest.generation.clone(),
-                background_of(manifest.background.as_deref()),
+                manifest.background()?,
                 manifest.population.clone(),
                 manifest.bbox.as_ref().map(|b| BoxReport {
                     left: b.left.clone(),

@@ -86,11 +86,15 @@ pub fn run_job(path: &std::path::Path) -> anyhow::Result<Report> {
         }
         let before = share(&(universe.generation() - &from), &(&job.target - &from));
         let span = share(&step, &(&job.target - &from));
-        let population = previous.as_ref().map_or("?".to_string(), |m| {
-            let background = deeptime_storage::checkpoint::background_of(m.background.as_deref());
-            let (population, dead) = crate::report::population(background, m.population.clone());
-            crate::report::population_for_people(&population, dead.as_deref())
-        });
+        let population = match previous.as_ref() {
+            None => "?".to_string(),
+            Some(manifest) => {
+                let background = manifest.background()?;
+                let (population, dead) =
+                    crate::report::population(background, manifest.population.clone());
+                crate::report::population_for_people(&population, dead.as_deref())
+            }
+        };
         let seconds = advancing.elapsed().as_secs_f64().max(1e-9);
         let rate = approximate(&(universe.generation() - &from)) / seconds;
         let note = format!(

@@ -318,6 +318,23 @@ impl Manifest {
         decimal(&self.population, "population")
     }
 
+    /// The rule, read.
+    pub fn rule(&self) -> Result<Rule> {
+        Rule::parse(&self.rule)
+            .map_err(|error| damaged(format!("manifest {}: {error}", self.sequence)))
+    }
+
+    /// The background at the stored generation, from the rule and the
+    /// generation (the `background` field only repeats it for people): dead
+    /// but under a B0 rule on the plane at a generation it brings to life.
+    pub fn background(&self) -> Result<Background> {
+        if self.universe.is_some() {
+            // A torus or bounded plane has no background outside it.
+            return Ok(Background::Dead);
+        }
+        Ok(self.rule()?.background(&self.generation()?))
+    }
+
     /// Where the root record is.
     pub fn root_at(&self) -> QuadAt {
         QuadAt {
@@ -371,7 +388,7 @@ pub fn background_field(background: Background) -> Option<String> {
     (background == Background::Alive).then(|| background.name().to_string())
 }
 
-/// The background a manifest or sample names (absent: dead).
+/// The background a timeline sample names (absent: dead).
 pub fn background_of(field: Option<&str>) -> Background {
     match field {
         Some("alive") => Background::Alive,
@@ -496,8 +513,7 @@ impl Checkpoints {
                 manifest.sequence, manifest.root
             ))
         })?;
-        let rule = Rule::parse(&manifest.rule)
-            .map_err(|error| damaged(format!("manifest {}: {error}", manifest.sequence)))?;
+        let rule = manifest.rule()?;
         let generation = manifest.generation()?;
         let mut inputs = Vec::with_capacity(packs.len());
         for (bytes, entry) in packs.iter().zip(&manifest.packs) {
@@ -568,18 +584,12 @@ impl Checkpoints {
                 .map(|entry| pack_key(&entry.name))
                 .collect(),
         };
-        let rule = Rule::parse(&manifest.rule)
-            .map_err(|error| damaged(format!("manifest {}: {error}", manifest.sequence)))?;
         Ok(StoredParts {
             fetch,
             packs,
             root: manifest.root_at(),
             population: manifest.population()?,
-            // A torus or bounded plane has no background outside it.
-            rule: match manifest.universe {
-                Some(_) => (rule, Background::Dead),
-                None => (rule, rule.background(&manifest.generation()?)),
-            },
+            rule: (manifest.rule()?, manifest.background()?),
         })
     }
 
