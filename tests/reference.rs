@@ -355,20 +355,9 @@ fn b1357_s02468() {
     );
 }
 
-/// Six isotropic rules in Hensel notation, each on its own soup. The first
-/// three rule strings are LifeWiki's ("Isotropic non-totalistic rule"); the
-/// others were picked because soups stay active under them through 300
-/// generations (measured with the reference).
-#[test]
-fn isotropic_rules_in_hensel_notation() {
-    for (rule, seed) in [
-        ("B2-a/S12", 61),
-        ("B3/S2-i34q", 62),
-        ("B1e2ak3inqy4ny5e/S", 63),
-        ("B36-k/S23", 64),
-        ("B2i34c/S2-i3", 65),
-        ("B3/S23-a4i", 66),
-    ] {
+/// Checks each rule on a 40² soup of density 0.4 with its own seed.
+fn check_rules_on_own_soups(rules: &[(&str, u64)]) {
+    for &(rule, seed) in rules {
         check_rule(
             rule,
             &[Soup {
@@ -378,6 +367,22 @@ fn isotropic_rules_in_hensel_notation() {
             }],
         );
     }
+}
+
+/// Six isotropic rules in Hensel notation, each on its own soup. The first
+/// three rule strings are LifeWiki's ("Isotropic non-totalistic rule"); the
+/// others were picked because soups stay active under them through 300
+/// generations (measured with the reference).
+#[test]
+fn isotropic_rules_in_hensel_notation() {
+    check_rules_on_own_soups(&[
+        ("B2-a/S12", 61),
+        ("B3/S2-i34q", 62),
+        ("B1e2ak3inqy4ny5e/S", 63),
+        ("B36-k/S23", 64),
+        ("B2i34c/S2-i3", 65),
+        ("B3/S23-a4i", 66),
+    ]);
 }
 
 /// Rules with B0, each on its own soup: two without S8 (the background
@@ -390,21 +395,12 @@ fn isotropic_rules_in_hensel_notation() {
 /// state; deeptime keeps the cells that differ from it.
 #[test]
 fn b0_rules_with_and_without_s8() {
-    for (rule, seed) in [
+    check_rules_on_own_soups(&[
         ("B03/S23", 71),
         ("B02a3-k/S2-i3", 72),
         ("B0123478/S01234678", 73),
         ("B0123478/S0134678", 74),
-    ] {
-        check_rule(
-            rule,
-            &[Soup {
-                seed,
-                size: 40,
-                density: 0.4,
-            }],
-        );
-    }
+    ]);
 }
 
 #[test]

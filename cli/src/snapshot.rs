@@ -421,7 +421,7 @@ impl Source<'_, '_> {
             Source::Memory(universe) => universe.picture(left, top, columns, rows, scale)?,
             Source::Stored(state) => state.picture(left, top, columns, rows, scale)?,
         };
-        if background == Background::Alive {
+        if background.is_alive() {
             for share in &mut picture.shares {
                 *share = 1.0 - *share;
             }

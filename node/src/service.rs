@@ -9,6 +9,7 @@ use std::sync::{Arc, Mutex};
 use std::time::Instant;
 
 use deeptime_engine::ContentId;
+use deeptime_engine::rule::Background;
 use deeptime_engine::shard::{Record, Shard, ShardError};
 use deeptime_proto::v1;
 use tonic::{Request, Response, Status};
@@ -207,7 +208,7 @@ impl v1::node_server::Node for NodeService {
             fetched_bytes += fetched.bytes;
             fetch_calls += fetched.calls;
             let (level, stride) = (task.level, task.stride);
-            let from = wire::background_of(task.background_alive);
+            let from = Background::of(task.background_alive);
             let started = Instant::now();
             let outcome = self
                 .state

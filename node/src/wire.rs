@@ -7,7 +7,6 @@ use std::path::PathBuf;
 use std::time::Duration;
 
 use deeptime_engine::ContentId;
-use deeptime_engine::rule::Background;
 use deeptime_engine::shard::{Extent, Figures, Record, ShardError};
 use deeptime_proto::v1;
 use tonic::Status;
@@ -195,20 +194,6 @@ pub fn figures_from_wire(population: u64, extent: Option<v1::Extent>) -> Figures
             right: e.right,
             bottom: e.bottom,
         }),
-    }
-}
-
-/// A task's starting background as the wire carries it
-/// (`AdvanceTask.background_alive`), and back.
-pub fn background_alive(background: Background) -> bool {
-    background == Background::Alive
-}
-
-pub fn background_of(alive: bool) -> Background {
-    if alive {
-        Background::Alive
-    } else {
-        Background::Dead
     }
 }
 

@@ -385,15 +385,12 @@ pub struct TimelineSample {
 /// What manifests and samples write of a background: `alive`, or nothing
 /// for the dead background of every rule without B0.
 pub fn background_field(background: Background) -> Option<String> {
-    (background == Background::Alive).then(|| background.name().to_string())
+    background.is_alive().then(|| background.name().to_string())
 }
 
 /// The background a timeline sample names (absent: dead).
 pub fn background_of(field: Option<&str>) -> Background {
-    match field {
-        Some("alive") => Background::Alive,
-        _ => Background::Dead,
-    }
+    Background::of(field == Some(Background::Alive.name()))
 }
 
 impl TimelineSample {

@@ -395,7 +395,7 @@ impl Dispatcher {
                     sources,
                 }),
                 stride,
-                background_alive: wire::background_alive(from),
+                background_alive: from.is_alive(),
             });
             request.set_timeout(TASK_TIMEOUT);
             let sent = std::time::Instant::now();

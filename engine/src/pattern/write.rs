@@ -32,7 +32,7 @@ pub fn write_rle_at<W: Write>(
     rows: impl IntoIterator<Item = (u64, Vec<(u64, u64)>)>,
 ) -> io::Result<()> {
     writeln!(out, "#position {left} {top}")?;
-    if background == Background::Alive {
+    if background.is_alive() {
         writeln!(
             out,
             "{ALIVE_BACKGROUND}: every cell not written is alive, and the cells written are dead"

@@ -30,6 +30,19 @@ pub enum Background {
 }
 
 impl Background {
+    /// The background whose cells are `alive`, or dead.
+    pub fn of(alive: bool) -> Background {
+        if alive {
+            Background::Alive
+        } else {
+            Background::Dead
+        }
+    }
+
+    pub fn is_alive(self) -> bool {
+        self == Background::Alive
+    }
+
     /// `dead` or `alive`, as reports and comments write it.
     pub fn name(self) -> &'static str {
         match self {
@@ -53,15 +66,10 @@ impl Rule {
     /// The background one generation after a generation whose background
     /// is `from`.
     pub fn next_background(&self, from: Background) -> Background {
-        let alive = match from {
+        Background::of(match from {
             Background::Dead => self.births_on_empty(),
             Background::Alive => self.survives_full(),
-        };
-        if alive {
-            Background::Alive
-        } else {
-            Background::Dead
-        }
+        })
     }
 
     /// The background at `generation`, starting from a dead one at 0.
@@ -79,7 +87,7 @@ impl Rule {
     /// every advance long enough to use it starts there (after one single
     /// generation when it does not). From it the background repeats every
     /// two generations.
-    pub fn settled_background(&self) -> Background {
+    fn settled_background(&self) -> Background {
         if self.births_on_empty() && self.survives_full() {
             Background::Alive
         } else {
@@ -115,8 +123,8 @@ impl Rule {
         let mut survive: Neighbourhoods = [0; 4];
         for n in 0..=255u8 {
             for stored in [false, true] {
-                let alive = stored ^ (from == Background::Alive);
-                let next = self.next_state(alive, seen(n)) ^ (to == Background::Alive);
+                let alive = stored ^ from.is_alive();
+                let next = self.next_state(alive, seen(n)) ^ to.is_alive();
                 if next {
                     insert(if stored { &mut survive } else { &mut birth }, n);
                 }
@@ -238,7 +246,7 @@ mod tests {
                 truth = step(&r, &truth);
                 stored = step(&stepping, &stored);
                 background = r.next_background(background);
-                let flip = background == Background::Alive;
+                let flip = background.is_alive();
                 let back: Vec<bool> = stored.iter().map(|&s| s ^ flip).collect();
                 assert_eq!(back, truth, "{text} at generation {}", g + 1);
             }
