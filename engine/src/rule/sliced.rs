@@ -61,17 +61,30 @@ impl Fix {
     }
 
     /// Where any of the fix's arrangements matches among cells known to
-    /// have its count, given the eight neighbour planes.
+    /// have its count, given the eight neighbour planes: the number of cells
+    /// that tell an arrangement picked once, so that each arrangement is a
+    /// few operations on planes in registers.
     #[inline]
     fn matched(&self, planes: &[u64; 8]) -> u64 {
+        let dead = self.count > 4;
+        match self.cells() {
+            1 => self.any::<1>(planes, dead),
+            2 => self.any::<2>(planes, dead),
+            3 => self.any::<3>(planes, dead),
+            _ => self.any::<4>(planes, dead),
+        }
+    }
+
+    /// Where any arrangement matches: all its K cells live, or with `dead`
+    /// all dead.
+    #[inline(always)]
+    fn any<const K: usize>(&self, planes: &[u64; 8], dead: bool) -> u64 {
         self.terms.iter().fold(0, |any, term| {
-            let cells = term.cells[..self.cells()]
-                .iter()
-                .map(|&c| planes[c as usize]);
-            any | if self.count > 4 {
-                !cells.fold(0, |any, plane| any | plane)
+            let cells: [u64; K] = std::array::from_fn(|k| planes[term.cells[k] as usize & 7]);
+            any | if dead {
+                !cells.iter().fold(0, |any, plane| any | plane)
             } else {
-                cells.fold(u64::MAX, |all, plane| all & plane)
+                cells.iter().fold(u64::MAX, |all, plane| all & plane)
             }
         })
     }
