@@ -5,7 +5,7 @@
 //! 10^30 generations; what does not take B0 yet says so in one line.
 //! (Cell-by-cell checks against the reference are in reference.rs.)
 
-use std::path::Path;
+use std::path::{Path, PathBuf};
 
 use deeptime_tests::{leap_report, reference_soup, run_deeptime, temp_dir, write_job};
 use serde_json::Value;
@@ -60,6 +60,10 @@ fn run_then_resume(dir: &Path, rule: &str, first: (&str, &str), then: (&str, &st
 }
 
 /// B0 without S8: the background flips every generation (common practice).
+/// A rule without B0 and a flipping B0 rule whose differing cells evolve
+/// by it (see below).
+const TWINS: [&str; 2] = ["B3678/S34678", "B01245/S0125"];
+
 /// B01245/S0125 is built so that the cells differing from its background
 /// evolve by B3678/S34678, which is its own black/white reversal (LifeWiki,
 /// "Day & Night", from memory): complementing a state, stepping it by
@@ -71,8 +75,7 @@ fn run_then_resume(dir: &Path, rule: &str, first: (&str, &str), then: (&str, &st
 #[test]
 fn a_stored_b0_run_resumes_and_serves_snapshots_at_either_background() {
     let dir = temp_dir();
-    let rule = "B01245/S0125";
-    let twin = "B3678/S34678";
+    let [twin, rule] = TWINS;
     let pattern = dir.path().join("soup.rle");
     reference_soup(&pattern, rule, 82, 64, 0.5);
     let finished = run_then_resume(dir.path(), rule, ("6002", "3001"), ("1000001", "300001"));
@@ -177,36 +180,44 @@ fn a_stored_run_of_a_flipping_rule_resumes_at_an_alive_background() {
 #[test]
 fn lifes_reversal_agrees_with_life_at_ten_to_the_thirty() {
     let dir = temp_dir();
-    let reversal = "B0123478/S01234678";
-    let pattern = dir.path().join("soup.rle");
-    reference_soup(&pattern, reversal, 82, 40, 0.4);
-    let first = dir.path().join("first.rle");
-    let run = run_deeptime([
-        "leap".as_ref(),
-        pattern.as_os_str(),
-        "--rule".as_ref(),
-        reversal.as_ref(),
-        "--gens".as_ref(),
-        "1".as_ref(),
-        "--out".as_ref(),
-        first.as_os_str(),
-    ]);
-    run.assert_success();
-    // The dead cells of generation 1 as a Life pattern, where they stand.
-    let text = std::fs::read_to_string(&first).unwrap();
-    let as_life: String = text
-        .lines()
-        .filter(|line| !line.starts_with("#background"))
-        .map(|line| line.replace(reversal, "B3/S23") + "\n")
-        .collect();
-    std::fs::write(&first, as_life).unwrap();
-    let far = leap_report(&pattern, "10^30", reversal);
+    let (pattern, first) = reversal_soup_and_its_first_generation_as_life(dir.path());
+    let far = leap_report(&pattern, "10^30", REVERSAL);
     let life = leap_report(&first, "999999999999999999999999999999", "B3/S23");
     assert_eq!(far["background"], "alive");
     assert_eq!(far["population"], "infinite");
     assert_eq!(far["dead_cells"], life["population"]);
     assert_eq!(far["bbox"], life["bbox"]);
     assert_eq!(far["digest"], life["digest"]);
+}
+
+/// Life with the states swapped (see above).
+const REVERSAL: &str = "B0123478/S01234678";
+
+/// A seeded soup under [`REVERSAL`], and the dead cells of its generation
+/// 1 written as a Life pattern where they stand.
+fn reversal_soup_and_its_first_generation_as_life(dir: &Path) -> (PathBuf, PathBuf) {
+    let pattern = dir.join("soup.rle");
+    reference_soup(&pattern, REVERSAL, 82, 40, 0.4);
+    let first = dir.join("first.rle");
+    let run = run_deeptime([
+        "leap".as_ref(),
+        pattern.as_os_str(),
+        "--rule".as_ref(),
+        REVERSAL.as_ref(),
+        "--gens".as_ref(),
+        "1".as_ref(),
+        "--out".as_ref(),
+        first.as_os_str(),
+    ]);
+    run.assert_success();
+    let text = std::fs::read_to_string(&first).unwrap();
+    let as_life: String = text
+        .lines()
+        .filter(|line| !line.starts_with("#background"))
+        .map(|line| line.replace(REVERSAL, "B3/S23") + "\n")
+        .collect();
+    std::fs::write(&first, as_life).unwrap();
+    (pattern, first)
 }
 
 /// A timeline of the twin rules above, sample by sample: the flipping one
@@ -217,7 +228,7 @@ fn lifes_reversal_agrees_with_life_at_ten_to_the_thirty() {
 fn a_b0_timeline_names_each_samples_background() {
     let dir = temp_dir();
     let pattern = dir.path().join("soup.rle");
-    reference_soup(&pattern, "B01245/S0125", 84, 48, 0.5);
+    reference_soup(&pattern, TWINS[1], 84, 48, 0.5);
     let rows = |rule: &str| -> Vec<Vec<String>> {
         let csv = dir.path().join("timeline.csv");
         run_deeptime([
@@ -243,8 +254,8 @@ fn a_b0_timeline_names_each_samples_background() {
             .map(|line| line.split(',').map(String::from).collect())
             .collect()
     };
-    let flipping = rows("B01245/S0125");
-    let twin = rows("B3678/S34678");
+    let flipping = rows(TWINS[1]);
+    let twin = rows(TWINS[0]);
     assert_eq!(flipping.len(), 42);
     for (g, (row, twin)) in flipping.iter().zip(&twin).enumerate() {
         let alive = g % 2 == 1;
@@ -264,15 +275,115 @@ fn a_b0_timeline_names_each_samples_background() {
     }
 }
 
-/// What does not run B0 rules on the plane yet refuses them in one line,
-/// exit 2, before any work.
+/// `deeptime fate` on `pattern` under `rule`, as JSON.
+fn fate(pattern: &Path, rule: &str) -> Value {
+    let run = run_deeptime([
+        "fate".as_ref(),
+        pattern.as_os_str(),
+        "--rule".as_ref(),
+        rule.as_ref(),
+        "--json".as_ref(),
+    ]);
+    report(&run)
+}
+
+/// The census as (shape id, kind, period, displacement) → count: what a
+/// census says of each object but its name.
+fn census(report: &Value) -> Vec<(String, String, u64, String, String)> {
+    let mut out: Vec<_> = report["census"]
+        .as_array()
+        .expect("a census")
+        .iter()
+        .map(|entry| {
+            let text = |key: &str| entry[key].as_str().unwrap().to_string();
+            (
+                text("shape_id"),
+                text("kind"),
+                text("period").parse().unwrap(),
+                format!(
+                    "{} {} {}",
+                    entry["displacement"]["x"],
+                    entry["displacement"]["y"],
+                    text("count")
+                ),
+                text("name"),
+            )
+        })
+        .collect();
+    out.sort();
+    out
+}
+
+/// The fate of a soup under the flipping B01245/S0125 is that of its twin
+/// B3678/S34678 (whose live cells its differing cells are, see above): it
+/// settles at the same generation into the same cells, each object of the
+/// same shape and motion, but every period even, as the whole state's
+/// with its background flipping every generation is: a still life of the
+/// twin is a period-2 oscillator here.
 #[test]
-fn fate_refuses_b0_on_the_plane_in_one_line() {
+fn a_flipping_rules_fate_is_its_twins_with_even_periods() {
     let dir = temp_dir();
     let pattern = dir.path().join("soup.rle");
-    reference_soup(&pattern, "B03/S23", 83, 12, 0.4);
-    let run = run_deeptime(["fate".as_ref(), pattern.as_os_str()]);
-    assert_eq!(run.code, Some(2), "{}", run.describe());
-    assert_eq!(run.stderr.trim().lines().count(), 1, "{}", run.describe());
-    assert!(run.stderr.contains("has B0"), "{}", run.describe());
+    reference_soup(&pattern, TWINS[1], 88, 48, 0.45);
+    let twin = fate(&pattern, TWINS[0]);
+    let flipping = fate(&pattern, TWINS[1]);
+    for key in ["settles_at", "digest", "shape_digest", "bbox", "period_of"] {
+        assert_eq!(flipping[key], twin[key], "{key}");
+    }
+    let settles: u64 = flipping["settles_at"].as_str().unwrap().parse().unwrap();
+    let (background, population) = if settles.is_multiple_of(2) {
+        ("dead", twin["population"].clone())
+    } else {
+        ("alive", Value::from("infinite"))
+    };
+    assert_eq!(flipping["background"], background);
+    assert_eq!(flipping["population"], population);
+    let period = |report: &Value| -> u64 { report["period"].as_str().unwrap().parse().unwrap() };
+    let even = |p: u64| if p.is_multiple_of(2) { p } else { 2 * p };
+    assert_eq!(period(&flipping), even(period(&twin)));
+    assert!(
+        census(&twin).iter().any(|entry| entry.1 == "still-life"),
+        "the seed is chosen to leave a still life: {twin}"
+    );
+    let expected: Vec<_> = census(&twin)
+        .into_iter()
+        .map(|(shape, kind, p, rest, _)| {
+            let kind = if kind == "still-life" {
+                "oscillator".to_string()
+            } else {
+                kind
+            };
+            (shape, kind, even(p), rest)
+        })
+        .collect();
+    let mut got: Vec<_> = census(&flipping)
+        .into_iter()
+        .map(|(shape, kind, p, rest, _)| (shape, kind, p, rest))
+        .collect();
+    got.sort();
+    let mut expected = expected;
+    expected.sort();
+    assert!(!got.is_empty(), "the soup leaves objects");
+    assert_eq!(got, expected);
+}
+
+/// The fate of a soup under Life's reversal is Life's fate of the dead
+/// cells of its generation 1, one generation later: the same period,
+/// cells and census, the trade's names included (the dead cells are Life's
+/// objects), on an alive background.
+#[test]
+fn lifes_reversals_fate_is_lifes_from_generation_one() {
+    let dir = temp_dir();
+    let (pattern, first) = reversal_soup_and_its_first_generation_as_life(dir.path());
+    let reversal = fate(&pattern, REVERSAL);
+    let life = fate(&first, "B3/S23");
+    let at = |report: &Value| -> u64 { report["settles_at"].as_str().unwrap().parse().unwrap() };
+    assert_eq!(at(&reversal), at(&life) + 1);
+    for key in ["period", "digest", "shape_digest", "bbox", "census"] {
+        assert_eq!(reversal[key], life[key], "{key}");
+    }
+    assert_eq!(reversal["background"], "alive");
+    assert_eq!(reversal["population"], "infinite");
+    assert_eq!(reversal["dead_cells"], life["population"]);
+    assert_eq!(life["background"], "dead");
 }

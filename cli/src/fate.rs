@@ -7,13 +7,14 @@ use std::time::Instant;
 use deeptime_engine::fate::{self, CensusEntry, Fate, FateError, Growth, NotYet};
 use deeptime_engine::finite::{Finite, Space};
 use deeptime_engine::generation::parse_generations;
+use deeptime_engine::rule::Background;
 use num_bigint::BigUint;
 use serde::Serialize;
 
 use crate::cli::FateArgs;
 use crate::failure::BadInput;
 use deeptime_coordinator::numbers::{box_for_people, for_people};
-use deeptime_coordinator::report::{BoxReport, EngineReport};
+use deeptime_coordinator::report::{self, BoxReport, EngineReport, population_for_people};
 use deeptime_coordinator::{input, memory};
 
 /// The limit when none is given: 2^20 generations.
@@ -28,7 +29,13 @@ struct FateReport {
     displacement: Option<Shift>,
     /// "whole" when the pattern repeats up to a shift, else "settled part"
     period_of: Option<&'static str>,
+    /// "dead" or "alive" at the settle generation; under a B0 rule the
+    /// population is then "infinite", and the dead cells, box, digests and
+    /// census are of the cells that differ from the background
+    background: Option<&'static str>,
     population: Option<String>,
+    #[serde(skip_serializing_if = "Option::is_none")]
+    dead_cells: Option<String>,
     bbox: Option<BoxReport>,
     digest: Option<String>,
     shape_digest: Option<String>,
@@ -50,7 +57,9 @@ impl FateReport {
             period: None,
             displacement: None,
             period_of: None,
+            background: None,
             population: None,
+            dead_cells: None,
             bbox: None,
             digest: None,
             shape_digest: None,
@@ -107,7 +116,10 @@ impl From<&CensusEntry> for CensusReport {
 #[derive(Serialize, Debug)]
 struct UnsettledReport {
     generation: String,
+    background: &'static str,
     population: String,
+    #[serde(skip_serializing_if = "Option::is_none")]
+    dead_cells: Option<String>,
     bbox: Option<BoxReport>,
     digest: String,
     reason: &'static str,
@@ -165,9 +177,6 @@ pub fn run(args: FateArgs) -> anyhow::Result<()> {
         Err(error @ FateError::TooLarge { .. }) => {
             return Err(anyhow::anyhow!("{error}; try a smaller --limit"));
         }
-        Err(error @ FateError::B0OnThePlane { .. }) => {
-            return Err(BadInput(error.to_string()).into());
-        }
     };
     let elapsed = started.elapsed();
     let engine = EngineReport::of(&universe, elapsed);
@@ -182,16 +191,24 @@ pub fn run(args: FateArgs) -> anyhow::Result<()> {
             } else {
                 "settled part"
             });
-            report.population = Some(settled.population.to_string());
+            let (population, dead_cells) =
+                report::population(settled.background, settled.population.to_string());
+            report.background = Some(settled.background.name());
+            report.population = Some(population);
+            report.dead_cells = dead_cells;
             report.bbox = settled.bbox.as_ref().map(BoxReport::from);
             report.digest = Some(settled.digest.to_string());
             report.shape_digest = Some(settled.shape_digest.to_string());
             report.census = Some(settled.census.iter().map(CensusReport::from).collect());
         }
         Fate::Unsettled(unsettled) => {
+            let (population, dead_cells) =
+                report::population(unsettled.background, unsettled.population.to_string());
             report.unsettled = Some(UnsettledReport {
                 generation: unsettled.generation.to_string(),
-                population: unsettled.population.to_string(),
+                background: unsettled.background.name(),
+                population,
+                dead_cells,
                 bbox: unsettled.bbox.as_ref().map(BoxReport::from),
                 digest: unsettled.digest.to_string(),
                 reason: reason_text(unsettled.reason),
@@ -233,6 +250,9 @@ fn bounded(
     report.universe = Some(space.to_string());
     match settled {
         Some((start, period)) => {
+            // Nothing lies outside a bounded universe: its cells are stored
+            // as they are, on a dead background.
+            report.background = Some(Background::Dead.name());
             let cells = universe.cells()?;
             report.settles_at = Some(start.to_string());
             report.period = Some(period.to_string());
@@ -246,7 +266,9 @@ fn bounded(
         None => {
             report.unsettled = Some(UnsettledReport {
                 generation: limit.to_string(),
+                background: Background::Dead.name(),
                 population,
+                dead_cells: None,
                 bbox,
                 digest,
                 reason: "no state came again",
@@ -283,7 +305,10 @@ fn print_summary(report: &FateReport) {
             }
             println!(
                 "population    {}",
-                for_people(report.population.as_deref().unwrap_or("0"))
+                population_for_people(
+                    report.population.as_deref().unwrap_or("0"),
+                    report.dead_cells.as_deref()
+                )
             );
             print_box(report.bbox.as_ref());
             println!("digest        {}", report.digest.as_deref().unwrap_or(""));
@@ -320,7 +345,7 @@ fn print_summary(report: &FateReport) {
             );
             println!(
                 "population    {} at generation {}",
-                for_people(&unsettled.population),
+                population_for_people(&unsettled.population, unsettled.dead_cells.as_deref()),
                 for_people(&unsettled.generation)
             );
             print_box(unsettled.bbox.as_ref());

@@ -27,7 +27,7 @@ use num_traits::{One, ToPrimitive, Zero};
 
 use crate::content_id::ContentId;
 use crate::error::AdvanceError;
-use crate::rule::Rule;
+use crate::rule::Background;
 use crate::store::Handle;
 use crate::universe::{BoundingBox, Universe, WriteError};
 
@@ -36,7 +36,7 @@ pub use names::{Kind, LIFE_NAMES};
 pub use objects::{MAX_PERIOD, NotYet};
 pub use shape::{digest_of, shape_digest_of};
 
-use objects::{Classes, Object};
+use objects::{Classes, Object, Steps};
 
 /// The least common multiples of 1 to n, for n = 6, 8, 10, 12, 16: a
 /// settled state whose objects' periods are at most n has the same
@@ -73,6 +73,9 @@ pub struct Settled {
     /// cells moved per period (x right, y down)
     pub displacement: (i64, i64),
     pub whole: bool,
+    /// the background at the settle generation; the population, box,
+    /// digests and census are of the cells that differ from it
+    pub background: Background,
     pub population: BigUint,
     pub bbox: Option<BoundingBox>,
     pub digest: ContentId,
@@ -104,6 +107,8 @@ pub struct CensusEntry {
 pub struct Unsettled {
     /// the limit: the last generation examined
     pub generation: BigUint,
+    /// the background there (see [`Settled::background`])
+    pub background: Background,
     pub population: BigUint,
     pub bbox: Option<BoundingBox>,
     pub digest: ContentId,
@@ -133,13 +138,6 @@ pub enum FateError {
     /// a state too large to take apart into objects
     #[error("the state at generation {generation} is too large to take apart into objects: {what}")]
     TooLarge { generation: BigUint, what: String },
-    /// a B0 rule on the unbounded plane, whose background comes alive: its
-    /// objects are not taken apart yet
-    #[error(
-        "rule {rule} has B0 (empty cells are born): fate does not take apart states on the plane under B0 rules yet; \
-         `deeptime leap` and `deeptime timeline` run them, and fate runs them in a bounded --universe"
-    )]
-    B0OnThePlane { rule: String },
 }
 
 /// What `universe` (at its generation) becomes, looking as far as
@@ -147,12 +145,8 @@ pub enum FateError {
 /// the end of the growth window after the limit.
 pub fn fate(universe: &mut Universe, limit: &BigUint) -> Result<Fate, FateError> {
     let rule = universe.rule();
-    if rule.births_on_empty() && !universe.is_bounded() {
-        return Err(FateError::B0OnThePlane {
-            rule: rule.to_string(),
-        });
-    }
     let start = universe.generation().clone();
+    let start_background = universe.background();
     let limit = std::cmp::max(limit.clone(), start.clone());
     let mut states = States::new(universe);
     let mut classes = Classes::default();
@@ -173,30 +167,46 @@ pub fn fate(universe: &mut Universe, limit: &BigUint) -> Result<Fate, FateError>
             horizon = next_horizon(&horizon, &start, &limit);
             continue;
         }
-        let cells = states.cells()?;
-        let analysed = objects::analyse(&cells, rule, &mut classes);
+        // The cells that differ from the background step by one rule or,
+        // under a B0 rule, two taking turns from the horizon's background.
+        let analysed = match Steps::of(rule, states.universe.background()) {
+            Some(steps) => {
+                let cells = states.cells()?;
+                objects::analyse(&cells, steps, &mut classes).map(|objects| (steps, objects))
+            }
+            None => Err(NotYet::Changing),
+        };
         match analysed {
-            Ok(objects) => break Ok((horizon, objects)),
+            Ok((steps, objects)) => break Ok((horizon, steps, objects)),
             Err(why) if horizon >= limit => break Err(why),
             Err(_) => horizon = next_horizon(&horizon, &start, &limit),
         }
     };
-    let (horizon, objects) = match found {
+    let (horizon, steps, objects) = match found {
         Ok(found) => found,
         Err(reason) => return unsettled(&mut states, reason).map(Fate::Unsettled),
     };
-    let generation = settle_generation(&mut states, &start, &horizon, &objects)?;
+    // A B0 rule with S8 is settled at generation 1 at the earliest: at 0 its
+    // background is still dead, and comes alive for good.
+    let first = if Steps::of(rule, start_background).is_some() {
+        start.clone()
+    } else {
+        &start + 1u32
+    };
+    let generation = settle_generation(&mut states, &first, &horizon, &objects)?;
     states.goto(&generation)?;
     let universe = &mut *states.universe;
+    let background = universe.background();
     let population = universe.population();
     let bbox = universe.bounding_box();
     let digest = universe.digest().map_err(AdvanceError::from)?;
     let cells = states.cells()?;
     let shape_digest = shape_digest_of(&cells);
     let (period, displacement, whole) = period_of(&objects);
-    let census = census(&objects, rule, &mut classes);
+    let census = census(&objects, steps, &mut classes);
     Ok(Fate::Settled(Settled {
         generation,
+        background,
         examined: horizon,
         period,
         displacement,
@@ -319,8 +329,8 @@ fn gcd(mut a: u64, mut b: u64) -> u64 {
 }
 
 /// The census of `objects`: one entry per name and direction.
-fn census(objects: &[Object], rule: Rule, classes: &mut Classes) -> Vec<CensusEntry> {
-    let namer = names::Namer::new(rule, classes);
+fn census(objects: &[Object], steps: Steps, classes: &mut Classes) -> Vec<CensusEntry> {
+    let namer = names::Namer::new(steps, classes);
     let mut entries: Vec<CensusEntry> = Vec::new();
     let mut named: std::collections::HashMap<*const objects::Class, (String, ContentId)> =
         std::collections::HashMap::new();
@@ -364,6 +374,7 @@ fn census(objects: &[Object], rule: Rule, classes: &mut Classes) -> Vec<CensusEn
 fn unsettled(states: &mut States<'_>, reason: NotYet) -> Result<Unsettled, FateError> {
     let universe = &mut *states.universe;
     let generation = universe.generation().clone();
+    let background = universe.background();
     let population = universe.population();
     let bbox = universe.bounding_box();
     let digest = universe.digest().map_err(AdvanceError::from)?;
@@ -379,7 +390,14 @@ fn unsettled(states: &mut States<'_>, reason: NotYet) -> Result<Unsettled, FateE
         universe.advance(&BigUint::one(), None)?;
         populations.push(BigInt::from(universe.population()));
     }
-    let growth = regular_change(&populations).map(|(every, change)| Growth {
+    // Under a flipping background the counts are of live and of dead cells
+    // in turn: only whole pairs of generations compare.
+    let unit = if universe.rule().next_background(background) == background {
+        1
+    } else {
+        2
+    };
+    let growth = regular_change(&populations, unit).map(|(every, change)| Growth {
         every,
         change,
         from: generation.clone(),
@@ -387,6 +405,7 @@ fn unsettled(states: &mut States<'_>, reason: NotYet) -> Result<Unsettled, FateE
     });
     Ok(Unsettled {
         generation,
+        background,
         population,
         bbox,
         digest,
@@ -395,12 +414,13 @@ fn unsettled(states: &mut States<'_>, reason: NotYet) -> Result<Unsettled, FateE
     })
 }
 
-/// The smallest p (up to half the series) such that the population
-/// changes by the same amount over every p generations of the series,
-/// with that amount; None when there is none (or it does not fit i64).
-fn regular_change(populations: &[BigInt]) -> Option<(u64, i64)> {
+/// The smallest p (up to half the series, a multiple of `unit`) such that
+/// the population changes by the same amount over every p generations of
+/// the series, with that amount; None when there is none (or it does not
+/// fit i64).
+fn regular_change(populations: &[BigInt], unit: usize) -> Option<(u64, i64)> {
     let n = populations.len();
-    for every in 1..=n / 2 {
+    for every in (unit..=n / 2).step_by(unit) {
         let change = &populations[every] - &populations[0];
         if (every..n).all(|t| &populations[t] - &populations[t - every] == change) {
             return Some((every as u64, change.to_i64()?));
@@ -514,10 +534,10 @@ mod tests {
         let series: Vec<BigInt> = (0..120)
             .map(|t: i64| BigInt::from(36 + 5 * (t / 30) + (t % 30 % 3)))
             .collect();
-        assert_eq!(regular_change(&series), Some((30, 5)));
+        assert_eq!(regular_change(&series, 1), Some((30, 5)));
         let flat: Vec<BigInt> = (0..10).map(|_| BigInt::from(7)).collect();
-        assert_eq!(regular_change(&flat), Some((1, 0)));
+        assert_eq!(regular_change(&flat, 1), Some((1, 0)));
         let squares: Vec<BigInt> = (0..40).map(|t: i64| BigInt::from(t * t)).collect();
-        assert_eq!(regular_change(&squares), None);
+        assert_eq!(regular_change(&squares, 1), None);
     }
 }

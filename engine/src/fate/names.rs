@@ -13,7 +13,7 @@ use std::collections::HashMap;
 
 use crate::content_id::ContentId;
 use crate::fate::cells::{self, Cell};
-use crate::fate::objects::{Class, Classes};
+use crate::fate::objects::{Class, Classes, Steps};
 use crate::fate::shape::shape_digest_of;
 use crate::rule::Rule;
 
@@ -130,22 +130,24 @@ pub fn shape_id(class: &Class) -> ContentId {
 
 /// Names objects by shape id.
 pub struct Namer {
-    rule: Rule,
+    steps: Steps,
     trade: HashMap<ContentId, &'static str, ahash::RandomState>,
 }
 
 impl Namer {
-    /// The trade's names apply under B3/S23 only.
-    pub fn new(rule: Rule, classes: &mut Classes) -> Namer {
+    /// The trade's names apply where the cells step as under B3/S23: under
+    /// it, and to the dead cells of a B0 rule whose alive background makes
+    /// them do so (Life's black/white reversal, B0123478/S01234678).
+    pub fn new(steps: Steps, classes: &mut Classes) -> Namer {
         let mut trade = HashMap::default();
-        if rule == Rule::LIFE {
+        if steps.are(Rule::LIFE) {
             for &(name, rows) in LIFE_NAMES {
-                if let Some(class) = classes.classify(&cells_of_rows(rows), rule) {
+                if let Some(class) = classes.classify(&cells_of_rows(rows), steps) {
                     trade.insert(shape_id(&class), name);
                 }
             }
         }
-        Namer { rule, trade }
+        Namer { steps, trade }
     }
 
     /// The object's name and its shape id.
@@ -154,7 +156,7 @@ impl Namer {
         if let Some(name) = self.trade.get(&id) {
             return (name.to_string(), id);
         }
-        debug_assert!(self.rule != Rule::LIFE || !self.trade.is_empty());
+        debug_assert!(!self.steps.are(Rule::LIFE) || !self.trade.is_empty());
         let cells = class.phases.iter().map(Vec::len).min().unwrap_or(0);
         let kind = Kind::of(class);
         let short = &id.to_string()[..8];
@@ -212,7 +214,7 @@ mod tests {
         let mut classes = Classes::default();
         for &(name, rows) in LIFE_NAMES {
             let class = classes
-                .classify(&cells_of_rows(rows), Rule::LIFE)
+                .classify(&cells_of_rows(rows), Steps::alone(Rule::LIFE))
                 .unwrap_or_else(|| panic!("{name} does not repeat"));
             let expected = match name {
                 "blinker" | "toad" | "beacon" => (2, 0, 0),
@@ -235,13 +237,15 @@ mod tests {
     #[test]
     fn names_do_not_depend_on_phase_or_orientation() {
         let mut classes = Classes::default();
-        let namer = Namer::new(Rule::LIFE, &mut classes);
+        let namer = Namer::new(Steps::alone(Rule::LIFE), &mut classes);
         // A beehive on its side and a glider's second phase turned.
         let beehive = cells_of_rows(&[".O.", "O.O", "O.O", ".O."]);
-        let class = classes.classify(&beehive, Rule::LIFE).unwrap();
+        let class = classes
+            .classify(&beehive, Steps::alone(Rule::LIFE))
+            .unwrap();
         assert_eq!(namer.name(&class).0, "beehive");
         let glider = cells::oriented(&cells_of_rows(&["O.O", ".OO", ".O."]), 3);
-        let class = classes.classify(&glider, Rule::LIFE).unwrap();
+        let class = classes.classify(&glider, Steps::alone(Rule::LIFE)).unwrap();
         assert_eq!(namer.name(&class).0, "glider");
     }
 
@@ -250,9 +254,9 @@ mod tests {
         // A 2×2 block under B36/S23 is still, and has no trade name there.
         let mut classes = Classes::default();
         let rule = Rule::parse("B36/S23").unwrap();
-        let namer = Namer::new(rule, &mut classes);
+        let namer = Namer::new(Steps::alone(rule), &mut classes);
         let class = classes
-            .classify(&cells_of_rows(&["OO", "OO"]), rule)
+            .classify(&cells_of_rows(&["OO", "OO"]), Steps::alone(rule))
             .unwrap();
         let (name, id) = namer.name(&class);
         assert_eq!(name, format!("still-life-4-{}", &id.to_string()[..8]));

@@ -15,12 +15,16 @@
 //! straight lines; those that move alike and come that close are checked
 //! like the still ones. Anything short of that is "not settled yet" at this
 //! generation.
+//!
+//! The cells are those that differ from the background, and they step by
+//! [`Steps`]: under a B0 rule two rules without B0 taking turns, so that
+//! objects are run exactly as the engine runs the whole state.
 
 use std::collections::HashMap;
 use std::rc::Rc;
 
 use crate::fate::cells::{self, Bounds, Cell, Sets};
-use crate::rule::Rule;
+use crate::rule::{Background, Rule};
 
 /// Generations an object is run alone to find it repeat.
 pub const MAX_PERIOD: u32 = 512;
@@ -33,6 +37,60 @@ const WORK_LIMIT: u64 = 1 << 30;
 /// A common period longer than this is not checked by running objects
 /// together; such objects are joined into one instead.
 const MAX_JOINT_PERIOD: u64 = 4096;
+
+/// The rules the cells that differ from the background step by: the first
+/// at the generation analysed and every even number of generations after
+/// it, the second at the odd ones; the same rule twice but under a B0 rule
+/// (see [`crate::rule::Background`]). And whether the background flips
+/// every generation: then the whole state, background included, repeats
+/// only after an even number of generations, and so does every object
+/// (a still shape of differing cells is live cells and dead ones in turn).
+#[derive(Clone, Copy, Debug, PartialEq, Eq, Hash)]
+pub struct Steps {
+    rules: [Rule; 2],
+    flips: bool,
+}
+
+impl Steps {
+    /// The steps of `rule` from a generation whose background is `from`;
+    /// None when the background does not repeat every two generations from
+    /// there (generation 0 of a B0 rule with S8, which is never settled:
+    /// its background is still coming alive).
+    pub fn of(rule: Rule, from: Background) -> Option<Steps> {
+        let next = rule.next_background(from);
+        (rule.next_background(next) == from).then(|| Steps {
+            rules: rule.stepping_pair(from),
+            flips: next != from,
+        })
+    }
+
+    /// A rule without B0 on its dead background, every generation.
+    pub fn alone(rule: Rule) -> Steps {
+        debug_assert!(!rule.births_on_empty(), "{rule} has B0");
+        Steps {
+            rules: [rule, rule],
+            flips: false,
+        }
+    }
+
+    /// The rule of the step from `k` generations after the one analysed.
+    fn at(&self, k: u64) -> Rule {
+        self.rules[(k % 2) as usize]
+    }
+
+    /// Whether a state whose differing cells come again after
+    /// `generations` repeats: under a flipping background, only after an
+    /// even number.
+    fn repeats_after(&self, generations: u64) -> bool {
+        !self.flips || generations.is_multiple_of(2)
+    }
+
+    /// Whether these cells step by `rule` alone, every generation, on a
+    /// background that stays.
+    pub fn are(&self, rule: Rule) -> bool {
+        *self == Steps::alone(rule)
+    }
+}
 
 /// How an object repeats when run alone.
 #[derive(Debug)]
@@ -102,27 +160,28 @@ pub enum NotYet {
 /// Classifications of normalised cell lists, shared across analyses.
 #[derive(Default)]
 pub struct Classes {
-    known: HashMap<Vec<Cell>, Option<Rc<Class>>, ahash::RandomState>,
+    known: HashMap<(Steps, Vec<Cell>), Option<Rc<Class>>, ahash::RandomState>,
     work: u64,
 }
 
 impl Classes {
     /// How `cells` (sorted, any place) repeat alone, or None when they do
     /// not within [`MAX_PERIOD`] generations (or die, or spread too far).
-    pub fn classify(&mut self, cells: &[Cell], rule: Rule) -> Option<Rc<Class>> {
+    pub fn classify(&mut self, cells: &[Cell], steps: Steps) -> Option<Rc<Class>> {
         let (start, _) = cells::normalise(cells);
-        if let Some(known) = self.known.get(&start) {
+        let key = (steps, start);
+        if let Some(known) = self.known.get(&key) {
             return known.clone();
         }
-        let found = self.run_alone(&start, rule);
+        let found = self.run_alone(&key.1, steps);
         // A run cut short by the allowance says nothing about the shape.
         if !self.over_budget() {
-            self.known.insert(start, found.clone());
+            self.known.insert(key, found.clone());
         }
         found
     }
 
-    fn run_alone(&mut self, start: &[Cell], rule: Rule) -> Option<Rc<Class>> {
+    fn run_alone(&mut self, start: &[Cell], steps: Steps) -> Option<Rc<Class>> {
         let mut phases = vec![start.to_vec()];
         let mut extent = Bounds::of(start)?;
         let mut now = start.to_vec();
@@ -132,12 +191,12 @@ impl Classes {
             if self.work > WORK_LIMIT {
                 return None;
             }
-            now = cells::step(&now, rule);
+            now = cells::step(&now, steps.at(period as u64 - 1));
             let bounds = Bounds::of(&now)?;
             if bounds.width() * bounds.height() > MAX_AREA {
                 return None;
             }
-            if now.len() == start.len() {
+            if now.len() == start.len() && steps.repeats_after(period as u64) {
                 let (shape, corner) = cells::normalise(&now);
                 if shape == start {
                     return Some(Rc::new(Class {
@@ -188,13 +247,13 @@ impl Group {
 
 /// Takes a state's cells (sorted) apart into objects that repeat and never
 /// meet, or says why it cannot.
-pub fn analyse(cells: &[Cell], rule: Rule, classes: &mut Classes) -> Result<Vec<Object>, NotYet> {
+pub fn analyse(cells: &[Cell], steps: Steps, classes: &mut Classes) -> Result<Vec<Object>, NotYet> {
     classes.reset_work();
     let mut groups: Vec<Group> = cells::pieces(cells).into_iter().map(Group::new).collect();
     loop {
         for group in groups.iter_mut() {
             if group.class.is_none() {
-                group.class = Some(classes.classify(&group.cells, rule));
+                group.class = Some(classes.classify(&group.cells, steps));
             }
         }
         if classes.over_budget() {
@@ -237,7 +296,7 @@ pub fn analyse(cells: &[Cell], rule: Rule, classes: &mut Classes) -> Result<Vec<
         for (i, j) in cells::near_pairs(&boxes, 2) {
             close |= sets.join(still[i], still[j]);
         }
-        if close && let Some(mut apart) = dependent(&mut sets, &objects, rule) {
+        if close && let Some(mut apart) = dependent(&mut sets, &objects, steps) {
             groups = regroup(groups, &mut apart);
             continue;
         }
@@ -260,7 +319,7 @@ pub fn analyse(cells: &[Cell], rule: Rule, classes: &mut Classes) -> Result<Vec<
                 }
             }
         }
-        if close && let Some(mut apart) = dependent(&mut together, &objects, rule) {
+        if close && let Some(mut apart) = dependent(&mut together, &objects, steps) {
             groups = regroup(groups, &mut apart);
             continue;
         }
@@ -270,11 +329,11 @@ pub fn analyse(cells: &[Cell], rule: Rule, classes: &mut Classes) -> Result<Vec<
 
 /// Of the objects `sets` puts together, those of each set that do not run
 /// as they do alone, joined into one; None when every set's do.
-fn dependent(sets: &mut Sets, objects: &[Object], rule: Rule) -> Option<Sets> {
+fn dependent(sets: &mut Sets, objects: &[Object], steps: Steps) -> Option<Sets> {
     let mut joined = false;
     let mut apart = Sets::new(objects.len());
     for members in sets.groups(objects.len()) {
-        if members.len() > 1 && !independent(objects, &members, rule) {
+        if members.len() > 1 && !independent(objects, &members, steps) {
             for &other in &members[1..] {
                 joined |= apart.join(members[0], other);
             }
@@ -306,7 +365,7 @@ fn regroup(groups: Vec<Group>, sets: &mut Sets) -> Vec<Group> {
 
 /// Whether the objects `members` (all still, or all moving alike) run
 /// together exactly as each runs alone, over a common period (so for ever).
-fn independent(objects: &[Object], members: &[usize], rule: Rule) -> bool {
+fn independent(objects: &[Object], members: &[usize], steps: Steps) -> bool {
     let mut period = 1u64;
     for &at in members {
         let p = objects[at].class.period as u64;
@@ -330,7 +389,7 @@ fn independent(objects: &[Object], members: &[usize], rule: Rule) -> bool {
         return false;
     }
     for k in 1..=period as i64 {
-        together = cells::step(&together, rule);
+        together = cells::step(&together, steps.at(k as u64 - 1));
         if together != sum_at(k) {
             return false;
         }
@@ -419,8 +478,8 @@ fn meet(a: &Object, b: &Object) -> Meeting {
 mod tests {
     use super::*;
 
-    fn life() -> Rule {
-        Rule::LIFE
+    fn life() -> Steps {
+        Steps::alone(Rule::LIFE)
     }
 
     fn cells_of(rows: &[&str], at: (i64, i64)) -> Vec<Cell> {
