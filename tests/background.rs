@@ -387,3 +387,38 @@ fn lifes_reversals_fate_is_lifes_from_generation_one() {
     assert_eq!(reversal["dead_cells"], life["population"]);
     assert_eq!(life["background"], "dead");
 }
+
+/// The background alone, from the definition of B0 and S8 (common
+/// practice): an empty plane under a flipping rule is settled at once and
+/// repeats every two generations, with no object to say so; under Life's
+/// reversal it settles at generation 1, when its background has come alive
+/// for good, and is not settled at generation 0.
+#[test]
+fn fate_of_the_background_alone() {
+    let dir = temp_dir();
+    let empty = dir.path().join("empty.rle");
+    std::fs::write(&empty, "x = 0, y = 0\n!\n").unwrap();
+    let flipping = fate(&empty, TWINS[1]);
+    assert_eq!(flipping["settles_at"], "0");
+    assert_eq!(flipping["period"], "2");
+    assert_eq!(flipping["background"], "dead");
+    assert_eq!(flipping["population"], "0");
+    let reversal = fate(&empty, REVERSAL);
+    assert_eq!(reversal["settles_at"], "1");
+    assert_eq!(reversal["period"], "1");
+    assert_eq!(reversal["background"], "alive");
+    assert_eq!(reversal["population"], "infinite");
+    assert_eq!(reversal["dead_cells"], "0");
+    let run = run_deeptime([
+        "fate".as_ref(),
+        empty.as_os_str(),
+        "--rule".as_ref(),
+        REVERSAL.as_ref(),
+        "--limit".as_ref(),
+        "0".as_ref(),
+        "--json".as_ref(),
+    ]);
+    let unsettled = &report(&run)["unsettled"];
+    assert_eq!(unsettled["reason"], "the background is still coming alive");
+    assert_eq!(unsettled["background"], "dead");
+}

@@ -151,6 +151,7 @@ fn reason_text(reason: NotYet) -> &'static str {
         NotYet::Meeting => "moving objects may still meet others",
         NotYet::TooMuchWork => "the state is too busy to take apart",
         NotYet::TooLarge => "the state has more live cells than are taken apart (2^23)",
+        NotYet::Background => "the background is still coming alive",
     }
 }
 

@@ -174,7 +174,7 @@ pub fn fate(universe: &mut Universe, limit: &BigUint) -> Result<Fate, FateError>
                 let cells = states.cells()?;
                 objects::analyse(&cells, steps, &mut classes).map(|objects| (steps, objects))
             }
-            None => Err(NotYet::Changing),
+            None => Err(NotYet::Background),
         };
         match analysed {
             Ok((steps, objects)) => break Ok((horizon, steps, objects)),
@@ -202,7 +202,13 @@ pub fn fate(universe: &mut Universe, limit: &BigUint) -> Result<Fate, FateError>
     let digest = universe.digest().map_err(AdvanceError::from)?;
     let cells = states.cells()?;
     let shape_digest = shape_digest_of(&cells);
-    let (period, displacement, whole) = period_of(&objects);
+    let (mut period, mut displacement, whole) = period_of(&objects);
+    // A background that flips every generation repeats after two, even
+    // where no object is left to say so.
+    if steps.flips() && !period.is_multiple_of(2) {
+        period *= 2;
+        displacement = (2 * displacement.0, 2 * displacement.1);
+    }
     let census = census(&objects, steps, &mut classes);
     Ok(Fate::Settled(Settled {
         generation,

@@ -85,6 +85,11 @@ impl Steps {
         !self.flips || generations.is_multiple_of(2)
     }
 
+    /// Whether the background flips every generation.
+    pub fn flips(&self) -> bool {
+        self.flips
+    }
+
     /// Whether these cells step by `rule` alone, every generation, on a
     /// background that stays.
     pub fn are(&self, rule: Rule) -> bool {
@@ -155,6 +160,9 @@ pub enum NotYet {
     TooMuchWork,
     /// the state has more live cells than are ever taken apart
     TooLarge,
+    /// the background is still coming alive (generation 0 of a B0 rule
+    /// with S8)
+    Background,
 }
 
 /// Classifications of normalised cell lists, shared across analyses.
