@@ -34,7 +34,8 @@
 use std::array;
 
 use crate::rule::Rule;
-use crate::rule::sliced::{Fix, Sliced, Term};
+use crate::rule::fixing::{DEAD_WORDS, Fixing, LIVE_WORDS, WORDS, Words};
+use crate::rule::sliced::{Fix, Sliced};
 
 /// The cells of a square of side 16, 32 or 64, strided: row y is
 /// `groups[y % 8][y / 8]`, and bit x of a row is the cell (x, y). A square
@@ -207,21 +208,10 @@ const LIVE: u8 = 1;
 const SAME: u8 = 2;
 const OPPOSITE: u8 = 3;
 
-/// The words of a square of side 8L in one array: word `L*k + lane` is row
-/// `8*lane + k`, so the row above a word is L words before it.
-const WORDS: usize = 64;
+// The words of a square of side 8L in one array (`Words`): word `L*k +
+// lane` is row `8*lane + k`, so the row above a word is L words before it.
 /// Sums across of the words with room for one group before and after.
 const SUMS: usize = WORDS + 16;
-
-/// Words aligned to 64 bytes: an unaligned vector load or store straddles
-/// two cache lines and costs twice (measured on the whole kernel: 1.4× on
-/// AVX-512, 1.08× on AVX2).
-#[derive(Clone, Copy)]
-#[repr(C, align(64))]
-struct Words([u64; WORDS]);
-
-static DEAD_WORDS: Words = Words([0; WORDS]);
-static LIVE_WORDS: Words = Words([u64::MAX; WORDS]);
 
 /// `steps` generations of a square of side 8L, on whatever instruction set
 /// this is compiled for, back and forth between two arrays.
@@ -356,7 +346,7 @@ fn pad<const L: usize>(array: &mut [u64; SUMS]) {
 /// group before and after (as the sums across), which are also the northern
 /// and southern neighbour planes; the six other neighbour planes of every
 /// word; the four planes of the count of nine; and where the arrangements of
-/// a fix with more than [`TERMS_AT_ONCE`] match so far.
+/// a long fix match so far (see [`Fixing`]).
 #[repr(C, align(64))]
 struct FixScratch {
     rows: [u64; SUMS],
@@ -412,146 +402,13 @@ fn fix<const L: usize>(rule: &Compiled, fixing: &mut FixScratch, cells: &Words, 
     }
     // Clockwise from north, as the neighbourhoods' bits.
     let planes = [above, &ne.0, &e.0, &se.0, below, &sw.0, &w.0, &nw.0];
-    for fix in &rule.fixes {
-        match (fix.cells(), fix.count > 4) {
-            (1, false) => apply_fix::<L, 1, false>(fix, &planes, count, matched, cells, next),
-            (2, false) => apply_fix::<L, 2, false>(fix, &planes, count, matched, cells, next),
-            (3, false) => apply_fix::<L, 3, false>(fix, &planes, count, matched, cells, next),
-            (_, false) => apply_fix::<L, 4, false>(fix, &planes, count, matched, cells, next),
-            (1, true) => apply_fix::<L, 1, true>(fix, &planes, count, matched, cells, next),
-            (2, true) => apply_fix::<L, 2, true>(fix, &planes, count, matched, cells, next),
-            (3, true) => apply_fix::<L, 3, true>(fix, &planes, count, matched, cells, next),
-            (_, true) => apply_fix::<L, 4, true>(fix, &planes, count, matched, cells, next),
-        }
-    }
-}
-
-/// Arrangements matched in one loop over the words: enough to keep the
-/// loop's work in registers, few enough to keep it simple.
-const TERMS_AT_ONCE: usize = 4;
-
-/// One fix, its arrangements each told by K cells (see
-/// [`crate::rule::sliced::Term`]): all live, or with `DEAD` (counts above
-/// 4) all dead. Whole groups of [`TERMS_AT_ONCE`] arrangements gather into
-/// `matched`; the last group, of exactly the arrangements left, flips
-/// `next` in the same loop where a cell of the fix's state and count
-/// matches any of them.
-#[inline(always)]
-fn apply_fix<const L: usize, const K: usize, const DEAD: bool>(
-    fix: &Fix,
-    planes: &[&[u64; WORDS]; 8],
-    count: &[Words; 4],
-    matched: &mut Words,
-    cells: &Words,
-    next: &mut Words,
-) {
-    // A live cell's count of nine is its neighbours and itself.
-    let value = fix.count + fix.alive as u32;
-    let want = [0, 1, 2, 3].map(|bit| if value >> bit & 1 == 1 { 0 } else { u64::MAX });
-    let flip = Flip {
-        want,
-        state: if fix.alive { 0 } else { u64::MAX },
+    let arrays = Fixing {
+        planes: &planes,
         count,
         cells,
     };
-    let groups = fix.terms.len().div_ceil(TERMS_AT_ONCE);
-    for (group, terms) in fix.terms.chunks(TERMS_AT_ONCE).enumerate() {
-        if group + 1 < groups {
-            if group == 0 {
-                gather::<L, K, DEAD, true>(terms, planes, matched);
-            } else {
-                gather::<L, K, DEAD, false>(terms, planes, matched);
-            }
-            continue;
-        }
-        let so_far = if group == 0 { &DEAD_WORDS } else { &*matched };
-        match terms.len() {
-            1 => flip.apply::<L, K, DEAD, 1>(terms, planes, so_far, next),
-            2 => flip.apply::<L, K, DEAD, 2>(terms, planes, so_far, next),
-            3 => flip.apply::<L, K, DEAD, 3>(terms, planes, so_far, next),
-            _ => flip.apply::<L, K, DEAD, 4>(terms, planes, so_far, next),
-        }
-    }
-}
-
-/// The planes of T arrangements' K cells (T ≤ the arrangements given).
-#[inline(always)]
-fn cells_of<'a, const K: usize, const T: usize>(
-    terms: &[Term],
-    planes: &[&'a [u64; WORDS]; 8],
-) -> [[&'a [u64; WORDS]; K]; T] {
-    array::from_fn(|t| array::from_fn(|k| planes[terms[t].cells[k] as usize & 7]))
-}
-
-/// Where any of T arrangements, each all live (or with `DEAD` all dead) in
-/// its K cells, matches at one word.
-#[inline(always)]
-fn any_matches<const K: usize, const DEAD: bool, const T: usize>(
-    cells: &[[&[u64; WORDS]; K]; T],
-    word: usize,
-) -> u64 {
-    let mut any = 0;
-    for term in cells {
-        any |= if DEAD {
-            !term.iter().fold(0, |any, plane| any | plane[word])
-        } else {
-            term.iter().fold(u64::MAX, |all, plane| all & plane[word])
-        };
-    }
-    any
-}
-
-/// A whole group of arrangements into `matched`: in place of it with
-/// `FIRST`, else added to it.
-#[inline(always)]
-#[allow(clippy::needless_range_loop)] // as in `fix`
-fn gather<const L: usize, const K: usize, const DEAD: bool, const FIRST: bool>(
-    terms: &[Term],
-    planes: &[&[u64; WORDS]; 8],
-    matched: &mut Words,
-) {
-    let cells = cells_of::<K, TERMS_AT_ONCE>(terms, planes);
-    for word in 0..8 * L {
-        let any = any_matches::<K, DEAD, TERMS_AT_ONCE>(&cells, word);
-        matched.0[word] = if FIRST { any } else { matched.0[word] | any };
-    }
-}
-
-/// What flips a fix's cells in `next`: the count of nine it wants (each
-/// bit as a mask to xor the count's plane with, all ones where it agrees),
-/// the state of the cells it is for (0 for live ones, as a mask to xor
-/// them with), the count planes and the cells.
-struct Flip<'a> {
-    want: [u64; 4],
-    state: u64,
-    count: &'a [Words; 4],
-    cells: &'a Words,
-}
-
-impl Flip<'_> {
-    /// The fix's last T arrangements and those matched before
-    /// (`so_far`): flips the cells of the fix's state and count where any
-    /// matches.
-    #[inline(always)]
-    #[allow(clippy::needless_range_loop)] // as in `fix`
-    fn apply<const L: usize, const K: usize, const DEAD: bool, const T: usize>(
-        &self,
-        terms: &[Term],
-        planes: &[&[u64; WORDS]; 8],
-        so_far: &Words,
-        next: &mut Words,
-    ) {
-        let cells = cells_of::<K, T>(terms, planes);
-        let (want, count) = (self.want, self.count);
-        for word in 0..8 * L {
-            let matched = so_far.0[word] | any_matches::<K, DEAD, T>(&cells, word);
-            let equal = (count[0].0[word] ^ want[0])
-                & (count[1].0[word] ^ want[1])
-                & (count[2].0[word] ^ want[2])
-                & (count[3].0[word] ^ want[3]);
-            next.0[word] ^= matched & equal & (self.cells.0[word] ^ self.state);
-        }
-    }
+    // The kernel counts nine cells: a live cell's count includes itself.
+    arrays.apply::<L, true>(&rule.fixes, matched, next);
 }
 
 #[cfg(target_arch = "x86_64")]

@@ -16,6 +16,7 @@ use std::fmt;
 use std::str::FromStr;
 
 mod background;
+pub(crate) mod fixing;
 pub mod letters;
 mod parse;
 pub(crate) mod sliced;

@@ -4,9 +4,10 @@
 //! otherwise as fixes. An outer-totalistic rule has no fixes, so it costs
 //! what it always did; an isotropic one pays per arrangement it fixes.
 //!
-//! The compiling is here, once; the direct and bounded steppers evaluate
-//! word by word with [`Sliced::next`], and the kernel runs the same fixes
-//! over whole arrays so that the compiler can vectorise them.
+//! The compiling is here, once; the bounded stepper evaluates word by word
+//! with [`Sliced::next`], and the kernel and the direct stepper run the
+//! same fixes over whole arrays of words (`fixing`) so that the compiler
+//! can vectorise them.
 
 use super::Rule;
 
@@ -130,15 +131,23 @@ impl Sliced {
     /// rule has fixes.
     #[inline]
     pub fn next(&self, alive: u64, count: &[u64; 4], neighbours: impl FnOnce() -> [u64; 8]) -> u64 {
-        let equal = |value: u32| {
-            (0..4).fold(u64::MAX, |all, bit| {
-                all & if value >> bit & 1 == 1 {
-                    count[bit]
-                } else {
-                    !count[bit]
-                }
-            })
-        };
+        let mut next = self.base(alive, count);
+        if self.fixes.is_empty() {
+            return next;
+        }
+        let planes = neighbours();
+        for fix in &self.fixes {
+            let matched = fix.matched(&planes);
+            let state = if fix.alive { alive } else { !alive };
+            next ^= matched & equal(count, fix.count) & state;
+        }
+        next
+    }
+
+    /// The next state of 64 cells by the base alone, the decision of each
+    /// count (what [`Sliced::next`] gives before the fixes).
+    #[inline]
+    pub fn base(&self, alive: u64, count: &[u64; 4]) -> u64 {
         let mut next = 0;
         for (value, &(born, stays)) in self.base.iter().enumerate() {
             if born || stays {
@@ -147,20 +156,23 @@ impl Sliced {
                     (true, false) => !alive,
                     _ => alive,
                 };
-                next |= equal(value as u32) & state;
+                next |= equal(count, value as u32) & state;
             }
-        }
-        if self.fixes.is_empty() {
-            return next;
-        }
-        let planes = neighbours();
-        for fix in &self.fixes {
-            let matched = fix.matched(&planes);
-            let state = if fix.alive { alive } else { !alive };
-            next ^= matched & equal(fix.count) & state;
         }
         next
     }
+}
+
+/// Where the count given as four bit planes is `value`.
+#[inline]
+fn equal(count: &[u64; 4], value: u32) -> u64 {
+    (0..4).fold(u64::MAX, |all, bit| {
+        all & if value >> bit & 1 == 1 {
+            count[bit]
+        } else {
+            !count[bit]
+        }
+    })
 }
 
 /// The live-neighbour counts of 64 cells as four bit planes (`[0]` the
