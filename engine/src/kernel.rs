@@ -343,14 +343,16 @@ fn pad<const L: usize>(array: &mut [u64; SUMS]) {
 }
 
 /// What the fixes of an isotropic rule work in: the cells with room for one
-/// group before and after (as the sums across), which are also the northern
-/// and southern neighbour planes; the six other neighbour planes of every
-/// word; the four planes of the count of nine; and where the arrangements of
-/// a long fix match so far (see [`Fixing`]).
+/// group before and after (as the sums across), which are the northern and
+/// southern neighbour planes of the words; the same moved one cell west and
+/// east, which are the six others (see `fix`); the four planes of the count
+/// of nine; and where the arrangements of a long fix match so far (see
+/// [`Fixing`]).
 #[repr(C, align(64))]
 struct FixScratch {
     rows: [u64; SUMS],
-    planes: [Words; 6],
+    east: [u64; SUMS],
+    west: [u64; SUMS],
     count: [Words; 4],
     matched: Words,
 }
@@ -359,7 +361,8 @@ impl FixScratch {
     fn new() -> FixScratch {
         FixScratch {
             rows: [0; SUMS],
-            planes: [Words([0; WORDS]); 6],
+            east: [0; SUMS],
+            west: [0; SUMS],
             count: [Words([0; WORDS]); 4],
             matched: Words([0; WORDS]),
         }
@@ -376,32 +379,35 @@ fn fix<const L: usize>(rule: &Compiled, fixing: &mut FixScratch, cells: &Words, 
     let words = 8 * L;
     let FixScratch {
         rows,
-        planes: shifted,
+        east,
+        west,
         count,
         matched,
     } = fixing;
     rows[L..L + words].copy_from_slice(&cells.0[..words]);
     pad::<L>(rows);
-    // Bit x is the cell (x, y), x growing east: the western neighbour is
-    // one bit lower, so the row moves up a bit. North and south are the
-    // rows above and below as they are.
-    let at = |offset: usize| -> &[u64; WORDS] {
-        rows[offset..offset + WORDS]
-            .try_into()
-            .expect("the rows have a group either side")
-    };
-    let (above, row, below) = (at(0), at(L), at(2 * L));
-    let [ne, e, se, sw, w, nw] = shifted;
-    for word in 0..words {
-        ne.0[word] = above[word] >> 1;
-        nw.0[word] = above[word] << 1;
-        e.0[word] = row[word] >> 1;
-        w.0[word] = row[word] << 1;
-        se.0[word] = below[word] >> 1;
-        sw.0[word] = below[word] << 1;
+    // Bit x is the cell (x, y), x growing east: the eastern neighbour is
+    // one bit higher, so a row's eastern neighbours are the row moved down a
+    // bit. The rows above and below a word are L words before and after
+    // it, in each of the three arrays.
+    for word in 0..SUMS {
+        east[word] = rows[word] >> 1;
+        west[word] = rows[word] << 1;
     }
+    let (rows, east, west) = (&*rows, &*east, &*west);
+    let at = window;
+    let (above, row, below) = (0, L, 2 * L);
     // Clockwise from north, as the neighbourhoods' bits.
-    let planes = [above, &ne.0, &e.0, &se.0, below, &sw.0, &w.0, &nw.0];
+    let planes = [
+        at(rows, above),
+        at(east, above),
+        at(east, row),
+        at(east, below),
+        at(rows, below),
+        at(west, below),
+        at(west, row),
+        at(west, above),
+    ];
     let arrays = Fixing {
         planes: &planes,
         count,
@@ -409,6 +415,16 @@ fn fix<const L: usize>(rule: &Compiled, fixing: &mut FixScratch, cells: &Words, 
     };
     // The kernel counts nine cells: a live cell's count includes itself.
     arrays.apply::<L, true>(&rule.fixes, matched, next);
+}
+
+/// The words of an array laid out as the sums across from `offset` on: at
+/// 0 those of the rows above the square's words, at L their own, at 2L
+/// those below.
+#[inline(always)]
+fn window(array: &[u64; SUMS], offset: usize) -> &[u64; WORDS] {
+    array[offset..offset + WORDS]
+        .try_into()
+        .expect("the arrays have a group either side")
 }
 
 #[cfg(target_arch = "x86_64")]
