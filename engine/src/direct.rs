@@ -9,6 +9,7 @@
 //! grid grows by whole tiles whenever a live cell reaches its outer ring of
 //! tiles, so the plane is unbounded in practice.
 
+use crate::kernel::Isa;
 use crate::pattern::{BuildError, Builder, Pattern};
 use crate::rule::Rule;
 use crate::rule::fixing::{Fixing, WORDS, Words};
@@ -59,17 +60,13 @@ struct Tile {
 impl Tile {
     fn new() -> Tile {
         let empty = Words([0; WORDS]);
-        #[cfg(target_arch = "x86_64")]
-        let avx2 = is_x86_feature_detected!("avx2");
-        #[cfg(not(target_arch = "x86_64"))]
-        let avx2 = false;
         Tile {
             planes: [empty; 8],
             count: [empty; 4],
             cells: empty,
             next: empty,
             matched: empty,
-            avx2,
+            avx2: Isa::detect().has_avx2(),
         }
     }
 
@@ -92,7 +89,7 @@ impl Tile {
         #[cfg(target_arch = "x86_64")]
         if self.avx2 {
             // SAFETY: `avx2` is only set where the processor has AVX2
-            // (`Tile::new`).
+            // (`Tile::new`, by `Isa::detect`).
             unsafe { fix_tile_avx2(self, sliced) };
             return &self.next;
         }
@@ -318,7 +315,12 @@ impl Grid {
         let mut up = line(first.wrapping_sub(1));
         let mut mid = line(first);
         let mut any = 0u64;
-        let mut tile = self.tile.as_deref_mut();
+        // Without FIXES the row loop below compiles to the plain one.
+        let mut tile = if FIXES {
+            self.tile.as_deref_mut()
+        } else {
+            None
+        };
         for (at, row) in (first..first + TILE).enumerate() {
             let down = line(row + 1);
             // Neighbour count = up (3 cells) + mid (2 cells) + down (3 cells),
@@ -331,14 +333,14 @@ impl Grid {
             let out = self.sliced.base(mid.word, &planes);
             match tile.as_deref_mut() {
                 // Clockwise from north; bit x is the cell (x, y), x growing east.
-                Some(tile) if FIXES => {
+                Some(tile) => {
                     let neighbours = [
                         up.word, up.east, mid.east, down.east, down.word, down.west, mid.west,
                         up.west,
                     ];
                     tile.hold(at, neighbours, planes, mid.word, out);
                 }
-                _ => {
+                None => {
                     self.back[row * words + column] = out;
                     any |= out;
                 }
@@ -346,7 +348,7 @@ impl Grid {
             up = mid;
             mid = down;
         }
-        if FIXES && let Some(tile) = tile {
+        if let Some(tile) = tile {
             let next = tile.fixed(&self.sliced);
             for (at, row) in (first..first + TILE).enumerate() {
                 self.back[row * words + column] = next.0[at];

@@ -86,9 +86,10 @@ struct Compiled {
     fixes: Vec<Fix>,
 }
 
-/// The instruction set the kernel's loops are compiled for.
+/// The instruction set the kernel's loops are compiled for (and the direct
+/// stepper's fixes, see `direct::Tile`).
 #[derive(Clone, Copy, Debug, PartialEq, Eq)]
-enum Isa {
+pub(crate) enum Isa {
     Portable,
     #[cfg(target_arch = "x86_64")]
     Avx2,
@@ -98,7 +99,7 @@ enum Isa {
 
 impl Isa {
     /// The widest instruction set this processor runs.
-    fn detect() -> Isa {
+    pub(crate) fn detect() -> Isa {
         #[cfg(target_arch = "x86_64")]
         {
             if is_x86_feature_detected!("avx512f") && is_x86_feature_detected!("avx512vl") {
@@ -109,6 +110,11 @@ impl Isa {
             }
         }
         Isa::Portable
+    }
+
+    /// Whether code compiled for AVX2 runs here (AVX-512 has it too).
+    pub(crate) fn has_avx2(self) -> bool {
+        self != Isa::Portable
     }
 }
 
@@ -208,9 +214,9 @@ const LIVE: u8 = 1;
 const SAME: u8 = 2;
 const OPPOSITE: u8 = 3;
 
-// The words of a square of side 8L in one array (`Words`): word `L*k +
-// lane` is row `8*lane + k`, so the row above a word is L words before it.
-/// Sums across of the words with room for one group before and after.
+/// Sums across of the words with room for one group before and after. The
+/// words of a square of side 8L are one array (`Words`): word `L*k + lane`
+/// is row `8*lane + k`, so the row above a word is L words before it.
 const SUMS: usize = WORDS + 16;
 
 /// `steps` generations of a square of side 8L, on whatever instruction set
@@ -395,18 +401,17 @@ fn fix<const L: usize>(rule: &Compiled, fixing: &mut FixScratch, cells: &Words, 
         west[word] = rows[word] << 1;
     }
     let (rows, east, west) = (&*rows, &*east, &*west);
-    let at = window;
     let (above, row, below) = (0, L, 2 * L);
     // Clockwise from north, as the neighbourhoods' bits.
     let planes = [
-        at(rows, above),
-        at(east, above),
-        at(east, row),
-        at(east, below),
-        at(rows, below),
-        at(west, below),
-        at(west, row),
-        at(west, above),
+        window(rows, above),
+        window(east, above),
+        window(east, row),
+        window(east, below),
+        window(rows, below),
+        window(west, below),
+        window(west, row),
+        window(west, above),
     ];
     let arrays = Fixing {
         planes: &planes,

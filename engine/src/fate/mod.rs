@@ -202,13 +202,7 @@ pub fn fate(universe: &mut Universe, limit: &BigUint) -> Result<Fate, FateError>
     let digest = universe.digest().map_err(AdvanceError::from)?;
     let cells = states.cells()?;
     let shape_digest = shape_digest_of(&cells);
-    let (mut period, mut displacement, whole) = period_of(&objects);
-    // A background that flips every generation repeats after two, even
-    // where no object is left to say so.
-    if steps.flips() && !period.is_multiple_of(2) {
-        period *= 2;
-        displacement = (2 * displacement.0, 2 * displacement.1);
-    }
+    let (period, displacement, whole) = period_of(&objects, steps);
     let census = census(&objects, steps, &mut classes);
     Ok(Fate::Settled(Settled {
         generation,
@@ -300,8 +294,9 @@ fn settle_generation(
 
 /// The period and displacement of the whole pattern when all its objects
 /// move alike (or all stand still), with `true`; else those of the objects
-/// that stand still, with `false`.
-fn period_of(objects: &[Object]) -> (u64, (i64, i64), bool) {
+/// that stand still, with `false`. Under a flipping background (`steps`)
+/// the period is even.
+fn period_of(objects: &[Object], steps: Steps) -> (u64, (i64, i64), bool) {
     let alike = objects.windows(2).all(|pair| {
         let (a, b) = (&pair[0].class, &pair[1].class);
         a.dx * b.period as i64 == b.dx * a.period as i64
@@ -312,7 +307,9 @@ fn period_of(objects: &[Object]) -> (u64, (i64, i64), bool) {
     } else {
         objects.iter().filter(|o| !o.class.moves()).collect()
     };
-    let mut period = 1u64;
+    // A background that flips every generation repeats after two, even
+    // where no object is left to say so.
+    let mut period = if steps.flips() { 2 } else { 1 };
     for object in &chosen {
         let p = object.class.period as u64;
         period = period / gcd(period, p) * p;

@@ -82,11 +82,11 @@ impl Fixing<'_> {
 /// loop's work in registers, few enough to keep it simple.
 const TERMS_AT_ONCE: usize = 4;
 
-/// One fix, its arrangements each told by K cells (see [`Term`]): all live, or with `DEAD` (counts above
-/// 4) all dead. Whole groups of [`TERMS_AT_ONCE`] arrangements gather into
-/// `matched`; the last group, of exactly the arrangements left, flips
-/// `next` in the same loop where a cell of the fix's state and count
-/// matches any of them.
+/// One fix, its arrangements each told by K cells (see [`Term`]): all
+/// live, or with `DEAD` (counts above 4) all dead. Whole groups of
+/// [`TERMS_AT_ONCE`] arrangements gather into `matched`; the last group, of
+/// exactly the arrangements left, flips `next` in the same loop where a
+/// cell of the fix's state and count matches any of them.
 #[inline(always)]
 fn apply_fix<const L: usize, const K: usize, const DEAD: bool, const NINE: bool>(
     fix: &Fix,
@@ -168,7 +168,7 @@ fn gather<const L: usize, const K: usize, const DEAD: bool, const FIRST: bool>(
     }
 }
 
-/// What flips a fix's cells in `next`: the count of nine it wants (each
+/// What flips a fix's cells in `next`: the count it wants (each
 /// bit as a mask to xor the count's plane with, all ones where it agrees),
 /// the state of the cells it is for (0 for live ones, as a mask to xor
 /// them with), the count planes and the cells.
