@@ -12,7 +12,7 @@
 use crate::kernel::Isa;
 use crate::pattern::{BuildError, Builder, Pattern};
 use crate::rule::Rule;
-use crate::rule::fixing::{Fixing, WORDS, Words};
+use crate::rule::fixing::{Fixing, Neighbours, WORDS, Words, Workspace};
 use crate::rule::sliced::Sliced;
 
 const TILE: usize = 64;
@@ -51,7 +51,7 @@ struct Tile {
     count: [Words; 4],
     cells: Words,
     next: Words,
-    matched: Words,
+    room: Workspace,
     /// whether this processor has AVX2, for the fixes' loops (the rows'
     /// own loop is word by word whatever the processor)
     avx2: bool,
@@ -65,7 +65,7 @@ impl Tile {
             count: [empty; 4],
             cells: empty,
             next: empty,
-            matched: empty,
+            room: Workspace::new(),
             avx2: Isa::detect().has_avx2(),
         }
     }
@@ -113,17 +113,22 @@ fn fix_tile(tile: &mut Tile, sliced: &Sliced) {
         count,
         cells,
         next,
-        matched,
+        room,
         ..
     } = tile;
-    let planes: [&[u64; WORDS]; 8] = std::array::from_fn(|k| &planes[k].0);
-    let arrays = Fixing {
-        planes: &planes,
-        count,
-        cells,
-    };
+    let arrays = Fixing { count, cells };
     // This stepper counts neighbours, not the cell itself.
-    arrays.apply::<8, false>(&sliced.fixes, matched, next);
+    arrays.apply::<8, false>(&sliced.fixes, &mut Held(planes), room, next);
+}
+
+/// A tile's neighbour planes, held since its rows were.
+struct Held<'a>(&'a [Words; 8]);
+
+impl Neighbours for Held<'_> {
+    #[inline(always)]
+    fn planes(&mut self) -> [&[u64; WORDS]; 8] {
+        std::array::from_fn(|k| &self.0[k].0)
+    }
 }
 
 impl Grid {

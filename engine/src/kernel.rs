@@ -32,9 +32,10 @@
 //! free of any other shuffling.
 
 use std::array;
+use std::cell::RefCell;
 
 use crate::rule::Rule;
-use crate::rule::fixing::{DEAD_WORDS, Fixing, LIVE_WORDS, WORDS, Words};
+use crate::rule::fixing::{DEAD_WORDS, Fixing, LIVE_WORDS, Neighbours, WORDS, Words, Workspace};
 use crate::rule::sliced::{Fix, Sliced};
 
 /// The cells of a square of side 16, 32 or 64, strided: row y is
@@ -192,21 +193,46 @@ impl Kernel {
         for (k, group) in block.groups.iter().enumerate() {
             cells.0[L * k..L * (k + 1)].copy_from_slice(&group[..L]);
         }
-        match self.isa {
-            #[cfg(target_arch = "x86_64")]
-            // SAFETY: `Isa::Avx512` is only chosen when the processor was
-            // found to have AVX-512F and AVX-512VL (`Isa::detect`).
-            Isa::Avx512 => unsafe { generations_avx512::<L>(self, &mut cells, steps) },
-            #[cfg(target_arch = "x86_64")]
-            // SAFETY: `Isa::Avx2` is only chosen when the processor was found
-            // to have AVX2 (`Isa::detect`).
-            Isa::Avx2 => unsafe { generations_avx2::<L>(self, &mut cells, steps) },
-            Isa::Portable => generations::<L, false>(self, &mut cells, steps),
+        let has_fixes = self.steps.iter().any(|rule| !rule.fixes.is_empty());
+        if has_fixes {
+            FIX_SCRATCH
+                .with_borrow_mut(|fixing| self.dispatch::<L>(&mut cells, steps, Some(fixing)));
+        } else {
+            self.dispatch::<L>(&mut cells, steps, None);
         }
         for (k, group) in block.groups.iter_mut().enumerate() {
             group[..L].copy_from_slice(&cells.0[L * k..L * (k + 1)]);
         }
     }
+}
+
+impl Kernel {
+    /// `generations` compiled for the widest instruction set there is.
+    fn dispatch<const L: usize>(
+        &self,
+        cells: &mut Words,
+        steps: u32,
+        fixing: Option<&mut FixScratch>,
+    ) {
+        match self.isa {
+            #[cfg(target_arch = "x86_64")]
+            // SAFETY: `Isa::Avx512` is only chosen when the processor was
+            // found to have AVX-512F and AVX-512VL (`Isa::detect`).
+            Isa::Avx512 => unsafe { generations_avx512::<L>(self, cells, steps, fixing) },
+            #[cfg(target_arch = "x86_64")]
+            // SAFETY: `Isa::Avx2` is only chosen when the processor was found
+            // to have AVX2 (`Isa::detect`).
+            Isa::Avx2 => unsafe { generations_avx2::<L>(self, cells, steps, fixing) },
+            Isa::Portable => generations::<L, false>(self, cells, steps, fixing),
+        }
+    }
+}
+
+thread_local! {
+    /// What the fixes of an isotropic rule work in, made once per thread:
+    /// clearing it for every block cost a tenth of the block's
+    /// instructions.
+    static FIX_SCRATCH: RefCell<FixScratch> = RefCell::new(FixScratch::new());
 }
 
 const DEAD: u8 = 0;
@@ -226,6 +252,7 @@ fn generations<const L: usize, const TERNARY: bool>(
     kernel: &Kernel,
     cells: &mut Words,
     steps: u32,
+    mut fixing: Option<&mut FixScratch>,
 ) {
     let mut scratch = Scratch {
         ones: [0; SUMS],
@@ -234,14 +261,12 @@ fn generations<const L: usize, const TERNARY: bool>(
     };
     let mut other = Words([0; WORDS]);
     let [even, odd] = &kernel.steps;
-    let has_fixes = !even.fixes.is_empty() || !odd.fixes.is_empty();
-    let mut fixing = has_fixes.then(FixScratch::new);
     for _ in 0..steps / 2 {
-        one_generation::<L, TERNARY>(even, &mut scratch, fixing.as_mut(), cells, &mut other);
-        one_generation::<L, TERNARY>(odd, &mut scratch, fixing.as_mut(), &other, cells);
+        one_generation::<L, TERNARY>(even, &mut scratch, fixing.as_deref_mut(), cells, &mut other);
+        one_generation::<L, TERNARY>(odd, &mut scratch, fixing.as_deref_mut(), &other, cells);
     }
     if steps % 2 == 1 {
-        one_generation::<L, TERNARY>(even, &mut scratch, fixing.as_mut(), cells, &mut other);
+        one_generation::<L, TERNARY>(even, &mut scratch, fixing, cells, &mut other);
         *cells = other;
     }
 }
@@ -348,30 +373,81 @@ fn pad<const L: usize>(array: &mut [u64; SUMS]) {
     array.copy_within(L + 1..2 * L + 1, 9 * L);
 }
 
-/// What the fixes of an isotropic rule work in: the cells with room for one
-/// group before and after (as the sums across), which are the northern and
-/// southern neighbour planes of the words; the same moved one cell west and
-/// east, which are the six others (see `fix`); the four planes of the count
-/// of nine; and where the arrangements of a long fix match so far (see
-/// [`Fixing`]).
+/// What the fixes of an isotropic rule work in: the shifted rows that
+/// make the neighbour planes ([`Shifted`]), the four planes of the count of
+/// nine, and the arrays the fixes write in between ([`Workspace`]).
 #[repr(C, align(64))]
 struct FixScratch {
-    rows: [u64; SUMS],
-    east: [u64; SUMS],
-    west: [u64; SUMS],
+    shifted: Shifted,
     count: [Words; 4],
-    matched: Words,
+    room: Workspace,
 }
 
 impl FixScratch {
     fn new() -> FixScratch {
         FixScratch {
-            rows: [0; SUMS],
-            east: [0; SUMS],
-            west: [0; SUMS],
+            shifted: Shifted {
+                rows: [0; SUMS],
+                east: [0; SUMS],
+                west: [0; SUMS],
+            },
             count: [Words([0; WORDS]); 4],
-            matched: Words([0; WORDS]),
+            room: Workspace::new(),
         }
+    }
+}
+
+/// The cells with room for one group before and after (as the sums
+/// across), which are the northern and southern neighbour planes of the
+/// words, and the same moved one cell west and east, which are the six
+/// others.
+#[repr(C, align(64))]
+struct Shifted {
+    rows: [u64; SUMS],
+    east: [u64; SUMS],
+    west: [u64; SUMS],
+}
+
+/// The neighbour planes of a square of side 8L in one generation: the
+/// shifted rows, made from the cells when a fix first asks.
+struct Neighbourhood<'a, const L: usize> {
+    cells: &'a Words,
+    shifted: &'a mut Shifted,
+    made: bool,
+}
+
+impl<const L: usize> Neighbours for Neighbourhood<'_, L> {
+    #[inline(always)]
+    #[allow(clippy::needless_range_loop)] // index loops over arrays in step vectorise
+    fn planes(&mut self) -> [&[u64; WORDS]; 8] {
+        let Shifted { rows, east, west } = &mut *self.shifted;
+        if !self.made {
+            rows[L..9 * L].copy_from_slice(&self.cells.0[..8 * L]);
+            pad::<L>(rows);
+            // Bit x is the cell (x, y), x growing east: the eastern
+            // neighbour is one bit higher, so a row's eastern neighbours
+            // are the row moved down a bit.
+            for word in 0..SUMS {
+                east[word] = rows[word] >> 1;
+                west[word] = rows[word] << 1;
+            }
+            self.made = true;
+        }
+        // The rows above and below a word are L words before and after
+        // it, in each of the three arrays.
+        let (rows, east, west) = (&*rows, &*east, &*west);
+        let (above, row, below) = (0, L, 2 * L);
+        // Clockwise from north, as the neighbourhoods' bits.
+        [
+            window(rows, above),
+            window(east, above),
+            window(east, row),
+            window(east, below),
+            window(rows, below),
+            window(west, below),
+            window(west, row),
+            window(west, above),
+        ]
     }
 }
 
@@ -380,46 +456,20 @@ impl FixScratch {
 /// rule treats apart from its count, its new state flips. Every loop runs
 /// over all words, so that the compiler vectorises it.
 #[inline(always)]
-#[allow(clippy::needless_range_loop)] // index loops over arrays in step vectorise
 fn fix<const L: usize>(rule: &Compiled, fixing: &mut FixScratch, cells: &Words, next: &mut Words) {
-    let words = 8 * L;
     let FixScratch {
-        rows,
-        east,
-        west,
+        shifted,
         count,
-        matched,
+        room,
     } = fixing;
-    rows[L..L + words].copy_from_slice(&cells.0[..words]);
-    pad::<L>(rows);
-    // Bit x is the cell (x, y), x growing east: the eastern neighbour is
-    // one bit higher, so a row's eastern neighbours are the row moved down a
-    // bit. The rows above and below a word are L words before and after
-    // it, in each of the three arrays.
-    for word in 0..SUMS {
-        east[word] = rows[word] >> 1;
-        west[word] = rows[word] << 1;
-    }
-    let (rows, east, west) = (&*rows, &*east, &*west);
-    let (above, row, below) = (0, L, 2 * L);
-    // Clockwise from north, as the neighbourhoods' bits.
-    let planes = [
-        window(rows, above),
-        window(east, above),
-        window(east, row),
-        window(east, below),
-        window(rows, below),
-        window(west, below),
-        window(west, row),
-        window(west, above),
-    ];
-    let arrays = Fixing {
-        planes: &planes,
-        count,
+    let mut neighbours = Neighbourhood::<L> {
         cells,
+        shifted,
+        made: false,
     };
+    let arrays = Fixing { count, cells };
     // The kernel counts nine cells: a live cell's count includes itself.
-    arrays.apply::<L, true>(&rule.fixes, matched, next);
+    arrays.apply::<L, true>(&rule.fixes, &mut neighbours, room, next);
 }
 
 /// The words of an array laid out as the sums across from `offset` on: at
@@ -434,14 +484,24 @@ fn window(array: &[u64; SUMS], offset: usize) -> &[u64; WORDS] {
 
 #[cfg(target_arch = "x86_64")]
 #[target_feature(enable = "avx2")]
-fn generations_avx2<const L: usize>(kernel: &Kernel, cells: &mut Words, steps: u32) {
-    generations::<L, false>(kernel, cells, steps)
+fn generations_avx2<const L: usize>(
+    kernel: &Kernel,
+    cells: &mut Words,
+    steps: u32,
+    fixing: Option<&mut FixScratch>,
+) {
+    generations::<L, false>(kernel, cells, steps, fixing)
 }
 
 #[cfg(target_arch = "x86_64")]
 #[target_feature(enable = "avx512f,avx512vl")]
-fn generations_avx512<const L: usize>(kernel: &Kernel, cells: &mut Words, steps: u32) {
-    generations::<L, true>(kernel, cells, steps)
+fn generations_avx512<const L: usize>(
+    kernel: &Kernel,
+    cells: &mut Words,
+    steps: u32,
+    fixing: Option<&mut FixScratch>,
+) {
+    generations::<L, true>(kernel, cells, steps, fixing)
 }
 
 /// Where at least two of the three are set. With `TERNARY` (an instruction

@@ -23,13 +23,37 @@ pub(crate) struct Words(pub [u64; WORDS]);
 pub(crate) static DEAD_WORDS: Words = Words([0; WORDS]);
 pub(crate) static LIVE_WORDS: Words = Words([u64::MAX; WORDS]);
 
-/// What the fixes read: the eight neighbour planes of every word, clockwise
-/// from north (as the neighbourhoods' bits, see `letters`), the four planes
-/// of its count (`[0]` the lowest) and the cells.
+/// What the fixes read first: the four planes of every word's count
+/// (`[0]` the lowest) and the cells. The neighbour planes come from a
+/// [`Neighbours`] only when a fix has cells to look at.
 pub(crate) struct Fixing<'a> {
-    pub planes: &'a [&'a [u64; WORDS]; 8],
     pub count: &'a [Words; 4],
     pub cells: &'a Words,
+}
+
+/// The eight neighbour planes of every word, clockwise from north (as the
+/// neighbourhoods' bits, see `letters`), asked for once a fix needs them:
+/// a stepper that must make them (the kernel) then makes them only in the
+/// generations where some fix does.
+pub(crate) trait Neighbours {
+    fn planes(&mut self) -> [&[u64; WORDS]; 8];
+}
+
+/// The arrays the fixes write in between: the cells each fix is for, and
+/// where the arrangements of a fix of many match so far.
+#[derive(Clone)]
+pub(crate) struct Workspace {
+    chosen: Words,
+    matched: Words,
+}
+
+impl Workspace {
+    pub(crate) fn new() -> Workspace {
+        Workspace {
+            chosen: Words([0; WORDS]),
+            matched: Words([0; WORDS]),
+        }
+    }
 }
 
 impl Fixing<'_> {
@@ -37,44 +61,60 @@ impl Fixing<'_> {
     /// cells by the rule's base: where a cell's arrangement is one the rule
     /// treats apart from its count, its new state flips. With `NINE` the
     /// count is of the nine cells around and including each cell (the
-    /// kernel's), else of its eight neighbours. `matched` is room for a
-    /// fix of many arrangements.
+    /// kernel's), else of its eight neighbours.
     #[inline(always)]
     pub(crate) fn apply<const L: usize, const NINE: bool>(
         &self,
         fixes: &[Fix],
-        matched: &mut Words,
+        neighbours: &mut impl Neighbours,
+        room: &mut Workspace,
         next: &mut Words,
     ) {
-        let (planes, count, cells) = (self.planes, self.count, self.cells);
         for fix in fixes {
+            // Many fixes are for counts that a square often has nowhere in
+            // a generation: then there is nothing to match.
+            if !self.choose::<L, NINE>(fix, &mut room.chosen) {
+                continue;
+            }
+            let planes = &neighbours.planes();
+            let (chosen, matched) = (&room.chosen, &mut room.matched);
             match (fix.cells(), fix.count > 4) {
-                (1, false) => {
-                    apply_fix::<L, 1, false, NINE>(fix, planes, count, matched, cells, next)
-                }
-                (2, false) => {
-                    apply_fix::<L, 2, false, NINE>(fix, planes, count, matched, cells, next)
-                }
-                (3, false) => {
-                    apply_fix::<L, 3, false, NINE>(fix, planes, count, matched, cells, next)
-                }
-                (_, false) => {
-                    apply_fix::<L, 4, false, NINE>(fix, planes, count, matched, cells, next)
-                }
-                (1, true) => {
-                    apply_fix::<L, 1, true, NINE>(fix, planes, count, matched, cells, next)
-                }
-                (2, true) => {
-                    apply_fix::<L, 2, true, NINE>(fix, planes, count, matched, cells, next)
-                }
-                (3, true) => {
-                    apply_fix::<L, 3, true, NINE>(fix, planes, count, matched, cells, next)
-                }
-                (_, true) => {
-                    apply_fix::<L, 4, true, NINE>(fix, planes, count, matched, cells, next)
-                }
+                (1, false) => apply_fix::<L, 1, false>(fix, planes, chosen, matched, next),
+                (2, false) => apply_fix::<L, 2, false>(fix, planes, chosen, matched, next),
+                (3, false) => apply_fix::<L, 3, false>(fix, planes, chosen, matched, next),
+                (_, false) => apply_fix::<L, 4, false>(fix, planes, chosen, matched, next),
+                (1, true) => apply_fix::<L, 1, true>(fix, planes, chosen, matched, next),
+                (2, true) => apply_fix::<L, 2, true>(fix, planes, chosen, matched, next),
+                (3, true) => apply_fix::<L, 3, true>(fix, planes, chosen, matched, next),
+                (_, true) => apply_fix::<L, 4, true>(fix, planes, chosen, matched, next),
             }
         }
+    }
+
+    /// The cells of the fix's state and count into `chosen`, and whether
+    /// there are any.
+    #[inline(always)]
+    #[allow(clippy::needless_range_loop)] // index loops over arrays in step vectorise
+    fn choose<const L: usize, const NINE: bool>(&self, fix: &Fix, chosen: &mut Words) -> bool {
+        // A live cell's count of nine is its neighbours and itself.
+        let value = fix.count + (NINE && fix.alive) as u32;
+        // Each bit of the count as a mask to xor its plane with: all ones
+        // where the plane agrees.
+        let want = [0, 1, 2, 3].map(|bit| if value >> bit & 1 == 1 { 0 } else { u64::MAX });
+        // The state as a mask to xor the cells with: 0 for live cells.
+        let state = if fix.alive { 0 } else { u64::MAX };
+        let (count, cells) = (self.count, self.cells);
+        let mut any = 0;
+        for word in 0..8 * L {
+            let these = (count[0].0[word] ^ want[0])
+                & (count[1].0[word] ^ want[1])
+                & (count[2].0[word] ^ want[2])
+                & (count[3].0[word] ^ want[3])
+                & (cells.0[word] ^ state);
+            chosen.0[word] = these;
+            any |= these;
+        }
+        any != 0
     }
 }
 
@@ -86,25 +126,15 @@ const TERMS_AT_ONCE: usize = 4;
 /// live, or with `DEAD` (counts above 4) all dead. Whole groups of
 /// [`TERMS_AT_ONCE`] arrangements gather into `matched`; the last group, of
 /// exactly the arrangements left, flips `next` in the same loop where a
-/// cell of the fix's state and count matches any of them.
+/// chosen cell (see [`Fixing::choose`]) matches any of them.
 #[inline(always)]
-fn apply_fix<const L: usize, const K: usize, const DEAD: bool, const NINE: bool>(
+fn apply_fix<const L: usize, const K: usize, const DEAD: bool>(
     fix: &Fix,
     planes: &[&[u64; WORDS]; 8],
-    count: &[Words; 4],
+    chosen: &Words,
     matched: &mut Words,
-    cells: &Words,
     next: &mut Words,
 ) {
-    // A live cell's count of nine is its neighbours and itself.
-    let value = fix.count + (NINE && fix.alive) as u32;
-    let want = [0, 1, 2, 3].map(|bit| if value >> bit & 1 == 1 { 0 } else { u64::MAX });
-    let flip = Flip {
-        want,
-        state: if fix.alive { 0 } else { u64::MAX },
-        count,
-        cells,
-    };
     let groups = fix.terms.len().div_ceil(TERMS_AT_ONCE);
     for (group, terms) in fix.terms.chunks(TERMS_AT_ONCE).enumerate() {
         if group + 1 < groups {
@@ -117,10 +147,10 @@ fn apply_fix<const L: usize, const K: usize, const DEAD: bool, const NINE: bool>
         }
         let so_far = if group == 0 { &DEAD_WORDS } else { &*matched };
         match terms.len() {
-            1 => flip.apply::<L, K, DEAD, 1>(terms, planes, so_far, next),
-            2 => flip.apply::<L, K, DEAD, 2>(terms, planes, so_far, next),
-            3 => flip.apply::<L, K, DEAD, 3>(terms, planes, so_far, next),
-            _ => flip.apply::<L, K, DEAD, 4>(terms, planes, so_far, next),
+            1 => flip::<L, K, DEAD, 1>(terms, planes, so_far, chosen, next),
+            2 => flip::<L, K, DEAD, 2>(terms, planes, so_far, chosen, next),
+            3 => flip::<L, K, DEAD, 3>(terms, planes, so_far, chosen, next),
+            _ => flip::<L, K, DEAD, 4>(terms, planes, so_far, chosen, next),
         }
     }
 }
@@ -168,39 +198,20 @@ fn gather<const L: usize, const K: usize, const DEAD: bool, const FIRST: bool>(
     }
 }
 
-/// What flips a fix's cells in `next`: the count it wants (each
-/// bit as a mask to xor the count's plane with, all ones where it agrees),
-/// the state of the cells it is for (0 for live ones, as a mask to xor
-/// them with), the count planes and the cells.
-struct Flip<'a> {
-    want: [u64; 4],
-    state: u64,
-    count: &'a [Words; 4],
-    cells: &'a Words,
-}
-
-impl Flip<'_> {
-    /// The fix's last T arrangements and those matched before
-    /// (`so_far`): flips the cells of the fix's state and count where any
-    /// matches.
-    #[inline(always)]
-    #[allow(clippy::needless_range_loop)] // index loops over arrays in step vectorise
-    fn apply<const L: usize, const K: usize, const DEAD: bool, const T: usize>(
-        &self,
-        terms: &[Term],
-        planes: &[&[u64; WORDS]; 8],
-        so_far: &Words,
-        next: &mut Words,
-    ) {
-        let cells = cells_of::<K, T>(terms, planes);
-        let (want, count) = (self.want, self.count);
-        for word in 0..8 * L {
-            let matched = so_far.0[word] | any_matches::<K, DEAD, T>(&cells, word);
-            let equal = (count[0].0[word] ^ want[0])
-                & (count[1].0[word] ^ want[1])
-                & (count[2].0[word] ^ want[2])
-                & (count[3].0[word] ^ want[3]);
-            next.0[word] ^= matched & equal & (self.cells.0[word] ^ self.state);
-        }
+/// The fix's last T arrangements and those matched before (`so_far`):
+/// flips the chosen cells where any matches.
+#[inline(always)]
+#[allow(clippy::needless_range_loop)] // index loops over arrays in step vectorise
+fn flip<const L: usize, const K: usize, const DEAD: bool, const T: usize>(
+    terms: &[Term],
+    planes: &[&[u64; WORDS]; 8],
+    so_far: &Words,
+    chosen: &Words,
+    next: &mut Words,
+) {
+    let cells = cells_of::<K, T>(terms, planes);
+    for word in 0..8 * L {
+        let matched = so_far.0[word] | any_matches::<K, DEAD, T>(&cells, word);
+        next.0[word] ^= matched & chosen.0[word];
     }
 }
