@@ -12,7 +12,7 @@
 use crate::kernel::Isa;
 use crate::pattern::{BuildError, Builder, Pattern};
 use crate::rule::Rule;
-use crate::rule::fixing::{Fixing, Neighbours, WORDS, Words, Workspace};
+use crate::rule::fixing::{Aimed, Fixing, Neighbours, WORDS, Words, Workspace};
 use crate::rule::sliced::Sliced;
 
 const TILE: usize = 64;
@@ -47,6 +47,8 @@ pub struct Grid {
 /// its next state by the rule's base, which the fixes then correct.
 #[derive(Clone)]
 struct Tile {
+    /// the rule's fixes, for a count of the eight neighbours
+    fixes: Vec<Aimed>,
     planes: [Words; 8],
     count: [Words; 4],
     cells: Words,
@@ -58,9 +60,11 @@ struct Tile {
 }
 
 impl Tile {
-    fn new() -> Tile {
+    fn new(sliced: &Sliced) -> Tile {
         let empty = Words([0; WORDS]);
         Tile {
+            // This stepper counts neighbours, not the cell itself.
+            fixes: Aimed::all(sliced.fixes.clone(), false),
             planes: [empty; 8],
             count: [empty; 4],
             cells: empty,
@@ -85,30 +89,31 @@ impl Tile {
 
     /// The rows' next states with the fixes applied, four words at once
     /// where the processor can.
-    fn fixed(&mut self, sliced: &Sliced) -> &Words {
+    fn fixed(&mut self) -> &Words {
         #[cfg(target_arch = "x86_64")]
         if self.avx2 {
             // SAFETY: `avx2` is only set where the processor has AVX2
             // (`Tile::new`, by `Isa::detect`).
-            unsafe { fix_tile_avx2(self, sliced) };
+            unsafe { fix_tile_avx2(self) };
             return &self.next;
         }
-        fix_tile(self, sliced);
+        fix_tile(self);
         &self.next
     }
 }
 
 #[cfg(target_arch = "x86_64")]
 #[target_feature(enable = "avx2")]
-fn fix_tile_avx2(tile: &mut Tile, sliced: &Sliced) {
-    fix_tile(tile, sliced)
+fn fix_tile_avx2(tile: &mut Tile) {
+    fix_tile(tile)
 }
 
 /// The fixes applied to a tile's rows, in the instruction set of the
 /// caller.
 #[inline(always)]
-fn fix_tile(tile: &mut Tile, sliced: &Sliced) {
+fn fix_tile(tile: &mut Tile) {
     let Tile {
+        fixes,
         planes,
         count,
         cells,
@@ -116,9 +121,8 @@ fn fix_tile(tile: &mut Tile, sliced: &Sliced) {
         room,
         ..
     } = tile;
-    let arrays = Fixing { count, cells };
-    // This stepper counts neighbours, not the cell itself.
-    arrays.apply::<8, false>(&sliced.fixes, &mut Held(planes), room, next);
+    let fixing = Fixing::Counted { count, cells };
+    fixing.apply::<8>(fixes, &mut Held(planes), room, next);
 }
 
 /// A tile's neighbour planes, held since its rows were.
@@ -172,7 +176,7 @@ impl Grid {
             }
         }
         if !grid.sliced.fixes.is_empty() {
-            grid.tile = Some(Box::new(Tile::new()));
+            grid.tile = Some(Box::new(Tile::new(&grid.sliced)));
         }
         grid.refresh_occupancy();
         grid
@@ -354,7 +358,7 @@ impl Grid {
             mid = down;
         }
         if let Some(tile) = tile {
-            let next = tile.fixed(&self.sliced);
+            let next = tile.fixed();
             for (at, row) in (first..first + TILE).enumerate() {
                 self.back[row * words + column] = next.0[at];
                 any |= next.0[at];

@@ -35,8 +35,10 @@ use std::array;
 use std::cell::RefCell;
 
 use crate::rule::Rule;
-use crate::rule::fixing::{DEAD_WORDS, Fixing, LIVE_WORDS, Neighbours, WORDS, Words, Workspace};
-use crate::rule::sliced::{Fix, Sliced};
+use crate::rule::fixing::{
+    Aimed, DEAD_WORDS, Fixing, LIVE_WORDS, Neighbours, Target, WORDS, Words, Workspace,
+};
+use crate::rule::sliced::Sliced;
 
 /// The cells of a square of side 16, 32 or 64, strided: row y is
 /// `groups[y % 8][y / 8]`, and bit x of a row is the cell (x, y). A square
@@ -84,7 +86,7 @@ struct Compiled {
     flips: bool,
     /// the arrangements where an isotropic rule differs from the tree,
     /// which picks by count alone; none for an outer-totalistic rule
-    fixes: Vec<Fix>,
+    fixes: Vec<Aimed>,
 }
 
 /// The instruction set the kernel's loops are compiled for (and the direct
@@ -165,7 +167,9 @@ impl Compiled {
             even,
             flip,
             flips: even.iter().chain(&flip).any(|&leaf| leaf == OPPOSITE),
-            fixes,
+            // The kernel counts nine cells: a live cell's count includes
+            // itself.
+            fixes: Aimed::all(fixes, true),
         }
     }
 }
@@ -282,14 +286,46 @@ fn one_generation<const L: usize, const TERNARY: bool>(
     cells: &Words,
     next: &mut Words,
 ) {
-    match fixing {
-        Some(fixing) if !rule.fixes.is_empty() => {
-            generation::<L, TERNARY, true>(rule, scratch, cells, next, Some(&mut fixing.count));
-            fix::<L>(rule, fixing, cells, next);
-        }
-        _ => generation::<L, TERNARY, false>(rule, scratch, cells, next, None),
-    }
+    let Some(FixScratch {
+        shifted,
+        count,
+        room,
+    }) = fixing.filter(|_| !rule.fixes.is_empty())
+    else {
+        generation::<L, TERNARY, PLAIN>(rule, scratch, cells, next, ForFixes::Nothing);
+        return;
+    };
+    // A rule of one fix chooses its cells with the counts; others keep the
+    // counts for each fix to choose from.
+    let fixing = if let [only] = rule.fixes.as_slice() {
+        let chosen = ForFixes::Chosen(&only.target, room.chosen());
+        let any = generation::<L, TERNARY, CHOOSE>(rule, scratch, cells, next, chosen);
+        Fixing::Chosen { any }
+    } else {
+        generation::<L, TERNARY, COUNT>(rule, scratch, cells, next, ForFixes::Counts(count));
+        Fixing::Counted { count, cells }
+    };
+    let mut neighbours = Neighbourhood::<L> {
+        cells,
+        shifted,
+        made: false,
+    };
+    fixing.apply::<L>(&rule.fixes, &mut neighbours, room, next);
 }
+
+/// What a generation leaves for the fixes, by the const parameter of
+/// `generation` that says which: nothing ([`PLAIN`]), the count planes
+/// ([`COUNT`]), or the cells of one fix and whether there are any
+/// ([`CHOOSE`]).
+enum ForFixes<'a> {
+    Nothing,
+    Counts(&'a mut [Words; 4]),
+    Chosen(&'a Target, &'a mut Words),
+}
+
+const PLAIN: u8 = 0;
+const COUNT: u8 = 1;
+const CHOOSE: u8 = 2;
 
 /// What one generation works in; every field a multiple of 64 bytes, so
 /// all stay aligned.
@@ -304,15 +340,21 @@ struct Scratch {
 
 /// One generation of a square of side 8L: two loops over all words (sums
 /// across, then counts and the rule), which the compiler vectorises across
-/// words.
+/// words. With [`CHOOSE`], whether any cell is chosen.
 #[inline(always)]
-fn generation<const L: usize, const TERNARY: bool, const COUNTS: bool>(
+fn generation<const L: usize, const TERNARY: bool, const FIXES: u8>(
     rule: &Compiled,
     scratch: &mut Scratch,
     cells: &Words,
     next: &mut Words,
-    mut counts: Option<&mut [Words; 4]>,
-) {
+    for_fixes: ForFixes,
+) -> bool {
+    let (mut counts, mut chosen) = match for_fixes {
+        ForFixes::Nothing => (None, None),
+        ForFixes::Counts(counts) => (Some(counts), None),
+        ForFixes::Chosen(target, chosen) => (None, Some((target, chosen))),
+    };
+    let mut any = 0;
     let words = 8 * L;
     let Scratch {
         ones,
@@ -353,13 +395,23 @@ fn generation<const L: usize, const TERNARY: bool, const COUNTS: bool>(
         // Counts 8 and 9 are the only ones with bit 3, and have bits 1, 2 clear.
         next.0[word] = select(q3, select(q2, low, high), pair(4));
         // The fixes of an isotropic rule compare the counts again.
-        if COUNTS && let Some(counts) = counts.as_deref_mut() {
+        if FIXES == COUNT
+            && let Some(counts) = counts.as_deref_mut()
+        {
             counts[0].0[word] = q0;
             counts[1].0[word] = q1;
             counts[2].0[word] = q2;
             counts[3].0[word] = q3;
         }
+        if FIXES == CHOOSE
+            && let Some((target, chosen)) = chosen.as_mut()
+        {
+            let these = target.at([q0, q1, q2, q3], cells.0[word]);
+            chosen.0[word] = these;
+            any |= these;
+        }
     }
+    any != 0
 }
 
 /// Fills the group before and after the words of an array laid out as
@@ -375,7 +427,8 @@ fn pad<const L: usize>(array: &mut [u64; SUMS]) {
 
 /// What the fixes of an isotropic rule work in: the shifted rows that
 /// make the neighbour planes ([`Shifted`]), the four planes of the count of
-/// nine, and the arrays the fixes write in between ([`Workspace`]).
+/// nine (for a rule of more than one fix), and the arrays the fixes write
+/// in between ([`Workspace`]).
 #[repr(C, align(64))]
 struct FixScratch {
     shifted: Shifted,
@@ -449,27 +502,6 @@ impl<const L: usize> Neighbours for Neighbourhood<'_, L> {
             window(west, above),
         ]
     }
-}
-
-/// Applies the kernel's fixes to a generation `generation` has just
-/// computed from `cells` into `next`: where a cell's arrangement is one the
-/// rule treats apart from its count, its new state flips. Every loop runs
-/// over all words, so that the compiler vectorises it.
-#[inline(always)]
-fn fix<const L: usize>(rule: &Compiled, fixing: &mut FixScratch, cells: &Words, next: &mut Words) {
-    let FixScratch {
-        shifted,
-        count,
-        room,
-    } = fixing;
-    let mut neighbours = Neighbourhood::<L> {
-        cells,
-        shifted,
-        made: false,
-    };
-    let arrays = Fixing { count, cells };
-    // The kernel counts nine cells: a live cell's count includes itself.
-    arrays.apply::<L, true>(&rule.fixes, &mut neighbours, room, next);
 }
 
 /// The words of an array laid out as the sums across from `offset` on: at

@@ -23,12 +23,20 @@ pub(crate) struct Words(pub [u64; WORDS]);
 pub(crate) static DEAD_WORDS: Words = Words([0; WORDS]);
 pub(crate) static LIVE_WORDS: Words = Words([u64::MAX; WORDS]);
 
-/// What the fixes read first: the four planes of every word's count
-/// (`[0]` the lowest) and the cells. The neighbour planes come from a
-/// [`Neighbours`] only when a fix has cells to look at.
-pub(crate) struct Fixing<'a> {
-    pub count: &'a [Words; 4],
-    pub cells: &'a Words,
+/// How a stepper hands a generation to the fixes: the four planes of every
+/// word's count (`[0]` the lowest) and the cells, from which each fix
+/// chooses the cells it is for; or, for a rule of one fix, those cells
+/// already chosen where the counts were made (in [`Workspace::chosen`]),
+/// which spares storing the counts and reading them back.
+pub(crate) enum Fixing<'a> {
+    Counted {
+        count: &'a [Words; 4],
+        cells: &'a Words,
+    },
+    Chosen {
+        /// whether any cell is chosen
+        any: bool,
+    },
 }
 
 /// The eight neighbour planes of every word, clockwise from north (as the
@@ -37,6 +45,58 @@ pub(crate) struct Fixing<'a> {
 /// generations where some fix does.
 pub(crate) trait Neighbours {
     fn planes(&mut self) -> [&[u64; WORDS]; 8];
+}
+
+/// A fix compiled for a stepper: with the cells it is for.
+#[derive(Clone, Debug)]
+pub(crate) struct Aimed {
+    pub fix: Fix,
+    pub target: Target,
+}
+
+impl Aimed {
+    /// A rule's fixes for a stepper whose count is of the nine cells around
+    /// and including each cell (`nine`, the kernel's) or of its eight
+    /// neighbours.
+    pub(crate) fn all(fixes: Vec<Fix>, nine: bool) -> Vec<Aimed> {
+        fixes
+            .into_iter()
+            .map(|fix| Aimed {
+                target: Target::of(&fix, nine),
+                fix,
+            })
+            .collect()
+    }
+}
+
+/// The cells of one state and count, as masks to compare 64 cells with:
+/// each bit of the count (all ones where a count plane, xored with it,
+/// agrees), and the state (0 for live cells, to xor the cells with).
+#[derive(Clone, Copy, Debug)]
+pub(crate) struct Target {
+    want: [u64; 4],
+    state: u64,
+}
+
+impl Target {
+    fn of(fix: &Fix, nine: bool) -> Target {
+        // A live cell's count of nine is its neighbours and itself.
+        let value = fix.count + (nine && fix.alive) as u32;
+        Target {
+            want: [0, 1, 2, 3].map(|bit| if value >> bit & 1 == 1 { 0 } else { u64::MAX }),
+            state: if fix.alive { 0 } else { u64::MAX },
+        }
+    }
+
+    /// Where 64 cells, with their count as four planes, are of the target.
+    #[inline(always)]
+    pub(crate) fn at(&self, count: [u64; 4], cells: u64) -> u64 {
+        (count[0] ^ self.want[0])
+            & (count[1] ^ self.want[1])
+            & (count[2] ^ self.want[2])
+            & (count[3] ^ self.want[3])
+            & (cells ^ self.state)
+    }
 }
 
 /// The arrays the fixes write in between: the cells each fix is for, and
@@ -54,26 +114,35 @@ impl Workspace {
             matched: Words([0; WORDS]),
         }
     }
+
+    /// Room for the cells a fix is for (see [`Fixing::Chosen`]).
+    pub(crate) fn chosen(&mut self) -> &mut Words {
+        &mut self.chosen
+    }
 }
 
 impl Fixing<'_> {
     /// Applies `fixes` to the first 8L words of `next`, computed from the
     /// cells by the rule's base: where a cell's arrangement is one the rule
-    /// treats apart from its count, its new state flips. With `NINE` the
-    /// count is of the nine cells around and including each cell (the
-    /// kernel's), else of its eight neighbours.
+    /// treats apart from its count, its new state flips.
     #[inline(always)]
-    pub(crate) fn apply<const L: usize, const NINE: bool>(
+    pub(crate) fn apply<const L: usize>(
         &self,
-        fixes: &[Fix],
+        fixes: &[Aimed],
         neighbours: &mut impl Neighbours,
         room: &mut Workspace,
         next: &mut Words,
     ) {
-        for fix in fixes {
+        for Aimed { fix, target } in fixes {
+            let any = match *self {
+                Fixing::Counted { count, cells } => {
+                    choose::<L>(target, count, cells, &mut room.chosen)
+                }
+                Fixing::Chosen { any } => any,
+            };
             // Many fixes are for counts that a square often has nowhere in
             // a generation: then there is nothing to match.
-            if !self.choose::<L, NINE>(fix, &mut room.chosen) {
+            if !any {
                 continue;
             }
             let planes = &neighbours.planes();
@@ -90,32 +159,25 @@ impl Fixing<'_> {
             }
         }
     }
+}
 
-    /// The cells of the fix's state and count into `chosen`, and whether
-    /// there are any.
-    #[inline(always)]
-    #[allow(clippy::needless_range_loop)] // index loops over arrays in step vectorise
-    fn choose<const L: usize, const NINE: bool>(&self, fix: &Fix, chosen: &mut Words) -> bool {
-        // A live cell's count of nine is its neighbours and itself.
-        let value = fix.count + (NINE && fix.alive) as u32;
-        // Each bit of the count as a mask to xor its plane with: all ones
-        // where the plane agrees.
-        let want = [0, 1, 2, 3].map(|bit| if value >> bit & 1 == 1 { 0 } else { u64::MAX });
-        // The state as a mask to xor the cells with: 0 for live cells.
-        let state = if fix.alive { 0 } else { u64::MAX };
-        let (count, cells) = (self.count, self.cells);
-        let mut any = 0;
-        for word in 0..8 * L {
-            let these = (count[0].0[word] ^ want[0])
-                & (count[1].0[word] ^ want[1])
-                & (count[2].0[word] ^ want[2])
-                & (count[3].0[word] ^ want[3])
-                & (cells.0[word] ^ state);
-            chosen.0[word] = these;
-            any |= these;
-        }
-        any != 0
+/// The cells of the target into `chosen`, and whether there are any.
+#[inline(always)]
+#[allow(clippy::needless_range_loop)] // index loops over arrays in step vectorise
+fn choose<const L: usize>(
+    target: &Target,
+    count: &[Words; 4],
+    cells: &Words,
+    chosen: &mut Words,
+) -> bool {
+    let mut any = 0;
+    for word in 0..8 * L {
+        let planes = [0, 1, 2, 3].map(|bit| count[bit].0[word]);
+        let these = target.at(planes, cells.0[word]);
+        chosen.0[word] = these;
+        any |= these;
     }
+    any != 0
 }
 
 /// Arrangements matched in one loop over the words: enough to keep the
