@@ -7,6 +7,7 @@
 
 use std::array;
 
+use super::orbits::{self, for_orbit};
 use super::sliced::{Fix, Term};
 
 /// Words in an array: a square of side 64, one word per row, or a direct
@@ -47,11 +48,14 @@ pub(crate) trait Neighbours {
     fn planes(&mut self) -> [&[u64; WORDS]; 8];
 }
 
-/// A fix compiled for a stepper: with the cells it is for.
+/// A fix compiled for a stepper: with the cells it is for, and its
+/// arrangements as whole orbits of the square's symmetries (see
+/// `orbits`; none where they are not, which an isotropic rule never has).
 #[derive(Clone, Debug)]
 pub(crate) struct Aimed {
     pub fix: Fix,
     pub target: Target,
+    orbits: Vec<u8>,
 }
 
 impl Aimed {
@@ -63,9 +67,40 @@ impl Aimed {
             .into_iter()
             .map(|fix| Aimed {
                 target: Target::of(&fix, nine),
+                orbits: whole_orbits(&fix),
                 fix,
             })
             .collect()
+    }
+}
+
+/// The orbits that make up a fix's arrangements, or none if they do not
+/// make whole orbits.
+fn whole_orbits(fix: &Fix) -> Vec<u8> {
+    let arrangements: Vec<u8> = fix
+        .terms
+        .iter()
+        .map(|term| {
+            let named = term.cells[..fix.cells()]
+                .iter()
+                .fold(0u8, |named, &cell| named | 1 << cell);
+            if fix.count > 4 { !named } else { named }
+        })
+        .collect();
+    let mut orbits: Vec<u8> = arrangements
+        .iter()
+        .map(|&arrangement| orbits::orbit_of(arrangement) as u8)
+        .collect();
+    orbits.sort_unstable();
+    orbits.dedup();
+    let covered: usize = orbits
+        .iter()
+        .map(|&orbit| orbits::TABLE[orbit as usize].len)
+        .sum();
+    if covered == arrangements.len() {
+        orbits
+    } else {
+        Vec::new()
     }
 }
 
@@ -133,7 +168,12 @@ impl Fixing<'_> {
         room: &mut Workspace,
         next: &mut Words,
     ) {
-        for Aimed { fix, target } in fixes {
+        for Aimed {
+            fix,
+            target,
+            orbits,
+        } in fixes
+        {
             let any = match *self {
                 Fixing::Counted { count, cells } => {
                     choose::<L>(target, count, cells, &mut room.chosen)
@@ -147,6 +187,13 @@ impl Fixing<'_> {
             }
             let planes = &neighbours.planes();
             let (chosen, matched) = (&room.chosen, &mut room.matched);
+            // Whole blocks of 64 words (the kernel's largest square, the
+            // direct stepper's tile) match orbit by orbit; the smaller
+            // squares keep the code that reads arrangements from the list.
+            if L == 8 && !orbits.is_empty() {
+                match_orbits::<L>(orbits, planes, chosen, matched, next);
+                continue;
+            }
             match (fix.cells(), fix.count > 4) {
                 (1, false) => apply_fix::<L, 1, false>(fix, planes, chosen, matched, next),
                 (2, false) => apply_fix::<L, 2, false>(fix, planes, chosen, matched, next),
@@ -275,5 +322,67 @@ fn flip<const L: usize, const K: usize, const DEAD: bool, const T: usize>(
     for word in 0..8 * L {
         let matched = so_far.0[word] | any_matches::<K, DEAD, T>(&cells, word);
         next.0[word] ^= matched & chosen.0[word];
+    }
+}
+
+/// A fix matched orbit by orbit (see `orbits`): one orbit flips `next`
+/// where it matches a chosen cell; more gather into `matched` first.
+#[inline(always)]
+#[allow(clippy::needless_range_loop)] // index loops over arrays in step vectorise
+fn match_orbits<const L: usize>(
+    orbits: &[u8],
+    planes: &[&[u64; WORDS]; 8],
+    chosen: &Words,
+    matched: &mut Words,
+    next: &mut Words,
+) {
+    if let [orbit] = *orbits {
+        for_orbit!(orbit as usize, flip_orbit::<L>(planes, chosen, next));
+        return;
+    }
+    matched.0[..8 * L].fill(0);
+    for &orbit in orbits {
+        for_orbit!(orbit as usize, gather_orbit::<L>(planes, matched));
+    }
+    for word in 0..8 * L {
+        next.0[word] ^= matched.0[word] & chosen.0[word];
+    }
+}
+
+/// The eight neighbour planes at one word.
+#[inline(always)]
+fn planes_at(planes: &[&[u64; WORDS]; 8], word: usize) -> [u64; 8] {
+    [
+        planes[0][word],
+        planes[1][word],
+        planes[2][word],
+        planes[3][word],
+        planes[4][word],
+        planes[5][word],
+        planes[6][word],
+        planes[7][word],
+    ]
+}
+
+/// Flips the chosen cells where orbit O matches.
+#[inline(always)]
+#[allow(clippy::needless_range_loop)] // index loops over arrays in step vectorise
+fn flip_orbit<const L: usize, const O: usize>(
+    planes: &[&[u64; WORDS]; 8],
+    chosen: &Words,
+    next: &mut Words,
+) {
+    for word in 0..8 * L {
+        let matched = orbits::matches::<O>(&planes_at(planes, word));
+        next.0[word] ^= matched & chosen.0[word];
+    }
+}
+
+/// Adds where orbit O matches to `matched`.
+#[inline(always)]
+#[allow(clippy::needless_range_loop)] // index loops over arrays in step vectorise
+fn gather_orbit<const L: usize, const O: usize>(planes: &[&[u64; WORDS]; 8], matched: &mut Words) {
+    for word in 0..8 * L {
+        matched.0[word] |= orbits::matches::<O>(&planes_at(planes, word));
     }
 }

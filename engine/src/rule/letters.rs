@@ -80,15 +80,23 @@ const TABLE: [(u32, char, u8); 31] = [
 
 /// The eight images of a neighbourhood under the symmetries of the square:
 /// four quarter turns, each also mirrored left to right.
-pub fn symmetries(neighbourhood: u8) -> [u8; 8] {
-    let mirrored = (0..8).fold(0u8, |image, bit| {
-        image | ((neighbourhood >> bit) & 1) << ((8 - bit) % 8)
-    });
-    std::array::from_fn(|k| {
+pub const fn symmetries(neighbourhood: u8) -> [u8; 8] {
+    // Loops by hand: this runs while the program compiles too (`orbits`).
+    let mut mirrored = 0u8;
+    let mut bit = 0;
+    while bit < 8 {
+        mirrored |= ((neighbourhood >> bit) & 1) << ((8 - bit) % 8);
+        bit += 1;
+    }
+    let mut images = [0u8; 8];
+    let mut k = 0;
+    while k < 8 {
         let turns = (k % 4) as u32 * 2;
         let base = if k < 4 { neighbourhood } else { mirrored };
-        base.rotate_left(turns)
-    })
+        images[k] = base.rotate_left(turns);
+        k += 1;
+    }
+    images
 }
 
 /// The letter of every neighbourhood (`None` for counts 0 and 8, which have

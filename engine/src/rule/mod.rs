@@ -18,6 +18,7 @@ use std::str::FromStr;
 mod background;
 pub(crate) mod fixing;
 pub mod letters;
+pub(crate) mod orbits;
 mod parse;
 pub(crate) mod sliced;
 
