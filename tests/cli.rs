@@ -468,3 +468,61 @@ fn a_far_generation_reads_the_same_short_way_in_the_summary_and_whole_in_json() 
     let report: serde_json::Value = serde_json::from_str(&json.stdout).unwrap();
     assert_eq!(report["generation"], far.as_str());
 }
+
+/// `deeptime leap` with `DEEPTIME_KERNEL` set to `kernel`.
+fn leap_on_kernel(kernel: &str, args: &[&str]) -> Run {
+    let output = Command::new(deeptime_bin())
+        .arg("leap")
+        .args(args)
+        .env("DEEPTIME_KERNEL", kernel)
+        .output()
+        .expect("deeptime starts");
+    Run {
+        command: format!("DEEPTIME_KERNEL={kernel} deeptime leap {}", args.join(" ")),
+        code: output.status.code(),
+        stdout: String::from_utf8_lossy(&output.stdout).into_owned(),
+        stderr: String::from_utf8_lossy(&output.stderr).into_owned(),
+    }
+}
+
+#[test]
+fn every_kernel_path_this_processor_runs_reaches_the_same_state() {
+    // Common practice: the narrower paths (DEVELOPERS, "Measuring one
+    // path") must agree with the widest, which tests/reference.rs checks
+    // against the independent reference. A path wider than the processor
+    // has is refused, not run.
+    let dir = temp_dir();
+    let path = dir.path().join("soup.rle");
+    std::fs::write(&path, deeptime_tests::soup(200, 0x5eed_1234)).unwrap();
+    let path = path.to_str().unwrap();
+    for rule in ["B3/S23", "B3/S2-i34q", "B36-k/S23", "B02a3-k/S2-i3"] {
+        let args = ["--rule", rule, "--gens", "1000", "--json", path];
+        let widest = json(&run_deeptime(std::iter::once("leap").chain(args)));
+        for kernel in ["portable", "avx2", "avx512"] {
+            let run = leap_on_kernel(kernel, &args);
+            // Every processor runs the portable path.
+            if kernel != "portable"
+                && run.code == Some(2)
+                && run.stderr.contains("this processor's widest is")
+            {
+                continue;
+            }
+            let report = json(&run);
+            assert_eq!(report["digest"], widest["digest"], "{rule} on {kernel}");
+            assert_eq!(
+                report["population"], widest["population"],
+                "{rule} on {kernel}"
+            );
+        }
+    }
+}
+
+#[test]
+fn an_unknown_kernel_path_is_bad_input() {
+    let run = leap_on_kernel("avx9", &["/nonexistent.rle", "--gens", "1"]);
+    assert_eq!(run.code, Some(2), "{}", run.describe());
+    assert_eq!(
+        run.stderr.trim(),
+        "deeptime: DEEPTIME_KERNEL=avx9: not an instruction set (portable, avx2 or avx512)"
+    );
+}

@@ -41,6 +41,11 @@ fn main() -> ExitCode {
         }
     }
     memory::return_large_blocks();
+    // A bad DEEPTIME_KERNEL is refused before any work, not met mid-run.
+    if let Err(message) = deeptime_engine::kernel_instruction_set() {
+        eprintln!("deeptime: {message}");
+        return ExitCode::from(failure::EXIT_BAD_INPUT);
+    }
     let outcome = match cli.command {
         Command::Leap(args) => leap::run(args),
         Command::Run(args) => run::run(args),

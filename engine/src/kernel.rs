@@ -91,7 +91,7 @@ struct Compiled {
 
 /// The instruction set the kernel's loops are compiled for (and the direct
 /// stepper's fixes, see `direct::Tile`).
-#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+#[derive(Clone, Copy, Debug, PartialEq, Eq, PartialOrd, Ord)]
 pub(crate) enum Isa {
     Portable,
     #[cfg(target_arch = "x86_64")]
@@ -100,9 +100,62 @@ pub(crate) enum Isa {
     Avx512,
 }
 
+/// The environment variable that narrows the kernel's instruction set, so
+/// that one machine can measure the paths of narrower ones.
+pub const KERNEL_VARIABLE: &str = "DEEPTIME_KERNEL";
+
+/// The instruction set the kernel runs here, by name: the widest this
+/// processor has, or a narrower one named in `DEEPTIME_KERNEL` (`portable`,
+/// `avx2`, `avx512`). An unknown name, or one wider than the processor has,
+/// is an error for the command line to report before any work.
+pub fn kernel_instruction_set() -> Result<&'static str, String> {
+    chosen_isa().map(Isa::name)
+}
+
+/// `DEEPTIME_KERNEL` read once: every kernel of the process runs one path.
+fn chosen_isa() -> Result<Isa, String> {
+    static CHOSEN: std::sync::OnceLock<Result<Isa, String>> = std::sync::OnceLock::new();
+    CHOSEN
+        .get_or_init(|| {
+            let widest = Isa::widest();
+            let Some(name) = std::env::var_os(KERNEL_VARIABLE) else {
+                return Ok(widest);
+            };
+            let name = name.to_string_lossy();
+            let wanted = Isa::ALL
+                .iter()
+                .copied()
+                .find(|isa| isa.name() == name.trim())
+                .ok_or_else(|| {
+                    format!("{KERNEL_VARIABLE}={name}: not an instruction set (portable, avx2 or avx512)")
+                })?;
+            if wanted > widest {
+                return Err(format!(
+                    "{KERNEL_VARIABLE}={name}: this processor's widest is {}",
+                    widest.name()
+                ));
+            }
+            Ok(wanted)
+        })
+        .clone()
+}
+
 impl Isa {
-    /// The widest instruction set this processor runs.
+    /// Every instruction set the kernel is compiled for, narrowest first.
+    #[cfg(target_arch = "x86_64")]
+    const ALL: &[Isa] = &[Isa::Portable, Isa::Avx2, Isa::Avx512];
+    #[cfg(not(target_arch = "x86_64"))]
+    const ALL: &[Isa] = &[Isa::Portable];
+
+    /// The instruction set the kernel runs: the widest this processor runs,
+    /// or the narrower one `DEEPTIME_KERNEL` names (a bad name, which the
+    /// command line refuses at start, leaves the widest).
     pub(crate) fn detect() -> Isa {
+        chosen_isa().unwrap_or_else(|_| Isa::widest())
+    }
+
+    /// The widest instruction set this processor runs.
+    fn widest() -> Isa {
         #[cfg(target_arch = "x86_64")]
         {
             if is_x86_feature_detected!("avx512f") && is_x86_feature_detected!("avx512vl") {
@@ -113,6 +166,16 @@ impl Isa {
             }
         }
         Isa::Portable
+    }
+
+    fn name(self) -> &'static str {
+        match self {
+            Isa::Portable => "portable",
+            #[cfg(target_arch = "x86_64")]
+            Isa::Avx2 => "avx2",
+            #[cfg(target_arch = "x86_64")]
+            Isa::Avx512 => "avx512",
+        }
     }
 
     /// Whether code compiled for AVX2 runs here (AVX-512 has it too).
@@ -749,17 +812,12 @@ mod tests {
 
     /// Every instruction set this machine runs.
     fn isas() -> Vec<Isa> {
-        let mut isas = vec![Isa::Portable];
-        #[cfg(target_arch = "x86_64")]
-        {
-            if is_x86_feature_detected!("avx2") {
-                isas.push(Isa::Avx2);
-            }
-            if is_x86_feature_detected!("avx512f") && is_x86_feature_detected!("avx512vl") {
-                isas.push(Isa::Avx512);
-            }
-        }
-        isas
+        let widest = Isa::widest();
+        Isa::ALL
+            .iter()
+            .copied()
+            .filter(|&isa| isa <= widest)
+            .collect()
     }
 
     // The centre half of a block after t ≤ side/4 generations equals the

@@ -90,6 +90,8 @@ struct Machine {
     cores: usize,
     memory_bytes: u64,
     os: String,
+    /// the instruction set the kernel ran (`DEEPTIME_KERNEL` can narrow it)
+    kernel: String,
     deeptime: String,
 }
 
@@ -118,6 +120,9 @@ impl Machine {
             cores: std::thread::available_parallelism().map_or(1, |n| n.get()),
             memory_bytes,
             os,
+            kernel: deeptime_engine::kernel_instruction_set()
+                .unwrap_or("unknown")
+                .to_string(),
             deeptime: env!("CARGO_PKG_VERSION").to_string(),
         }
     }
@@ -145,11 +150,12 @@ pub fn run(args: BenchArgs) -> anyhow::Result<()> {
     };
     let machine = Machine::describe();
     eprintln!(
-        "deeptime bench{}: {} ({} cores, {:.1} GiB)",
+        "deeptime bench{}: {} ({} cores, {:.1} GiB, kernel {})",
         if settings.quick { " --quick" } else { "" },
         machine.cpu,
         machine.cores,
-        machine.memory_bytes as f64 / (1u64 << 30) as f64
+        machine.memory_bytes as f64 / (1u64 << 30) as f64,
+        machine.kernel
     );
     let mut figures = Vec::new();
     for part in suite::PARTS {
