@@ -327,13 +327,15 @@ fn generations<const L: usize, const TERNARY: bool>(
         opposite: Words([0; WORDS]),
     };
     let mut other = Words([0; WORDS]);
-    let [even, odd] = &kernel.steps;
-    for _ in 0..steps / 2 {
-        one_generation::<L, TERNARY>(even, &mut scratch, fixing.as_deref_mut(), cells, &mut other);
-        one_generation::<L, TERNARY>(odd, &mut scratch, fixing.as_deref_mut(), &other, cells);
+    // One call in the loop, the two arrays swapped by reference: the
+    // generation and its fixes are inlined once, not once per array.
+    let (mut from, mut to) = (&mut *cells, &mut other);
+    for step in 0..steps {
+        let rule = &kernel.steps[step as usize % 2];
+        one_generation::<L, TERNARY>(rule, &mut scratch, fixing.as_deref_mut(), from, to);
+        std::mem::swap(&mut from, &mut to);
     }
     if steps % 2 == 1 {
-        one_generation::<L, TERNARY>(even, &mut scratch, fixing, cells, &mut other);
         *cells = other;
     }
 }
