@@ -9,11 +9,10 @@
 //! grid grows by whole tiles whenever a live cell reaches its outer ring of
 //! tiles, so the plane is unbounded in practice.
 
-use crate::kernel::Isa;
 use crate::pattern::{BuildError, Builder, Pattern};
 use crate::rule::Rule;
-use crate::rule::fixing::{Aimed, Fixing, Neighbours, WORDS, Words, Workspace};
 use crate::rule::sliced::Sliced;
+use crate::rule::tile::Tile;
 
 const TILE: usize = 64;
 
@@ -40,99 +39,6 @@ pub struct Grid {
     /// where an isotropic rule's fixes are applied to a whole tile at
     /// once; None for an outer-totalistic rule
     tile: Option<Box<Tile>>,
-}
-
-/// A tile column's 64 rows as the fixes read them (see `rule::fixing`):
-/// each row's eight neighbour planes, its neighbour count, its cells, and
-/// its next state by the rule's base, which the fixes then correct.
-#[derive(Clone)]
-struct Tile {
-    /// the rule's fixes, for a count of the eight neighbours
-    fixes: Vec<Aimed>,
-    planes: [Words; 8],
-    count: [Words; 4],
-    cells: Words,
-    next: Words,
-    room: Workspace,
-    /// whether this processor has AVX2, for the fixes' loops (the rows'
-    /// own loop is word by word whatever the processor)
-    avx2: bool,
-}
-
-impl Tile {
-    fn new(sliced: &Sliced) -> Tile {
-        let empty = Words([0; WORDS]);
-        Tile {
-            // This stepper counts neighbours, not the cell itself.
-            fixes: Aimed::all(sliced.fixes.clone(), false),
-            planes: [empty; 8],
-            count: [empty; 4],
-            cells: empty,
-            next: empty,
-            room: Workspace::new(),
-            avx2: Isa::detect().has_avx2(),
-        }
-    }
-
-    /// Row `at` of the tile: its neighbour planes, count, cells and state
-    /// by the base.
-    fn hold(&mut self, at: usize, neighbours: [u64; 8], count: [u64; 4], cells: u64, base: u64) {
-        for (plane, word) in self.planes.iter_mut().zip(neighbours) {
-            plane.0[at] = word;
-        }
-        for (plane, word) in self.count.iter_mut().zip(count) {
-            plane.0[at] = word;
-        }
-        self.cells.0[at] = cells;
-        self.next.0[at] = base;
-    }
-
-    /// The rows' next states with the fixes applied, four words at once
-    /// where the processor can.
-    fn fixed(&mut self) -> &Words {
-        #[cfg(target_arch = "x86_64")]
-        if self.avx2 {
-            // SAFETY: `avx2` is only set where the processor has AVX2
-            // (`Tile::new`, by `Isa::detect`).
-            unsafe { fix_tile_avx2(self) };
-            return &self.next;
-        }
-        fix_tile(self);
-        &self.next
-    }
-}
-
-#[cfg(target_arch = "x86_64")]
-#[target_feature(enable = "avx2")]
-fn fix_tile_avx2(tile: &mut Tile) {
-    fix_tile(tile)
-}
-
-/// The fixes applied to a tile's rows, in the instruction set of the
-/// caller.
-#[inline(always)]
-fn fix_tile(tile: &mut Tile) {
-    let Tile {
-        fixes,
-        planes,
-        count,
-        cells,
-        next,
-        room,
-        ..
-    } = tile;
-    let fixing = Fixing::Counted { count, cells };
-    fixing.apply::<8>(fixes, &mut Held(planes), room, next);
-}
-
-/// A tile's neighbour planes, held since its rows were.
-struct Held<'a>(&'a [Words; 8]);
-
-impl Neighbours for Held<'_> {
-    #[inline(always)]
-    fn planes(&mut self) -> [&[u64; WORDS]; 8] {
-        std::array::from_fn(|k| &self.0[k].0)
-    }
 }
 
 impl Grid {

@@ -21,6 +21,7 @@ pub mod letters;
 pub(crate) mod orbits;
 mod parse;
 pub(crate) mod sliced;
+pub(crate) mod tile;
 
 pub use background::Background;
 pub use parse::RuleError;

@@ -4,10 +4,9 @@
 //! otherwise as fixes. An outer-totalistic rule has no fixes, so it costs
 //! what it always did; an isotropic one pays per arrangement it fixes.
 //!
-//! The compiling is here, once; the bounded stepper evaluates word by word
-//! with [`Sliced::next`], and the kernel and the direct stepper run the
-//! same fixes over whole arrays of words (`fixing`) so that the compiler
-//! can vectorise them.
+//! The compiling is here, once; the steppers apply the base word by word
+//! and the fixes over whole arrays of words (`fixing`, and `tile` for the
+//! direct and bounded steppers) so that the compiler can vectorise them.
 
 use super::Rule;
 
@@ -60,35 +59,6 @@ impl Fix {
     pub fn cells(&self) -> usize {
         self.count.min(8 - self.count) as usize
     }
-
-    /// Where any of the fix's arrangements matches among cells known to
-    /// have its count, given the eight neighbour planes: the number of cells
-    /// that tell an arrangement picked once, so that each arrangement is a
-    /// few operations on planes in registers.
-    #[inline]
-    fn matched(&self, planes: &[u64; 8]) -> u64 {
-        let dead = self.count > 4;
-        match self.cells() {
-            1 => self.any::<1>(planes, dead),
-            2 => self.any::<2>(planes, dead),
-            3 => self.any::<3>(planes, dead),
-            _ => self.any::<4>(planes, dead),
-        }
-    }
-
-    /// Where any arrangement matches: all its K cells live, or with `dead`
-    /// all dead.
-    #[inline(always)]
-    fn any<const K: usize>(&self, planes: &[u64; 8], dead: bool) -> u64 {
-        self.terms.iter().fold(0, |any, term| {
-            let cells: [u64; K] = std::array::from_fn(|k| planes[term.cells[k] as usize & 7]);
-            any | if dead {
-                !cells.iter().fold(0, |any, plane| any | plane)
-            } else {
-                cells.iter().fold(u64::MAX, |all, plane| all & plane)
-            }
-        })
-    }
 }
 
 impl Sliced {
@@ -125,27 +95,8 @@ impl Sliced {
         Sliced { base, fixes }
     }
 
-    /// The next state of 64 cells: `alive`, their live-neighbour counts as
-    /// four bit planes (`count[0]` the lowest), and their eight neighbour
-    /// planes in the order of [`super::letters`], asked for only when the
-    /// rule has fixes.
-    #[inline]
-    pub fn next(&self, alive: u64, count: &[u64; 4], neighbours: impl FnOnce() -> [u64; 8]) -> u64 {
-        let mut next = self.base(alive, count);
-        if self.fixes.is_empty() {
-            return next;
-        }
-        let planes = neighbours();
-        for fix in &self.fixes {
-            let matched = fix.matched(&planes);
-            let state = if fix.alive { alive } else { !alive };
-            next ^= matched & equal(count, fix.count) & state;
-        }
-        next
-    }
-
     /// The next state of 64 cells by the base alone, the decision of each
-    /// count (what [`Sliced::next`] gives before the fixes).
+    /// count (before an isotropic rule's fixes, see `rule::tile`).
     #[inline]
     pub fn base(&self, alive: u64, count: &[u64; 4]) -> u64 {
         let mut next = 0;
@@ -189,49 +140,4 @@ pub(crate) fn counts(neighbours: &[u64; 8]) -> [u64; 4] {
         }
     }
     sum
-}
-
-#[cfg(test)]
-mod tests {
-    use super::*;
-
-    /// The neighbour planes and counts of 64 random neighbourhoods, one per
-    /// bit, and the cells' states.
-    fn random_words(seed: u64) -> ([u64; 8], [u64; 4], u64) {
-        let mut state = seed;
-        let mut next = || {
-            state ^= state << 13;
-            state ^= state >> 7;
-            state ^= state << 17;
-            state
-        };
-        let planes: [u64; 8] = std::array::from_fn(|_| next());
-        (planes, counts(&planes), next())
-    }
-
-    #[test]
-    fn sliced_agrees_with_the_rule_bit_by_bit() {
-        for text in [
-            "B3/S23",
-            "B2-a/S12",
-            "B3/S2-i34q",
-            "B1e2ak3inqy4ny5e/S",
-            "B2ce3-k4z5ai/S1c2-n4wt6k7e8",
-        ] {
-            let rule = Rule::parse(text).unwrap();
-            let sliced = Sliced::new(&rule);
-            if rule.totalistic_masks().is_some() {
-                assert!(sliced.fixes.is_empty(), "{text}");
-            }
-            for seed in 1..40 {
-                let (planes, count, alive) = random_words(seed * 7919);
-                let next = sliced.next(alive, &count, || planes);
-                for bit in 0..64 {
-                    let n = (0..8).fold(0u8, |n, i| n | ((planes[i] >> bit & 1) as u8) << i);
-                    let expected = rule.next_state(alive >> bit & 1 == 1, n);
-                    assert_eq!(next >> bit & 1 == 1, expected, "{text} {n:08b}");
-                }
-            }
-        }
-    }
 }
