@@ -359,6 +359,7 @@ fn from_stored(
             bytes: 0,
             budget,
             collections: 0,
+            memo_resets: 0,
             root_level: state.root_level().max(5),
             seconds: Duration::ZERO.as_secs_f64(),
         },

@@ -170,6 +170,8 @@ pub struct EngineReport {
     pub budget: u64,
     /// collections run
     pub collections: u64,
+    /// times the residual memo was dropped for want of budget
+    pub memo_resets: u64,
     /// level of the root quad
     pub root_level: u32,
     /// wall time of the advance, in seconds
@@ -187,6 +189,7 @@ impl EngineReport {
             bytes: stats.bytes,
             budget: stats.budget,
             collections: stats.collections,
+            memo_resets: stats.memo_resets,
             root_level: universe.root_level(),
             seconds: elapsed.as_secs_f64(),
         }
@@ -196,14 +199,18 @@ impl EngineReport {
 impl EngineReport {
     /// The figures as the reports print them: time, quads and memory.
     pub fn summary(&self) -> String {
-        format!(
+        let mut text = format!(
             "{:.3} s, {} quads created, {} live in {}, {} collections",
             self.seconds,
             self.quads_created,
             self.quads,
             human_bytes(self.bytes),
             self.collections
-        )
+        );
+        if self.memo_resets > 0 {
+            text.push_str(&format!(", {} memo resets", self.memo_resets));
+        }
+        text
     }
 }
 

@@ -41,7 +41,8 @@ const PROGRESS_EVERY: Duration = Duration::from_millis(250);
 
 /// An advance is thrashing (each collection discards work it then repeats,
 /// so each piece of progress costs more collections than the last) when,
-/// over its latest `THRASHING_WINDOW` collections, it moved so little that
+/// over its latest `THRASHING_WINDOW` losses to the budget (collections,
+/// and resets of the residual memo: `Store::losses`), it moved so little that
 /// the rest at that rate would take more than `THRASHING_PROJECTED`. An
 /// advance that merely collects often keeps a steady rate and needs a few
 /// thousand in all.
@@ -68,8 +69,8 @@ struct Local<'a, 'o> {
     observer: Option<Observer<'o>>,
     calls: u32,
     last_report: Instant,
-    /// the store's collections and the share done when the latest window
-    /// of collections began (see `THRASHING_WINDOW`)
+    /// the store's losses and the share done when the latest window of
+    /// them began (see `THRASHING_WINDOW`)
     window_start: (u64, f64),
 }
 
@@ -127,14 +128,14 @@ impl<'a, 'o> Local<'a, 'o> {
         rules: [Rule; 2],
         observer: Option<Observer<'o>>,
     ) -> Local<'a, 'o> {
-        let collections = store.collections();
+        let losses = store.losses();
         Local {
             store,
             kernel: Kernel::alternating(rules),
             observer,
             calls: 0,
             last_report: Instant::now(),
-            window_start: (collections, 0.0),
+            window_start: (losses, 0.0),
         }
     }
 }
@@ -245,15 +246,15 @@ impl Tree for Local<'_, '_> {
         if !self.calls.is_multiple_of(1024) {
             return Ok(());
         }
-        let collections = self.store.collections();
+        let losses = self.store.losses();
         let (started, done_then) = self.window_start;
-        if collections - started >= THRASHING_WINDOW {
+        if losses - started >= THRASHING_WINDOW {
             let done_now = done();
-            let rate = (done_now - done_then) / (collections - started) as f64;
+            let rate = (done_now - done_then) / (losses - started) as f64;
             if (1.0 - done_now) > rate * THRASHING_PROJECTED {
                 return Err(self.store.exceeded(true));
             }
-            self.window_start = (collections, done_now);
+            self.window_start = (losses, done_now);
         }
         if self.observer.is_none() {
             return Ok(());

@@ -256,8 +256,12 @@ pub struct StoreStats {
     pub leaves: u64,
     /// quads ever created (the engine's unit of work)
     pub created: u64,
-    /// collections run so far
+    /// collections of the arena run so far
     pub collections: u64,
+    /// times the residual memo was dropped whole for want of budget to
+    /// grow it (a sign of a budget near the live state, apart from
+    /// collections, which it costs far less than)
+    pub memo_resets: u64,
     /// bytes in use by the arena's filled slots, the table and the memo maps
     pub bytes: u64,
     /// the memory budget in bytes
@@ -335,6 +339,7 @@ pub struct Store {
     epoch_left: usize,
     created: u64,
     collections: u64,
+    memo_resets: u64,
 }
 
 impl Store {
@@ -362,6 +367,7 @@ impl Store {
             epoch_left: MIN_CAPACITY,
             created: 0,
             collections: 0,
+            memo_resets: 0,
         }
     }
 
@@ -372,14 +378,16 @@ impl Store {
             leaves: self.leaf_count as u64,
             created: self.created,
             collections: self.collections,
+            memo_resets: self.memo_resets,
             bytes: self.bytes_in_use(),
             budget: self.budget,
         }
     }
 
-    /// How many collections have run.
-    pub(crate) fn collections(&self) -> u64 {
-        self.collections
+    /// How often the budget took work away: collections, and resets of
+    /// the residual memo (an advance that keeps losing either thrashes).
+    pub(crate) fn losses(&self) -> u64 {
+        self.collections + self.memo_resets
     }
 
     /// Quads allocated (live or not yet collected).
@@ -1019,10 +1027,10 @@ impl Store {
             let grown = (self.residual.capacity() * 2).max(4) as u64 * RESIDUAL_ENTRY;
             let reserved = self.bytes_reserved(self.nodes.capacity(), self.table.len());
             if reserved + grown > self.budget {
-                // A collection of the residual memo: counted, so that an
-                // advance that keeps losing it is seen to thrash.
+                // Counted, so that an advance that keeps losing the memo
+                // is seen to thrash (`losses`).
                 self.residual.clear();
-                self.collections += 1;
+                self.memo_resets += 1;
             }
         }
         self.residual.insert(quad, result);
@@ -1206,5 +1214,24 @@ mod balance {
             }
         }
         assert!(store.stats().collections > 0);
+    }
+
+    #[test]
+    fn a_memo_reset_is_counted_apart_from_collections() {
+        // A budget the residual memo soon fills: it is dropped and counted
+        // as a reset, which the thrashing check sees as a loss too.
+        let mut store = Store::new(48 * 1024);
+        let quads: Vec<Handle> = (0..1_000u64)
+            .map(|bits| store.leaf(bits).unwrap())
+            .collect();
+        let before = store.stats().collections;
+        assert_eq!(before, 0, "the leaves fit without a collection");
+        for &quad in &quads {
+            store.remember_residual(quad, quad);
+        }
+        let stats = store.stats();
+        assert!(stats.memo_resets > 0, "{stats:?}");
+        assert_eq!(stats.collections, before);
+        assert_eq!(store.losses(), stats.collections + stats.memo_resets);
     }
 }

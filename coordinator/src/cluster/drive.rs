@@ -496,6 +496,7 @@ impl Run<'_> {
                 bytes: sum(&|m| m.bytes.load(Relaxed)),
                 budget: sum(&|m| m.memory),
                 collections: 0,
+                memo_resets: 0,
                 root_level: level,
                 seconds: started.elapsed().as_secs_f64(),
             },
