@@ -471,18 +471,11 @@ fn a_far_generation_reads_the_same_short_way_in_the_summary_and_whole_in_json() 
 
 /// `deeptime leap` with `DEEPTIME_KERNEL` set to `kernel`.
 fn leap_on_kernel(kernel: &str, args: &[&str]) -> Run {
-    let output = Command::new(deeptime_bin())
-        .arg("leap")
-        .args(args)
-        .env("DEEPTIME_KERNEL", kernel)
-        .output()
-        .expect("deeptime starts");
-    Run {
-        command: format!("DEEPTIME_KERNEL={kernel} deeptime leap {}", args.join(" ")),
-        code: output.status.code(),
-        stdout: String::from_utf8_lossy(&output.stdout).into_owned(),
-        stderr: String::from_utf8_lossy(&output.stderr).into_owned(),
-    }
+    deeptime_tests::run_program_with_env(
+        &deeptime_bin(),
+        &[("DEEPTIME_KERNEL", kernel)],
+        std::iter::once("leap").chain(args.iter().copied()),
+    )
 }
 
 #[test]

@@ -55,10 +55,11 @@ impl Grid {
         // One empty ring of tiles around the pattern.
         let words = (width as usize).div_ceil(TILE) + 2;
         let rows = ((height as usize).div_ceil(TILE) + 2) * TILE;
+        let sliced = Sliced::new(&rule);
         let mut grid = Grid {
             rule,
-            sliced: Sliced::new(&rule),
-            tile: None,
+            tile: Tile::of(&sliced),
+            sliced,
             left: -(TILE as i64),
             top: -(TILE as i64),
             words,
@@ -80,9 +81,6 @@ impl Grid {
                     grid.cells[y * grid.words + x / 64] |= byte << (x % 64);
                 }
             }
-        }
-        if !grid.sliced.fixes.is_empty() {
-            grid.tile = Some(Box::new(Tile::new(&grid.sliced)));
         }
         grid.refresh_occupancy();
         grid

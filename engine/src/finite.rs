@@ -219,10 +219,12 @@ impl Finite {
             Space::Bounded { width, height } => (width as usize, height as usize, false),
         };
         let words = width.div_ceil(64);
+        let sliced = Sliced::new(&rule);
         Ok(Finite {
             space,
             rule,
-            sliced: Sliced::new(&rule),
+            tile: Tile::of(&sliced),
+            sliced,
             width,
             height,
             wrap,
@@ -246,9 +248,6 @@ impl Finite {
                     (row(-1), row(1))
                 })
                 .collect(),
-            tile: Some(Sliced::new(&rule))
-                .filter(|sliced| !sliced.fixes.is_empty())
-                .map(|sliced| Box::new(Tile::new(&sliced))),
             generation: BigUint::zero(),
         })
     }

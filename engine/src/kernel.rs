@@ -89,8 +89,8 @@ struct Compiled {
     fixes: Vec<Aimed>,
 }
 
-/// The instruction set the kernel's loops are compiled for (and the direct
-/// stepper's fixes, see `direct::Tile`).
+/// The instruction set the kernel's loops are compiled for (and the fixes
+/// of the direct and bounded steppers, see `rule::tile`).
 #[derive(Clone, Copy, Debug, PartialEq, Eq, PartialOrd, Ord)]
 pub(crate) enum Isa {
     Portable,
@@ -102,7 +102,7 @@ pub(crate) enum Isa {
 
 /// The environment variable that narrows the kernel's instruction set, so
 /// that one machine can measure the paths of narrower ones.
-pub const KERNEL_VARIABLE: &str = "DEEPTIME_KERNEL";
+const KERNEL_VARIABLE: &str = "DEEPTIME_KERNEL";
 
 /// The instruction set the kernel runs here, by name: the widest this
 /// processor has, or a narrower one named in `DEEPTIME_KERNEL` (`portable`,

@@ -38,7 +38,7 @@ pub use error::{
     AdvanceError, BadInput, BudgetExceeded, InputOverBudget, OutputFailed, StackRefused,
     TooLargeForText, human_bytes,
 };
-pub use kernel::{KERNEL_VARIABLE, kernel_instruction_set};
+pub use kernel::kernel_instruction_set;
 pub use store::{Handle, StoreStats};
 pub use universe::{
     BoundingBox, KnownQuads, MAX_TEXT_CELLS, PackInput, Region, Universe, WriteError,

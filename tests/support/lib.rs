@@ -46,17 +46,32 @@ where
     I: IntoIterator<Item = S>,
     S: AsRef<OsStr>,
 {
+    run_program_with_env(program, &[], args)
+}
+
+/// [`run_program`] with the environment variables `env` set.
+pub fn run_program_with_env<I, S>(program: &Path, env: &[(&str, &str)], args: I) -> Run
+where
+    I: IntoIterator<Item = S>,
+    S: AsRef<OsStr>,
+{
     let args: Vec<_> = args
         .into_iter()
         .map(|a| a.as_ref().to_os_string())
         .collect();
-    let command = std::iter::once(program.as_os_str())
-        .chain(args.iter().map(|a| a.as_os_str()))
-        .map(|a| a.to_string_lossy().into_owned())
+    let command = env
+        .iter()
+        .map(|(name, value)| format!("{name}={value}"))
+        .chain(
+            std::iter::once(program.as_os_str())
+                .chain(args.iter().map(|a| a.as_os_str()))
+                .map(|a| a.to_string_lossy().into_owned()),
+        )
         .collect::<Vec<_>>()
         .join(" ");
     let output = Command::new(program)
         .args(&args)
+        .envs(env.iter().copied())
         .output()
         .unwrap_or_else(|e| panic!("cannot start `{command}`: {e}"));
     Run {

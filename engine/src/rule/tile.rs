@@ -27,6 +27,12 @@ pub(crate) struct Tile {
 }
 
 impl Tile {
+    /// The tile for a rule's fixes; None for a rule without any (an
+    /// outer-totalistic rule), whose steppers then run the base alone.
+    pub(crate) fn of(sliced: &Sliced) -> Option<Box<Tile>> {
+        (!sliced.fixes.is_empty()).then(|| Box::new(Tile::new(sliced)))
+    }
+
     pub(crate) fn new(sliced: &Sliced) -> Tile {
         let empty = Words([0; WORDS]);
         Tile {
